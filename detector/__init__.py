@@ -1,0 +1,1 @@
+"""frostvane detector: reads tiles, extracts features, runs exported models."""

@@ -1,0 +1,125 @@
+"""The only code that opens files: images, CSV tables and atomic writes."""
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from .errors import ImageError
+
+__all__ = ["read_image", "write_image", "atomic_path", "atomic_dir"]
+
+
+def read_image(path, *, band=None):
+    """Read a single-band PNG or TIFF tile as a 2-D array of its own dtype.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG or TIFF file, 8- or 16-bit, one band.
+    band : int, optional
+        1-based band to take from a multi-band image; without it a multi-band
+        image is an error.
+
+    Returns
+    -------
+    image : ndarray of shape (M, N), dtype uint8, uint16 or float
+
+    Raises
+    ------
+    ImageError
+        The file is missing, unreadable or not single-band.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise ImageError(f"image {str(path)!r} does not exist.")
+    try:
+        if path.suffix.lower() in (".tif", ".tiff"):
+            import tifffile
+
+            image = tifffile.imread(path)
+        else:
+            from PIL import Image
+
+            with Image.open(path) as handle:
+                handle.load()
+                if handle.mode in ("I;16", "I;16B", "I;16L"):
+                    image = np.array(handle, dtype=np.uint16)
+                else:
+                    image = np.asarray(handle)
+    except Exception as err:  # any decoder failure is a corrupt image to the user
+        raise ImageError(f"image {str(path)!r} cannot be read: {err}.") from err
+    image = np.asarray(image)
+    if image.ndim == 3:
+        # Channels last (PIL) or first (tifffile, planar): the smaller axis is the band axis.
+        axis = 2 if image.shape[2] <= image.shape[0] else 0
+        if band is None:
+            raise ImageError(
+                f"image {str(path)!r} has shape {image.shape}; expected a single-band (M, N) image "
+                f"(choose a band)."
+            )
+        if not 1 <= band <= image.shape[axis]:
+            raise ImageError(f"image {str(path)!r} has {image.shape[axis]} bands; band {band!r} does not exist.")
+        image = np.take(image, band - 1, axis=axis)
+    if image.ndim != 2 or image.size == 0:
+        raise ImageError(f"image {str(path)!r} has shape {image.shape}; expected a single-band (M, N) image.")
+    if image.dtype == np.int32 or image.dtype == np.int64:
+        image = image.astype(np.uint16)
+    return image
+
+
+def write_image(path, image):
+    """Write a 2-D uint8 or uint16 array as PNG (or TIFF by suffix), atomically."""
+    path = Path(path)
+    image = np.asarray(image)
+    with atomic_path(path) as tmp:
+        if path.suffix.lower() in (".tif", ".tiff"):
+            import tifffile
+
+            tifffile.imwrite(tmp, image)
+        else:
+            from PIL import Image
+
+            Image.fromarray(image).save(tmp, format="PNG")
+
+
+@contextlib.contextmanager
+def atomic_path(path):
+    """Yield a temporary file name beside ``path``; rename it to ``path`` on success.
+
+    On any exception the temporary file is removed, so no half-written output is left.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp" + path.suffix, dir=path.parent)
+    os.close(fd)
+    try:
+        yield Path(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+
+
+@contextlib.contextmanager
+def atomic_dir(path):
+    """Yield a temporary folder beside ``path``; move it to ``path`` on success.
+
+    ``path`` must not exist yet or be an empty folder. On any exception the
+    temporary folder is removed.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    try:
+        yield tmp
+        if path.exists():
+            path.rmdir()  # only an empty folder may be replaced
+        os.replace(tmp, path)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise

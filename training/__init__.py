@@ -1,0 +1,1 @@
+"""frostvane training: consensus labels, synthetic scenes, fitting, evaluation, export."""
