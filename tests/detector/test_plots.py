@@ -1,0 +1,127 @@
+"""Overlay plots: features drawn where they are, coloured by direction, PNG written atomically."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from matplotlib import colormaps
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import to_rgba
+from matplotlib.figure import Figure
+from PIL import Image
+
+from detector.errors import DetectorError, TileSetError
+from detector.labels import ellipse_polygon, sector_polygon
+from detector.plots import SPOT_COLOR, draw_features, plot_overlay
+from detector.tileset import load_tileset
+from tests.detector._tileset_factory import write_tileset
+
+FEATURES = pd.DataFrame(
+    [
+        dict(kind="fan", x_px=20.0, y_px=30.0, direction_deg=90.0, length_px=40.0, spread_deg=40.0),
+        dict(kind="spot", x_px=70.0, y_px=15.0, direction_deg=30.0, semi_major_px=8.0, semi_minor_px=5.0),
+        dict(kind="fan", x_px=60.0, y_px=55.0, direction_deg=300.0, length_px=25.0, spread_deg=60.0),
+    ]
+)
+
+
+@pytest.fixture
+def tileset(tmp_path):
+    return load_tileset(write_tileset(tmp_path / "ts"))
+
+
+def _axis(shape=(64, 96)):
+    fig = Figure(figsize=(4, 3), dpi=100)
+    FigureCanvasAgg(fig)
+    ax = fig.add_axes([0, 0, 1, 1])
+    ax.imshow(np.zeros(shape), cmap="gray", vmin=0, vmax=1)
+    return fig, ax
+
+
+def test_patches_follow_the_outlines():
+    _, ax = _axis()
+    patches = draw_features(ax, FEATURES)
+    assert [p.get_gid() for p in patches] == ["fan", "spot", "fan"]
+    expect = [
+        sector_polygon(20, 30, 90, 40, 40),
+        ellipse_polygon(70, 15, 30, 8, 5),
+        sector_polygon(60, 55, 300, 25, 60),
+    ]
+    for patch, xy in zip(patches, expect):
+        # matplotlib closes the ring by repeating the first vertex.
+        assert np.allclose(patch.get_xy()[: len(xy)], xy)
+    assert all(p in ax.patches for p in patches)
+
+
+def test_fans_coloured_by_cyclic_direction():
+    _, ax = _axis()
+    patches = draw_features(ax, FEATURES)
+    twilight = colormaps["twilight"]
+    assert np.allclose(patches[0].get_edgecolor()[:3], twilight(90 / 360)[:3])
+    assert np.allclose(patches[2].get_edgecolor()[:3], twilight(300 / 360)[:3])
+    # A cyclic map gives (almost) the same colour at 0 and 360 degrees.
+    assert np.allclose(twilight(0.0), twilight(1.0), atol=0.02)
+    plain = draw_features(_axis()[1], FEATURES, color_by_direction=False)
+    assert np.allclose(plain[0].get_edgecolor(), plain[2].get_edgecolor())
+    assert np.allclose(plain[1].get_edgecolor(), to_rgba(SPOT_COLOR))
+
+
+def test_features_land_on_their_pixels():
+    fig, ax = _axis()
+    draw_features(ax, FEATURES.iloc[[0]], alpha=1.0)
+    ax.set_xlim(-0.5, 95.5)
+    ax.set_ylim(63.5, -0.5)
+    fig.canvas.draw()
+    rgba = np.asarray(fig.canvas.buffer_rgba())
+    height = rgba.shape[0]
+
+    def pixel(x, y):
+        dx, dy = ax.transData.transform((x, y))
+        return rgba[int(round(height - dy)), int(round(dx)), :3] / 255.0
+
+    # Inside the fan (to the right of its apex, direction 90): the fan colour.
+    assert np.allclose(pixel(40, 30), colormaps["twilight"](0.25)[:3], atol=0.03)
+    # Left of the apex and far above it: the black tile.
+    assert np.allclose(pixel(5, 30), 0, atol=0.03)
+    assert np.allclose(pixel(40, 5), 0, atol=0.03)
+
+
+def test_unknown_kind_cannot_be_drawn():
+    bad = FEATURES.copy()
+    bad.loc[1, "kind"] = "jet"
+    with pytest.raises(DetectorError, match="'jet'"):
+        draw_features(_axis()[1], bad)
+
+
+def test_overlay_png_is_written_atomically(tileset, tmp_path):
+    out = tmp_path / "plots" / "overlay.png"
+    assert plot_overlay(tileset, ["t_a1", "t_a2", "t_b1", "t_b2"], out) == out
+    with Image.open(out) as image:
+        assert image.format == "PNG"
+        big = image.size
+    assert [p.name for p in out.parent.iterdir()] == ["overlay.png"]  # no temporary left over
+    one = tmp_path / "one.png"
+    plot_overlay(tileset, ["t_a1", "t_a2", "t_b1", "t_b2"], one, max_tiles=1)
+    with Image.open(one) as image:
+        small = image.size
+    assert small[0] < big[0] and small[1] < big[1]
+
+
+def test_overlay_shows_the_features(tileset, tmp_path):
+    # Same tile with and without its consensus drawn: the pictures must differ in colour.
+    plot_overlay(tileset, ["t_b1"], tmp_path / "with.png", color_by_direction=False)
+    bare = type(tileset)(tileset.root, tileset.tiles, tileset.consensus.iloc[:0], 0, tileset.min_votes)
+    plot_overlay(bare, ["t_b1"], tmp_path / "without.png", color_by_direction=False)
+    with Image.open(tmp_path / "with.png") as a, Image.open(tmp_path / "without.png") as b:
+        a, b = np.asarray(a.convert("RGB"), dtype=int), np.asarray(b.convert("RGB"), dtype=int)
+    assert a.shape == b.shape
+    saturation = lambda im: im.max(axis=2) - im.min(axis=2)  # noqa: E731 - grey tiles have none
+    assert (saturation(a) > 60).sum() > 500
+    assert (saturation(b) > 60).sum() < (saturation(a) > 60).sum() / 10
+
+
+def test_overlay_rejects_bad_requests(tileset, tmp_path):
+    with pytest.raises(TileSetError, match="ghost"):
+        plot_overlay(tileset, ["ghost"], tmp_path / "x.png")
+    with pytest.raises(DetectorError, match="at least one"):
+        plot_overlay(tileset, [], tmp_path / "x.png")
+    assert not (tmp_path / "x.png").exists()
