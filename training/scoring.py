@@ -568,6 +568,17 @@ def baseline_metrics(errors):
     return out
 
 
+def _label_order(label):
+    """Sort key that puts interval labels such as '[150, 180)' in numeric order, others by name."""
+    text = str(label)
+    if text.startswith("["):
+        try:
+            return (0, float(text[1:].split(",")[0]), text)
+        except ValueError:
+            pass
+    return (1, 0.0, text)
+
+
 def _tile_attrs(tiles, *, ls_bins):
     t = tiles.set_index("tile_id")
     attrs = pd.DataFrame(index=t.index)
@@ -611,7 +622,7 @@ def breakdowns(
         pair_key = tp["tile_id"].map(attrs[col])
         fan_key = fans["tile_id"].map(attrs[col])
         group = {}
-        for label in sorted(set(attrs[col].unique())):
+        for label in sorted(set(attrs[col].unique()), key=_label_order):
             entry = {}
             for kind in ("fan", "spot"):
                 n_det = int(((det_key == label) & (detections["kind"] == kind)).sum())
@@ -627,17 +638,19 @@ def breakdowns(
         if source not in consensus:
             continue
         cf = consensus[consensus["kind"] == "fan"]
-        key = pd.cut(cf[source].astype(float), list(bins), right=False).astype(str)
+        cats = pd.cut(cf[source].astype(float), list(bins), right=False)
+        key = cats.astype(str)
         fan_key = pd.cut(fans[source].astype(float), list(bins), right=False).astype(str)
         group = {}
-        for label in key.unique():
+        # Bin order, not string order; bins without consensus fans are left out.
+        for label in [str(c) for c in cats.cat.categories if str(c) in set(key)]:
             sel = cf.index[(key == label).to_numpy()]
             recall = np.mean(sel.isin(matched_cons)) if len(sel) else np.nan
             group[str(label)] = {
                 "fan": {"recall": _num(recall), "n_consensus": int(len(sel))},
                 "direction": direction_metrics(fans.loc[(fan_key == label).to_numpy(), "error_deg"]),
             }
-        out[col] = dict(sorted(group.items()))
+        out[col] = group
     return out
 
 
