@@ -136,15 +136,13 @@ def match_objects(
     # Sequential greedy over the ranked list equals repeated rounds of accepting
     # every pair that is the best remaining one for both its detection and its
     # consensus object; each round is whole-array and few rounds are needed.
-    # Pairs carry tile and kind, so index labels of different groups never collide.
-    cand["_det_key"] = list(zip(cand["kind"], cand["det_index"]))
-    cand["_cons_key"] = list(zip(cand["kind"], cand["cons_index"]))
+    # Index labels are unique per table, so they identify objects across tiles too.
     accepted = []
     while len(cand):
-        best = ~cand["_det_key"].duplicated() & ~cand["_cons_key"].duplicated()
+        best = ~cand["det_index"].duplicated() & ~cand["cons_index"].duplicated()
         take = cand[best]
         accepted.append(take)
-        cand = cand[~cand["_det_key"].isin(set(take["_det_key"])) & ~cand["_cons_key"].isin(set(take["_cons_key"]))]
+        cand = cand[~cand["det_index"].isin(take["det_index"]) & ~cand["cons_index"].isin(take["cons_index"])]
     pairs = pd.concat(accepted, ignore_index=True)
     return pairs[_PAIR_COLUMNS].sort_values(["tile_id", "kind", "distance_px"], kind="stable").reset_index(drop=True)
 
