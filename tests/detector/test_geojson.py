@@ -1,0 +1,147 @@
+"""Tests of detector.geojson: RFC 7946 structure, polygon areas, georeferenced output."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from affine import Affine
+
+from detector.errors import DetectorError
+from detector.geo import MARS_SOUTH_POLAR_STEREO, Georeferencer
+from detector.geojson import detections_to_geojson, ring_signed_area, write_geojson
+
+
+def _detections():
+    nan = np.nan
+    return pd.DataFrame(
+        {
+            "tile_id": ["A_r00000_c00000", "A_r00000_c00000", "A_r00000_c00800"],
+            "kind": ["fan", "spot", "fan"],
+            "x_px": [100.0, 300.0, 950.0],
+            "y_px": [200.0, 250.0, 120.0],
+            "direction_deg": [30.0, 100.0, 270.0],
+            "length_px": [40.0, nan, 25.0],
+            "spread_deg": [35.0, nan, 90.0],
+            "semi_major_px": [nan, 12.0, nan],
+            "semi_minor_px": [nan, 7.0, nan],
+            "votes": [5, 4, 3],
+            "fan_fraction": [0.8, 0.1, 1.0],
+            "score": [0.91, 0.55, 0.7],
+            "direction_confidence": [0.6, nan, 0.9],
+        }
+    )
+
+
+def _shoelace_oracle(ring):
+    # Naive oracle: the shoelace formula written out vertex by vertex.
+    total = 0.0
+    for (x0, y0), (x1, y1) in zip(ring[:-1], ring[1:]):
+        total += x0 * y1 - x1 * y0
+    return total / 2.0
+
+
+def _check_structure(fc):
+    # RFC 7946: FeatureCollection of Features; a Polygon is an array of linear rings, each a closed
+    # list of >= 4 positions (section 3.1.6), exterior ring counter-clockwise (right-hand rule).
+    assert fc["type"] == "FeatureCollection"
+    for feature in fc["features"]:
+        assert feature["type"] == "Feature"
+        assert feature["geometry"]["type"] == "Polygon"
+        (ring,) = feature["geometry"]["coordinates"]
+        assert len(ring) >= 4
+        assert ring[0] == ring[-1]
+        assert all(len(p) == 2 for p in ring)
+        assert _shoelace_oracle(ring) > 0
+        assert isinstance(feature["properties"], dict)
+
+
+def test_pixel_geojson_structure_and_properties():
+    fc = detections_to_geojson(_detections())
+    _check_structure(fc)
+    assert fc["coordinates"] == "image_px" and "crs" not in fc
+    fan, spot, _ = fc["features"]
+    assert fan["properties"]["tile_id"] == "A_r00000_c00000"
+    assert fan["properties"]["votes"] == 5 and isinstance(fan["properties"]["votes"], int)
+    assert fan["properties"]["semi_major_px"] is None  # NaN -> null
+    assert spot["properties"]["direction_confidence"] is None
+    # The fan's apex is a vertex, in image pixels.
+    assert [100.0, 200.0] in fan["geometry"]["coordinates"][0]
+    # Spot vertices lie on the ellipse: rotate into its axes and check (u/a)^2 + (v/b)^2 = 1.
+    ring = np.array(spot["geometry"]["coordinates"][0])
+    d = np.radians(100.0)
+    axis = np.array([np.sin(d), -np.cos(d)])  # degrees clockwise from up, y down
+    rel = ring - [300.0, 250.0]
+    u = rel @ axis
+    v = rel @ np.array([-axis[1], axis[0]])
+    np.testing.assert_allclose((u / 12.0) ** 2 + (v / 7.0) ** 2, 1.0, atol=1e-9)
+
+
+def test_fan_polygon_area_matches_sector_area():
+    # Area of a circular sector: r^2 theta / 2 (theta in radians); the inscribed polygon with
+    # n arc vertices has exactly (n - 1) r^2 sin(theta / (n - 1)) / 2.
+    r, spread, n = 50.0, 60.0, 257
+    df = pd.DataFrame({"kind": ["fan"], "x_px": [0.0], "y_px": [0.0], "direction_deg": [123.0],
+                       "length_px": [r], "spread_deg": [spread]})
+    ring = np.array(detections_to_geojson(df, n_arc=n)["features"][0]["geometry"]["coordinates"][0])
+    theta = np.radians(spread)
+    area = ring_signed_area(ring)
+    assert area == pytest.approx(_shoelace_oracle(ring.tolist()))
+    assert area == pytest.approx((n - 1) * r**2 * np.sin(theta / (n - 1)) / 2.0, rel=1e-12)
+    assert area == pytest.approx(r**2 * theta / 2.0, rel=1e-4)
+    # Spot: polygon inscribed in the ellipse approaches pi a b.
+    df = pd.DataFrame({"kind": ["spot"], "x_px": [5.0], "y_px": [5.0], "direction_deg": [20.0],
+                       "semi_major_px": [9.0], "semi_minor_px": [4.0]})
+    ring = np.array(detections_to_geojson(df, n_ellipse=720)["features"][0]["geometry"]["coordinates"][0])
+    assert ring_signed_area(ring) == pytest.approx(np.pi * 9.0 * 4.0, rel=1e-4)
+
+
+def test_georeferenced_geojson(tmp_path):
+    transform = Affine(0.5, 0.0, 20_000.0, 0.0, -0.5, 40_000.0)
+    georef = Georeferencer(MARS_SOUTH_POLAR_STEREO, transform)
+    df = _detections()
+    fc = detections_to_geojson(df, georef=georef)
+    _check_structure(fc)
+    assert fc["coordinates"] == "map"
+    assert "Mars" in fc["crs"]["properties"]["name"]
+    assert "3396190" in fc["crs"]["properties"]["wkt"]
+    fan = fc["features"][0]
+    # The apex vertex is the pixel centre in map coordinates: transform * (col + 0.5, row + 0.5).
+    apex = [20_000.0 + 0.5 * 100.5, 40_000.0 - 0.5 * 200.5]
+    assert np.min(np.hypot(*(np.array(fan["geometry"]["coordinates"][0]) - apex).T)) < 1e-9
+    props = fan["properties"]
+    lon, lat = georef.pixel_to_lonlat(100.0, 200.0)
+    assert props["lon_deg"] == pytest.approx(lon) and props["lat_deg"] == pytest.approx(lat)
+    # North-up south polar grid: azimuth = direction - longitude (see test_geo).
+    assert (props["azimuth_deg"] - (30.0 - lon)) % 360.0 == pytest.approx(0.0, abs=1e-5)
+    assert props["wind_from_deg"] == pytest.approx((props["azimuth_deg"] + 180.0) % 360.0)
+    spot = fc["features"][1]["properties"]
+    assert spot["wind_from_deg"] is None and 0.0 <= spot["azimuth_deg"] < 180.0
+    path = tmp_path / "detections.geojson"
+    write_geojson(path, fc)
+    assert json.loads(path.read_text(encoding="utf-8")) == fc
+
+
+def test_json_round_trip_and_nan_refused(tmp_path):
+    fc = detections_to_geojson(_detections())
+    path = tmp_path / "out" / "det.geojson"
+    write_geojson(path, fc)
+    assert json.loads(path.read_text(encoding="utf-8")) == fc
+    with pytest.raises(DetectorError, match="cannot be written"):
+        write_geojson(tmp_path / "bad.geojson", {"type": "FeatureCollection", "x": float("nan")})
+    assert not (tmp_path / "bad.geojson").exists()
+
+
+def test_empty_and_bad_detections():
+    empty = _detections().iloc[:0]
+    assert detections_to_geojson(empty)["features"] == []
+    bad = _detections()
+    bad.loc[2, "kind"] = "crater"
+    with pytest.raises(DetectorError, match="row 3: kind 'crater'"):
+        detections_to_geojson(bad)
+    bad = _detections()
+    bad.loc[0, "length_px"] = np.nan
+    with pytest.raises(DetectorError, match="row 1: fan length_px"):
+        detections_to_geojson(bad)
+    with pytest.raises(DetectorError, match="lack column"):
+        detections_to_geojson(_detections().drop(columns="y_px"))
