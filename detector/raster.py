@@ -172,30 +172,33 @@ class RasterSource:
         self.name = self.path.stem
         if not self.path.is_file():
             raise ImageError(f"image {str(self.path)!r} does not exist.")
+        self._cache_mb = int(cache_mb)
         self._stack = contextlib.ExitStack()
         try:
-            rasterio = self._stack.enter_context(_quiet_rasterio(cache_mb))
-            try:
-                self._dataset = self._stack.enter_context(rasterio.open(self.path))
-            except rasterio.errors.RasterioError as err:
-                raise ImageError(f"image {str(self.path)!r} cannot be read: {err}.") from err
-            ds = self._dataset
-            self.count = ds.count
-            if band is None:
-                if ds.count != 1:
-                    raise ImageError(
-                        f"image {str(self.path)!r} has {ds.count} bands; choose one with band=1..{ds.count}."
-                    )
-                band = 1
-            if isinstance(band, bool) or not isinstance(band, (int, np.integer)) or not 1 <= band <= ds.count:
-                raise ImageError(f"image {str(self.path)!r} has {ds.count} bands; band {band!r} does not exist.")
-            self.band = int(band)
-            self.width, self.height = ds.width, ds.height
-            self.dtype = np.dtype(ds.dtypes[self.band - 1])
-            self.crs = ds.crs
-            self.transform = ds.transform
-            own = ds.nodatavals[self.band - 1]
-            self.nodata = float(nodata if nodata is not None else own if own is not None else 0)
+            # The GDAL environment is entered per call, not held, so that sources closed in any order
+            # leave the process configuration as it was.
+            with _quiet_rasterio(self._cache_mb) as rasterio:
+                try:
+                    self._dataset = self._stack.enter_context(rasterio.open(self.path))
+                except rasterio.errors.RasterioError as err:
+                    raise ImageError(f"image {str(self.path)!r} cannot be read: {err}.") from err
+                ds = self._dataset
+                self.count = ds.count
+                if band is None:
+                    if ds.count != 1:
+                        raise ImageError(
+                            f"image {str(self.path)!r} has {ds.count} bands; choose one with band=1..{ds.count}."
+                        )
+                    band = 1
+                if isinstance(band, bool) or not isinstance(band, (int, np.integer)) or not 1 <= band <= ds.count:
+                    raise ImageError(f"image {str(self.path)!r} has {ds.count} bands; band {band!r} does not exist.")
+                self.band = int(band)
+                self.width, self.height = ds.width, ds.height
+                self.dtype = np.dtype(ds.dtypes[self.band - 1])
+                self.crs = ds.crs
+                self.transform = ds.transform
+                own = ds.nodatavals[self.band - 1]
+                self.nodata = float(nodata if nodata is not None else own if own is not None else 0)
         except BaseException:
             self._stack.close()
             raise
@@ -274,9 +277,7 @@ class RasterSource:
                 f"window (col0={c0}, row0={r0}, width={w}, height={h}) is outside image {str(self.path)!r} "
                 f"of {self.width}x{self.height} px."
             )
-        with _quiet_rasterio():
-            import rasterio
-
+        with _quiet_rasterio(self._cache_mb) as rasterio:
             try:
                 array = self._dataset.read(self.band, window=Window(c0, r0, w, h))
             except rasterio.errors.RasterioError as err:
