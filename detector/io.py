@@ -106,20 +106,34 @@ def atomic_path(path):
 
 
 @contextlib.contextmanager
-def atomic_dir(path):
+def atomic_dir(path, *, replace=False):
     """Yield a temporary folder beside ``path``; move it to ``path`` on success.
 
-    ``path`` must not exist yet or be an empty folder. On any exception the
-    temporary folder is removed.
+    Parameters
+    ----------
+    path : path-like
+        Final folder. It must not exist or be empty, unless ``replace``.
+    replace : bool, default=False
+        Replace an existing folder: the old one is moved aside and deleted only
+        after the new one is in place.
+
+    On any exception the temporary folder is removed and ``path`` is untouched.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
     try:
         yield tmp
+        old = None
         if path.exists():
-            path.rmdir()  # only an empty folder may be replaced
+            if replace:
+                old = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".old", dir=path.parent))
+                os.replace(path, old / path.name)
+            else:
+                path.rmdir()  # only an empty folder may be replaced
         os.replace(tmp, path)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

@@ -1,10 +1,142 @@
-"""The ``frostvane`` command (placeholder until the subcommands land)."""
+"""The ``frostvane`` command: a thin layer over the library API.
+
+Every subcommand maps its options one to one onto a library call; errors caused
+by input become one line on stderr and exit code 2.
+"""
 
 import argparse
+import sys
+from pathlib import Path
+
+from detector.cli import add_detector_commands
+from detector.contract import DEFAULT_MIN_VOTES
+from detector.errors import DetectorError
+
+__all__ = ["main"]
+
+DEFAULT_MODEL = Path(__file__).resolve().parent.parent / "models" / "demo"
+DEFAULT_DEMO_TILES = Path(__file__).resolve().parent.parent / "demo_tiles"
+
+
+def _image_list(text):
+    return tuple(part.strip() for part in text.split(",") if part.strip())
+
+
+def _add_training_commands(commands):
+    synth = commands.add_parser("synth", help="Render an invented synthetic tile set with truth and consensus.")
+    synth.add_argument("out", type=Path)
+    synth.add_argument("--images", type=int, default=8)
+    synth.add_argument("--tiles-per-image", type=int, default=5)
+    synth.add_argument("--seed", type=int, default=0)
+    synth.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
+    synth.set_defaults(func=_synth)
+
+    train = commands.add_parser("train", help="Train a model on a tile set with consensus; write MODEL_DIR.")
+    train.add_argument("tile_set", type=Path)
+    train.add_argument("--out", type=Path, required=True)
+    train.add_argument("--seed", type=int, default=0)
+    hold = train.add_mutually_exclusive_group()
+    hold.add_argument("--holdout-fraction", type=float, default=0.2)
+    hold.add_argument("--holdout-images", type=_image_list, default=())
+    train.add_argument("--max-patches", type=int, default=300_000)
+    train.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES)
+    train.add_argument("--workers", type=int, default=1)
+    train.add_argument("--force", action="store_true", help="Replace an existing model folder.")
+    train.set_defaults(func=_train)
+
+    evaluate = commands.add_parser("evaluate", help="Score a model on a labelled tile set; write REPORT_DIR.")
+    evaluate.add_argument("model_dir", type=Path)
+    evaluate.add_argument("tile_set", type=Path)
+    evaluate.add_argument("--out", type=Path, required=True)
+    evaluate.add_argument("--min-score", type=float, default=0.5)
+    evaluate.add_argument("--force", action="store_true")
+    evaluate.set_defaults(func=_evaluate)
+
+    effort = commands.add_parser("effort", help="Route screened tiles and estimate the volunteer effort left.")
+    effort.add_argument("model_dir", type=Path)
+    effort.add_argument("screen_dir", type=Path, nargs="?")
+    effort.add_argument("--classifications-per-tile", type=int, default=30)
+    effort.add_argument("--seconds-per-classification", type=float, default=None)
+    effort.add_argument("--recall", type=float, default=0.98)
+    effort.add_argument("--max-direction-error", type=float, default=20.0)
+    effort.add_argument("--learning-curve", type=Path, metavar="TILESET", default=None)
+    effort.add_argument("--out", type=Path, default=None)
+    effort.add_argument("--seed", type=int, default=0)
+    effort.set_defaults(func=_effort)
+
+    demo = commands.add_parser("demo", help="Run the whole job on the shipped demo tiles and model.")
+    demo.add_argument("--out", type=Path, default=Path("out/demo"))
+    demo.add_argument("--tiles", type=Path, default=DEFAULT_DEMO_TILES)
+    demo.add_argument("--model", type=Path, default=DEFAULT_MODEL)
+    demo.add_argument("--retrain", action="store_true", help="Train a fresh model instead of using the shipped one.")
+    demo.set_defaults(func=_demo)
+
+
+def _synth(args):
+    from .synth import synthesize_tileset
+
+    path = synthesize_tileset(args.out, n_images=args.images, tiles_per_image=args.tiles_per_image,
+                              seed=args.seed, force=args.force)
+    print(f"wrote synthetic tile set {path}")
+
+
+def _train(args):
+    from .train import TrainConfig, format_card_summary, train_model
+
+    config = TrainConfig(seed=args.seed, holdout_fraction=args.holdout_fraction,
+                         holdout_images=tuple(args.holdout_images), max_patches=args.max_patches,
+                         min_votes=args.min_votes, workers=args.workers)
+    card = train_model(args.tile_set, args.out, config, force=args.force)
+    print(format_card_summary(card, args.out))
+
+
+def _evaluate(args):
+    from .evaluate import evaluate_model
+
+    evaluate_model(args.model_dir, args.tile_set, args.out, min_score=args.min_score, force=args.force)
+    print(f"report: {args.out / 'report.md'}")
+
+
+def _effort(args):
+    from .effort import effort_command
+
+    effort_command(args)
+
+
+def _demo(args):
+    from .demo import run_demo
+
+    run_demo(args.out, tiles=args.tiles, model=args.model, retrain=args.retrain)
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(
+        prog="frostvane",
+        description="Pre-screen orbital images for seasonal fans and spots, estimate remaining volunteer effort, "
+        "and benchmark direction recovery.",
+    )
+    commands = parser.add_subparsers(dest="command", required=True)
+    add_detector_commands(commands)
+    _add_training_commands(commands)
+    return parser
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(prog="frostvane")
-    parser.add_subparsers(dest="command", required=True)
-    parser.parse_args(argv)
-    return 0
+    """Entry point of the ``frostvane`` console script; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        code = args.func(args)
+    except DetectorError as err:
+        problems = getattr(err, "problems", None) or [str(err)]
+        for line in problems:
+            print(f"frostvane: error: {line}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("frostvane: interrupted; finished work is kept and a rerun continues from it.", file=sys.stderr)
+        return 130
+    return 0 if code is None else int(code)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

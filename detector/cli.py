@@ -1,0 +1,49 @@
+"""Subcommands of ``frostvane`` that need only the detector: ``validate`` and ``screen``."""
+
+from pathlib import Path
+
+from .contract import DEFAULT_MIN_VOTES
+
+__all__ = ["add_detector_commands"]
+
+
+def _tile_size(text):
+    try:
+        width, height = (int(v) for v in text.lower().split("x"))
+    except ValueError:
+        raise ValueError(f"tile size {text!r} is not WIDTHxHEIGHT, e.g. 800x600") from None
+    return width, height
+
+
+def add_detector_commands(commands):
+    """Register ``validate`` and ``screen`` on an argparse subparsers object."""
+    validate = commands.add_parser("validate", help="Check a tile set against the contract; print its summary.")
+    validate.add_argument("tile_set", type=Path)
+    validate.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
+                          help="Drop consensus features with fewer votes (default 3, common practice).")
+    validate.set_defaults(func=_validate)
+
+    screen = commands.add_parser("screen", help="Screen images or tile sets; write the screening folder.")
+    screen.add_argument("model_dir", type=Path)
+    screen.add_argument("inputs", type=Path, nargs="+", metavar="INPUT")
+    screen.add_argument("--out", type=Path, required=True)
+    screen.add_argument("--tile", type=_tile_size, default=(800, 600), help="Tile size WIDTHxHEIGHT, px.")
+    screen.add_argument("--overlap", type=int, default=32, help="Margin read around each tile, px.")
+    screen.add_argument("--workers", type=int, default=1)
+    screen.add_argument("--scheduler", default=None, help="Address of a running Dask distributed scheduler.")
+    screen.add_argument("--nodata", type=float, default=None)
+    screen.add_argument("--band", type=int, default=None, help="1-based band of a multi-band image.")
+    screen.set_defaults(func=_screen)
+
+
+def _validate(args):
+    from .tileset import format_summary, load_tileset, summarize_tileset
+
+    tileset = load_tileset(args.tile_set, min_votes=args.min_votes)
+    print(format_summary(summarize_tileset(tileset)))
+
+
+def _screen(args):
+    from .screen import screen_command
+
+    screen_command(args)

@@ -1,0 +1,224 @@
+"""Loading and running an exported frostvane model with onnxruntime alone.
+
+A model folder holds ``detector.onnx`` (patch classifier over none / fan / spot),
+``orientation.onnx`` (fan polarity along the structure-tensor axis) and
+``model.json``, the model card. Nothing here unpickles anything: the card is
+JSON and the models are ONNX graphs.
+"""
+
+import hashlib
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .errors import ModelError, SpecError
+from .spec import FEATURE_VERSION, FeatureSpec
+
+__all__ = [
+    "CLASS_NAMES",
+    "MODEL_FORMAT_VERSION",
+    "MODEL_CARD",
+    "DETECTOR_ONNX",
+    "ORIENTATION_ONNX",
+    "Calibration",
+    "Model",
+    "load_model",
+    "sha256_file",
+]
+
+MODEL_FORMAT_VERSION = 1
+MODEL_CARD = "model.json"
+DETECTOR_ONNX = "detector.onnx"
+ORIENTATION_ONNX = "orientation.onnx"
+CLASS_NAMES = ("none", "fan", "spot")
+
+
+def sha256_file(path):
+    """Hex SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """Vector scaling of class log-probabilities, fitted on held-out groups.
+
+    ``p_cal = softmax(log(p) / temperature + bias)``: temperature scaling
+    (Guo et al. 2017, "On calibration of modern neural networks") with one
+    bias per class.
+    """
+
+    temperature: float = 1.0
+    bias: tuple = (0.0, 0.0, 0.0)
+
+    def __post_init__(self):
+        if not np.isfinite(self.temperature) or self.temperature <= 0:
+            raise SpecError(f"calibration temperature must be a positive number; got {self.temperature!r}.")
+
+    def apply(self, proba):
+        """Calibrated probabilities, shape (n, n_classes), float32."""
+        logits = np.log(np.clip(np.asarray(proba, dtype=np.float64), 1e-12, 1.0)) / self.temperature
+        logits = logits + np.asarray(self.bias, dtype=np.float64)
+        logits -= logits.max(axis=1, keepdims=True)
+        expd = np.exp(logits)
+        return (expd / expd.sum(axis=1, keepdims=True)).astype(np.float32)
+
+
+@dataclass
+class Model:
+    """An exported model ready to run.
+
+    Attributes
+    ----------
+    folder : Path
+    card : dict
+        The parsed ``model.json``.
+    feature_spec : FeatureSpec
+    calibration : Calibration
+    orientation_index : ndarray of int
+        Columns of the feature matrix the orientation model reads, in order.
+    odd_mask : ndarray of bool
+        Which of those columns change sign when the axis is flipped by 180 degrees.
+    """
+
+    folder: Path
+    card: dict
+    feature_spec: FeatureSpec
+    calibration: Calibration
+    orientation_index: np.ndarray
+    odd_mask: np.ndarray
+    _detector: object = field(repr=False, default=None)
+    _orientation: object = field(repr=False, default=None)
+
+    @property
+    def assembly(self):
+        """Object-assembly parameters stored in the card."""
+        return self.card.get("assembly", {})
+
+    def predict_raw(self, X):
+        """Uncalibrated patch class probabilities from detector.onnx, shape (n, 3)."""
+        return _run_proba(self._detector, X)
+
+    def predict_patches(self, X):
+        """Calibrated patch class probabilities (none, fan, spot), shape (n, 3), float32."""
+        if len(X) == 0:
+            return np.zeros((0, len(CLASS_NAMES)), dtype=np.float32)
+        return self.calibration.apply(self.predict_raw(X))
+
+    def orientation_inputs(self, X):
+        """The orientation model's input columns of a feature matrix."""
+        return np.ascontiguousarray(X[:, self.orientation_index], dtype=np.float32)
+
+    def predict_polarity(self, X):
+        """Probability that each patch's fan runs along +axis (not axis + 180), shape (n,)."""
+        if len(X) == 0:
+            return np.zeros(0, dtype=np.float32)
+        return _run_proba(self._orientation, self.orientation_inputs(X))[:, 1]
+
+
+def _run_proba(session, X):
+    X = np.ascontiguousarray(X, dtype=np.float32)
+    name = session.get_inputs()[0].name
+    outputs = session.run(None, {name: X})
+    # skl2onnx with zipmap disabled: [labels, probabilities]
+    return np.asarray(outputs[1], dtype=np.float32)
+
+
+def _session(path):
+    import onnxruntime as ort
+
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = 1
+    options.inter_op_num_threads = 1
+    try:
+        return ort.InferenceSession(str(path), sess_options=options, providers=["CPUExecutionProvider"])
+    except Exception as err:
+        raise ModelError(f"model file {str(path)!r} cannot be loaded by onnxruntime: {err}.") from err
+
+
+def load_model(folder):
+    """Load a model folder, checking its card, file hashes and feature spec.
+
+    Parameters
+    ----------
+    folder : path-like
+        Folder with ``model.json``, ``detector.onnx`` and ``orientation.onnx``.
+
+    Returns
+    -------
+    model : Model
+
+    Raises
+    ------
+    ModelError
+        A file is missing, a hash differs from the one in the card, or the card is malformed.
+    SpecError
+        The model was made with another feature version or parameters than this code computes.
+    """
+    folder = Path(folder)
+    card_path = folder / MODEL_CARD
+    if not card_path.is_file():
+        raise ModelError(f"model folder {str(folder)!r} lacks {MODEL_CARD!r}.")
+    try:
+        card = json.loads(card_path.read_text())
+    except (OSError, ValueError) as err:
+        raise ModelError(f"{str(card_path)!r} is not valid JSON: {err}.") from err
+    version = card.get("format_version")
+    if version != MODEL_FORMAT_VERSION:
+        raise ModelError(
+            f"{str(card_path)!r} has format_version {version!r}; this frostvane reads "
+            f"{MODEL_FORMAT_VERSION}: re-export the model with this version of the code."
+        )
+    for key in ("feature_spec", "files", "calibration", "orientation_features", "odd_features"):
+        if key not in card:
+            raise ModelError(f"{str(card_path)!r} lacks the field {key!r}.")
+    for name in (DETECTOR_ONNX, ORIENTATION_ONNX):
+        path = folder / name
+        if not path.is_file():
+            raise ModelError(f"model folder {str(folder)!r} lacks {name!r}.")
+        recorded = card["files"].get(name)
+        actual = sha256_file(path)
+        if recorded != actual:
+            raise ModelError(
+                f"{str(path)!r} has sha256 {actual[:12]}...; {MODEL_CARD} records "
+                f"{str(recorded)[:12]}...: the file was changed after export."
+            )
+    spec_fields = card["feature_spec"]
+    if spec_fields.get("version") != FEATURE_VERSION:
+        raise SpecError(
+            f"model {str(folder)!r} was trained on feature version {spec_fields.get('version')!r}; "
+            f"this code computes version {FEATURE_VERSION}: re-export the model with this version of the code."
+        )
+    spec = FeatureSpec.from_json(json.dumps(spec_fields))
+    names = tuple(card.get("feature_names", ()))
+    if names != spec.feature_names:
+        missing = sorted(set(spec.feature_names) - set(names))[:5]
+        extra = sorted(set(names) - set(spec.feature_names))[:5]
+        raise SpecError(
+            f"model {str(folder)!r} lists features that differ from this code's "
+            f"(missing {missing!r}, unknown {extra!r}): re-export the model with this version of the code."
+        )
+    index = {name: i for i, name in enumerate(spec.feature_names)}
+    try:
+        orientation_index = np.array([index[n] for n in card["orientation_features"]], dtype=np.intp)
+    except KeyError as err:
+        raise SpecError(f"model {str(folder)!r}: orientation feature {err.args[0]!r} is not computed by this code.") from None
+    odd = set(card["odd_features"])
+    odd_mask = np.array([n in odd for n in card["orientation_features"]], dtype=bool)
+    cal = card["calibration"]
+    calibration = Calibration(temperature=float(cal["temperature"]), bias=tuple(float(b) for b in cal["bias"]))
+    return Model(
+        folder=folder,
+        card=card,
+        feature_spec=spec,
+        calibration=calibration,
+        orientation_index=orientation_index,
+        odd_mask=odd_mask,
+        _detector=_session(folder / DETECTOR_ONNX),
+        _orientation=_session(folder / ORIENTATION_ONNX),
+    )

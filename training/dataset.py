@@ -1,0 +1,258 @@
+"""Patch datasets from a tile set with consensus: features, targets, hard-negative sampling."""
+
+from dataclasses import dataclass
+
+import numpy as np
+from joblib import Parallel, delayed
+from scipy import ndimage
+from tqdm.auto import tqdm
+
+from detector.assemble import darkness_map
+from detector.detect import _as_unit_float, tile_summary_vector
+from detector.features import extract_features, patch_targets
+from detector.spec import patch_axis_deg
+from detector.labels import rasterise_features
+
+__all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels"]
+
+
+@dataclass
+class TileFeatures:
+    """Features and targets of every patch of one tile (one rotation).
+
+    Attributes
+    ----------
+    tile_id, image_id : str
+    rotation : int
+        Quarter turns clockwise applied to the tile before extraction.
+    X : ndarray of shape (n_patches, n_features), float32
+    grid : PatchGrid
+    cls : ndarray of shape (n_patches,), int8
+        0 none, 1 fan, 2 spot.
+    fan_fraction, spot_fraction : ndarray of shape (n_patches,)
+    fan_direction_deg : ndarray of shape (n_patches,)
+        Coverage-weighted circular mean consensus fan direction (NaN off fans).
+    axis_deg : ndarray of shape (n_patches,)
+        Structure-tensor axis, degrees mod 180.
+    patch_darkness : ndarray of shape (n_patches,)
+        Mean positive darkness over the window (used to find hard negatives).
+    summary : ndarray of shape (n_features,)
+        Mean feature vector over the tile's valid patches (before any sampling).
+    """
+
+    tile_id: str
+    image_id: str
+    rotation: int
+    X: np.ndarray
+    grid: object
+    cls: np.ndarray
+    fan_fraction: np.ndarray
+    spot_fraction: np.ndarray
+    fan_direction_deg: np.ndarray
+    axis_deg: np.ndarray
+    patch_darkness: np.ndarray
+    summary: np.ndarray
+
+
+def rotate_labels(masks, quarter_turns):
+    """Rotate label masks by quarter turns clockwise; directions turn with them (+90 each).
+
+    Returns ``(fan_cover, spot_cover, fan_direction)`` arrays.
+    """
+    k = -int(quarter_turns)
+    fan = np.rot90(masks.fan_cover, k)
+    spot = np.rot90(masks.spot_cover, k)
+    direction = (np.rot90(masks.fan_direction, k) + 90.0 * quarter_turns) % 360.0
+    return np.ascontiguousarray(fan), np.ascontiguousarray(spot), np.ascontiguousarray(direction)
+
+
+def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
+    """Features and patch targets of one tile of a tile set.
+
+    Parameters
+    ----------
+    tileset : detector.tileset.TileSet
+    tile_id : str
+    spec : FeatureSpec
+    rotation : int, default=0
+        Quarter turns clockwise (rotation augmentation).
+    tau : float, default=0.15
+        Coverage a patch needs to count as fan or spot.
+
+    Returns
+    -------
+    features : TileFeatures
+    """
+    tile = tileset.read_tile(tile_id)
+    masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
+    if rotation % 4:
+        tile = np.ascontiguousarray(np.rot90(tile, -rotation))
+    fan, spot, direction = rotate_labels(masks, rotation % 4)
+    nodata = tile == spec.nodata_value
+    X, grid = extract_features(tile, spec, nodata_mask=nodata)
+    targets = patch_targets(grid, fan, spot, direction, tau=tau)
+    dark = np.clip(darkness_map(_as_unit_float(tile), ~nodata), 0.0, 10.0)
+    pooled = ndimage.uniform_filter(dark, size=spec.patch_px, mode="constant")
+    half = spec.patch_px // 2
+    rows = np.clip(np.asarray(grid.row0) + half, 0, tile.shape[0] - 1)
+    cols = np.clip(np.asarray(grid.col0) + half, 0, tile.shape[1] - 1)
+    image_id = str(tileset.tiles.set_index("tile_id").at[tile_id, "image_id"])
+    return TileFeatures(
+        tile_id=tile_id,
+        image_id=image_id,
+        rotation=rotation % 4,
+        X=X,
+        grid=grid,
+        cls=np.asarray(targets.label, dtype=np.int8),
+        fan_fraction=np.asarray(targets.fan_fraction, dtype=np.float32),
+        spot_fraction=np.asarray(targets.spot_fraction, dtype=np.float32),
+        fan_direction_deg=np.asarray(targets.fan_direction_deg, dtype=np.float32),
+        axis_deg=np.asarray(patch_axis_deg(X, spec), dtype=np.float32),
+        patch_darkness=pooled[rows, cols].astype(np.float32),
+        summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
+    )
+
+
+@dataclass
+class PatchSet:
+    """A sampled set of patches ready to fit.
+
+    Attributes
+    ----------
+    X : ndarray of shape (n, n_features), float32
+    cls : ndarray of shape (n,), int8
+    fan_direction_deg, axis_deg, fan_fraction : ndarray of shape (n,)
+    image_id, tile_id : ndarray of shape (n,), object
+    weight : ndarray of shape (n,)
+        Inverse sampling rate of each patch, so weighted statistics match the full tile set.
+    """
+
+    X: np.ndarray
+    cls: np.ndarray
+    fan_direction_deg: np.ndarray
+    axis_deg: np.ndarray
+    fan_fraction: np.ndarray
+    image_id: np.ndarray
+    tile_id: np.ndarray
+    weight: np.ndarray
+
+    def __len__(self):
+        return len(self.cls)
+
+
+def _sample_tile(tf, rng, *, neg_ratio, hard_share):
+    valid = np.asarray(tf.grid.valid, dtype=bool)
+    pos = np.flatnonzero(valid & (tf.cls > 0))
+    neg = np.flatnonzero(valid & (tf.cls == 0))
+    n_keep = int(min(len(neg), max(neg_ratio * len(pos), 8)))
+    if n_keep >= len(neg):
+        return np.concatenate([pos, neg]), np.ones(len(pos) + len(neg))
+    # Hard negatives first: background touching deposits, then the darkest background
+    # (channel networks, dark terrain); the rest drawn at random.
+    touching = (tf.fan_fraction[neg] + tf.spot_fraction[neg]) > 0
+    order = np.lexsort((-tf.patch_darkness[neg], ~touching))
+    n_hard = int(hard_share * n_keep)
+    hard = neg[order[:n_hard]]
+    rest = neg[order[n_hard:]]
+    easy = rng.choice(rest, size=n_keep - n_hard, replace=False)
+    weight_easy = len(rest) / max(len(easy), 1)
+    idx = np.concatenate([pos, hard, easy])
+    weight = np.concatenate([np.ones(len(pos) + len(hard)), np.full(len(easy), weight_easy)])
+    return idx, weight
+
+
+def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0, neg_ratio=3.0,
+                    hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features"):
+    """Extract, label and sample the patches of some tiles.
+
+    Parameters
+    ----------
+    tileset : TileSet
+    tile_ids : sequence of str
+    spec : FeatureSpec
+    tau : float, default=0.15
+    rotations : tuple of int, default=(0,)
+        Quarter turns clockwise to extract for every tile (rotation augmentation).
+    seed : int, default=0
+    neg_ratio : float, default=3.0
+        Background patches kept per deposit patch, per tile.
+    hard_share : float, default=0.5
+        Share of the kept background taken as hard negatives.
+    max_patches : int, optional
+        Cap on the total; drawn uniformly (deposit patches kept first) when exceeded.
+    workers : int, default=1
+        joblib processes.
+    sample : bool, default=True
+        False keeps every valid patch (calibration wants the true class mix).
+
+    Returns
+    -------
+    patches : PatchSet
+    per_tile : list of TileFeatures
+        Only when ``sample`` is False (kept for reuse by evaluation); else empty.
+    summaries : ndarray of shape (n_tiles, n_features)
+        Mean feature vector of each unrotated tile (for the unfamiliarity score).
+    """
+    jobs = [(tid, r) for tid in tile_ids for r in rotations]
+    seeds = np.random.SeedSequence(seed).spawn(len(jobs))
+    iterator = tqdm(list(zip(jobs, seeds)), desc=desc, unit="tile", leave=False)
+    # Sampling happens inside the worker so that only kept patches travel back: memory
+    # grows with the kept patches, not with the catalog.
+    results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
+        delayed(_extract_one)(tileset, tid, spec, r, tau, s, sample, neg_ratio, hard_share)
+        for (tid, r), s in iterator
+    )
+    patches = _concat(results)
+    rng = np.random.default_rng(seed)
+    if max_patches is not None and len(patches) > max_patches:
+        keep = _cap(patches.cls, max_patches, rng)
+        patches = _take(patches, keep)
+    summaries = np.array([tf.summary for tf, _, _ in results if tf.rotation == 0])
+    return patches, ([tf for tf, _, _ in results] if not sample else []), summaries
+
+
+def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share):
+    tf = tile_features(tileset, tile_id, spec, rotation=rotation, tau=tau)
+    if sample:
+        idx, weight = _sample_tile(tf, np.random.default_rng(seed_seq), neg_ratio=neg_ratio, hard_share=hard_share)
+        return _slim(tf, idx), np.arange(len(idx)), weight
+    idx = np.flatnonzero(np.asarray(tf.grid.valid, dtype=bool))
+    return tf, idx, np.ones(len(idx))
+
+
+def _slim(tf, idx):
+    """A TileFeatures holding only the sampled patches (grid dropped)."""
+    return TileFeatures(tf.tile_id, tf.image_id, tf.rotation, tf.X[idx], None, tf.cls[idx], tf.fan_fraction[idx],
+                        tf.spot_fraction[idx], tf.fan_direction_deg[idx], tf.axis_deg[idx], tf.patch_darkness[idx],
+                        tf.summary)
+
+
+def _concat(parts):
+    n_features = parts[0][0].X.shape[1] if parts else 0
+    if not parts:
+        empty = np.zeros(0)
+        return PatchSet(np.zeros((0, n_features), np.float32), empty.astype(np.int8), empty, empty, empty,
+                        empty.astype(object), empty.astype(object), empty)
+    return PatchSet(
+        X=np.concatenate([tf.X[idx] for tf, idx, _ in parts]).astype(np.float32),
+        cls=np.concatenate([tf.cls[idx] for tf, idx, _ in parts]),
+        fan_direction_deg=np.concatenate([tf.fan_direction_deg[idx] for tf, idx, _ in parts]),
+        axis_deg=np.concatenate([tf.axis_deg[idx] for tf, idx, _ in parts]),
+        fan_fraction=np.concatenate([tf.fan_fraction[idx] for tf, idx, _ in parts]),
+        image_id=np.concatenate([np.full(len(idx), tf.image_id, dtype=object) for tf, idx, _ in parts]),
+        tile_id=np.concatenate([np.full(len(idx), tf.tile_id, dtype=object) for tf, idx, _ in parts]),
+        weight=np.concatenate([w for _, _, w in parts]),
+    )
+
+
+def _cap(cls, max_patches, rng):
+    pos = np.flatnonzero(cls > 0)
+    neg = np.flatnonzero(cls == 0)
+    if len(pos) >= max_patches:
+        return np.sort(rng.choice(pos, size=max_patches, replace=False))
+    return np.sort(np.concatenate([pos, rng.choice(neg, size=max_patches - len(pos), replace=False)]))
+
+
+def _take(p, idx):
+    return PatchSet(p.X[idx], p.cls[idx], p.fan_direction_deg[idx], p.axis_deg[idx], p.fan_fraction[idx],
+                    p.image_id[idx], p.tile_id[idx], p.weight[idx])

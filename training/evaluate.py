@@ -1,0 +1,304 @@
+"""Run a model over labelled tiles and score it against consensus (and the truth ceiling)."""
+
+import json
+from dataclasses import asdict
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from tqdm.auto import tqdm
+
+from detector.assemble import OBJECT_COLUMNS, AssemblyParams
+from detector.contract import DETECTION_COLUMNS, TRUTH_FILE
+from detector.detect import detect_tile
+from detector.errors import DetectorError, TileSetError
+from detector.features import extract_features, patch_targets
+from detector.io import atomic_dir, atomic_path
+from detector.labels import rasterise_features
+from detector.model import CLASS_NAMES, load_model
+from detector.tileset import load_tileset
+from detector.unfamiliar import unfamiliarity_score
+
+from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
+
+__all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_card", "evaluate_model",
+           "write_detections_csv"]
+
+
+def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", keep_results=False):
+    """Detections and patch-level targets of the model on labelled tiles.
+
+    Parameters
+    ----------
+    model : Model
+    tileset : TileSet
+    tile_ids : sequence of str
+    tau : float, optional
+        Coverage threshold for the patch targets; default the model's training tau.
+    keep_results : bool, default=False
+        Keep every TileResult (memory grows with tiles).
+
+    Returns
+    -------
+    run : dict
+        ``detections`` (DataFrame, OBJECT_COLUMNS), ``patch_true`` (int array),
+        ``patch_proba`` (n, 3), ``per_tile`` (list of dict: tile_id, p_deposit,
+        summary...), ``features`` (list of (X, grid) kept for re-assembly, only
+        with keep_results), ``results``.
+    """
+    tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
+    spec = model.feature_spec
+    frames, y_true, proba, per_tile, cache = [], [], [], [], []
+    for tile_id in tqdm(list(tile_ids), desc=desc, unit="tile", leave=False):
+        tile = tileset.read_tile(tile_id)
+        nodata = tile == spec.nodata_value
+        X, grid = extract_features(tile, spec, nodata_mask=nodata)
+        masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
+        targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
+        result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid))
+        valid = np.asarray(grid.valid, dtype=bool)
+        y_true.append(np.asarray(targets.label)[valid])
+        proba.append(result.proba[valid])
+        frames.append(result.detections)
+        per_tile.append({"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
+                         "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
+                         "shape": tile.shape, "valid_fraction": result.valid_fraction})
+        if keep_results:
+            cache.append((tile, nodata, X, grid, result))
+    detections = pd.concat([f for f in frames if len(f)], ignore_index=True) if any(len(f) for f in frames) \
+        else pd.DataFrame(columns=OBJECT_COLUMNS)
+    return {
+        "detections": detections,
+        "patch_true": np.concatenate(y_true) if y_true else np.zeros(0, int),
+        "patch_proba": np.concatenate(proba) if proba else np.zeros((0, 3)),
+        "per_tile": per_tile,
+        "cache": cache,
+    }
+
+
+def _tiles_frame(tileset, tile_ids):
+    tiles = tileset.tiles
+    return tiles[tiles["tile_id"].isin(list(tile_ids))].reset_index(drop=True)
+
+
+def _consensus_of(tileset, tile_ids):
+    cons = tileset.consensus
+    return cons[cons["tile_id"].isin(list(tile_ids))].reset_index(drop=True)
+
+
+def _prevailing(model):
+    return model.card.get("training", {}).get("prevailing_deg")
+
+
+def tune_assembly(model_dir, tileset, tile_ids, *, log=print):
+    """Choose the object-assembly thresholds that maximise mean object F1 on some tiles.
+
+    Returns
+    -------
+    tuning : dict
+        ``params`` (dict of AssemblyParams) and ``table`` (list of tried settings with F1).
+    """
+    from detector.detect import detect_tile as _detect
+
+    model = load_model(model_dir)
+    run = run_on_tiles(model, tileset, tile_ids, desc="tune", keep_results=True)
+    consensus = _consensus_of(tileset, tile_ids)
+    tiles = _tiles_frame(tileset, tile_ids)
+    base = AssemblyParams.from_dict(model.assembly)
+    table = []
+    best = None
+    for seed_k in (2.5, 3.0, 4.0):
+        for min_score in (0.3, 0.4, 0.5, 0.6, 0.7):
+            params = {**asdict(base), "seed_k": seed_k, "min_score": min_score}
+            model.card["assembly"] = params
+            frames = [
+                _detect(model, tile, tile_id=r.tile_id, nodata_mask=nodata, features=(X, grid)).detections
+                for tile, nodata, X, grid, r in run["cache"]
+            ]
+            det = pd.concat([f for f in frames if len(f)], ignore_index=True) if any(len(f) for f in frames) \
+                else pd.DataFrame(columns=OBJECT_COLUMNS)
+            f1 = _object_f1(det, consensus)
+            table.append({"seed_k": seed_k, "min_score": min_score, **f1})
+            if best is None or f1["mean_f1"] > best[0]:
+                best = (f1["mean_f1"], params)
+    log(f"assembly: best mean object F1 {best[0]:.3f} on calibration images with "
+        f"seed_k {best[1]['seed_k']}, min_score {best[1]['min_score']}")
+    return {"params": best[1], "table": table}
+
+
+def _object_f1(detections, consensus):
+    pairs = match_objects(detections.reset_index(drop=True), consensus.reset_index(drop=True))
+    out = {}
+    for kind in ("fan", "spot"):
+        tp = int((pairs["kind"] == kind).sum())
+        n_det = int((detections["kind"] == kind).sum())
+        n_cons = int((consensus["kind"] == kind).sum())
+        out[f"{kind}_f1"] = 2 * tp / (n_det + n_cons) if n_det + n_cons else 1.0
+    out["mean_f1"] = (out["fan_f1"] + out["spot_f1"]) / 2
+    return out
+
+
+def _per_tile_table(run, detections, consensus, tiles, model):
+    """Per-tile figures used by the effort estimate (held-out images)."""
+    pairs = match_objects(detections.reset_index(drop=True), consensus.reset_index(drop=True))
+    image = tiles.set_index("tile_id")["image_id"]
+    stats = model.card.get("unfamiliarity")
+    rows = []
+    summaries = np.array([t["summary"] for t in run["per_tile"]])
+    unfamiliar = unfamiliarity_score(stats, summaries) if len(summaries) else np.zeros(0)
+    for t, u in zip(run["per_tile"], unfamiliar):
+        tid = t["tile_id"]
+        n_det = int((detections["tile_id"] == tid).sum())
+        n_cons = int((consensus["tile_id"] == tid).sum())
+        tp_pairs = pairs[pairs["tile_id"] == tid]
+        tp = len(tp_pairs)
+        fan_err = tp_pairs.loc[tp_pairs["kind"] == "fan", "direction_error_deg"].to_numpy(float)
+        det_t = detections[detections["tile_id"] == tid]
+        rows.append({
+            "tile_id": tid,
+            "image_id": str(image[tid]),
+            "p_deposit": float(t["p_deposit"]),
+            "consensus_px": int(t["consensus_px"]),
+            "n_consensus": n_cons,
+            "n_detections": n_det,
+            "f1": float(2 * tp / (n_det + n_cons)) if n_det + n_cons else 1.0,
+            "fan_error_median_deg": float(np.median(fan_err)) if len(fan_err) else None,
+            "mean_score": float(det_t["score"].mean()) if n_det else 0.0,
+            "mean_direction_confidence": float(det_t["direction_confidence"].mean())
+            if (det_t["kind"] == "fan").any() else None,
+            "unfamiliarity": None if not np.isfinite(u) else float(u),
+        })
+    return rows
+
+
+def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0):
+    """Score a model on some tiles of a labelled tile set (the training run's held-out images).
+
+    Returns
+    -------
+    heldout : dict
+        ``scores`` (from :func:`training.scoring.score_catalogs`), ``patch`` (patch
+        metrics), ``per_tile`` (per-tile figures for the effort estimate).
+    """
+    model = load_model(model_dir)
+    run = run_on_tiles(model, tileset, tile_ids, desc="held-out")
+    consensus = _consensus_of(tileset, tile_ids)
+    tiles = _tiles_frame(tileset, tile_ids)
+    detections = run["detections"]
+    scores = score_catalogs(detections, consensus, tiles, prevailing_deg=_prevailing(model), seed=seed, n_boot=200)
+    patch = _patch_metrics(run)
+    per_tile = _per_tile_table(run, detections, consensus, tiles, model)
+    objects = scores["objects"]
+    log(f"held-out: fan F1 {_fmt(objects['fan']['f1'])}, spot F1 {_fmt(objects['spot']['f1'])}, "
+        f"fan direction median {_fmt(scores['direction']['per_fan'].get('median'))} deg")
+    return {"scores": scores, "patch": patch, "per_tile": per_tile, "detections": detections, "run": run}
+
+
+def _patch_metrics(run):
+    names = np.asarray(CLASS_NAMES, dtype=object)[run["patch_true"].astype(int)]
+    return patch_metrics(names, run["patch_proba"], CLASS_NAMES)
+
+
+def _fmt(value, digits=2):
+    return "n/a" if value is None or (isinstance(value, float) and not np.isfinite(value)) else f"{value:.{digits}f}"
+
+
+def summarise_for_card(heldout):
+    """The headline held-out numbers stored in ``model.json``."""
+    s = heldout["scores"]
+    per_fan = s["direction"]["per_fan"]
+    return {
+        "fan_f1": s["objects"]["fan"]["f1"],
+        "spot_f1": s["objects"]["spot"]["f1"],
+        "fan_precision": s["objects"]["fan"]["precision"],
+        "fan_recall": s["objects"]["fan"]["recall"],
+        "spot_precision": s["objects"]["spot"]["precision"],
+        "spot_recall": s["objects"]["spot"]["recall"],
+        "fan_direction_median_deg": per_fan.get("median"),
+        "fan_direction_p90_deg": per_fan.get("p90"),
+        "flip_rate": per_fan.get("flip_rate"),
+        "n_matched_fans": per_fan.get("n"),
+        "tile_mean_direction_median_deg": s["direction"]["per_tile_mean"].get("median"),
+        "false_per_mpx": s["objects"]["false_per_mpx"]["value"],
+        "dice_mean": (s.get("coverage") or {}).get("dice_mean"),
+        "covered_error_pp_mean": (s.get("coverage") or {}).get("covered_error_pp_mean"),
+        "patch_f1": {name: heldout["patch"][name]["f1"] for name in CLASS_NAMES},
+    }
+
+
+def write_detections_csv(detections, path):
+    """Write the contract's consensus columns plus score and direction_confidence, atomically."""
+    frame = detections.reindex(columns=DETECTION_COLUMNS)
+    with atomic_path(path) as tmp:
+        frame.to_csv(tmp, index=False, float_format="%.3f")
+
+
+def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, force=False, seed=0, log=print):
+    """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
+
+    Parameters
+    ----------
+    model_dir : path-like
+    tileset_root : path-like
+    out : path-like
+        Report folder (must be new or empty unless ``force``).
+    min_score : float, default=0.5
+        Smallest detection score kept.
+    images : sequence of str, optional
+        Score only these images of the tile set (e.g. the model's held-out images).
+
+    Returns
+    -------
+    report : dict
+        Everything written to ``report.json``.
+    """
+    from .report import headline_table, write_report
+
+    out = Path(out)
+    if out.exists() and any(out.iterdir()) and not force:
+        raise DetectorError(f"report folder {str(out)!r} is not empty; choose another or pass --force.")
+    if not 0.0 <= min_score <= 1.0:
+        raise DetectorError(f"--min-score must be in [0, 1]; got {min_score!r}.")
+    model = load_model(model_dir)
+    tileset = load_tileset(tileset_root, min_votes=int(model.card["training"]["config"]["min_votes"]))
+    if images is not None:
+        unknown = sorted(set(images) - set(tileset.image_ids))
+        if unknown:
+            raise TileSetError(f"image(s) {unknown!r} are not in tile set {str(tileset_root)!r}.")
+        tileset = tileset.subset(images)
+    if len(tileset.tiles) == 0:
+        raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
+    tile_ids = tileset.tiles["tile_id"].tolist()
+    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate")
+    detections = run["detections"]
+    detections = detections[detections["score"] >= min_score].reset_index(drop=True)
+    tiles = tileset.tiles
+    scores = score_catalogs(detections, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
+    patch = _patch_metrics(run)
+    ceiling = None
+    truth_path = Path(tileset_root) / TRUTH_FILE
+    if truth_path.is_file():
+        truth = pd.read_csv(truth_path)
+        truth = truth[truth["tile_id"].isin(tile_ids)].reset_index(drop=True)
+        truth["score"] = 1.0
+        truth["axis_deg"] = truth["direction_deg"] % 180.0
+        ceiling = score_catalogs(truth, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
+    seen = set(model.card["training"]["images"]["fit"]) | set(model.card["training"]["images"]["calibration"])
+    overlap = sorted(set(tiles["image_id"]) & seen)
+    with atomic_dir(out, replace=True) as tmp:
+        write_detections_csv(detections, tmp / "detections.csv")
+        scores["patch"] = {k: v for k, v in patch.items() if k != "curves"}
+        scores["meta"] = {"model": str(model_dir), "tileset": str(tileset_root), "min_score": min_score,
+                          "images_seen_in_training": overlap, "tiles": int(len(tiles))}
+        pr_curves = {name: {**patch["curves"][name], "average_precision": patch[name]["average_precision"]}
+                     for name in CLASS_NAMES[1:]}
+        y = run["patch_true"]
+        p = run["patch_proba"]
+        reliability = {"deposit (fan or spot)": ((y > 0).astype(int), 1.0 - p[:, 0]),
+                       "fan": ((y == 1).astype(int), p[:, 1]), "spot": ((y == 2).astype(int), p[:, 2])}
+        pairs = match_objects(detections, tileset.consensus.reset_index(drop=True))
+        fans = matched_fans(detections, tileset.consensus.reset_index(drop=True), pairs, tiles)
+        write_report(scores, tmp, ceiling=ceiling, pr_curves=pr_curves, reliability=reliability,
+                     fan_directions=fans, title="frostvane evaluation")
+    log(headline_table(scores, ceiling))
+    return {"scores": scores, "ceiling": ceiling}

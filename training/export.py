@@ -1,0 +1,60 @@
+"""Export fitted scikit-learn classifiers to ONNX and check parity with onnxruntime."""
+
+import numpy as np
+
+from detector.errors import ModelError
+
+__all__ = ["to_onnx_bytes", "onnx_parity"]
+
+
+def to_onnx_bytes(estimator, n_features):
+    """Serialise a fitted classifier (HistGradientBoosting) to ONNX bytes.
+
+    Probabilities come out as a plain float tensor (no ZipMap), the form that
+    :mod:`detector.model` reads.
+
+    Parameters
+    ----------
+    estimator : fitted classifier
+    n_features : int
+
+    Returns
+    -------
+    model_bytes : bytes
+    """
+    from skl2onnx import to_onnx
+    from skl2onnx.common.data_types import FloatTensorType
+
+    try:
+        onx = to_onnx(
+            estimator,
+            initial_types=[("X", FloatTensorType([None, int(n_features)]))],
+            options={id(estimator): {"zipmap": False}},
+            target_opset={"": 17, "ai.onnx.ml": 3},
+        )
+    except Exception as err:  # converter failures are environment problems the user must see
+        raise ModelError(
+            f"ONNX export of {type(estimator).__name__} failed: {err} (skl2onnx 1.20 needs protobuf < 5)."
+        ) from err
+    return onx.SerializeToString()
+
+
+def onnx_parity(model_bytes, estimator, X):
+    """Largest absolute difference between onnxruntime and scikit-learn probabilities.
+
+    Parameters
+    ----------
+    model_bytes : bytes
+    estimator : fitted classifier
+    X : ndarray of shape (n, n_features)
+
+    Returns
+    -------
+    max_abs_diff : float
+    """
+    import onnxruntime as ort
+
+    session = ort.InferenceSession(model_bytes, providers=["CPUExecutionProvider"])
+    X = np.ascontiguousarray(X, dtype=np.float32)
+    onnx_proba = session.run(None, {session.get_inputs()[0].name: X})[1]
+    return float(np.max(np.abs(onnx_proba - estimator.predict_proba(X)))) if len(X) else 0.0

@@ -1,0 +1,485 @@
+"""Fit the patch classifier and the orientation model, calibrate, export, score held-out images."""
+
+import hashlib
+import json
+import platform
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+from scipy.optimize import minimize
+
+from detector.assemble import AssemblyParams
+from detector.circstats import circular_mean
+from detector.contract import DEFAULT_MIN_VOTES
+from detector.errors import DetectorError, TileSetError
+from detector.geometry import angular_difference
+from detector.io import atomic_dir
+from detector.model import (
+    CLASS_NAMES,
+    DETECTOR_ONNX,
+    MODEL_CARD,
+    MODEL_FORMAT_VERSION,
+    ORIENTATION_ONNX,
+    Calibration,
+    sha256_file,
+)
+from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
+from detector.tileset import load_tileset
+from detector.unfamiliar import unfamiliarity_distance
+
+from .dataset import build_patch_set
+from .export import onnx_parity, to_onnx_bytes
+
+__all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
+           "orientation_feature_names", "orientation_training_set"]
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    """Every choice of a training run; saved in the model card so a run can be repeated.
+
+    Attributes
+    ----------
+    seed : int, default=0
+    holdout_fraction : float, default=0.2
+        Share of images held out for the final scores (at least one image).
+    holdout_images : tuple of str, optional
+        Explicit held-out image ids (overrides ``holdout_fraction``).
+    calibration_fraction : float, default=0.2
+        Share of the remaining images used for early stopping and calibration.
+    max_patches : int, default=300000
+        Cap on the training patches (memory budget).
+    min_votes : int, default=3
+    workers : int, default=1
+    tau : float, default=0.05
+        Coverage a patch needs to count as fan or spot for training. Below the
+        engine's 0.15 default so that small spots (radius 5-15 px, 2-15 % of a
+        64 px patch) still teach the classifier.
+    rotations : tuple of int, default=(0, 1, 2, 3)
+        Quarter-turn rotation augmentation of the training tiles.
+    neg_ratio : float, default=3.0
+    max_iter : int, default=300
+    learning_rate : float, default=0.1
+    max_leaf_nodes : int, default=31
+    """
+
+    seed: int = 0
+    holdout_fraction: float = 0.2
+    holdout_images: tuple = ()
+    calibration_fraction: float = 0.2
+    max_patches: int = 300_000
+    min_votes: int = DEFAULT_MIN_VOTES
+    workers: int = 1
+    tau: float = 0.05
+    rotations: tuple = (0, 1, 2, 3)
+    neg_ratio: float = 3.0
+    max_iter: int = 300
+    learning_rate: float = 0.1
+    max_leaf_nodes: int = 31
+
+    def __post_init__(self):
+        if not 0.0 < self.holdout_fraction < 1.0:
+            raise DetectorError(f"holdout fraction must be in (0, 1); got {self.holdout_fraction!r}.")
+        if self.max_patches < 100:
+            raise DetectorError(f"max patches must be at least 100; got {self.max_patches!r}.")
+        if self.workers < 1:
+            raise DetectorError(f"workers must be at least 1; got {self.workers!r}.")
+
+
+def split_images(image_ids, *, holdout_fraction=0.2, holdout_images=(), calibration_fraction=0.2, seed=0):
+    """Grouped split of image ids into fit, calibration and held-out images.
+
+    Parameters
+    ----------
+    image_ids : sequence of str
+        The distinct image ids of a tile set.
+
+    Returns
+    -------
+    fit, calibration, holdout : list of str
+
+    Raises
+    ------
+    TileSetError
+        Fewer than three images (no grouped hold-out and calibration possible), or
+        an unknown image in ``holdout_images``.
+    """
+    images = sorted(set(map(str, image_ids)))
+    if len(images) < 3:
+        raise TileSetError(
+            f"the tile set has {len(images)} image(s) ({', '.join(images)}); training needs at least 3 so that "
+            f"whole images can be held out for calibration and scoring."
+        )
+    rng = np.random.default_rng(seed)
+    if holdout_images:
+        unknown = sorted(set(holdout_images) - set(images))
+        if unknown:
+            raise TileSetError(f"held-out image(s) {unknown!r} are not in the tile set (found: {images!r}).")
+        holdout = sorted(holdout_images)
+        if len(holdout) > len(images) - 2:
+            raise TileSetError(f"holding out {len(holdout)} of {len(images)} images leaves too few to fit and calibrate.")
+    else:
+        n_hold = min(max(1, int(round(holdout_fraction * len(images)))), len(images) - 2)
+        holdout = sorted(rng.choice(images, size=n_hold, replace=False).tolist())
+    rest = [i for i in images if i not in holdout]
+    n_cal = min(max(1, int(round(calibration_fraction * len(rest)))), len(rest) - 1)
+    calibration = sorted(rng.choice(rest, size=n_cal, replace=False).tolist())
+    fit = [i for i in rest if i not in calibration]
+    return fit, calibration, holdout
+
+
+def calibration_scores(proba, y, *, n_bins=15):
+    """Brier score (mean over patches of the summed squared error) and top-label ECE.
+
+    Parameters
+    ----------
+    proba : ndarray of shape (n, k)
+    y : ndarray of shape (n,), int
+    n_bins : int, default=15
+
+    Returns
+    -------
+    scores : dict with 'brier' and 'ece'
+    """
+    proba = np.asarray(proba, dtype=np.float64)
+    onehot = np.eye(proba.shape[1])[np.asarray(y, dtype=int)]
+    brier = float(np.mean(np.sum((proba - onehot) ** 2, axis=1)))
+    conf = proba.max(axis=1)
+    correct = proba.argmax(axis=1) == y
+    edges = np.linspace(0.0, 1.0, n_bins + 1)
+    which = np.clip(np.digitize(conf, edges[1:-1]), 0, n_bins - 1)
+    ece = 0.0
+    for b in range(n_bins):
+        sel = which == b
+        if sel.any():
+            ece += sel.mean() * abs(correct[sel].mean() - conf[sel].mean())
+    return {"brier": brier, "ece": float(ece)}
+
+
+def fit_calibration(proba, y, *, weights=None):
+    """Fit temperature and class biases minimising the weighted log loss.
+
+    Returns
+    -------
+    calibration : Calibration
+    """
+    proba = np.clip(np.asarray(proba, dtype=np.float64), 1e-12, 1.0)
+    y = np.asarray(y, dtype=int)
+    weights = np.ones(len(y)) if weights is None else np.asarray(weights, dtype=float)
+    logp = np.log(proba)
+    k = proba.shape[1]
+
+    def loss(theta):
+        logits = logp / np.exp(theta[0]) + np.concatenate([[0.0], theta[1:]])
+        logits -= logits.max(axis=1, keepdims=True)
+        lse = np.log(np.exp(logits).sum(axis=1))
+        return float(np.sum(weights * (lse - logits[np.arange(len(y)), y])) / weights.sum())
+
+    result = minimize(loss, np.zeros(k), method="Nelder-Mead", options={"maxiter": 2000, "xatol": 1e-4, "fatol": 1e-7})
+    theta = result.x
+    return Calibration(temperature=float(np.exp(theta[0])), bias=(0.0, *map(float, theta[1:])))
+
+
+#: Features that change other than by sign when a patch is turned by 180 degrees (HOG
+#: cells swap places, the signed histogram rolls); the orientation model does not read them.
+FRAME_DEPENDENT_PREFIXES = ("hog_", SIGNED_HIST_PREFIX)
+
+
+def orientation_feature_names(spec):
+    """Features the orientation model reads: those that do not encode the image frame.
+
+    Only features that are unchanged (or change sign, the odd ones) when a patch
+    is turned by 180 degrees are kept, so that the axis-flip augmentation is
+    exact and the model cannot learn which way fans usually point; it sees the
+    dark mass relative to the axis and how strong and clear the local structure is.
+    """
+    return tuple(n for n in spec.feature_names if not n.startswith(FRAME_DEPENDENT_PREFIXES))
+
+
+def orientation_training_set(X, axis_deg, fan_direction_deg, names, *, flip=True):
+    """Polarity targets along the structure-tensor axis, with axis-flip augmentation.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n, n_features)
+        Orientation inputs (columns ``names``) of fan patches.
+    axis_deg, fan_direction_deg : ndarray of shape (n,)
+    names : tuple of str
+    flip : bool, default=True
+        Add every patch again with the axis turned by 180 degrees: the odd
+        features change sign and the target flips. This removes the prior of
+        which way fans usually point.
+
+    Returns
+    -------
+    X_out : ndarray, y : ndarray of int (1 = the fan runs along +axis)
+    """
+    y = (angular_difference(fan_direction_deg, axis_deg) < 90.0).astype(np.int64)
+    if not flip:
+        return X, y
+    odd = np.array([n in POLARITY_ODD_FEATURES for n in names], dtype=bool)
+    flipped = X.copy()
+    flipped[:, odd] *= -1.0
+    return np.concatenate([X, flipped]), np.concatenate([y, 1 - y])
+
+
+def _fit_hgb(X, y, X_val, y_val, config, *, class_weight=None):
+    from sklearn.ensemble import HistGradientBoostingClassifier
+
+    model = HistGradientBoostingClassifier(
+        max_iter=config.max_iter,
+        learning_rate=config.learning_rate,
+        max_leaf_nodes=config.max_leaf_nodes,
+        early_stopping=True,
+        n_iter_no_change=20,
+        class_weight=class_weight,
+        random_state=config.seed,
+    )
+    if len(np.unique(y_val)) < 2:
+        model.set_params(validation_fraction=0.15)
+        model.fit(X, y)
+    else:
+        model.fit(X, y, X_val=X_val, y_val=y_val)
+    return model
+
+
+def _data_hash(tileset):
+    digest = hashlib.sha256()
+    for name in ("tiles.csv", "consensus.csv"):
+        digest.update((Path(tileset.root) / name).read_bytes())
+    return digest.hexdigest()
+
+
+def _versions():
+    import onnx
+    import onnxruntime
+    import skimage
+    import sklearn
+    import skl2onnx
+
+    return {
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scikit-learn": sklearn.__version__,
+        "scikit-image": skimage.__version__,
+        "skl2onnx": skl2onnx.__version__,
+        "onnx": onnx.__version__,
+        "onnxruntime": onnxruntime.__version__,
+    }
+
+
+def fit_unfamiliarity(summaries, *, n_components=8, quantile=0.99, margin=1.25):
+    """Fit the out-of-distribution statistics of per-tile mean feature vectors.
+
+    Parameters
+    ----------
+    summaries : ndarray of shape (n_tiles, n_features)
+        Mean patch features of the training tiles.
+    n_components : int, default=8
+    quantile : float, default=0.99
+    margin : float, default=1.25
+        The threshold is this factor times the ``quantile`` of the training distances.
+
+    Returns
+    -------
+    stats : dict
+        JSON-ready; read by :func:`detector.unfamiliar.unfamiliarity_score`.
+    """
+    Z = np.asarray(summaries, dtype=np.float64)
+    mean = Z.mean(axis=0)
+    scale = Z.std(axis=0)
+    scale[scale < 1e-9] = 1.0
+    Zs = (Z - mean) / scale
+    _, s, vt = np.linalg.svd(Zs, full_matrices=False)
+    k = int(min(n_components, len(s)))
+    comps = vt[:k]
+    resid = Zs - (Zs @ comps.T) @ comps
+    stats = {
+        "mean": mean.tolist(),
+        "scale": scale.tolist(),
+        "components": comps.tolist(),
+        "variances": ((s[:k] ** 2) / max(len(Z) - 1, 1) + 1e-6).tolist(),
+        "resid_scale": max(float(np.median(np.sum(resid**2, axis=1))), 1e-6),
+    }
+    stats["threshold"] = float(margin * np.quantile(unfamiliarity_distance(stats, Z), quantile))
+    return stats
+
+
+def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=False, log=print):
+    """Train, calibrate, export and score a model; write the model folder atomically.
+
+    Parameters
+    ----------
+    tileset_root : path-like
+        A tile set with consensus.
+    out : path-like
+        Model folder to create (must not exist unless ``force``).
+    config : TrainConfig
+    spec : FeatureSpec, optional
+        Default: ``FeatureSpec()``.
+    force : bool, default=False
+        Replace an existing model folder.
+    log : callable
+        Receives progress lines.
+
+    Returns
+    -------
+    card : dict
+        The model card written as ``model.json``.
+    """
+    from .evaluate import evaluate_tiles, summarise_for_card
+
+    started = time.perf_counter()
+    out = Path(out)
+    spec = spec or FeatureSpec()
+    if out.exists() and any(out.iterdir()) and not force:
+        raise DetectorError(f"output folder {str(out)!r} is not empty; choose another or pass --force.")
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise DetectorError(f"output folder {str(out)!r} cannot be created: {err.strerror}.") from err
+    if not _writable(out.parent):
+        raise DetectorError(f"output folder {str(out.parent)!r} is not writable.")
+    tileset = load_tileset(tileset_root, min_votes=config.min_votes)
+    if len(tileset.tiles) == 0:
+        raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
+    fit_img, cal_img, hold_img = split_images(
+        tileset.tiles["image_id"], holdout_fraction=config.holdout_fraction,
+        holdout_images=tuple(config.holdout_images), calibration_fraction=config.calibration_fraction,
+        seed=config.seed,
+    )
+    tiles = tileset.tiles
+    ids = {name: tiles.loc[tiles["image_id"].isin(group), "tile_id"].tolist()
+           for name, group in (("fit", fit_img), ("calibration", cal_img), ("holdout", hold_img))}
+    fit_fans = tileset.consensus[tileset.consensus["tile_id"].isin(ids["fit"]) & (tileset.consensus["kind"] == "fan")]
+    if fit_fans.empty:
+        raise TileSetError(
+            f"tile set {str(tileset_root)!r} has no fans in its fitting images {fit_img!r}; "
+            f"the orientation model needs consensus fans."
+        )
+    log(f"images: fit {len(fit_img)}, calibration {len(cal_img)}, held out {len(hold_img)} ({', '.join(hold_img)})")
+
+    train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, rotations=tuple(config.rotations),
+                               seed=config.seed, neg_ratio=config.neg_ratio, max_patches=config.max_patches,
+                               workers=config.workers, desc="fit features")
+    val, cal_tiles, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
+                                     seed=config.seed + 1, sample=False, workers=config.workers,
+                                     desc="calibration features")
+    log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
+        f"calibration {len(val)}")
+
+    classifier = _fit_hgb(train.X, train.cls, val.X, val.cls, config)
+    raw_val = classifier.predict_proba(val.X)
+    calibration = fit_calibration(raw_val, val.cls)
+    cal_before = calibration_scores(raw_val, val.cls)
+    cal_after = calibration_scores(calibration.apply(raw_val), val.cls)
+    log(f"classifier: {classifier.n_iter_} iterations; calibration Brier {cal_before['brier']:.4f} -> "
+        f"{cal_after['brier']:.4f}, ECE {cal_before['ece']:.4f} -> {cal_after['ece']:.4f}")
+
+    names = orientation_feature_names(spec)
+    index = np.array([spec.feature_names.index(n) for n in names])
+    fan_fit = (train.cls == 1) & np.isfinite(train.fan_direction_deg)
+    fan_val = (val.cls == 1) & np.isfinite(val.fan_direction_deg)
+    Xo, yo = orientation_training_set(train.X[fan_fit][:, index], train.axis_deg[fan_fit],
+                                      train.fan_direction_deg[fan_fit], names)
+    Xov, yov = orientation_training_set(val.X[fan_val][:, index], val.axis_deg[fan_val],
+                                        val.fan_direction_deg[fan_val], names)
+    orientation = _fit_hgb(Xo, yo, Xov, yov, config)
+
+    det_bytes = to_onnx_bytes(classifier, train.X.shape[1])
+    ori_bytes = to_onnx_bytes(orientation, len(index))
+    rng = np.random.default_rng(config.seed)
+    probe = train.X[rng.choice(len(train), size=min(2000, len(train)), replace=False)]
+    parity = {
+        "detector_max_abs_diff": onnx_parity(det_bytes, classifier, probe),
+        "orientation_max_abs_diff": onnx_parity(ori_bytes, orientation, probe[:, index]),
+    }
+    log(f"ONNX parity: detector {parity['detector_max_abs_diff']:.2e}, "
+        f"orientation {parity['orientation_max_abs_diff']:.2e}")
+
+    card = {
+        "format_version": MODEL_FORMAT_VERSION,
+        "created_by": "frostvane train",
+        "class_names": list(CLASS_NAMES),
+        "feature_spec": json.loads(spec.to_json()),
+        "feature_names": list(spec.feature_names),
+        "orientation_features": list(names),
+        "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
+        "calibration": {"temperature": calibration.temperature, "bias": list(calibration.bias),
+                        "before": cal_before, "after": cal_after, "images": cal_img},
+        "assembly": asdict(AssemblyParams()),
+        "training": {
+            "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
+            "tileset": str(tileset_root),
+            "data_sha256": _data_hash(tileset),
+            "images": {"fit": fit_img, "calibration": cal_img, "holdout": hold_img},
+            "tiles": {k: len(v) for k, v in ids.items()},
+            "patches": {"fit": int(len(train)), "fit_by_class": np.bincount(train.cls, minlength=3).tolist(),
+                        "calibration": int(len(val)), "orientation": int(len(yo))},
+            "classifier_iterations": int(classifier.n_iter_),
+            "orientation_iterations": int(orientation.n_iter_),
+            "onnx_parity": parity,
+            "versions": _versions(),
+            "seed": config.seed,
+            # Prevailing direction of the fitting fans: the one-direction-for-all baseline.
+            "prevailing_deg": float(circular_mean(fit_fans["direction_deg"].to_numpy(float))),
+        },
+    }
+    with atomic_dir(out, replace=True) as tmp:
+        (tmp / DETECTOR_ONNX).write_bytes(det_bytes)
+        (tmp / ORIENTATION_ONNX).write_bytes(ori_bytes)
+        card["files"] = {DETECTOR_ONNX: sha256_file(tmp / DETECTOR_ONNX),
+                         ORIENTATION_ONNX: sha256_file(tmp / ORIENTATION_ONNX)}
+        card["unfamiliarity"] = fit_unfamiliarity(fit_summaries) if len(fit_summaries) >= 3 else None
+        (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
+        # Tune object assembly on the calibration images, then score the held-out images,
+        # both through the exported ONNX files exactly as users will run them.
+        tuning = _tune_assembly(tmp, tileset, ids["calibration"], log=log)
+        card["assembly"] = tuning["params"]
+        card["assembly_tuning"] = tuning["table"]
+        (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
+        heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log)
+        card["heldout_metrics"] = summarise_for_card(heldout)
+        card["heldout_tiles"] = heldout["per_tile"]
+        card["training"]["seconds"] = round(time.perf_counter() - started, 1)
+        (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
+    return card
+
+
+def _writable(folder):
+    import os
+
+    return os.access(folder, os.W_OK)
+
+
+def _tune_assembly(model_dir, tileset, tile_ids, *, log):
+    from .evaluate import tune_assembly
+
+    return tune_assembly(model_dir, tileset, tile_ids, log=log)
+
+
+def format_card_summary(card, folder):
+    """One screen about a trained model: data, split, calibration and held-out scores."""
+    t = card["training"]
+    h = card.get("heldout_metrics", {})
+
+    def f(v, d=2):
+        return "n/a" if v is None else f"{v:.{d}f}"
+
+    lines = [
+        f"model written to {folder}",
+        f"  tiles: fit {t['tiles']['fit']}, calibration {t['tiles']['calibration']}, held out {t['tiles']['holdout']}"
+        f" (images held out: {', '.join(t['images']['holdout'])})",
+        f"  patches: {t['patches']['fit']} fit (none/fan/spot {t['patches']['fit_by_class']}), "
+        f"{t['patches']['orientation']} orientation",
+        f"  calibration: Brier {f(card['calibration']['before']['brier'], 4)} -> {f(card['calibration']['after']['brier'], 4)}, "
+        f"ECE {f(card['calibration']['before']['ece'], 4)} -> {f(card['calibration']['after']['ece'], 4)}",
+        f"  ONNX parity: {t['onnx_parity']['detector_max_abs_diff']:.1e} / {t['onnx_parity']['orientation_max_abs_diff']:.1e}",
+        f"  held out: fan F1 {f(h.get('fan_f1'))}, spot F1 {f(h.get('spot_f1'))}, fan direction median "
+        f"{f(h.get('fan_direction_median_deg'), 1)} deg (p90 {f(h.get('fan_direction_p90_deg'), 1)}), "
+        f"flip rate {f(h.get('flip_rate'), 3)}",
+        f"  {t.get('seconds', 'n/a')} s",
+    ]
+    return "\n".join(lines)
