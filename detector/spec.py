@@ -64,6 +64,9 @@ class FeatureSpec:
         a multiple of ``cell_px`` dividing ``patch_px``) and block side (cells).
     glcm_levels : int
         Grey levels of the quantised tile for the co-occurrence matrices.
+    glcm_range_percentiles : (float, float)
+        Percentiles of the tile's valid pixels mapped to the lowest and highest
+        grey level (robust to outliers and to the tile's dynamic range).
     glcm_distances : tuple of int
         Pixel-pair distances, px.
     glcm_angles_deg : tuple of float
@@ -107,13 +110,14 @@ class FeatureSpec:
     hog_cell_px: int = 32
     hog_block_cells: int = 2
     glcm_levels: int = 8
+    glcm_range_percentiles: tuple = (1.0, 99.0)
     glcm_distances: tuple = (1, 2, 4)
     glcm_angles_deg: tuple = (0.0, 45.0, 90.0, 135.0)
     lbp: tuple = ((8, 1), (16, 2))
     int_bins: int = 32
     int_z_range: float = 8.0
     context_scales: tuple = (2, 4)
-    st_gradient_sigma: float = 1.0
+    st_gradient_sigma: float = 0.0
     st_tensor_sigma: float = 1.0
     st_scales: tuple = (1, 2)
     signed_hist_bins: int = 12
@@ -155,6 +159,10 @@ class FeatureSpec:
                 f"{self.patch_px // self.hog_cell_px} HOG cells across a patch."
             )
         object.__setattr__(self, "glcm_distances", tuple(int(d) for d in self.glcm_distances))
+        object.__setattr__(self, "glcm_range_percentiles", tuple(float(p) for p in self.glcm_range_percentiles))
+        lo, hi = self.glcm_range_percentiles if len(self.glcm_range_percentiles) == 2 else (0, -1)
+        if not 0 <= lo < hi <= 100:
+            raise SpecError(f"FeatureSpec.glcm_range_percentiles = {self.glcm_range_percentiles} must be 0 <= lo < hi <= 100.")
         object.__setattr__(self, "glcm_angles_deg", tuple(float(a) for a in self.glcm_angles_deg))
         object.__setattr__(self, "lbp", tuple((int(p), int(r)) for p, r in self.lbp))
         object.__setattr__(self, "context_scales", tuple(int(s) for s in self.context_scales))

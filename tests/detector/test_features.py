@@ -1,0 +1,290 @@
+"""Patch features against scikit-image, published worked examples and symmetry facts."""
+
+import warnings
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+from scipy.stats import circmean
+from skimage.feature import graycomatrix, graycoprops, hog, local_binary_pattern, structure_tensor
+
+from detector import _dense
+from detector.errors import ImageError
+from detector.features import extract_features, flip_polarity, patch_grid, patch_targets
+from detector.geometry import axial_difference, unit_vector
+from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec, patch_axis_deg
+
+SPEC = FeatureSpec()
+
+
+def _smooth_tile(shape=(256, 320), seed=0, sigma=2.0):
+    rng = np.random.default_rng(seed)
+    noise = ndi.gaussian_filter(rng.normal(size=shape), sigma)
+    noise = (noise - noise.min()) / (noise.max() - noise.min())
+    return (1000 + noise * 60000).astype(np.uint16)
+
+
+def _cols(names, prefix):
+    return [i for i, n in enumerate(names) if n.startswith(prefix)]
+
+
+def _no_mask(tile):
+    return np.zeros(tile.shape, dtype=bool)
+
+
+# -- whole-tile parity of the dense maps with scikit-image ------------------------------
+def test_hog_cell_histograms_match_skimage():
+    tile = _smooth_tile()
+    img = (tile / np.float32(65535)).astype(np.float32)
+    g_row, g_col = _dense.central_gradients(img)
+    unsigned, _ = _dense.orientation_bins(g_row, g_col, 9, 12)
+    cells, ncr, ncc = _dense.cell_index(img.shape, 32)
+    h = _dense.cell_histogram(cells, ncr * ncc, unsigned, 9, weights=np.hypot(g_row, g_col))
+    h = h.reshape(ncr, ncc, 9) / 32**2
+    # skimage returns cell histograms only normalised; one-cell L1 blocks expose them.
+    ref = hog(img, orientations=9, pixels_per_cell=(32, 32), cells_per_block=(1, 1),
+              block_norm="L1", feature_vector=False)[:, :, 0, 0, :]
+    mine = h / (h.sum(axis=-1, keepdims=True) + 1e-5)
+    np.testing.assert_allclose(mine, ref, atol=1e-6)
+
+
+def test_hog_block_descriptors_match_skimage_where_grids_align():
+    tile = _smooth_tile()
+    X, grid = extract_features(tile, SPEC, nodata_mask=_no_mask(tile))
+    img = (tile / np.float32(65535)).astype(np.float32)
+    ref = hog(img, orientations=9, pixels_per_cell=(32, 32), cells_per_block=(2, 2),
+              block_norm="L2-Hys", feature_vector=False)
+    cols = _cols(SPEC.feature_names, "hog_")
+    aligned = np.flatnonzero((grid.row0 % 32 == 0) & (grid.col0 % 32 == 0))
+    assert aligned.size == 7 * 9
+    expect = ref[grid.row0[aligned] // 32, grid.col0[aligned] // 32].reshape(aligned.size, -1)
+    np.testing.assert_allclose(X[aligned][:, cols], expect, atol=2e-6)
+
+
+def test_cooccurrence_counts_match_skimage():
+    rng = np.random.default_rng(1)
+    q = rng.integers(0, 8, size=(96, 128))
+    cells, ncr, ncc = _dense.cell_index(q.shape, 16)
+    offsets = _dense.glcm_offsets(SPEC.glcm_distances, SPEC.glcm_angles_deg)
+    counts = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8).sum(axis=1)
+    ref = graycomatrix(q.astype(np.uint8), SPEC.glcm_distances, np.radians(SPEC.glcm_angles_deg), levels=8)
+    ref = np.moveaxis(ref.reshape(8, 8, -1), -1, 0)
+    np.testing.assert_array_equal(counts, ref)
+    props = _dense.glcm_props(counts.astype(float))
+    for k, prop in enumerate(("contrast", "dissimilarity", "homogeneity", "ASM", "energy", "correlation")):
+        sym = graycomatrix(q.astype(np.uint8), SPEC.glcm_distances, np.radians(SPEC.glcm_angles_deg),
+                           levels=8, symmetric=True, normed=True)
+        np.testing.assert_allclose(props[k], graycoprops(sym, prop).ravel(), rtol=1e-12, atol=1e-14)
+
+
+def test_haralick_worked_example():
+    # Haralick, Shanmugam and Dinstein (1973), Fig. 2: 4 x 4 image with grey levels 0-3 and
+    # its symmetric distance-1 co-occurrence matrices (also in skimage's graycomatrix docstring).
+    image = np.array([[0, 0, 1, 1], [0, 0, 1, 1], [0, 2, 2, 2], [2, 2, 3, 3]])
+    published = {
+        (0, 1): [[4, 2, 1, 0], [2, 4, 0, 0], [1, 0, 6, 1], [0, 0, 1, 2]],  # 0 degrees
+        (1, 0): [[6, 0, 2, 0], [0, 4, 2, 0], [2, 2, 2, 2], [0, 0, 2, 0]],  # 90 degrees
+        (1, 1): [[2, 1, 3, 0], [1, 2, 1, 0], [3, 1, 0, 2], [0, 0, 2, 0]],  # 135 degrees (Haralick)
+        (1, -1): [[4, 1, 0, 0], [1, 2, 2, 0], [0, 2, 4, 1], [0, 0, 1, 0]],  # 45 degrees (Haralick)
+    }
+    cells, ncr, ncc = _dense.cell_index(image.shape, 4)
+    counts = _dense.glcm_cell_counts(image, cells, 1, list(published), 4)[:, 0]
+    for k, matrix in enumerate(published.values()):
+        np.testing.assert_array_equal(counts[k] + counts[k].T, matrix)
+
+
+@pytest.mark.parametrize("P,R", SPEC.lbp)
+def test_lbp_codes_match_skimage(P, R):
+    tile = _smooth_tile(seed=2)
+    # coarse levels create exact ties between interpolated neighbours and the centre
+    coarse = (tile // 8000 * 8000).astype(np.uint16)
+    for image in (tile, coarse):
+        np.testing.assert_array_equal(_dense.lbp_uniform(image, P, R), local_binary_pattern(image, P, R, "uniform"))
+
+
+def test_structure_tensor_matches_skimage():
+    img = (_smooth_tile(seed=3) / 65535.0).astype(np.float32)
+    mine = _dense.structure_tensor_maps(img, gradient_sigma=0.0, tensor_sigma=1.0)
+    ref = structure_tensor(img.astype(np.float64), sigma=1.0, mode="reflect", order="rc")
+    for a, b in zip(mine, ref):
+        np.testing.assert_allclose(a, b, rtol=1e-4, atol=1e-6 * np.abs(b).max())
+
+
+# -- per patch against scikit-image on the cut-out window ----------------------------------
+def test_pooled_features_match_cutout_windows_up_to_the_window_border():
+    """Pooled features differ from scikit-image on the cut-out window only through the window border.
+
+    The pooled HOG uses the true central difference on the window's outer rows and
+    columns where skimage sees a zero; the pooled GLCM counts pairs whose second pixel
+    lies up to d px outside the window; the pooled LBP uses real neighbours where skimage
+    pads with zeros. On this smooth tile the changed pixels are 6 % (HOG border), at most
+    d * 64 / 4096 of pairs (GLCM) and the 2R-wide frame (LBP) of the window; the
+    tolerances below are those shares with a margin.
+    """
+    tile = _smooth_tile(seed=4)
+    X, grid = extract_features(tile, SPEC, nodata_mask=_no_mask(tile))
+    names = SPEC.feature_names
+    img = (tile / np.float32(65535)).astype(np.float32)
+    prep = _dense.prepare_tile(tile, SPEC, _no_mask(tile))
+    q = _dense.quantise(prep.image, prep.lo, prep.hi, SPEC.glcm_levels).astype(np.uint8)
+    for p in (0, 37, 60, grid.n_patches - 1):
+        r, c = grid.row0[p], grid.col0[p]
+        win = img[r:r + 64, c:c + 64]
+        ref_hog = hog(win, orientations=9, pixels_per_cell=(32, 32), cells_per_block=(2, 2), block_norm="L2-Hys")
+        assert np.abs(X[p, _cols(names, "hog_")] - ref_hog).max() < 0.05
+        sym = graycomatrix(q[r:r + 64, c:c + 64], SPEC.glcm_distances, np.radians(SPEC.glcm_angles_deg),
+                           levels=SPEC.glcm_levels, symmetric=True, normed=True)
+        for prop in ("contrast", "homogeneity", "energy", "correlation"):
+            ref = graycoprops(sym, prop).ravel()
+            mine = X[p, _cols(names, f"glcm_{prop}_")]
+            assert np.all(np.abs(mine - ref) <= 0.15 * np.abs(ref) + 0.02), prop
+        for P, R in SPEC.lbp:
+            codes = local_binary_pattern(tile[r:r + 64, c:c + 64], P, R, "uniform").astype(int)
+            ref = np.bincount(codes.ravel(), minlength=P + 2) / codes.size
+            mine = X[p, _cols(names, f"lbp{P}r{R}_")]
+            frame = 1 - (64 - 4 * R) ** 2 / 64**2
+            assert np.abs(mine - ref).sum() <= 2 * frame
+
+
+# -- gratings and bars: structure-tensor axis ------------------------------------------
+def _oriented(angle_deg, shape=(256, 256), period=12.0, bars=False):
+    y, x = np.mgrid[: shape[0], : shape[1]].astype(float)
+    # lines run along the axis; intensity varies along its normal
+    ax, ay = unit_vector(angle_deg)
+    u = (x * -ay + y * ax) / period
+    if bars:
+        wave = np.where(np.abs(u - np.floor(u) - 0.5) < 0.2, 0.2, 0.7)
+        wave = ndi.gaussian_filter(wave, 0.7)
+    else:
+        wave = 0.5 + 0.3 * np.sin(2 * np.pi * u)
+    return (wave * 65535).astype(np.uint16)
+
+
+@pytest.mark.parametrize("angle", [0.0, 17.0, 30.0, 45.0, 72.5, 90.0, 112.5, 135.0, 163.0])
+@pytest.mark.parametrize("bars", [False, True])
+def test_grating_axis_is_recovered(angle, bars):
+    tile = _oriented(angle, bars=bars)
+    X, grid = extract_features(tile, SPEC, nodata_mask=_no_mask(tile))
+    axis = patch_axis_deg(X, SPEC)
+    assert np.max(axial_difference(axis, angle)) < 1.0
+    coh = X[:, SPEC.feature_names.index("st_coherence_w64")]
+    assert np.all(coh > 0.9)
+
+
+# -- properties ---------------------------------------------------------------------
+def test_rot90_rolls_signed_histogram():
+    tile = _smooth_tile(shape=(320, 320), seed=5)
+    X, grid = extract_features(tile, SPEC, nodata_mask=_no_mask(tile))
+    Xr, gr = extract_features(np.rot90(tile, k=-1), SPEC, nodata_mask=_no_mask(tile))
+    cols = _cols(SPEC.feature_names, SIGNED_HIST_PREFIX)
+    grid_x = X[:, cols].reshape(grid.n_rows, grid.n_cols, -1)
+    grid_r = Xr[:, cols].reshape(gr.n_rows, gr.n_cols, -1)
+    # a 90 degree clockwise turn adds 90 degrees to every direction: bins / 4
+    expect = np.roll(np.rot90(grid_x, k=-1, axes=(0, 1)), SPEC.signed_hist_bins // 4, axis=-1)
+    np.testing.assert_allclose(grid_r, expect, atol=2e-3)
+
+
+def test_uint8_and_uint16_times_257_are_identical():
+    rng = np.random.default_rng(6)
+    tile8 = rng.integers(0, 256, size=(200, 260)).astype(np.uint8)
+    X8, g8 = extract_features(tile8, SPEC)
+    X16, g16 = extract_features(tile8.astype(np.uint16) * 257, SPEC)
+    np.testing.assert_array_equal(X8, X16)
+    np.testing.assert_array_equal(g8.nodata_fraction, g16.nodata_fraction)
+
+
+def test_flat_tile_is_finite():
+    X, grid = extract_features(np.full((128, 160), 120, np.uint8), SPEC)
+    assert X.shape == (grid.n_patches, SPEC.n_features) and np.isfinite(X).all()
+
+
+def _synthetic_fan(shape=(320, 320), apex=(120.0, 130.0), direction=120.0, length=150.0, spread=30.0, seed=7):
+    y, x = np.mgrid[: shape[0], : shape[1]].astype(float)
+    dx, dy = unit_vector(direction)
+    s = (x - apex[1]) * dx + (y - apex[0]) * dy
+    t = (x - apex[1]) * -dy + (y - apex[0]) * dx
+    inside = (s > 0) & (s < length) & (np.abs(t) < s * np.tan(np.radians(spread / 2)))
+    darkness = np.where(inside, 0.5 * (1 - s / length) + 0.2, 0.0)
+    rng = np.random.default_rng(seed)
+    img = 0.6 - 0.4 * ndi.gaussian_filter(darkness, 1.5) + rng.normal(0, 0.01, shape)
+    return (np.clip(img, 0, 1) * 65535).astype(np.uint16), inside
+
+
+def test_180_degree_flip_negates_polarity_odd_features():
+    tile, inside = _synthetic_fan()
+    X, grid = extract_features(tile, SPEC)
+    Xf, _ = extract_features(np.flip(tile), SPEC)
+    Xf = Xf[::-1]  # the flipped grid lists the same windows in reverse order
+    names = SPEC.feature_names
+    odd = [names.index(n) for n in POLARITY_ODD_FEATURES]
+    dark = X[:, names.index("int_dark")] > 0.5
+    assert dark.sum() > 20
+    np.testing.assert_allclose(Xf[dark][:, odd], -X[dark][:, odd], atol=2e-3)
+    assert np.abs(X[dark][:, odd]).max() > 0.1
+    pol = _cols(names, "pol_")
+    np.testing.assert_allclose(Xf[:, pol], flip_polarity(X, SPEC)[:, pol], atol=2e-3)
+
+
+GROUPS = list(SPEC.groups)
+
+
+@pytest.mark.parametrize("group", GROUPS)
+def test_feature_group_contract(group):
+    tile, _ = _synthetic_fan(shape=(200, 232))
+    X1, grid = extract_features(tile, SPEC)
+    X2, _ = extract_features(tile.copy(), SPEC)
+    names = SPEC.groups[group]
+    start = SPEC.feature_names.index(names[0])
+    block = X1[:, start:start + len(names)]
+    assert X1.dtype == np.float32 and X1.shape == (grid.n_patches, SPEC.n_features)
+    assert grid.n_patches == ((200 - 64) // 16 + 1) * ((232 - 64) // 16 + 1)
+    assert block.shape[1] == len(names) and len(set(names)) == len(names)
+    assert np.isfinite(block).all()
+    np.testing.assert_array_equal(block, X2[:, start:start + len(names)])
+    assert np.ptp(block, axis=0).max() > 0  # the group responds to the scene
+
+
+def test_nodata_share_and_validity():
+    tile = _smooth_tile(shape=(128, 128), seed=8)
+    tile[:, :40] = 0
+    X, grid = extract_features(tile, SPEC)
+    expect = np.array([max(0, 40 - c) / 64 for c in grid.col0])
+    np.testing.assert_allclose(grid.nodata_fraction, expect)
+    np.testing.assert_array_equal(grid.valid, expect <= 0.5)
+    np.testing.assert_allclose(X[:, SPEC.feature_names.index("int_nodata")], expect, atol=1e-6)
+    assert np.isfinite(X).all()
+    g2 = patch_grid(tile.shape, SPEC, nodata_mask=tile == 0)
+    np.testing.assert_allclose(g2.nodata_fraction, expect)
+
+
+def test_patch_grid_geometry():
+    grid = patch_grid((100, 150), SPEC)
+    assert (grid.n_rows, grid.n_cols) == (3, 6)
+    assert grid.x_px[0] == 31.5 and grid.y_px[-1] == 32 + 31.5
+
+
+def test_bad_tiles_raise_image_error():
+    for bad in (np.zeros((0, 5), np.uint8), np.zeros((4, 4, 3), np.uint8), np.zeros((70, 70), np.int8),
+                np.full((70, 70), 2.0)):
+        with pytest.raises(ImageError):
+            extract_features(bad, SPEC)
+
+
+def test_patch_targets_classes_and_direction():
+    grid = patch_grid((128, 128), SPEC)
+    fan = np.zeros((128, 128), bool)
+    spot = np.zeros((128, 128), bool)
+    direction = np.full((128, 128), np.nan)
+    fan[:64, :64] = True
+    rng = np.random.default_rng(9)
+    direction[:64, :64] = rng.choice([350.0, 20.0, 10.0], size=(64, 64))
+    spot[64:, 64:] = True
+    t = patch_targets(grid, fan, spot, direction)
+    assert t.label[0] == 1 and t.label[-1] == 2 and t.label.dtype == np.int8
+    # scipy.stats.circmean is the reference circular mean
+    expect = np.degrees(circmean(np.radians(direction[:64, :64])))
+    assert abs(t.fan_direction_deg[0] - expect) < 1e-9
+    assert np.isnan(t.fan_direction_deg[t.label != 1]).all()
+    # equal shares of fan and spot: fan wins
+    tie = patch_targets(grid, fan, fan.copy(), direction)
+    assert tie.label[0] == 1
