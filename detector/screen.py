@@ -1,0 +1,1029 @@
+"""Screen whole orbital images or tile sets with a model: the ``frostvane screen`` command.
+
+An input is either an image file (any raster GDAL reads: PNG, TIFF / GeoTIFF,
+JPEG 2000, ...) or a tile-set folder (one holding ``tiles.csv``). An image is
+cut into tiles by :func:`detector.raster.plan_windows`; each tile is read with
+an overlap margin, screened with :func:`detector.detect.detect_tile`, and only
+the detections whose apex (fans) or centre (spots) lies in the tile's core are
+kept, so no feature is reported twice. A tile-set tile is screened whole and
+keeps its ``tile_id``.
+
+The screening folder
+--------------------
+``tiles.csv``
+    One row per tile (see :data:`TILE_COLUMNS`); ``route`` is empty for scored
+    tiles (``frostvane effort`` fills it) and ``"nodata"`` for tiles whose
+    core is less than half valid, which are not scored.
+``detections.csv``
+    :data:`detector.contract.DETECTION_COLUMNS` in tile px, plus ``image``,
+    ``col0`` and ``row0`` (image px of the tile's top-left pixel: image px =
+    tile px + offset) and, for georeferenced rasters, ``lon_deg``,
+    ``lat_deg``, ``azimuth_deg`` (degrees clockwise from north at the apex /
+    centre; mod 180 for spots), ``wind_from_deg`` (fans) and ``length_m``
+    (fans).
+``detections.geojson``
+    :func:`detector.geojson.detections_to_geojson`: map coordinates when every
+    input is georeferenced in one CRS, otherwise image px.
+``quicklook.png``, ``rose.png``
+    A downsampled view of every image with its detections, and the fan
+    direction distribution of every image (weighted by length).
+``run.json``
+    Model hash, inputs, parameters, timing and versions.
+``.partial/``
+    The journal: one small JSON file per finished tile, written atomically,
+    so a run that is interrupted continues where it stopped when it is started
+    again with the same arguments. Final outputs are assembled from it in a
+    fixed order (image, row0, col0).
+
+Work runs serially, in local processes (``workers``, joblib's loky backend) or
+on a running Dask distributed cluster (``scheduler``). Every worker loads the
+model once and reads its own windows from the image files, so no pixel array
+travels between processes.
+"""
+
+import contextlib
+import json
+import math
+import os
+import platform
+import time
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .circstats import circular_std, robust_circular_mean
+from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
+from .errors import DetectorError, ImageError, SpecError, TileSetError
+from .geojson import write_geojson
+from .io import atomic_path
+
+__all__ = [
+    "TILE_COLUMNS",
+    "GEO_COLUMNS",
+    "DETECTION_OUTPUT_COLUMNS",
+    "MIN_VALID_SHARE",
+    "DEPOSIT_THRESHOLD",
+    "ScreenSummary",
+    "screen",
+    "screen_command",
+    "tile_direction_stats",
+]
+
+#: Columns of ``tiles.csv``.
+TILE_COLUMNS = (
+    "tile_id",
+    "image",
+    "col0",
+    "row0",
+    "width",
+    "height",
+    "p_deposit",
+    "fan_cover",
+    "spot_cover",
+    "n_fans",
+    "mean_direction_deg",
+    "direction_spread_deg",
+    "unfamiliarity",
+    "route",
+    "n_spots",
+    "valid_fraction",
+)
+
+#: Columns added to ``detections.csv`` for georeferenced rasters.
+GEO_COLUMNS = ("lon_deg", "lat_deg", "azimuth_deg", "wind_from_deg", "length_m")
+
+#: Columns of ``detections.csv`` (the geographic ones only when some input is georeferenced).
+DETECTION_OUTPUT_COLUMNS = DETECTION_COLUMNS + ("image", "col0", "row0")
+
+#: A tile whose core has a smaller share of valid pixels is routed "nodata" and not scored.
+MIN_VALID_SHARE = 0.5
+
+#: Tiles with ``p_deposit`` at or above this count as deposit tiles in the summary.
+DEPOSIT_THRESHOLD = 0.5
+
+_JOURNAL = ".partial"
+_RUN_FILE = "run.json"
+_OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook.png", "rose.png")
+_QUICKLOOK_PX = 2000
+_MAX_PANELS = 12
+_MAX_DRAWN = 3000
+_ROSE_BINS = 36
+
+
+# ----------------------------------------------------------------------------- tasks
+
+
+@dataclass(frozen=True)
+class _TileTask:
+    """Everything a worker needs to screen one tile; small and picklable (no pixels)."""
+
+    tile_id: str
+    image: str
+    path: str
+    band: object
+    nodata: object
+    col0: float  # image px of the core's top-left pixel (NaN when a tile set does not say)
+    row0: float
+    file_col0: int  # file px of the core's top-left pixel
+    file_row0: int
+    width: int
+    height: int
+    read_col0: int
+    read_row0: int
+    read_width: int
+    read_height: int
+
+    @property
+    def sort_key(self):
+        c = self.col0 if np.isfinite(self.col0) else -1.0
+        r = self.row0 if np.isfinite(self.row0) else -1.0
+        return (self.image, r, c, self.tile_id)
+
+
+@dataclass(frozen=True)
+class _Piece:
+    """Where one file sits in an image's quick-look canvas, px."""
+
+    path: str
+    col0: int
+    row0: int
+    width: int
+    height: int
+    file_offset: tuple = (0, 0)
+
+
+def _open(path, band, nodata):
+    from .raster import open_raster
+
+    return open_raster(path, band=band, nodata=nodata)
+
+
+def _plan_raster(path, *, tile, overlap, nodata, band):
+    from .raster import plan_windows
+
+    with _open(path, band, nodata) as src:
+        windows = plan_windows(src.width, src.height, tile=tile, overlap=overlap, image=src.name)
+        georef = src.georeferencer() if src.is_georeferenced else None
+        size = (src.width, src.height)
+        used_nodata = src.nodata
+    tasks = [
+        _TileTask(w.tile_id, w.image, str(path), band, nodata, float(w.col0), float(w.row0), w.col0, w.row0,
+                  w.width, w.height, w.read_col0, w.read_row0, w.read_width, w.read_height)
+        for w in windows
+    ]
+    pieces = [_Piece(str(path), 0, 0, size[0], size[1])]
+    return tasks, {str(windows[0].image): dict(pieces=pieces, georefs={str(path): georef}, nodata=used_nodata)}
+
+
+def _read_tile_table(root):
+    """Tile table of a tile-set folder; the consensus, when present, is validated too."""
+    from .tileset import load_tileset
+
+    if (root / CONSENSUS_FILE).is_file():
+        return load_tileset(root, check_images=False).tiles
+    try:
+        tiles = pd.read_csv(root / TILES_FILE, dtype=str, keep_default_na=False)
+    except (OSError, ValueError, pd.errors.ParserError) as err:
+        raise TileSetError(f"{str(root / TILES_FILE)!r} cannot be read: {err}.") from err
+    missing = [c for c in TILES_REQUIRED if c not in tiles.columns]
+    if missing:
+        raise TileSetError(f"{str(root / TILES_FILE)!r} lacks column(s) {', '.join(missing)}.")
+    if tiles.empty:
+        raise TileSetError(f"{str(root / TILES_FILE)!r} has no data rows: the tile set is empty.")
+    dup = tiles["tile_id"].duplicated()
+    if dup.any():
+        i = int(np.flatnonzero(dup.to_numpy())[0])
+        raise TileSetError(f"{TILES_FILE} row {i + 1}: tile_id {tiles['tile_id'].iloc[i]!r} is repeated.")
+    for column in ("col0", "row0"):
+        if column in tiles.columns:
+            tiles[column] = pd.to_numeric(tiles[column].replace("", np.nan), errors="coerce")
+    return tiles
+
+
+def _plan_tileset(root, *, nodata, band):
+    tiles = _read_tile_table(root)
+    n = len(tiles)
+    col0 = (pd.to_numeric(tiles["col0"], errors="coerce") if "col0" in tiles else pd.Series(np.nan, index=tiles.index))
+    row0 = (pd.to_numeric(tiles["row0"], errors="coerce") if "row0" in tiles else pd.Series(np.nan, index=tiles.index))
+    tasks, images = [], {}
+    for i, (tile_id, image, rel, c, r) in enumerate(
+        zip(tiles["tile_id"].astype(str), tiles["image_id"].astype(str), tiles["path"].astype(str),
+            col0.to_numpy(dtype=float), row0.to_numpy(dtype=float), strict=True)
+    ):
+        path = root / rel
+        if not path.is_file():
+            raise ImageError(f"{TILES_FILE} row {i + 1}: image {str(path)!r} does not exist.")
+        # The header alone: size, band count and georeferencing, without decoding pixels.
+        with _open(path, band, nodata) as src:
+            w, h = src.width, src.height
+            georef = src.georeferencer() if src.is_georeferenced else None
+            used_nodata = src.nodata
+        tasks.append(_TileTask(tile_id, image, str(path), band, nodata, float(c), float(r), 0, 0, w, h, 0, 0, w, h))
+        entry = images.setdefault(image, dict(pieces=[], georefs={}, nodata=used_nodata))
+        entry["georefs"][str(path)] = georef
+        entry["pieces"].append((float(c), float(r), str(path), w, h))
+    del n
+    for entry in images.values():
+        raw = entry["pieces"]
+        placed = all(np.isfinite(c) and np.isfinite(r) for c, r, *_ in raw)
+        pieces, x = [], 0
+        for c, r, path, w, h in raw:
+            # Without offsets the tiles of an image are laid side by side.
+            pieces.append(_Piece(path, int(c), int(r), w, h) if placed else _Piece(path, x, 0, w, h))
+            x += w
+        entry["pieces"] = pieces
+    return tasks, images
+
+
+def _plan(inputs, *, tile, overlap, nodata, band):
+    if isinstance(inputs, (str, os.PathLike)):
+        inputs = [inputs]
+    inputs = [Path(p) for p in inputs]
+    if not inputs:
+        raise DetectorError("screen needs at least one input image or tile-set folder.")
+    tasks, images, owner = [], {}, {}
+    for path in inputs:
+        if path.is_dir():
+            if not (path / TILES_FILE).is_file():
+                raise DetectorError(f"input folder {str(path)!r} has no {TILES_FILE}; it is not a tile set.")
+            new_tasks, new_images = _plan_tileset(path, nodata=nodata, band=band)
+        elif path.exists():
+            new_tasks, new_images = _plan_raster(path, tile=tile, overlap=overlap, nodata=nodata, band=band)
+        else:
+            raise ImageError(f"input {str(path)!r} does not exist.")
+        for image, entry in new_images.items():
+            if image in images:
+                raise DetectorError(
+                    f"inputs {str(owner[image])!r} and {str(path)!r} both hold an image named {image!r}; "
+                    f"rename one of them."
+                )
+            images[image] = entry
+            owner[image] = path
+        tasks.extend(new_tasks)
+    ids = pd.Series([t.tile_id for t in tasks])
+    dup = ids.duplicated()
+    if dup.any():
+        raise DetectorError(f"tile_id {ids[dup].iloc[0]!r} occurs in more than one input; tile ids must be unique.")
+    tasks.sort(key=lambda t: t.sort_key)
+    return tasks, images
+
+
+# ----------------------------------------------------------------------------- per-tile work
+
+# Per process: one loaded model per folder and a few open rasters, so that a
+# worker pays for loading once, not once per tile.
+_MODELS = {}
+_SOURCES = OrderedDict()
+_MAX_OPEN = 8
+
+
+def _cached_model(model_dir):
+    from .model import load_model
+
+    key = str(Path(model_dir).resolve())
+    if key not in _MODELS:
+        _MODELS[key] = load_model(model_dir)
+    return _MODELS[key]
+
+
+def _cached_source(path, band, nodata):
+    key = (path, band, nodata)
+    if key in _SOURCES:
+        _SOURCES.move_to_end(key)
+        return _SOURCES[key]
+    src = _open(path, band, nodata)
+    georef = src.georeferencer() if src.is_georeferenced else None
+    _SOURCES[key] = (src, georef)
+    while len(_SOURCES) > _MAX_OPEN:
+        _, (old, _) = _SOURCES.popitem(last=False)
+        old.close()
+    return _SOURCES[key]
+
+
+def tile_direction_stats(direction_deg, weights):
+    """Robust mean direction and circular spread of a tile's fans.
+
+    Parameters
+    ----------
+    direction_deg : ndarray of shape (n,)
+        Fan directions, degrees clockwise from image up.
+    weights : ndarray of shape (n,)
+        Non-negative weights, e.g. ``score * direction_confidence * length_px``.
+
+    Returns
+    -------
+    mean_deg, spread_deg : float
+        :func:`detector.circstats.robust_circular_mean` and
+        :func:`detector.circstats.circular_std` (weighted), degrees; NaN
+        without fans or weight.
+    """
+    direction_deg = np.asarray(direction_deg, dtype=float)
+    weights = np.nan_to_num(np.clip(np.asarray(weights, dtype=float), 0.0, None), nan=0.0)
+    if direction_deg.size == 0 or weights.sum() <= 0:
+        return np.nan, np.nan
+    return float(robust_circular_mean(direction_deg, weights)), float(circular_std(direction_deg, weights))
+
+
+def _fan_weights(df):
+    return (
+        df["score"].to_numpy(dtype=float)
+        * df["direction_confidence"].to_numpy(dtype=float)
+        * df["length_px"].to_numpy(dtype=float)
+    )
+
+
+def _empty_detections():
+    return {c: [] for c in DETECTION_OUTPUT_COLUMNS}
+
+
+def _screen_tile(index, task, model_dir, min_score=None):
+    """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
+    from .detect import detect_tile
+    from .unfamiliar import unfamiliarity_score
+
+    model = _cached_model(model_dir)
+    src, georef = _cached_source(task.path, task.band, task.nodata)
+    array, mask = src.read((task.read_col0, task.read_row0, task.read_width, task.read_height))
+    dx = task.file_col0 - task.read_col0
+    dy = task.file_row0 - task.read_row0
+    core = slice(dy, dy + task.height), slice(dx, dx + task.width)
+    valid_share = float(1.0 - mask[core].mean())
+    row = {
+        "tile_id": task.tile_id, "image": task.image, "col0": task.col0, "row0": task.row0,
+        "width": task.width, "height": task.height, "p_deposit": np.nan, "fan_cover": np.nan,
+        "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_spread_deg": np.nan,
+        "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
+    }
+    entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
+    if valid_share < MIN_VALID_SHARE:
+        row["route"] = "nodata"
+        entry.update(tile=row, detections=_empty_detections())
+        return index, entry
+
+    result = detect_tile(model, array, tile_id=task.tile_id, nodata_mask=mask, min_score=min_score)
+    det = result.detections.reset_index(drop=True)
+    x = pd.to_numeric(det["x_px"], errors="coerce").to_numpy(dtype=float) - dx
+    y = pd.to_numeric(det["y_px"], errors="coerce").to_numpy(dtype=float) - dy
+    # Pixel centres are integers, so the core spans [-0.5, size - 0.5) in both axes.
+    keep = (x >= -0.5) & (x < task.width - 0.5) & (y >= -0.5) & (y < task.height - 0.5)
+    det = det.loc[keep].reset_index(drop=True)
+    det = det.reindex(columns=list(DETECTION_COLUMNS))
+    numeric = [c for c in DETECTION_COLUMNS if c not in ("tile_id", "kind")]
+    det[numeric] = det[numeric].apply(pd.to_numeric, errors="coerce").astype(float)
+    det["x_px"] = x[keep]
+    det["y_px"] = y[keep]
+    det["tile_id"] = task.tile_id
+    det["kind"] = det["kind"].astype(str)
+    det["image"] = task.image
+    det["col0"] = task.col0
+    det["row0"] = task.row0
+    is_fan = (det["kind"] == "fan").to_numpy()
+    if georef is not None:
+        fx = det["x_px"].to_numpy() + task.file_col0
+        fy = det["y_px"].to_numpy() + task.file_row0
+        direction = det["direction_deg"].to_numpy(dtype=float)
+        lon, lat = georef.pixel_to_lonlat(fx, fy)
+        azimuth = np.atleast_1d(np.asarray(georef.grid_to_azimuth(direction, fx, fy), dtype=float))
+        azimuth = np.where(is_fan, azimuth, azimuth % 180.0)
+        lengths = det["length_px"].to_numpy(dtype=float)
+        try:
+            metres = lengths * georef.metres_per_px
+        except DetectorError:
+            # A geographic CRS has no single pixel size: measure on the ground instead.
+            metres = np.atleast_1d(georef.ground_length_m(lengths, direction, fx, fy))
+        det["lon_deg"] = np.atleast_1d(lon)
+        det["lat_deg"] = np.atleast_1d(lat)
+        det["azimuth_deg"] = azimuth
+        det["wind_from_deg"] = np.where(is_fan, (azimuth + 180.0) % 360.0, np.nan)
+        det["length_m"] = np.where(is_fan, metres, np.nan)
+
+    valid_patch = np.asarray(result.grid.valid, dtype=bool)
+    px = np.asarray(result.grid.x_px, dtype=float) - dx
+    py = np.asarray(result.grid.y_px, dtype=float) - dy
+    in_core = valid_patch & (px >= -0.5) & (px < task.width - 0.5) & (py >= -0.5) & (py < task.height - 0.5)
+    if in_core.any():
+        p_deposit = float(np.max(1.0 - result.proba[in_core, 0]))
+    else:
+        # The core is narrower than a patch: fall back to the whole window read.
+        p_deposit = result.p_deposit
+    fans = det.loc[is_fan]
+    mean_dir, spread = tile_direction_stats(fans["direction_deg"].to_numpy(dtype=float), _fan_weights(fans))
+    fan_core = result.fan_cover[core]
+    row.update(
+        p_deposit=p_deposit,
+        fan_cover=float(fan_core.mean()),
+        spot_cover=float((result.spot_cover[core] & ~fan_core).mean()),
+        n_fans=int(is_fan.sum()),
+        n_spots=int((~is_fan).sum()),
+        mean_direction_deg=mean_dir,
+        direction_spread_deg=spread,
+        unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
+    )
+    entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
+    return index, entry
+
+
+# ----------------------------------------------------------------------------- journal
+
+
+class _Journal:
+    """One JSON file per finished tile in ``out/.partial``, named by the tile's place in the plan."""
+
+    def __init__(self, out):
+        self.folder = Path(out) / _JOURNAL
+
+    def _path(self, index):
+        return self.folder / f"{index:07d}.json"
+
+    def write(self, index, entry):
+        self.folder.mkdir(parents=True, exist_ok=True)
+        with atomic_path(self._path(index)) as tmp:
+            with open(tmp, "w", encoding="utf-8") as handle:
+                json.dump(entry, handle)
+                handle.flush()
+                os.fsync(handle.fileno())
+
+    def finished(self, tasks):
+        """Entries already in the journal, by plan index (entries of other tiles are ignored)."""
+        done = {}
+        if not self.folder.is_dir():
+            return done
+        for index, task in enumerate(tasks):
+            path = self._path(index)
+            if not path.is_file():
+                continue
+            try:
+                entry = json.loads(path.read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                continue  # an unreadable entry is simply computed again
+            if entry.get("tile_id") == task.tile_id:
+                done[index] = entry
+        return done
+
+
+# ----------------------------------------------------------------------------- running
+
+
+def _check_workers(workers):
+    if isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1:
+        raise SpecError(f"workers {workers!r} must be a whole number >= 1.")
+    return int(workers)
+
+
+def _run_serial(todo, model_dir, min_score):
+    for index, task in todo:
+        yield _screen_tile(index, task, model_dir, min_score)
+
+
+def _run_loky(todo, model_dir, min_score, workers):
+    from joblib import Parallel, delayed
+
+    parallel = Parallel(n_jobs=workers, backend="loky", return_as="generator_unordered")
+    yield from parallel(delayed(_screen_tile)(index, task, model_dir, min_score) for index, task in todo)
+
+
+def _run_dask(todo, model_dir, min_score, scheduler):
+    from distributed import Client, as_completed
+
+    try:
+        client = Client(scheduler, timeout=30, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as err:
+        raise DetectorError(f"Dask scheduler {scheduler!r} cannot be reached: {err}.") from err
+    with client:
+        futures = client.map(
+            _screen_tile, [i for i, _ in todo], [t for _, t in todo], model_dir=model_dir, min_score=min_score,
+            pure=False,
+        )
+        try:
+            for future in as_completed(futures):
+                yield future.result()
+        finally:
+            client.cancel(futures)
+
+
+def _progress(total, initial, enabled):
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, initial=initial, unit="tile", desc="screen", disable=not enabled, leave=False)
+
+
+# ----------------------------------------------------------------------------- run record
+
+
+def _version():
+    try:
+        from importlib.metadata import version
+
+        return version("frostvane")
+    except Exception:  # not installed as a distribution (e.g. run from a source tree)
+        return "unknown"
+
+
+def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
+    from .model import MODEL_CARD, sha256_file
+
+    return {
+        "model_dir": str(Path(model_dir).resolve()),
+        "model_hash": sha256_file(Path(model_dir) / MODEL_CARD),
+        "inputs": [str(Path(p).resolve()) for p in inputs],
+        "tile": [int(tile[0]), int(tile[1])],
+        "overlap": int(overlap),
+        "nodata": None if nodata is None else float(nodata),
+        "band": None if band is None else int(band),
+    }
+
+
+def _claim(out, params):
+    """Make ``out`` this run's folder, or find that it already is; refuse a folder of another run."""
+    out = Path(out)
+    run_file = out / _RUN_FILE
+    if out.exists() and not out.is_dir():
+        raise DetectorError(f"output {str(out)!r} exists and is not a folder.")
+    if run_file.is_file():
+        try:
+            previous = json.loads(run_file.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as err:
+            raise DetectorError(f"{str(run_file)!r} is not a readable run record: {err}.") from err
+        old = previous.get("parameters", {})
+        differ = [k for k in params if k != "model_dir" and old.get(k) != params[k]]
+        if differ:
+            what = ", ".join(f"{k} {old.get(k)!r} -> {params[k]!r}" for k in differ)
+            raise DetectorError(
+                f"output folder {str(out)!r} holds another screening run ({what}); "
+                f"choose another --out or delete it."
+            )
+        return previous
+    if out.is_dir() and any(out.iterdir()):
+        raise DetectorError(
+            f"output folder {str(out)!r} is not empty and holds no {_RUN_FILE}; choose a new or empty folder."
+        )
+    record = {"status": "running", "parameters": params, "version": _version(),
+              "started": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+    _write_json(run_file, record)
+    return record
+
+
+def _write_json(path, obj):
+    with atomic_path(path) as tmp:
+        tmp.write_text(json.dumps(obj, indent=2, allow_nan=False) + "\n", encoding="utf-8")
+
+
+# ----------------------------------------------------------------------------- assembly
+
+
+def _assemble(tasks, entries):
+    rows = [entries[i]["tile"] for i in range(len(tasks))]
+    tiles = pd.DataFrame(rows, columns=list(TILE_COLUMNS))
+    for c in ("col0", "row0"):
+        tiles[c] = pd.array(np.where(np.isfinite(tiles[c].to_numpy(dtype=float)), tiles[c], np.nan)).astype("Int64")
+    for c in ("width", "height", "n_fans", "n_spots"):
+        tiles[c] = tiles[c].astype(np.int64)
+    tiles["route"] = tiles["route"].astype(str)
+    georeferenced = any(entries[i]["georeferenced"] for i in range(len(tasks)))
+    columns = list(DETECTION_OUTPUT_COLUMNS) + (list(GEO_COLUMNS) if georeferenced else [])
+    merged = {c: [] for c in columns}
+    for i in range(len(tasks)):
+        det = entries[i]["detections"]
+        n = len(det["tile_id"])
+        for c in columns:
+            merged[c].extend(det.get(c, [np.nan] * n))
+    detections = pd.DataFrame(merged, columns=columns)
+    text = ("tile_id", "kind", "image")
+    for c in columns:
+        if c not in text:
+            detections[c] = pd.to_numeric(detections[c], errors="coerce").astype(float)
+    for c in ("col0", "row0"):
+        detections[c] = detections[c].astype("Int64")
+    detections["votes"] = detections["votes"].astype("Int64")
+    return tiles, detections
+
+
+def _image_offsets(detections, tasks):
+    """(file path, file-px x offset, file-px y offset) of every detection's tile."""
+    by_tile = {t.tile_id: t for t in tasks}
+    ids = detections["tile_id"].to_numpy()
+    path = np.array([by_tile[t].path for t in ids], dtype=object)
+    ox = np.array([by_tile[t].file_col0 for t in ids], dtype=float)
+    oy = np.array([by_tile[t].file_row0 for t in ids], dtype=float)
+    return path, ox, oy
+
+
+def _geojson(detections, tasks, images):
+    from .geojson import detections_to_geojson
+
+    georefs = {}
+    for entry in images.values():
+        georefs.update(entry["georefs"])
+    if detections.empty:
+        first = next(iter(georefs.values()), None)
+        all_geo = all(g is not None for g in georefs.values())
+        return detections_to_geojson(detections.iloc[0:0], georef=first if all_geo else None)
+    paths, ox, oy = _image_offsets(detections, tasks)
+    crs_wkts = {None if g is None else g.crs.to_wkt() for g in georefs.values()}
+    use_map = None not in crs_wkts and len(crs_wkts) == 1
+    df = detections.copy()
+    if not use_map:
+        # Image px: tile px plus the tile's offset in its image (the file offset when the image offset is unknown).
+        df["x_px"] = df["x_px"] + np.where(df["col0"].isna(), ox, df["col0"].astype(float).fillna(0))
+        df["y_px"] = df["y_px"] + np.where(df["row0"].isna(), oy, df["row0"].astype(float).fillna(0))
+        return detections_to_geojson(df)
+    df["x_px"] = df["x_px"] + ox
+    df["y_px"] = df["y_px"] + oy
+    features, collection = [], None
+    for path in pd.unique(paths):
+        sel = paths == path
+        collection = detections_to_geojson(df.loc[sel], georef=georefs[path])
+        features.extend(collection["features"])
+    collection["features"] = features
+    return collection
+
+
+def _write_csv(path, df):
+    with atomic_path(path) as tmp:
+        df.to_csv(tmp, index=False)
+
+
+# ----------------------------------------------------------------------------- figures
+
+
+def _decimated(piece, band, nodata, scale):
+    """A piece read at ``scale`` (<= 1) with rasterio's decimated read, and its no-data mask."""
+    from rasterio.enums import Resampling
+
+    from .raster import _quiet_rasterio
+
+    out_w = max(1, int(round(piece.width * scale)))
+    out_h = max(1, int(round(piece.height * scale)))
+    with _open(piece.path, band, nodata) as src, _quiet_rasterio():
+        array = src._dataset.read(src.band, out_shape=(out_h, out_w), resampling=Resampling.nearest)
+        fill = src.nodata
+    array = array.astype(np.float32)
+    mask = ~np.isfinite(array) | (array == fill)
+    return array, mask
+
+
+def _canvas(entry, band, nodata, cap):
+    pieces = entry["pieces"]
+    width = max(p.col0 + p.width for p in pieces)
+    height = max(p.row0 + p.height for p in pieces)
+    scale = min(1.0, cap / max(width, height))
+    canvas = np.full((max(1, int(round(height * scale))), max(1, int(round(width * scale)))), np.nan, np.float32)
+    for p in pieces:
+        array, mask = _decimated(p, band, nodata, scale)
+        r0, c0 = int(round(p.row0 * scale)), int(round(p.col0 * scale))
+        h = min(array.shape[0], canvas.shape[0] - r0)
+        w = min(array.shape[1], canvas.shape[1] - c0)
+        canvas[r0 : r0 + h, c0 : c0 + w] = np.where(mask[:h, :w], np.nan, array[:h, :w])
+    return canvas, scale
+
+
+def _canvas_positions(detections, tasks, images):
+    """Detections' x, y in their image's quick-look canvas (unscaled px)."""
+    pieces = {p.path: p for entry in images.values() for p in entry["pieces"]}
+    paths, ox, oy = _image_offsets(detections, tasks)
+    px = np.array([pieces[p].col0 for p in paths], dtype=float)
+    py = np.array([pieces[p].row0 for p in paths], dtype=float)
+    return detections["x_px"].to_numpy(dtype=float) + ox + px, detections["y_px"].to_numpy(dtype=float) + oy + py
+
+
+def _figure(n, panel_in, polar=False):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    ncols = int(min(n, 3 if n > 4 else n if n <= 2 else 2))
+    nrows = -(-n // ncols)
+    fig = Figure(figsize=(panel_in * ncols + 0.8, panel_in * nrows + 0.6), dpi=110, layout="constrained")
+    FigureCanvasAgg(fig)
+    kw = {"projection": "polar"} if polar else {}
+    axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False, subplot_kw=kw)).ravel()
+    for ax in axes[n:]:
+        ax.set_axis_off()
+    return fig, axes[:n]
+
+
+def _quicklook(path, detections, tasks, images, *, band, nodata):
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.colors import Normalize
+
+    from .plots import DIRECTION_CMAP, draw_features
+
+    names = sorted(images)[:_MAX_PANELS]
+    cap = _QUICKLOOK_PX if len(names) == 1 else max(600, _QUICKLOOK_PX // min(3, len(names)))
+    fig, axes = _figure(len(names), 9.0 if len(names) == 1 else 4.5)
+    if not detections.empty:
+        cx, cy = _canvas_positions(detections, tasks, images)
+    for ax, name in zip(axes, names, strict=True):
+        canvas, scale = _canvas(images[name], band, nodata, cap)
+        finite = canvas[np.isfinite(canvas)]
+        lo, hi = np.percentile(finite, [2, 98]) if finite.size else (0.0, 1.0)
+        ax.imshow(canvas, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest")
+        title = name
+        if not detections.empty:
+            sel = (detections["image"] == name).to_numpy()
+            shown = detections.loc[sel].assign(x_px=cx[sel], y_px=cy[sel])
+            n_all = len(shown)
+            if n_all > _MAX_DRAWN:
+                # Matplotlib slows down with many patches; the strongest detections tell the story.
+                shown = shown.nlargest(_MAX_DRAWN, "score")
+            shown = shown.assign(
+                x_px=shown["x_px"] * scale, y_px=shown["y_px"] * scale, length_px=shown["length_px"] * scale,
+                semi_major_px=shown["semi_major_px"] * scale, semi_minor_px=shown["semi_minor_px"] * scale,
+            )
+            draw_features(ax, shown, linewidth=0.6)
+            title += f"  ({n_all} detections" + (f", {len(shown)} strongest drawn)" if n_all > len(shown) else ")")
+        ax.set_xlim(-0.5, canvas.shape[1] - 0.5)
+        ax.set_ylim(canvas.shape[0] - 0.5, -0.5)
+        ax.set_title(title + (f"  [1:{1 / scale:.0f}]" if scale < 1 else ""), fontsize=8)
+        ax.tick_params(labelsize=6)
+    bar = fig.colorbar(ScalarMappable(norm=Normalize(0, 360), cmap=DIRECTION_CMAP), ax=list(axes), shrink=0.7,
+                       ticks=[0, 90, 180, 270, 360])
+    bar.set_label("fan direction, degrees clockwise from image up", fontsize=7)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png")
+
+
+def _rose(path, detections, images):
+    names = sorted(images)[:_MAX_PANELS]
+    fig, axes = _figure(len(names), 3.6, polar=True)
+    use_azimuth = "azimuth_deg" in detections.columns
+    edges = np.linspace(0.0, 360.0, _ROSE_BINS + 1)
+    for ax, name in zip(axes, names, strict=True):
+        fans = detections.loc[(detections["image"] == name) & (detections["kind"] == "fan")]
+        angles = fans["azimuth_deg" if use_azimuth else "direction_deg"].to_numpy(dtype=float)
+        if use_azimuth and not np.isfinite(angles).all():
+            angles = np.where(np.isfinite(angles), angles, fans["direction_deg"].to_numpy(dtype=float))
+        weights = np.nan_to_num(fans["length_px"].to_numpy(dtype=float))
+        counts, _ = np.histogram(angles % 360.0, bins=edges, weights=weights)
+        ax.set_theta_zero_location("N")
+        ax.set_theta_direction(-1)
+        ax.bar(np.radians(edges[:-1]), counts, width=np.radians(360.0 / _ROSE_BINS), align="edge",
+               color="tab:orange", edgecolor="black", linewidth=0.3)
+        ax.set_title(f"{name} ({len(fans)} fans)", fontsize=8)
+        ax.tick_params(labelsize=6)
+        ax.set_yticklabels([])
+    fig.suptitle(
+        ("fan azimuth, degrees clockwise from north" if use_azimuth else "fan direction, degrees clockwise from image up")
+        + "; weighted by length", fontsize=8,
+    )
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png")
+
+
+# ----------------------------------------------------------------------------- summary
+
+
+@dataclass
+class ScreenSummary:
+    """Headline numbers of a screening run.
+
+    Attributes
+    ----------
+    out : Path
+        The screening folder.
+    n_tiles, n_scored, n_nodata : int
+        Tiles planned, scored, and routed "nodata".
+    n_resumed : int
+        Tiles taken from the journal of an earlier, interrupted run.
+    n_fans, n_spots : int
+    n_deposit_tiles : int
+        Scored tiles with ``p_deposit >= DEPOSIT_THRESHOLD``.
+    covered_percent : float
+        Fan and spot cover over the scored tiles' area, %.
+    megapixels : float
+        Core pixels screened by this run (resumed tiles excluded), Mpx.
+    seconds : float
+        Wall time of the whole call, s.
+    mpx_per_s : float
+        ``megapixels / seconds``.
+    workers : int
+    per_image : DataFrame
+        ``image``, ``tiles``, ``fans``, ``spots``, ``covered_percent``,
+        ``dominant_direction_deg``, ``direction_spread_deg`` and, when
+        georeferenced, ``dominant_azimuth_deg``.
+    """
+
+    out: Path
+    n_tiles: int
+    n_scored: int
+    n_nodata: int
+    n_resumed: int
+    n_fans: int
+    n_spots: int
+    n_deposit_tiles: int
+    covered_percent: float
+    megapixels: float
+    seconds: float
+    mpx_per_s: float
+    workers: int
+    per_image: pd.DataFrame = field(repr=False)
+
+    def format(self, *, max_images=12):
+        """The one-screen text summary."""
+        lines = [
+            f"screened {self.n_tiles} tiles ({self.n_scored} scored, {self.n_nodata} no-data"
+            + (f", {self.n_resumed} from an earlier run" if self.n_resumed else "")
+            + f") of {len(self.per_image)} image(s)",
+            f"deposits: {self.n_deposit_tiles} tiles with p_deposit >= {DEPOSIT_THRESHOLD}; "
+            f"{self.n_fans} fans, {self.n_spots} spots; covered {self.covered_percent:.2f} % of scored area",
+            f"throughput: {self.megapixels:.1f} Mpx in {self.seconds:.1f} s = {self.mpx_per_s:.2f} Mpx/s "
+            f"({self.workers} worker{'s' if self.workers != 1 else ''})",
+        ]
+        width = max([5] + [len(str(n)) for n in self.per_image["image"].head(max_images)])
+        lines.append(f"{'image':<{width}}  tiles   fans  spots  cover%  dominant direction (spread)")
+        for rec in self.per_image.head(max_images).itertuples(index=False):
+            if np.isfinite(rec.dominant_direction_deg):
+                d = f"{rec.dominant_direction_deg:6.1f} deg from up ({rec.direction_spread_deg:.0f})"
+                az = getattr(rec, "dominant_azimuth_deg", np.nan)
+                if np.isfinite(az):
+                    d += f", azimuth {az:.1f} deg"
+            else:
+                d = "-"
+            lines.append(f"{rec.image:<{width}}  {rec.tiles:5d}  {rec.fans:5d}  {rec.spots:5d}  "
+                         f"{rec.covered_percent:6.2f}  {d}")
+        if len(self.per_image) > max_images:
+            lines.append(f"... and {len(self.per_image) - max_images} more image(s): see tiles.csv")
+        lines.append(f"outputs in {self.out}")
+        return "\n".join(lines)
+
+
+def _per_image(tiles, detections):
+    georef = "azimuth_deg" in detections.columns
+    out = []
+    for name, group in tiles.groupby("image", sort=True):
+        scored = group[group["route"] != "nodata"]
+        area = float((scored["width"] * scored["height"]).sum())
+        cover = float(((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
+        fans = detections[(detections["image"] == name) & (detections["kind"] == "fan")]
+        w = _fan_weights(fans)
+        mean, spread = tile_direction_stats(fans["direction_deg"].to_numpy(dtype=float), w)
+        rec = {
+            "image": str(name), "tiles": len(group), "fans": len(fans),
+            "spots": int(((detections["image"] == name) & (detections["kind"] == "spot")).sum()),
+            "covered_percent": 100.0 * cover / area if area else 0.0,
+            "dominant_direction_deg": mean, "direction_spread_deg": spread,
+        }
+        if georef:
+            rec["dominant_azimuth_deg"], _ = tile_direction_stats(fans["azimuth_deg"].to_numpy(dtype=float), w)
+        out.append(rec)
+    return pd.DataFrame(out)
+
+
+# ----------------------------------------------------------------------------- entry points
+
+
+def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, scheduler=None, nodata=None,
+           band=None, min_score=None, progress=True):
+    """Screen images or tile sets with a model and write the screening folder.
+
+    Parameters
+    ----------
+    model_dir : path-like
+        Model folder (see :func:`detector.model.load_model`; its hashes are checked).
+    inputs : path-like or list of path-like
+        Image files and / or tile-set folders (with ``tiles.csv``).
+    out : path-like
+        Screening folder; created, or continued when it holds an interrupted
+        run with the same parameters.
+    tile : (int, int), optional
+        Core tile size (width, height) for image inputs, px.
+    overlap : int, optional
+        Margin read around each tile, px.
+    workers : int, optional
+        Local worker processes (joblib loky backend) when above 1.
+    scheduler : str, optional
+        Address of a running Dask distributed scheduler (e.g.
+        ``"tcp://10.0.0.5:8786"``); overrides ``workers``.
+    nodata : float, optional
+        Value of no-data pixels; default the raster's own, else 0.
+    band : int, optional
+        1-based band; required for multi-band images.
+    min_score : float, optional
+        Smallest detection score kept; default the model card's.
+    progress : bool, optional
+        Show a tqdm progress bar over tiles.
+
+    Returns
+    -------
+    summary : ScreenSummary
+
+    Raises
+    ------
+    DetectorError
+        Unreadable or corrupt image, multi-band image without ``band``,
+        missing or tampered model file, or ``out`` holding another run. The
+        final outputs are written only once every tile is done.
+    """
+    t_start = time.perf_counter()
+    workers = _check_workers(workers)
+    model_dir = Path(model_dir)
+    _cached_model(model_dir)  # a missing or tampered model fails here, before anything is written
+    tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
+    inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
+    params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
+    out = Path(out)
+    record = _claim(out, params)
+    journal = _Journal(out)
+    entries = journal.finished(tasks)
+    n_resumed = len(entries)
+    todo = [(i, t) for i, t in enumerate(tasks) if i not in entries]
+    model_arg = str(model_dir.resolve())
+    if scheduler:
+        results = _run_dask(todo, model_arg, min_score, scheduler)
+    elif workers > 1 and len(todo) > 1:
+        results = _run_loky(todo, model_arg, min_score, workers)
+    else:
+        results = _run_serial(todo, model_arg, min_score)
+    pixels = 0
+    t_tiles = time.perf_counter()
+    with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
+        for index, entry in results:
+            journal.write(index, entry)
+            entries[index] = entry
+            pixels += entry["pixels"]
+            bar.update(1)
+    t_tiles = time.perf_counter() - t_tiles
+
+    tiles, detections = _assemble(tasks, entries)
+    with _staged(out) as stage:
+        _write_csv(stage / "tiles.csv", tiles)
+        _write_csv(stage / "detections.csv", detections)
+        write_geojson(stage / "detections.geojson", _geojson(detections, tasks, images))
+        _quicklook(stage / "quicklook.png", detections, tasks, images, band=band, nodata=nodata)
+        _rose(stage / "rose.png", detections, images)
+
+    seconds = time.perf_counter() - t_start
+    scored = tiles[tiles["route"] != "nodata"]
+    area = float((scored["width"] * scored["height"]).sum())
+    covered = float(((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
+    summary = ScreenSummary(
+        out=out,
+        n_tiles=len(tiles),
+        n_scored=len(scored),
+        n_nodata=int((tiles["route"] == "nodata").sum()),
+        n_resumed=n_resumed,
+        n_fans=int((detections["kind"] == "fan").sum()),
+        n_spots=int((detections["kind"] == "spot").sum()),
+        n_deposit_tiles=int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum()),
+        covered_percent=100.0 * covered / area if area else 0.0,
+        megapixels=pixels / 1e6,
+        seconds=seconds,
+        mpx_per_s=pixels / 1e6 / seconds if seconds > 0 else math.nan,
+        workers=workers,
+        per_image=_per_image(tiles, detections),
+    )
+    record = {
+        **record,
+        "status": "complete",
+        "parameters": params,
+        "version": _version(),
+        "run": {
+            "workers": workers, "scheduler": scheduler, "min_score": min_score,
+            "python": platform.python_version(),
+            "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        },
+        "timing": {"seconds": seconds, "tile_seconds": t_tiles, "megapixels": pixels / 1e6,
+                   "mpx_per_s": summary.mpx_per_s, "tiles_resumed": n_resumed, "tiles_computed": len(todo)},
+        "counts": {k: getattr(summary, k)
+                   for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles")},
+        "outputs": list(_OUTPUT_FILES),
+    }
+    _write_json(out / _RUN_FILE, _finite(record))
+    return summary
+
+
+@contextlib.contextmanager
+def _staged(out):
+    """A hidden folder in ``out`` for the final outputs; they are moved in only when all are written."""
+    import shutil
+    import tempfile
+
+    stage = Path(tempfile.mkdtemp(prefix=".outputs.", dir=out))
+    try:
+        yield stage
+        for name in sorted(os.listdir(stage)):
+            os.replace(stage / name, out / name)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def _finite(obj):
+    """NaN / inf to None, so the record is valid JSON."""
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+def screen_command(args):
+    """``frostvane screen``: run :func:`screen` with the parsed arguments and print the summary."""
+    summary = screen(
+        args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap, workers=args.workers,
+        scheduler=args.scheduler, nodata=args.nodata, band=args.band,
+    )
+    print(summary.format())
