@@ -623,14 +623,21 @@ def _false_marks(negatives, classifications, tile_shape, rng):
     as_fan = rng.random(k) < 0.3
     fan_votes = np.where(as_fan, votes, 0)
     size = rng.uniform(5.0, 25.0, k)
+    x = np.clip(neg["x_px"].to_numpy() + rng.normal(0, 3, k), 0.0, width - 1.0)
+    y = np.clip(neg["y_px"].to_numpy() + rng.normal(0, 3, k), 0.0, height - 1.0)
+    # A mark's far end stays inside the tile: point inwards at a border, stop at it.
+    heading = rng.uniform(0, 360, k)
+    room = _ray_to_border(x, y, *unit_vector(heading), tile_shape)
+    heading = np.where(room < 3.0, (heading + 180.0) % 360.0, heading)
+    room = _ray_to_border(x, y, *unit_vector(heading), tile_shape)
     return pd.DataFrame(
         {
             "tile": neg["tile"].to_numpy(),
             "kind": np.where(as_fan, "fan", "spot"),
-            "x_px": np.clip(neg["x_px"].to_numpy() + rng.normal(0, 3, k), 0.0, width - 1.0),
-            "y_px": np.clip(neg["y_px"].to_numpy() + rng.normal(0, 3, k), 0.0, height - 1.0),
-            "direction_deg": np.where(as_fan, rng.uniform(0, 360, k), rng.uniform(0, 180, k)),
-            "length_px": np.where(as_fan, 2.0 * size, np.nan),
+            "x_px": x,
+            "y_px": y,
+            "direction_deg": np.where(as_fan, heading, heading % 180.0),
+            "length_px": np.where(as_fan, np.maximum(np.minimum(2.0 * size, room), 1.0), np.nan),
             "spread_deg": np.where(as_fan, rng.uniform(15.0, 45.0, k), np.nan),
             "semi_major_px": np.where(as_fan, np.nan, size),
             "semi_minor_px": np.where(as_fan, np.nan, size * rng.uniform(0.6, 1.0, k)),
