@@ -120,10 +120,13 @@ def cell_sums(a, cell_px, ncr, ncc):
     return a.reshape(ncr, cell_px, ncc, cell_px, *a.shape[2:]).sum(axis=(1, 3), dtype=np.float64)
 
 
-def summed_area(cells):
-    """Summed-area table of a (ncr, ncc, C) cell grid, shape (ncr + 1, ncc + 1, C)."""
+def summed_area(cells, dtype=np.float64):
+    """Summed-area table of a (ncr, ncc, C) cell grid, shape (ncr + 1, ncc + 1, C).
+
+    Integer counts use an integer table (exact, half the memory traffic).
+    """
     ncr, ncc = cells.shape[:2]
-    table = np.zeros((ncr + 1, ncc + 1) + cells.shape[2:], dtype=np.float64)
+    table = np.zeros((ncr + 1, ncc + 1) + cells.shape[2:], dtype=dtype)
     np.cumsum(cells, axis=0, out=table[1:, 1:])
     np.cumsum(table[1:, 1:], axis=1, out=table[1:, 1:])
     return table
@@ -148,12 +151,23 @@ def central_gradients(image):
 
 
 def orientation_bins(g_row, g_col, n_unsigned, n_signed):
-    """Unsigned HOG bins (``atan2(g_row, g_col) mod 180``, hard-assigned like skimage)
-    and signed bins of the gradient direction in degrees clockwise from image up."""
-    deg = np.degrees(np.arctan2(g_row, g_col))
-    unsigned = np.minimum((np.mod(deg, 180.0) * (n_unsigned / 180.0)).astype(np.int64), n_unsigned - 1)
-    # direction_deg(g_col, g_row) = atan2(g_row, g_col) + 90 degrees
-    signed = np.minimum((np.mod(deg + 90.0, 360.0) * (n_signed / 360.0)).astype(np.int64), n_signed - 1)
+    """Unsigned HOG bins (``atan2(g_row, g_col) mod 180`` degrees, hard-assigned like
+    skimage) and signed bins of the gradient direction in degrees clockwise from image up.
+
+    Both come from one ``arctan2``; the direction clockwise from up is
+    ``atan2(g_row, g_col) + 90`` degrees (see ``geometry.direction_deg``).
+    """
+    turns = np.arctan2(g_row, g_col)
+    turns *= np.float32(0.5 / np.pi)  # (-1/2, 1/2] turn from +x towards +y (down)
+    # shift to positive values, floor, then an integer modulo
+    u = turns * np.float32(2 * n_unsigned)
+    u += np.float32(2 * n_unsigned)
+    unsigned = u.astype(np.int64)
+    unsigned %= n_unsigned
+    turns *= np.float32(n_signed)
+    turns += np.float32(n_signed + n_signed / 4)
+    signed = turns.astype(np.int64)
+    signed %= n_signed
     return unsigned, signed
 
 
@@ -180,67 +194,120 @@ def quantise(image, lo, hi, levels):
     return np.clip(q, 0, levels - 1).astype(np.int64)
 
 
-def glcm_cell_counts(q, cells, n_cells, offsets, levels, valid=None):
-    """Co-occurrence counts per cell, shape (n_offsets, n_cells, levels, levels).
+def glcm_cell_counts(q, cells, n_cells, offsets, levels, valid=None, *, folded=False):
+    """Co-occurrence counts per cell.
 
     A pair (first pixel, first + offset) is counted in the cell of its first pixel
-    when both pixels lie in the tile (and are valid); pairs are not symmetrised.
+    when both pixels lie in the tile (and are valid).
+
+    Returns
+    -------
+    counts : ndarray of int64
+        ``folded=False``: (n_offsets, n_cells, levels, levels), not symmetrised.
+        ``folded=True``: (n_offsets, n_cells, levels (levels + 1) / 2), the count of
+        the unordered pair {i, j} (i <= j), i.e. :func:`glcm_fold` with the diagonal halved.
     """
     h, w = q.shape
-    base = cells * (levels * levels) + q * levels
-    dump = n_cells * levels * levels
+    L2 = levels * levels
+    n_codes = levels * (levels + 1) // 2 if folded else L2
+    small = np.uint16 if levels <= 128 else np.int64
+    q_small = q.astype(small)
+    q_first = (q * levels).astype(small)
+    base = cells * n_codes
+    dump = n_cells * n_codes
+    # flat buffers so that each offset's (rows, cols) view is contiguous
+    buf = [np.empty(q.size, dtype=small) for _ in range(3)]
+    key_buf = np.empty(q.size, dtype=np.int64)
     out = {}
     for dr, dc in dict.fromkeys(offsets):
         r0, r1 = max(0, -dr), min(h, h - dr)
         c0, c1 = max(0, -dc), min(w, w - dc)
-        key = base[r0:r1, c0:c1] + q[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
+        shape = (r1 - r0, c1 - c0)
+        n = shape[0] * shape[1]
+        a, b, code = (x[:n].reshape(shape) for x in buf)
+        kk = key_buf[:n].reshape(shape)
+        first, second = q_small[r0:r1, c0:c1], q_small[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
+        if folded:
+            # row-major index of {lo, hi} in the upper triangle: lo (2L + 1 - lo) / 2 - lo + hi
+            np.minimum(first, second, out=a)
+            np.maximum(first, second, out=b)
+            np.subtract(small(2 * levels + 1), a, out=code)
+            code *= a
+            code >>= 1
+            code -= a
+            code += b
+        else:
+            np.add(q_first[r0:r1, c0:c1], second, out=code)
+        np.add(base[r0:r1, c0:c1], code, out=kk)
         if valid is not None:
             ok = valid[r0:r1, c0:c1] & valid[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
-            key = np.where(ok, key, dump)
-        counts = np.bincount(key.ravel(), minlength=dump + levels * levels)
-        out[(dr, dc)] = counts[:dump].reshape(n_cells, levels, levels)
+            kk[~ok] = dump
+        counts = np.bincount(kk.ravel(), minlength=dump + n_codes)
+        out[(dr, dc)] = counts[:dump].reshape((n_cells, n_codes) if folded else (n_cells, levels, levels))
     return np.stack([out[o] for o in offsets])
 
 
-def glcm_props(P):
-    """Haralick properties of co-occurrence counts (..., L, L), symmetrised and
-    normalised as ``skimage.feature.graycoprops`` does.
+def unfold_diagonal(F, levels):
+    """Folded symmetric counts :func:`glcm_fold` from unordered-pair counts (diagonal doubled)."""
+    iu, ju = np.triu_indices(levels)
+    return F * np.where(iu == ju, 2, 1).astype(F.dtype)
+
+
+def glcm_fold(P):
+    """Symmetrised counts ``P + P.T`` (..., L, L) kept on and above the diagonal: (..., L (L + 1) / 2)."""
+    L = P.shape[-1]
+    iu, ju = np.triu_indices(L)
+    S = P + np.swapaxes(P, -1, -2)
+    return S[..., iu, ju]
+
+
+def glcm_props_folded(S, levels):
+    """Haralick properties of folded symmetric counts (see :func:`glcm_fold`), normalised
+    as ``skimage.feature.graycoprops`` does after ``symmetric=True, normed=True``.
+
+    An off-diagonal folded entry stands for two equal entries of the symmetric matrix,
+    so linear properties are one matrix product with doubled off-diagonal weights.
 
     Returns
     -------
     props : ndarray of shape (6, ...)
         contrast, dissimilarity, homogeneity, ASM, energy, correlation.
     """
-    P = P + np.swapaxes(P, -1, -2)
-    total = P.sum(axis=(-1, -2), keepdims=True)
-    P = P / np.where(total == 0, 1.0, total)
-    L = P.shape[-1]
-    i = np.arange(L, dtype=np.float64)[:, None]
-    j = np.arange(L, dtype=np.float64)[None, :]
-    contrast = np.sum(P * (i - j) ** 2, axis=(-1, -2))
-    dissim = np.sum(P * np.abs(i - j), axis=(-1, -2))
-    homog = np.sum(P / (1.0 + (i - j) ** 2), axis=(-1, -2))
-    asm = np.sum(P * P, axis=(-1, -2))
-    mu_i = np.sum(P * i, axis=(-1, -2))
-    mu_j = np.sum(P * j, axis=(-1, -2))
-    di = i - mu_i[..., None, None]
-    dj = j - mu_j[..., None, None]
-    std_i = np.sqrt(np.sum(P * di**2, axis=(-1, -2)))
-    std_j = np.sqrt(np.sum(P * dj**2, axis=(-1, -2)))
-    cov = np.sum(P * di * dj, axis=(-1, -2))
-    flat = (std_i < 1e-15) | (std_j < 1e-15)
-    corr = np.where(flat, 1.0, cov / np.where(flat, 1.0, std_i * std_j))
-    return np.stack([contrast, dissim, homog, asm, np.sqrt(asm), corr])
+    shape = S.shape[:-1]
+    flat = S.reshape(-1, S.shape[-1]).astype(np.float64, copy=False)
+    iu, ju = np.triu_indices(levels)
+    i, j = iu.astype(np.float64), ju.astype(np.float64)
+    mult = np.where(iu == ju, 1.0, 2.0)
+    d = i - j
+    weights = mult[:, None] * np.stack(
+        [np.ones_like(i), d**2, np.abs(d), 1.0 / (1.0 + d**2), (i + j) / 2, (i**2 + j**2) / 2, i * j], axis=1)
+    # einsum, not BLAS: threaded BLAS costs more than it gains at these sizes
+    sums = np.einsum("nk,kw->nw", flat, weights)
+    norm = np.where(sums[:, 0] == 0, 1.0, sums[:, 0])
+    contrast, dissim, homog, mu, ex2, exy = (sums[:, k] / norm for k in range(1, 7))
+    asm = np.einsum("nk,nk,k->n", flat, flat, mult) / norm**2
+    var = np.maximum(ex2 - mu**2, 0.0)
+    cov = exy - mu**2
+    flat_std = np.sqrt(var) < 1e-15
+    corr = np.where(flat_std, 1.0, cov / np.where(flat_std, 1.0, var))
+    return np.stack([contrast, dissim, homog, asm, np.sqrt(asm), corr]).reshape((6,) + shape)
+
+
+def glcm_props(P):
+    """Haralick properties of (unsymmetrised) co-occurrence counts (..., L, L), as
+    ``graycoprops`` of the symmetric normalised matrix; shape (6, ...)."""
+    return glcm_props_folded(glcm_fold(P), P.shape[-1])
 
 
 # -- local binary patterns --------------------------------------------------
-def lbp_uniform(image, P, R, *, strip_rows=32):
+def lbp_uniform(image, P, R, *, strip_rows=64):
     """Rotation-invariant uniform LBP codes 0 .. P + 1 (Ojala, Pietikainen and Maenpaa 2002).
 
     Whole-array re-implementation of ``skimage.feature.local_binary_pattern(image, P,
     R, 'uniform')``: same neighbour positions (rounded to 5 decimals), same bilinear
     interpolation with zeros outside the image, same float64 arithmetic in the same
-    order, so codes are identical. Rows are processed in strips that stay in cache.
+    order, so codes are identical. The column interpolation is shared by the
+    neighbours with the same column offset, and rows go in strips that stay in cache.
     """
     img = np.ascontiguousarray(image, dtype=np.float64)
     h, w = img.shape
@@ -251,47 +318,67 @@ def lbp_uniform(image, P, R, *, strip_rows=32):
     padded = np.zeros((h + 2 * pad, w + 2 * pad))
     padded[pad:-pad, pad:-pad] = img
     cols = np.arange(w, dtype=np.float64)
+    column_sets = {}  # column offset -> (minc, maxc, 1 - fc, fc)
     neighbours = []
     for i in range(P):
-        c = cols + cp[i]
-        fc = c - np.floor(c)
-        neighbours.append((int(np.floor(rp[i])), int(np.ceil(rp[i])), int(np.floor(cp[i])),
-                           int(np.ceil(cp[i])), fc, 1 - fc))
+        minr, maxr = int(np.floor(rp[i])), int(np.ceil(rp[i]))
+        if cp[i] not in column_sets:
+            c = cols + cp[i]
+            fc = c - np.floor(c)
+            column_sets[cp[i]] = (int(np.floor(cp[i])), int(np.ceil(cp[i])), 1 - fc, fc)
+        neighbours.append((minr, maxr, cp[i]))
     codes = np.empty((h, w), dtype=np.uint8)
     n = min(strip_rows, h)
-    top, bottom, tmp = np.empty((n, w)), np.empty((n, w)), np.empty((n, w))
+    m_pad = n + 2 * pad
+    rows_buf = {key: np.empty((m_pad, w)) for key, (minc, maxc, _, _) in column_sets.items() if minc != maxc}
+    tmp_pad = np.empty((m_pad, w))
+    t, bo, tm = np.empty((n, w)), np.empty((n, w)), np.empty((n, w))
     bit, prev = np.empty((n, w), dtype=bool), np.empty((n, w), dtype=bool)
     ones, changes = np.empty((n, w), dtype=np.uint8), np.empty((n, w), dtype=np.uint8)
     for a in range(0, h, n):
         b = min(a + n, h)
         m = b - a
+        mp = m + 2 * pad
         rows = np.arange(a, b, dtype=np.float64)
         centre = img[a:b]
-        t, bo, tm, bi, pr = top[:m], bottom[:m], tmp[:m], bit[:m], prev[:m]
+        # top = (1 - dc) * top_left + dc * top_right, for every padded row of the strip
+        interp = {}
+        for key, (minc, maxc, gc, fc) in column_sets.items():
+            if minc == maxc:
+                interp[key] = padded[a:a + mp, pad + minc:pad + minc + w]
+                continue
+            out = rows_buf[key][:mp]
+            np.multiply(gc, padded[a:a + mp, pad + minc:pad + minc + w], out=out)
+            np.multiply(fc, padded[a:a + mp, pad + maxc:pad + maxc + w], out=tmp_pad[:mp])
+            out += tmp_pad[:mp]
+            interp[key] = out
+        tv, bov, tmv, bi, pr = t[:m], bo[:m], tm[:m], bit[:m], prev[:m]
         on, ch = ones[:m], changes[:m]
         on[:] = 0
         ch[:] = 0
-        for i, (minr, maxr, minc, maxc, fc, gc) in enumerate(neighbours):
-            def win(dr, dc):
-                return padded[pad + a + dr:pad + b + dr, pad + dc:pad + dc + w]
-
-            r = rows + rp[i]
-            fr = (r - np.floor(r))[:, None]
-            gr = 1 - fr
-            np.multiply(gc, win(minr, minc), out=t)
-            np.multiply(fc, win(minr, maxc), out=tm)
-            t += tm
+        for i, (minr, maxr, key) in enumerate(neighbours):
+            H = interp[key]
+            top = H[pad + minr:pad + minr + m]
             if minr == maxr:
-                bo[:] = t
+                if column_sets[key][0] == column_sets[key][1]:
+                    # integer offset: the interpolation returns the pixel itself
+                    np.greater_equal(top, centre, out=bi)
+                else:
+                    r = rows + rp[i]
+                    fr = (r - np.floor(r))[:, None]
+                    np.multiply(1 - fr, top, out=tv)
+                    np.multiply(fr, top, out=bov)
+                    tv += bov
+                    np.greater_equal(tv, centre, out=bi)
             else:
-                np.multiply(gc, win(maxr, minc), out=bo)
-                np.multiply(fc, win(maxr, maxc), out=tm)
-                bo += tm
-            t *= gr
-            bo *= fr
-            t += bo
-            t -= centre
-            np.greater_equal(t, 0, out=bi)
+                bottom = H[pad + maxr:pad + maxr + m]
+                r = rows + rp[i]
+                fr = (r - np.floor(r))[:, None]
+                np.multiply(1 - fr, top, out=tv)
+                np.multiply(fr, bottom, out=bov)
+                tv += bov
+                # for finite doubles a - b >= 0 exactly when a >= b
+                np.greater_equal(tv, centre, out=bi)
             on += bi
             if i:
                 np.not_equal(bi, pr, out=pr)

@@ -198,9 +198,13 @@ class _Pooler:
         self.cy = r + half - self.y0
 
     def pool(self, cells_last, k=None, grow=0):
-        """Box sums of a (ncr, ncc, C) cell array over each patch window, grown by ``grow`` cells."""
+        """Box sums of a (ncr, ncc, C) cell array over each patch window, grown by ``grow`` cells.
+
+        Integer cell counts are pooled exactly in int32 (a tile has fewer than 2**31 pixels).
+        """
         k = self.k if k is None else k
-        table = _dense.summed_area(cells_last)
+        dtype = np.int32 if np.issubdtype(cells_last.dtype, np.integer) else np.float64
+        table = _dense.summed_area(cells_last, dtype)
         return _dense.box(table, self.i0 - grow, self.j0 - grow, self.i0 + k + grow, self.j0 + k + grow)
 
     def hist(self, bins, n_bins, weights=None, mask=None):
@@ -263,14 +267,14 @@ class _Pooler:
         q = _dense.quantise(prep.image, prep.lo, prep.hi, L)
         offsets = _dense.glcm_offsets(spec.glcm_distances, spec.glcm_angles_deg)
         unique = list(dict.fromkeys(offsets))
-        counts = _dense.glcm_cell_counts(q, self.cells, self.n_cells, unique, L,
-                                         prep.valid if prep.has_nodata else None)
-        # (n_unique, n_cells, L, L) -> (ncr, ncc, n_unique * L * L)
-        cells = np.moveaxis(counts.reshape(len(unique), self.ncr, self.ncc, L * L), 0, 2)
-        P = self.pool(cells.reshape(self.ncr, self.ncc, -1).astype(np.float64)).reshape(-1, len(unique), L, L)
-        props = _dense.glcm_props(P)  # (6, n, n_unique)
+        folded = _dense.glcm_cell_counts(q, self.cells, self.n_cells, unique, L,
+                                         prep.valid if prep.has_nodata else None, folded=True)
+        nf = folded.shape[-1]
+        cells = np.moveaxis(folded.reshape(len(unique), self.ncr, self.ncc, nf), 0, 2)
+        S = _dense.unfold_diagonal(self.pool(cells.reshape(self.ncr, self.ncc, -1)).reshape(-1, len(unique), nf), L)
+        props = _dense.glcm_props_folded(S, L)  # (6, n, n_unique)
         order = [unique.index(o) for o in offsets]
-        return np.moveaxis(props[:, :, order], 1, 0).reshape(P.shape[0], -1)
+        return np.moveaxis(props[:, :, order], 1, 0).reshape(S.shape[0], -1)
 
     def lbp(self):
         spec, prep = self.spec, self.prep
@@ -282,7 +286,7 @@ class _Pooler:
                 from scipy import ndimage as ndi
 
                 mask = ndi.minimum_filter(prep.valid, size=2 * int(np.ceil(R)) + 1, mode="nearest")
-            pooled = self.pool(self.hist(codes, P + 2, mask=mask).astype(np.float64))
+            pooled = self.pool(self.hist(codes, P + 2, mask=mask)).astype(np.float64)
             parts.append(_safe_div(pooled, pooled.sum(axis=1, keepdims=True)))
         return np.concatenate(parts, axis=1)
 
@@ -292,7 +296,7 @@ class _Pooler:
         z = (prep.image - np.float32(prep.background)) * np.float32(1.0 / prep.scale)
         zr, nb = spec.int_z_range, spec.int_bins
         zbin = np.clip(((z + zr) * (nb / (2 * zr))).astype(np.int64), 0, nb - 1)
-        hist = self.pool(self.hist(zbin, nb, mask=prep.valid if prep.has_nodata else None).astype(np.float64))
+        hist = self.pool(self.hist(zbin, nb, mask=prep.valid if prep.has_nodata else None)).astype(np.float64)
         self.dark = np.clip(-z, 0, spec.dark_weight_max)
         if prep.has_nodata:
             z = z * prep.valid

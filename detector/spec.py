@@ -84,7 +84,8 @@ class FeatureSpec:
         tensor, px (0 = none).
     st_tensor_sigma : float
         Gaussian smoothing of the derivative products (``sigma`` of
-        ``skimage.feature.structure_tensor``), px.
+        ``skimage.feature.structure_tensor``), px; 0 leaves the integration to
+        the ``st_scales`` windows alone (a box window).
     st_scales : tuple of int
         Integration windows of the structure tensor in multiples of ``patch_px``;
         the largest gives the polarity axis.
@@ -118,7 +119,7 @@ class FeatureSpec:
     int_z_range: float = 8.0
     context_scales: tuple = (2, 4)
     st_gradient_sigma: float = 0.0
-    st_tensor_sigma: float = 1.0
+    st_tensor_sigma: float = 0.0
     st_scales: tuple = (1, 2)
     signed_hist_bins: int = 12
     dark_weight_max: float = 10.0

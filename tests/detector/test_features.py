@@ -288,3 +288,13 @@ def test_patch_targets_classes_and_direction():
     # equal shares of fan and spot: fan wins
     tie = patch_targets(grid, fan, fan.copy(), direction)
     assert tie.label[0] == 1
+
+
+def test_folded_cooccurrence_counts_equal_symmetrised_matrix():
+    rng = np.random.default_rng(10)
+    q = rng.integers(0, 8, size=(64, 80))
+    cells, ncr, ncc = _dense.cell_index(q.shape, 16)
+    offsets = _dense.glcm_offsets((1, 4), (0, 135))
+    full = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8)
+    folded = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8, folded=True)
+    np.testing.assert_array_equal(_dense.unfold_diagonal(folded, 8), _dense.glcm_fold(full))
