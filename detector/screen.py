@@ -489,7 +489,7 @@ def _run_dask(todo, model_dir, min_score, scheduler):
     from distributed import Client, as_completed
 
     try:
-        client = Client(scheduler, timeout=30, set_as_default=False)
+        client = Client(scheduler, timeout=30)
     except (OSError, TimeoutError, ValueError) as err:
         raise DetectorError(f"Dask scheduler {scheduler!r} cannot be reached: {err}.") from err
     with client:

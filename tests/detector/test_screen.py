@@ -1,0 +1,440 @@
+"""Tests of ``frostvane screen``: tiling, outputs, georeferencing, resuming, workers and bad input."""
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from dataclasses import asdict
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import pyproj
+from affine import Affine
+from PIL import Image
+
+from detector.contract import DETECTION_COLUMNS
+from detector.geo import MARS_SOUTH_POLAR_STEREO
+from detector.io import write_image
+from detector.raster import write_geotiff
+from detector.screen import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
+from training.cli import main as cli_main
+
+REPO = Path(__file__).resolve().parents[2]
+DEMO_MODEL = REPO / "models" / "demo"
+OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook.png", "rose.png")
+TILE = (200, 150)
+
+
+# ----------------------------------------------------------------------------- fixtures
+
+
+def _build_small_model(folder, seed=0):
+    """A small but real exported model: boosted trees on the patch features of one synthetic scene.
+
+    Patches holding a rendered fan apex are labelled fan, those holding a spot
+    centre spot; it is good enough to make detections, which is all the
+    screening plumbing needs.
+    """
+    from sklearn.ensemble import HistGradientBoostingClassifier
+    from threadpoolctl import threadpool_limits
+
+    from detector.assemble import AssemblyParams
+    from detector.features import extract_features
+    from detector.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, ORIENTATION_ONNX,
+                                sha256_file)
+    from detector.spec import POLARITY_ODD_FEATURES, FeatureSpec
+    from training.export import to_onnx_bytes
+    from training.synth import render_scene, to_uint8
+    from training.train import orientation_feature_names
+
+    rng = np.random.default_rng(seed)
+    image, truth = render_scene((384, 512), rng, scenario="windy", nodata=False)
+    spec = FeatureSpec()
+    X, grid = extract_features(to_uint8(image), spec)
+    half = grid.patch_px / 2
+    y = np.zeros(len(X), dtype=np.int64)
+    for code, kind in ((1, "fan"), (2, "spot")):
+        pts = truth.loc[truth["kind"] == kind, ["x_px", "y_px"]].to_numpy(dtype=float)
+        near = (np.abs(grid.x_px[:, None] - pts[None, :, 0]) < half) & (np.abs(grid.y_px[:, None] - pts[None, :, 1]) < half)
+        y[near.any(axis=1)] = code
+    names = orientation_feature_names(spec)
+    index = [spec.feature_names.index(n) for n in names]
+    with threadpool_limits(1):
+        detector = HistGradientBoostingClassifier(max_iter=10, random_state=0).fit(X, y)
+        orientation = HistGradientBoostingClassifier(max_iter=5, random_state=0).fit(
+            X[:, index], np.arange(len(X)) % 2
+        )
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / DETECTOR_ONNX).write_bytes(to_onnx_bytes(detector, X.shape[1]))
+    (folder / ORIENTATION_ONNX).write_bytes(to_onnx_bytes(orientation, len(index)))
+    card = {
+        "format_version": MODEL_FORMAT_VERSION,
+        "class_names": list(CLASS_NAMES),
+        "feature_spec": json.loads(spec.to_json()),
+        "feature_names": list(spec.feature_names),
+        "orientation_features": list(names),
+        "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
+        "calibration": {"temperature": 1.0, "bias": [0.0, 0.0, 0.0]},
+        "assembly": asdict(AssemblyParams()),
+        "files": {n: sha256_file(folder / n) for n in (DETECTOR_ONNX, ORIENTATION_ONNX)},
+        "unfamiliarity": None,
+    }
+    (folder / MODEL_CARD).write_text(json.dumps(card))
+    return folder
+
+
+@pytest.fixture(scope="session")
+def model_dir(tmp_path_factory):
+    if (DEMO_MODEL / "model.json").is_file():
+        return DEMO_MODEL
+    return _build_small_model(tmp_path_factory.mktemp("model") / "small")
+
+
+def _scene(shape, seed, **kwargs):
+    from training.synth import render_scene, to_uint8
+
+    image, _ = render_scene(shape, np.random.default_rng(seed), **kwargs)
+    return to_uint8(image)
+
+
+@pytest.fixture(scope="session")
+def png_image(tmp_path_factory):
+    path = tmp_path_factory.mktemp("png") / "scene_a.png"
+    write_image(path, _scene((380, 500), 11, scenario="windy", nodata=False))
+    return path
+
+
+@pytest.fixture(scope="session")
+def png_run(model_dir, png_image, tmp_path_factory):
+    out = tmp_path_factory.mktemp("png_run") / "screen"
+    summary = screen(model_dir, [png_image], out, tile=TILE, overlap=32, progress=False)
+    return out, summary
+
+
+@pytest.fixture(scope="session")
+def big_png(tmp_path_factory):
+    """36 tiles of 200 x 150 px: long enough to be interrupted."""
+    path = tmp_path_factory.mktemp("big") / "scene_big.png"
+    write_image(path, _scene((900, 1200), 12, scenario="two_winds", nodata=False))
+    return path
+
+
+@pytest.fixture(scope="session")
+def big_reference(model_dir, big_png, tmp_path_factory):
+    out = tmp_path_factory.mktemp("big_ref") / "screen"
+    screen(model_dir, [big_png], out, tile=TILE, overlap=32, progress=False)
+    return out
+
+
+def _cli(*argv):
+    return [sys.executable, "-m", "training.cli", *map(str, argv)]
+
+
+def _same_outputs(a, b):
+    for name in ("tiles.csv", "detections.csv", "detections.geojson"):
+        assert (a / name).read_bytes() == (b / name).read_bytes(), name
+
+
+# ----------------------------------------------------------------------------- tile sets
+
+
+def test_tileset_input_keeps_tile_ids(model_dir, tmp_path):
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "ts", n_images=2, tiles_per_image=2, seed=4, tile_shape=(192, 256))
+    listed = pd.read_csv(root / "tiles.csv")
+    out = tmp_path / "out"
+    summary = screen(model_dir, [root], out, progress=False)
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+    assert tiles["tile_id"].tolist() == sorted(listed["tile_id"])  # sorted by image, then row0
+    by_id = listed.set_index("tile_id")
+    assert (tiles["image"].to_numpy() == by_id.loc[tiles["tile_id"], "image_id"].to_numpy()).all()
+    assert (tiles["row0"].to_numpy() == by_id.loc[tiles["tile_id"], "row0"].to_numpy()).all()
+    assert (tiles[["width", "height"]].to_numpy() == [256, 192]).all()
+    detections = pd.read_csv(out / "detections.csv")
+    assert set(detections["tile_id"]) <= set(listed["tile_id"])
+    assert summary.n_tiles == 4
+    assert (tiles["n_fans"] + tiles["n_spots"]).sum() == len(detections)
+
+
+# ----------------------------------------------------------------------------- image tiling
+
+
+def test_png_is_tiled_and_every_core_pixel_belongs_to_one_tile(png_run):
+    out, summary = png_run
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+    # Naive oracle: count, pixel by pixel, the cores that cover it.
+    count = np.zeros((380, 500), dtype=int)
+    for c, r, w, h in tiles[["col0", "row0", "width", "height"]].itertuples(index=False):
+        count[r : r + h, c : c + w] += 1
+    assert (count == 1).all()
+    assert len(tiles) == 9  # ceil(500 / 200) * ceil(380 / 150)
+    assert tiles["tile_id"].is_unique
+    assert summary.n_tiles == 9 and summary.megapixels == pytest.approx(0.19)
+
+
+def test_detections_lie_in_their_core_and_are_not_duplicated(png_run):
+    out, _ = png_run
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False).set_index("tile_id")
+    det = pd.read_csv(out / "detections.csv")
+    assert len(det) > 0
+    w = tiles.loc[det["tile_id"], "width"].to_numpy()
+    h = tiles.loc[det["tile_id"], "height"].to_numpy()
+    assert ((det["x_px"] >= -0.5) & (det["x_px"] < w - 0.5) & (det["y_px"] >= -0.5) & (det["y_px"] < h - 0.5)).all()
+    assert (det["col0"].to_numpy() == tiles.loc[det["tile_id"], "col0"].to_numpy()).all()
+    image_xy = np.column_stack([det["x_px"] + det["col0"], det["y_px"] + det["row0"]])
+    assert len(np.unique(np.round(image_xy, 6), axis=0)) == len(det)
+
+
+def test_outputs_have_the_documented_columns(png_run):
+    out, _ = png_run
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+    assert tuple(tiles.columns) == TILE_COLUMNS
+    assert set(tiles["route"]) <= {"", "nodata"}
+    det = pd.read_csv(out / "detections.csv")
+    assert tuple(det.columns) == DETECTION_COLUMNS + ("image", "col0", "row0")
+    assert set(det["kind"]) <= {"fan", "spot"}
+    # Direction convention: degrees clockwise from up in [0, 360).
+    assert ((det["direction_deg"] >= 0) & (det["direction_deg"] < 360)).all()
+    for name in OUTPUT_FILES + ("run.json",):
+        assert (out / name).stat().st_size > 0, name
+    with Image.open(out / "quicklook.png") as im:
+        assert max(im.size) <= 2200
+    run = json.loads((out / "run.json").read_text())
+    assert run["status"] == "complete"
+    assert run["parameters"]["tile"] == list(TILE) and len(run["parameters"]["model_hash"]) == 64
+
+
+def test_tile_direction_statistics_match_scipy(png_run):
+    from scipy.stats import circmean, circstd
+
+    out, _ = png_run
+    det = pd.read_csv(out / "detections.csv")
+    tiles = pd.read_csv(out / "tiles.csv").set_index("tile_id")
+    fans = det[det["kind"] == "fan"]
+    tile_id = fans["tile_id"].value_counts().index[0]
+    own = fans[fans["tile_id"] == tile_id]
+    weights = own["score"] * own["direction_confidence"] * own["length_px"]
+    mean, spread = tile_direction_stats(own["direction_deg"].to_numpy(), weights.to_numpy())
+    assert tiles.loc[tile_id, "mean_direction_deg"] == pytest.approx(mean)
+    assert tiles.loc[tile_id, "direction_spread_deg"] == pytest.approx(spread)
+    # Equal weights: the spread is scipy's circular standard deviation.
+    _, std = tile_direction_stats(own["direction_deg"].to_numpy(), np.ones(len(own)))
+    assert std == pytest.approx(np.degrees(circstd(np.radians(own["direction_deg"]))), abs=1e-6)
+    # Symmetric directions about 5 degrees (across north) plus one stray fan opposite: the robust
+    # mean ignores the stray and equals scipy's circular mean of the others.
+    clean = np.array([347.0, 355.0, 5.0, 15.0, 23.0])
+    m, _ = tile_direction_stats(np.append(clean, 190.0), np.ones(6))
+    assert m == pytest.approx(np.degrees(circmean(np.radians(clean))) % 360.0, abs=1e-6)
+
+
+def test_geojson_is_valid_rfc7946_polygons(png_run):
+    out, _ = png_run
+    collection = json.loads((out / "detections.geojson").read_text())
+    det = pd.read_csv(out / "detections.csv")
+    assert collection["type"] == "FeatureCollection"
+    assert collection["coordinates"] == "image_px"
+    assert len(collection["features"]) == len(det)
+    for feature, (x, y, col0, row0) in zip(
+        collection["features"], det[["x_px", "y_px", "col0", "row0"]].itertuples(index=False), strict=True
+    ):
+        assert feature["type"] == "Feature" and feature["geometry"]["type"] == "Polygon"
+        ring = np.asarray(feature["geometry"]["coordinates"][0])
+        # RFC 7946 section 3.1.6: closed linear ring of >= 4 positions, exterior counter-clockwise.
+        assert len(ring) >= 4 and np.array_equal(ring[0], ring[-1])
+        area = 0.5 * np.sum(ring[:-1, 0] * ring[1:, 1] - ring[1:, 0] * ring[:-1, 1])
+        assert area > 0
+        # Image px: the apex / centre is inside the ring's bounding box.
+        assert ring[:, 0].min() - 1e-6 <= x + col0 <= ring[:, 0].max() + 1e-6
+        assert ring[:, 1].min() - 1e-6 <= y + row0 <= ring[:, 1].max() + 1e-6
+
+
+# ----------------------------------------------------------------------------- georeferencing
+
+
+def test_georeferenced_geotiff_gets_lonlat_and_azimuth(model_dir, tmp_path):
+    # 10 m pixels, 300 km east of the south pole: grid up is far from true north there.
+    x0, y0, res = 300_000.0, 2_000.0, 10.0
+    transform = Affine(res, 0.0, x0, 0.0, -res, y0)
+    tif = tmp_path / "polar.tif"
+    write_geotiff(tif, _scene((380, 500), 21, scenario="windy", nodata=False), crs=MARS_SOUTH_POLAR_STEREO,
+                  transform=transform)
+    out = tmp_path / "out"
+    screen(model_dir, [tif], out, tile=TILE, progress=False)
+    det = pd.read_csv(out / "detections.csv")
+    assert len(det) > 0
+    assert set(GEO_COLUMNS) <= set(det.columns)
+
+    col = det["x_px"] + det["col0"]
+    row = det["y_px"] + det["row0"]
+    # Reference: pyproj's own inverse projection of the pixel centres (GDAL corner convention + 0.5).
+    mx = x0 + res * (col + 0.5)
+    my = y0 - res * (row + 0.5)
+    to_geo = pyproj.Transformer.from_crs(MARS_SOUTH_POLAR_STEREO, MARS_SOUTH_POLAR_STEREO.geodetic_crs,
+                                         always_xy=True)
+    lon, lat = to_geo.transform(mx.to_numpy(), my.to_numpy())
+    np.testing.assert_allclose(det["lon_deg"], lon, atol=1e-9)
+    np.testing.assert_allclose(det["lat_deg"], lat, atol=1e-9)
+
+    # Polar stereographic (south): meridian convergence equals the longitude from the central meridian,
+    # so azimuth = grid direction - longitude (Snyder 1987, "Map Projections - A Working Manual", ch. 21).
+    fans = det["kind"] == "fan"
+    expected = (det["direction_deg"] - det["lon_deg"]) % 360.0
+    diff = ((det["azimuth_deg"] - expected + 180.0) % 360.0) - 180.0
+    assert fans.any() and np.abs(diff[fans].to_numpy()).max() < 0.01
+    spot_diff = ((det["azimuth_deg"] - expected % 180.0 + 90.0) % 180.0) - 90.0
+    assert np.abs(spot_diff[~fans].to_numpy()).max(initial=0.0) < 0.01
+    assert abs(det["lon_deg"].mean() - 90.0) < 1.0  # east of the pole on the +x axis
+    np.testing.assert_allclose(det.loc[fans, "wind_from_deg"], (det.loc[fans, "azimuth_deg"] + 180.0) % 360.0)
+    np.testing.assert_allclose(det.loc[fans, "length_m"], det.loc[fans, "length_px"] * res)
+    collection = json.loads((out / "detections.geojson").read_text())
+    assert collection["coordinates"] == "map"
+    ring = np.asarray(collection["features"][0]["geometry"]["coordinates"][0])
+    assert (np.abs(ring[:, 0] - x0 - 2500) < 3000).all()  # map metres, not px
+
+
+def test_nodata_tiles_are_routed_and_not_scored(model_dir, tmp_path):
+    tile = _scene((300, 400), 31, scenario="windy", nodata=False)
+    tile[:, 200:] = 0  # right half is outside the footprint
+    path = tmp_path / "half.png"
+    write_image(path, tile)
+    out = tmp_path / "out"
+    screen(model_dir, [path], out, tile=TILE, progress=False)
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+    right = tiles["col0"] >= 200
+    assert (tiles.loc[right, "route"] == "nodata").all()
+    assert (tiles.loc[~right, "route"] == "").all()
+    assert (tiles.loc[right, "n_fans"] == 0).all() and (tiles.loc[right, "p_deposit"] == "").all()
+    det = pd.read_csv(out / "detections.csv")
+    assert not det["tile_id"].isin(tiles.loc[right, "tile_id"]).any()
+
+
+# ----------------------------------------------------------------------------- resuming and workers
+
+
+def test_killed_run_resumes_to_the_same_outputs(model_dir, big_png, big_reference, tmp_path):
+    out = tmp_path / "killed"
+    argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "200x150")
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    journal = out / ".partial"
+    deadline = time.monotonic() + 60
+    try:
+        while time.monotonic() < deadline and proc.poll() is None:
+            if journal.is_dir() and len(list(journal.glob("*.json"))) >= 3:
+                break
+            time.sleep(0.02)
+        assert proc.poll() is None, "the run ended before it could be interrupted"
+        proc.send_signal(signal.SIGKILL)
+    finally:
+        proc.wait(timeout=30)
+    n_done = len(list(journal.glob("*.json")))
+    assert 3 <= n_done < 36
+    assert not any((out / name).exists() for name in OUTPUT_FILES)
+    json.loads((out / "run.json").read_text())  # the run record is whole
+
+    rerun = subprocess.run(argv, cwd=REPO, env=env, capture_output=True, text=True, timeout=120)
+    assert rerun.returncode == 0, rerun.stderr
+    assert "from an earlier run" in rerun.stdout
+    _same_outputs(out, big_reference)
+    run = json.loads((out / "run.json").read_text())
+    assert run["timing"]["tiles_resumed"] >= n_done
+    assert run["timing"]["tiles_resumed"] + run["timing"]["tiles_computed"] == 36
+
+
+def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path):
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None) as cluster:
+        summary = screen(model_dir, [big_png], tmp_path / "dask", tile=TILE, scheduler=cluster.scheduler_address,
+                         progress=False)
+    assert summary.n_tiles == 36
+    _same_outputs(tmp_path / "dask", big_reference)
+
+
+def test_local_workers_match_serial(model_dir, png_image, png_run, tmp_path):
+    screen(model_dir, [png_image], tmp_path / "loky", tile=TILE, workers=2, progress=False)
+    _same_outputs(tmp_path / "loky", png_run[0])
+
+
+def test_rerun_of_a_finished_run_reuses_it(model_dir, png_image, png_run, tmp_path):
+    out = tmp_path / "again"
+    shutil.copytree(png_run[0], out)
+    summary = screen(model_dir, [png_image], out, tile=TILE, progress=False)
+    assert summary.n_resumed == 9 and summary.megapixels == 0
+    _same_outputs(out, png_run[0])
+
+
+# ----------------------------------------------------------------------------- bad input
+
+
+def _assert_refused(capsys, argv, names, out):
+    code = cli_main([str(a) for a in argv])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("frostvane: error:") == 1
+    for name in names:
+        assert str(name) in err
+    assert not any((out / name).exists() for name in OUTPUT_FILES)
+    return err
+
+
+def test_corrupt_image_is_refused(model_dir, tmp_path, capsys):
+    bad = tmp_path / "broken.png"
+    bad.write_bytes(b"\x89PNG\r\n\x1a\n this is not an image")
+    out = tmp_path / "out"
+    _assert_refused(capsys, ["screen", model_dir, bad, "--out", out], [bad], out)
+    assert not out.exists()
+
+
+def test_truncated_image_is_refused_without_outputs(model_dir, png_image, tmp_path, capsys):
+    data = png_image.read_bytes()
+    bad = tmp_path / "cut.png"
+    bad.write_bytes(data[: len(data) // 2])
+    out = tmp_path / "out"
+    _assert_refused(capsys, ["screen", model_dir, bad, "--out", out, "--tile", "200x150"], [bad], out)
+
+
+def test_multiband_image_needs_a_band(model_dir, tmp_path, capsys):
+    rgb = tmp_path / "colour.png"
+    Image.fromarray(np.dstack([_scene((160, 200), 41)] * 3)).save(rgb)
+    out = tmp_path / "out"
+    err = _assert_refused(capsys, ["screen", model_dir, rgb, "--out", out], [rgb], out)
+    assert "band" in err
+    assert cli_main(["screen", str(model_dir), str(rgb), "--out", str(out), "--band", "2"]) == 0
+    assert (out / "tiles.csv").is_file()
+
+
+@pytest.mark.parametrize("damage", ["missing", "tampered"])
+def test_damaged_model_is_refused(model_dir, png_image, tmp_path, capsys, damage):
+    broken = tmp_path / "model"
+    shutil.copytree(model_dir, broken)
+    target = broken / "orientation.onnx"
+    if damage == "missing":
+        target.unlink()
+    else:
+        target.write_bytes(target.read_bytes() + b"\0")
+    out = tmp_path / "out"
+    err = _assert_refused(capsys, ["screen", broken, png_image, "--out", out], [broken], out)
+    assert "orientation.onnx" in err
+    assert not out.exists()
+
+
+def test_output_folder_of_another_run_is_refused(model_dir, png_image, png_run, tmp_path, capsys):
+    out = tmp_path / "other"
+    shutil.copytree(png_run[0], out)
+    before = {name: (out / name).read_bytes() for name in OUTPUT_FILES}
+    code = cli_main(["screen", str(model_dir), str(png_image), "--out", str(out), "--tile", "250x150"])
+    err = capsys.readouterr().err
+    assert code == 2 and str(out) in err and "another" in err
+    assert {name: (out / name).read_bytes() for name in OUTPUT_FILES} == before
+
+    stranger = tmp_path / "stranger"
+    stranger.mkdir()
+    (stranger / "notes.txt").write_text("not a screening run")
+    _assert_refused(capsys, ["screen", model_dir, png_image, "--out", stranger], [stranger], stranger)
