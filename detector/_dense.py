@@ -159,15 +159,17 @@ def orientation_bins(g_row, g_col, n_unsigned, n_signed):
     """
     turns = np.arctan2(g_row, g_col)
     turns *= np.float32(0.5 / np.pi)  # (-1/2, 1/2] turn from +x towards +y (down)
-    # shift to positive values, floor, then an integer modulo
+    # shift to positive values, floor to small integers, then wrap by subtraction
     u = turns * np.float32(2 * n_unsigned)
-    u += np.float32(2 * n_unsigned)
-    unsigned = u.astype(np.int64)
-    unsigned %= n_unsigned
+    u += np.float32(2 * n_unsigned)  # (n, 3n]
+    unsigned = u.astype(np.uint8)
+    unsigned -= np.uint8(n_unsigned)
+    for _ in range(2):  # 180 degrees exactly wraps twice, to bin 0 as in skimage
+        unsigned -= (unsigned >= n_unsigned).view(np.uint8) * np.uint8(n_unsigned)
     turns *= np.float32(n_signed)
-    turns += np.float32(n_signed + n_signed / 4)
-    signed = turns.astype(np.int64)
-    signed %= n_signed
+    turns += np.float32(n_signed + n_signed / 4)  # (3n/4, 7n/4]
+    signed = turns.astype(np.uint8)
+    signed -= (signed >= n_signed).view(np.uint8) * np.uint8(n_signed)
     return unsigned, signed
 
 
@@ -300,7 +302,7 @@ def glcm_props(P):
 
 
 # -- local binary patterns --------------------------------------------------
-def lbp_uniform(image, P, R, *, strip_rows=64):
+def lbp_uniform(image, P, R, *, strip_rows=32):
     """Rotation-invariant uniform LBP codes 0 .. P + 1 (Ojala, Pietikainen and Maenpaa 2002).
 
     Whole-array re-implementation of ``skimage.feature.local_binary_pattern(image, P,
@@ -379,20 +381,28 @@ def lbp_uniform(image, P, R, *, strip_rows=64):
                 tv += bov
                 # for finite doubles a - b >= 0 exactly when a >= b
                 np.greater_equal(tv, centre, out=bi)
-            on += bi
+            on += bi.view(np.uint8)
             if i:
                 np.not_equal(bi, pr, out=pr)
-                ch += pr
-            pr[:] = bi
+                ch += pr.view(np.uint8)
+            # this neighbour's bits become the previous ones
+            bit, prev = prev, bit
+            bi, pr = pr, bi
         codes[a:b] = np.where(ch <= 2, on, np.uint8(P + 1))
     return codes
 
 
 # -- structure tensor --------------------------------------------------------
-def structure_tensor_maps(image, *, gradient_sigma, tensor_sigma):
+def structure_tensor_maps(image, *, gradient_sigma, tensor_sigma, central=None):
     """Structure tensor (Bigun and Granlund 1987) as ``skimage.feature.structure_tensor``
     with ``mode='reflect'``: Sobel derivatives (after optional Gaussian pre-smoothing)
-    and Gaussian-smoothed products.
+    and Gaussian-smoothed products (``tensor_sigma`` 0: no smoothing).
+
+    Parameters
+    ----------
+    central : (g_row, g_col), optional
+        :func:`central_gradients` of ``image``; without pre-smoothing the Sobel
+        derivative is their [1, 2, 1] smoothing across, with the reflected border.
 
     Returns
     -------
@@ -401,8 +411,18 @@ def structure_tensor_maps(image, *, gradient_sigma, tensor_sigma):
     img = image.astype(np.float32, copy=False)
     if gradient_sigma > 0:
         img = ndi.gaussian_filter(img, gradient_sigma, mode="reflect", truncate=4.0)
-    d_r = ndi.sobel(img, axis=0, mode="reflect")
-    d_c = ndi.sobel(img, axis=1, mode="reflect")
+        central = None
+    if central is None or min(img.shape) < 2:
+        d_r = ndi.sobel(img, axis=0, mode="reflect")
+        d_c = ndi.sobel(img, axis=1, mode="reflect")
+    else:
+        # ndi.sobel = [-1, 0, 1] along the axis, then [1, 2, 1] across; with mode
+        # 'reflect' the outer differences are one-sided
+        g_row, g_col = (g.copy() for g in central)
+        g_row[0], g_row[-1] = img[1] - img[0], img[-1] - img[-2]
+        g_col[:, 0], g_col[:, -1] = img[:, 1] - img[:, 0], img[:, -1] - img[:, -2]
+        d_r = ndi.correlate1d(g_row, [1, 2, 1], axis=1, mode="reflect")
+        d_c = ndi.correlate1d(g_col, [1, 2, 1], axis=0, mode="reflect")
     prods = (d_r * d_r, d_r * d_c, d_c * d_c)
     if tensor_sigma > 0:
         prods = tuple(ndi.gaussian_filter(p, tensor_sigma, mode="reflect", truncate=4.0) for p in prods)

@@ -216,7 +216,11 @@ class _Pooler:
         spec, prep = self.spec, self.prep
         out = _Blocks()
         valid = prep.valid
-        counts = _dense.cell_sums(valid.astype(np.float32), spec.cell_px, self.ncr, self.ncc)
+        if prep.has_nodata:
+            counts = _dense.cell_sums(valid.astype(np.float32), spec.cell_px, self.ncr, self.ncc)
+        else:
+            counts = np.full((self.ncr, self.ncc), float(spec.cell_px**2))
+        self.count_cells = counts
         self.n_valid = self.pool(counts[..., None])[:, 0]
         out.valid_share = self.n_valid / spec.patch_px**2
 
@@ -229,6 +233,7 @@ class _Pooler:
             ok[:, 1:] &= valid[:, :-1]
             ok[:, :-1] &= valid[:, 1:]
             mag *= ok
+        self.central = (g_row, g_col)
         unsigned, signed = _dense.orientation_bins(g_row, g_col, spec.hog_orientations, spec.signed_hist_bins)
         out.append(self.hog(unsigned, mag))
         out.append(self.glcm())
@@ -280,7 +285,7 @@ class _Pooler:
         spec, prep = self.spec, self.prep
         parts = []
         for P, R in spec.lbp:
-            codes = _dense.lbp_uniform(prep.u16, P, R).astype(np.int64)
+            codes = _dense.lbp_uniform(prep.u16, P, R)
             mask = None
             if prep.has_nodata:
                 from scipy import ndimage as ndi
@@ -293,46 +298,53 @@ class _Pooler:
     def intensity(self):
         spec, prep = self.spec, self.prep
         cp = spec.cell_px
-        z = (prep.image - np.float32(prep.background)) * np.float32(1.0 / prep.scale)
+        z = prep.image - np.float32(prep.background)
+        z *= np.float32(1.0 / prep.scale)
         zr, nb = spec.int_z_range, spec.int_bins
-        zbin = np.clip(((z + zr) * (nb / (2 * zr))).astype(np.int64), 0, nb - 1)
-        hist = self.pool(self.hist(zbin, nb, mask=prep.valid if prep.has_nodata else None)).astype(np.float64)
-        self.dark = np.clip(-z, 0, spec.dark_weight_max)
+        zb = z + np.float32(zr)
+        zb *= np.float32(nb / (2 * zr))
+        np.clip(zb, 0, nb - 1, out=zb)
+        hist = self.pool(self.hist(zb.astype(np.uint8), nb, mask=prep.valid if prep.has_nodata else None))
+        hist = hist.astype(np.float64)
+        dark = np.negative(z)
+        np.clip(dark, 0, spec.dark_weight_max, out=dark)
         if prep.has_nodata:
-            z = z * prep.valid
-            self.dark *= prep.valid
-        zc = _dense.cell_sums(np.stack([z, z * z], axis=-1), cp, self.ncr, self.ncc)
-        self.dark_cells = _dense.cell_sums(self.dark, cp, self.ncr, self.ncc)
-        sums = self.pool(zc)
+            z *= prep.valid
+            dark *= prep.valid
+        self.dark = dark
+        z_cells = _dense.cell_sums(z, cp, self.ncr, self.ncc)
+        z *= z
+        zz_cells = _dense.cell_sums(z, cp, self.ncr, self.ncc)
+        self.dark_cells = _dense.cell_sums(dark, cp, self.ncr, self.ncc)
+        sums = self.pool(np.stack([z_cells, zz_cells, self.dark_cells, self.count_cells], axis=-1))
         nv = self.n_valid
         mean = _safe_div(sums[:, 0], nv)
         std = np.sqrt(np.maximum(_safe_div(sums[:, 1], nv) - mean**2, 0))
+        dark_mean = _safe_div(sums[:, 2], nv)
         # percentiles from the pooled cumulative histogram, linear within a bin
         cum = np.cumsum(hist, axis=1)
         width = 2 * zr / nb
+        rows = np.arange(cum.shape[0])
         pct = []
         for q in _PERCENTILES:
             target = q / 100.0 * cum[:, -1]
             idx = np.minimum((cum < target[:, None]).sum(axis=1), nb - 1)
-            prev = np.where(idx > 0, cum[np.arange(cum.shape[0]), np.maximum(idx - 1, 0)], 0.0)
-            inbin = hist[np.arange(cum.shape[0]), idx]
-            pct.append(-zr + width * (idx + _safe_div(target - prev, inbin)))
-        counts = _dense.cell_sums(prep.valid.astype(np.float32), cp, self.ncr, self.ncc)
-        both = np.stack([self.dark_cells, counts], axis=-1)
-        table = _dense.summed_area(both)
-        dark = _safe_div(self.pool(self.dark_cells[..., None])[:, 0], nv)
+            prev = np.where(idx > 0, cum[rows, np.maximum(idx - 1, 0)], 0.0)
+            pct.append(-zr + width * (idx + _safe_div(target - prev, hist[rows, idx])))
+        table = _dense.summed_area(np.stack([self.dark_cells, self.count_cells], axis=-1))
         ctx = []
         for s in spec.context_scales:
             g = (s - 1) * self.k // 2
             tot = _dense.box(table, self.i0 - g, self.j0 - g, self.i0 + self.k + g, self.j0 + self.k + g)
             ctx.append(_safe_div(tot[:, 0], tot[:, 1]))
-        return np.stack([mean, std, *pct, dark, *ctx, 1.0 - self.n_valid / spec.patch_px**2], axis=1)
+        return np.stack([mean, std, *pct, dark_mean, *ctx, 1.0 - self.n_valid / spec.patch_px**2], axis=1)
 
     def structure(self):
         spec, prep = self.spec, self.prep
         a_rr, a_rc, a_cc = _dense.structure_tensor_maps(
-            prep.image, gradient_sigma=spec.st_gradient_sigma, tensor_sigma=spec.st_tensor_sigma)
-        cells = _dense.cell_sums(np.stack([a_cc, a_rr, a_rc], axis=-1), spec.cell_px, self.ncr, self.ncc)
+            prep.image, gradient_sigma=spec.st_gradient_sigma, tensor_sigma=spec.st_tensor_sigma,
+            central=self.central)
+        cells = np.stack([_dense.cell_sums(a, spec.cell_px, self.ncr, self.ncc) for a in (a_cc, a_rr, a_rc)], axis=-1)
         table = _dense.summed_area(cells)
         cols = []
         axis = None
@@ -367,7 +379,7 @@ class _Pooler:
         d = self.dark[:hc, :wc].astype(np.float64).reshape(hc, self.ncc, cp)
         x = (np.arange(wc, dtype=np.float64) - self.x0).reshape(self.ncc, cp)
         y = (np.arange(hc, dtype=np.float64) - self.y0).reshape(self.ncr, cp)
-        bx = [(d * x**p).sum(axis=-1).reshape(self.ncr, cp, self.ncc) for p in range(4)]
+        bx = [np.einsum("rjk,jk->rj", d, x**p).reshape(self.ncr, cp, self.ncc) for p in range(4)]
         powers = [(p, q) for p in range(4) for q in range(4 - p)]
         m_cells = np.stack([(bx[p] * (y**q)[:, :, None]).sum(axis=1) for p, q in powers], axis=-1)
         M = self.pool(m_cells)

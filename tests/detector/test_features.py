@@ -298,3 +298,13 @@ def test_folded_cooccurrence_counts_equal_symmetrised_matrix():
     full = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8)
     folded = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8, folded=True)
     np.testing.assert_array_equal(_dense.unfold_diagonal(folded, 8), _dense.glcm_fold(full))
+
+
+def test_structure_tensor_from_central_gradients_matches_skimage():
+    img = (_smooth_tile(shape=(96, 112), seed=11) / 65535.0).astype(np.float32)
+    central = _dense.central_gradients(img)
+    mine = _dense.structure_tensor_maps(img, gradient_sigma=0.0, tensor_sigma=0.0, central=central)
+    # sigma -> 0 leaves skimage's products unsmoothed (Gaussian of width ~0 is the identity)
+    ref = structure_tensor(img.astype(np.float64), sigma=1e-6, mode="reflect", order="rc")
+    for a, b in zip(mine, ref):
+        np.testing.assert_allclose(a, b, rtol=1e-4, atol=1e-6 * np.abs(b).max())
