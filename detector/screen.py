@@ -205,7 +205,6 @@ def _read_tile_table(root):
 
 def _plan_tileset(root, *, nodata, band):
     tiles = _read_tile_table(root)
-    n = len(tiles)
     col0 = (pd.to_numeric(tiles["col0"], errors="coerce") if "col0" in tiles else pd.Series(np.nan, index=tiles.index))
     row0 = (pd.to_numeric(tiles["row0"], errors="coerce") if "row0" in tiles else pd.Series(np.nan, index=tiles.index))
     tasks, images = [], {}
@@ -225,7 +224,6 @@ def _plan_tileset(root, *, nodata, band):
         entry = images.setdefault(image, dict(pieces=[], georefs={}, nodata=used_nodata))
         entry["georefs"][str(path)] = georef
         entry["pieces"].append((float(c), float(r), str(path), w, h))
-    del n
     for entry in images.values():
         raw = entry["pieces"]
         placed = all(np.isfinite(c) and np.isfinite(r) for c, r, *_ in raw)
@@ -529,11 +527,20 @@ def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
         "model_dir": str(Path(model_dir).resolve()),
         "model_hash": sha256_file(Path(model_dir) / MODEL_CARD),
         "inputs": [str(Path(p).resolve()) for p in inputs],
+        "input_stamps": [_stamp(p) for p in inputs],
         "tile": [int(tile[0]), int(tile[1])],
         "overlap": int(overlap),
         "nodata": None if nodata is None else float(nodata),
         "band": None if band is None else int(band),
     }
+
+
+def _stamp(path):
+    """Size and modification time of an input (of its tiles.csv for a tile set): a replaced input is another run."""
+    path = Path(path)
+    target = path / TILES_FILE if path.is_dir() else path
+    st = target.stat()
+    return [int(st.st_size), int(st.st_mtime_ns)]
 
 
 def _claim(out, params):
