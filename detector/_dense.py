@@ -6,6 +6,8 @@ pooled into patch windows with a summed-area table over the cell grid, so no
 Python loop runs over patches or pixels.
 """
 
+import functools
+
 import numpy as np
 from scipy import ndimage as ndi
 
@@ -95,15 +97,21 @@ def prepare_tile(tile, spec, nodata_mask=None):
 
 
 # -- cells -------------------------------------------------------------------
+@functools.lru_cache(maxsize=8)
 def cell_index(shape, cell_px):
-    """Cell number of each pixel (row-major over full cells); pixels outside full cells get ``n_cells``."""
+    """Cell number of each pixel (row-major over full cells); pixels outside full cells get ``n_cells``.
+
+    Cached per shape (windows of a large image mostly share one); the map is read-only.
+    """
     h, w = shape
     ncr, ncc = h // cell_px, w // cell_px
     rows = np.arange(h) // cell_px
     cols = np.arange(w) // cell_px
     idx = rows[:, None] * ncc + cols[None, :]
     idx[(rows >= ncr)[:, None] | (cols >= ncc)[None, :]] = ncr * ncc
-    return idx.astype(np.int64), ncr, ncc
+    idx = idx.astype(np.int64)
+    idx.flags.writeable = False
+    return idx, ncr, ncc
 
 
 def cell_histogram(cells, n_cells, bins, n_bins, weights=None):
