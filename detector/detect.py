@@ -5,12 +5,20 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .assemble import AssemblyParams, assemble_objects, darkness_map, upsample_patch_maps
+from . import _dense
+from .assemble import (
+    OBJECT_FEATURE_NAMES,
+    AssemblyParams,
+    find_candidates,
+    local_darkness,
+    objects_from_candidates,
+    upsample_patch_maps,
+)
 from .features import extract_features
-from .spec import patch_axis_deg
 from .geometry import unit_vector
+from .spec import patch_axis_deg
 
-__all__ = ["TileResult", "detect_tile", "tile_summary_vector"]
+__all__ = ["TileResult", "TileMaps", "detect_tile", "tile_maps", "tile_candidates", "tile_summary_vector"]
 
 
 @dataclass
@@ -26,8 +34,8 @@ class TileResult:
         Fan and spot objects (columns of :data:`detector.assemble.OBJECT_COLUMNS`), tile px.
     grid : PatchGrid
     proba : ndarray of shape (n_patches, 3)
-        Calibrated probabilities of none, fan and spot per patch (0, 1, 0 ... for
-        invalid patches: they are not scored and count as none).
+        Calibrated probabilities of none, fan and spot per patch ((1, 0, 0) for
+        patches that are mostly no-data: they are not scored).
     polarity : ndarray of shape (n_patches,)
         Probability that the patch's fan runs along +axis.
     axis_deg : ndarray of shape (n_patches,)
@@ -55,18 +63,31 @@ class TileResult:
     @property
     def p_deposit(self):
         """Tile-level deposit probability: the largest patch probability of fan or spot."""
-        valid = self.grid.valid
+        valid = np.asarray(self.grid.valid, dtype=bool)
         if not valid.any():
             return 0.0
         return float(np.max(1.0 - self.proba[valid, 0]))
 
     @property
     def fan_cover_fraction(self):
+        """Share of the tile's pixels covered by detected fans."""
         return float(self.fan_cover.mean())
 
     @property
     def spot_cover_fraction(self):
+        """Share of the tile's pixels covered by detected spots (and no fan)."""
         return float((self.spot_cover & ~self.fan_cover).mean())
+
+
+@dataclass
+class TileMaps:
+    """Patch outputs of a tile and their per-pixel versions."""
+
+    proba: np.ndarray
+    polarity: np.ndarray
+    axis_deg: np.ndarray
+    class_maps: np.ndarray
+    polarity_maps: np.ndarray
 
 
 def tile_summary_vector(X, valid):
@@ -76,13 +97,53 @@ def tile_summary_vector(X, valid):
     return X[valid].mean(axis=0).astype(np.float32)
 
 
-def _as_unit_float(tile):
-    tile = np.asarray(tile)
-    if tile.dtype == np.uint8:
-        return tile.astype(np.float32) / 255.0
-    if tile.dtype == np.uint16:
-        return tile.astype(np.float32) / 65535.0
-    return tile.astype(np.float32)
+def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
+    """Patch probabilities and polarity of a tile, and their per-pixel maps.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_patches, n_features)
+    grid : PatchGrid
+    shape : tuple of int
+    spec : FeatureSpec
+    predict_patches : callable
+        X -> calibrated (n, 3) probabilities of none, fan, spot.
+    predict_polarity : callable
+        X -> (n,) probability that the fan runs along +axis.
+
+    Returns
+    -------
+    maps : TileMaps
+    """
+    valid_patch = np.asarray(grid.valid, dtype=bool)
+    proba = np.zeros((len(X), 3), dtype=np.float32)
+    proba[:, 0] = 1.0
+    polarity = np.full(len(X), 0.5, dtype=np.float32)
+    if valid_patch.any():
+        proba[valid_patch] = predict_patches(X[valid_patch])
+        polarity[valid_patch] = predict_polarity(X[valid_patch])
+    axis = patch_axis_deg(X, spec)
+    d_col, d_row = unit_vector(axis)
+    signed = (2.0 * polarity - 1.0) * proba[:, 1]
+    if len(X) == 0:
+        zeros = np.zeros((3,) + tuple(shape), np.float32)
+        zeros[0] = 1.0
+        return TileMaps(proba, polarity, axis, zeros, np.zeros((2,) + tuple(shape), np.float32))
+    return TileMaps(
+        proba=proba,
+        polarity=polarity,
+        axis_deg=axis,
+        class_maps=upsample_patch_maps(proba, grid, shape),
+        polarity_maps=upsample_patch_maps(np.column_stack([signed * d_col, signed * d_row]), grid, shape),
+    )
+
+
+def tile_candidates(tile, nodata_mask, maps, spec, params, *, both_polarities=False):
+    """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`)."""
+    prep = _dense.prepare_tile(tile, spec, nodata_mask)
+    dark = local_darkness(prep.image, prep.valid, background_px=params.background_px)
+    return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params,
+                           both_polarities=both_polarities)
 
 
 def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None):
@@ -99,52 +160,39 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     min_score : float, optional
         Smallest object score kept; default: the model card's.
     features : tuple (X, grid), optional
-        Precomputed features of this tile with the model's spec (training reuses them).
+        Precomputed features of this tile with the model's spec.
 
     Returns
     -------
     result : TileResult
     """
     spec = model.feature_spec
+    tile = np.asarray(tile)
     if nodata_mask is None:
-        nodata_mask = np.asarray(tile) == spec.nodata_value
-    if features is None:
-        X, grid = extract_features(tile, spec, nodata_mask=nodata_mask)
-    else:
-        X, grid = features
-    valid_patch = np.asarray(grid.valid, dtype=bool)
-    proba = np.zeros((len(X), 3), dtype=np.float32)
-    proba[:, 0] = 1.0
-    polarity = np.full(len(X), 0.5, dtype=np.float32)
-    if valid_patch.any():
-        proba[valid_patch] = model.predict_patches(X[valid_patch])
-        polarity[valid_patch] = model.predict_polarity(X[valid_patch])
-    axis = patch_axis_deg(X, spec)
-    d_col, d_row = unit_vector(axis)
-    signed = (2.0 * polarity - 1.0) * proba[:, 1]
-    shape = np.asarray(tile).shape
-    class_maps = upsample_patch_maps(proba, grid, shape)
-    polarity_maps = upsample_patch_maps(np.column_stack([signed * d_col, signed * d_row]), grid, shape)
-    valid = ~np.asarray(nodata_mask, dtype=bool)
-    dark = darkness_map(_as_unit_float(tile), valid)
+        nodata_mask = tile == spec.nodata_value
+    X, grid = extract_features(tile, spec, nodata_mask=nodata_mask) if features is None else features
+    maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
     params = AssemblyParams.from_dict(model.assembly)
     if min_score is not None:
         params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
-    detections, pixels = assemble_objects(dark, valid, class_maps, polarity_maps, params=params, tile_id=tile_id)
-    fan_cover = np.zeros(shape, dtype=bool)
-    spot_cover = np.zeros(shape, dtype=bool)
+    candidates = tile_candidates(tile, nodata_mask, maps, spec, params)
+    feats = np.array([c.features for c in candidates], dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
+    detections, pixels = objects_from_candidates(candidates, model.predict_objects(feats), params=params,
+                                                 tile_id=tile_id)
+    fan_cover = np.zeros(tile.shape, dtype=bool)
+    spot_cover = np.zeros(tile.shape, dtype=bool)
     for kind, (ys, xs) in zip(detections["kind"], pixels):
         (fan_cover if kind == "fan" else spot_cover)[ys, xs] = True
     return TileResult(
         tile_id=tile_id,
-        shape=shape,
+        shape=tile.shape,
         detections=detections,
         grid=grid,
-        proba=proba,
-        polarity=polarity,
-        axis_deg=axis,
+        proba=maps.proba,
+        polarity=maps.polarity,
+        axis_deg=maps.axis_deg,
         fan_cover=fan_cover,
         spot_cover=spot_cover,
-        valid_fraction=float(valid.mean()),
-        summary=tile_summary_vector(X, valid_patch),
+        valid_fraction=float((~np.asarray(nodata_mask, dtype=bool)).mean()),
+        summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
     )

@@ -1,8 +1,9 @@
 """Loading and running an exported frostvane model with onnxruntime alone.
 
 A model folder holds ``detector.onnx`` (patch classifier over none / fan / spot),
-``orientation.onnx`` (fan polarity along the structure-tensor axis) and
-``model.json``, the model card. Nothing here unpickles anything: the card is
+``orientation.onnx`` (fan polarity along the structure-tensor axis),
+``objects.onnx`` (object classifier over dark candidates: nothing / fan / spot)
+and ``model.json``, the model card. Nothing here unpickles anything: the card is
 JSON and the models are ONNX graphs.
 """
 
@@ -22,6 +23,8 @@ __all__ = [
     "MODEL_CARD",
     "DETECTOR_ONNX",
     "ORIENTATION_ONNX",
+    "OBJECTS_ONNX",
+    "ONNX_FILES",
     "Calibration",
     "Model",
     "load_model",
@@ -32,6 +35,8 @@ MODEL_FORMAT_VERSION = 1
 MODEL_CARD = "model.json"
 DETECTOR_ONNX = "detector.onnx"
 ORIENTATION_ONNX = "orientation.onnx"
+OBJECTS_ONNX = "objects.onnx"
+ONNX_FILES = (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX)
 CLASS_NAMES = ("none", "fan", "spot")
 
 
@@ -94,6 +99,7 @@ class Model:
     odd_mask: np.ndarray
     _detector: object = field(repr=False, default=None)
     _orientation: object = field(repr=False, default=None)
+    _objects: object = field(repr=False, default=None)
 
     @property
     def assembly(self):
@@ -119,6 +125,24 @@ class Model:
         if len(X) == 0:
             return np.zeros(0, dtype=np.float32)
         return _run_proba(self._orientation, self.orientation_inputs(X))[:, 1]
+
+
+    def predict_objects(self, F):
+        """Probabilities of nothing, fan and spot for object candidates, shape (n, 3).
+
+        Without an object model (a model folder being built), the mean patch
+        probabilities under each candidate stand in.
+        """
+        F = np.asarray(F, dtype=np.float32)
+        if len(F) == 0:
+            return np.zeros((0, 3), dtype=np.float32)
+        if self._objects is None:
+            from .assemble import OBJECT_FEATURE_NAMES
+
+            cols = [OBJECT_FEATURE_NAMES.index(n) for n in ("obj_p_none", "obj_p_fan", "obj_p_spot")]
+            p = np.clip(F[:, cols], 1e-6, None)
+            return (p / p.sum(axis=1, keepdims=True)).astype(np.float32)
+        return _run_proba(self._objects, F)
 
 
 def _run_proba(session, X):
@@ -177,8 +201,10 @@ def load_model(folder):
     for key in ("feature_spec", "files", "calibration", "orientation_features", "odd_features"):
         if key not in card:
             raise ModelError(f"{str(card_path)!r} lacks the field {key!r}.")
-    for name in (DETECTOR_ONNX, ORIENTATION_ONNX):
+    for name in ONNX_FILES:
         path = folder / name
+        if name == OBJECTS_ONNX and name not in card["files"] and not path.exists():
+            continue  # only while training builds the folder
         if not path.is_file():
             raise ModelError(f"model folder {str(folder)!r} lacks {name!r}.")
         recorded = card["files"].get(name)
@@ -221,4 +247,5 @@ def load_model(folder):
         odd_mask=odd_mask,
         _detector=_session(folder / DETECTOR_ONNX),
         _orientation=_session(folder / ORIENTATION_ONNX),
+        _objects=_session(folder / OBJECTS_ONNX) if (folder / OBJECTS_ONNX).is_file() else None,
     )

@@ -4,11 +4,9 @@ from dataclasses import dataclass
 
 import numpy as np
 from joblib import Parallel, delayed
-from scipy import ndimage
 from tqdm.auto import tqdm
 
-from detector.assemble import darkness_map
-from detector.detect import _as_unit_float, tile_summary_vector
+from detector.detect import tile_summary_vector
 from detector.features import extract_features, patch_targets
 from detector.spec import patch_axis_deg
 from detector.labels import rasterise_features
@@ -91,11 +89,6 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
     targets = patch_targets(grid, fan, spot, direction, tau=tau)
-    dark = np.clip(darkness_map(_as_unit_float(tile), ~nodata), 0.0, 10.0)
-    pooled = ndimage.uniform_filter(dark, size=spec.patch_px, mode="constant")
-    half = spec.patch_px // 2
-    rows = np.clip(np.asarray(grid.row0) + half, 0, tile.shape[0] - 1)
-    cols = np.clip(np.asarray(grid.col0) + half, 0, tile.shape[1] - 1)
     image_id = str(tileset.tiles.set_index("tile_id").at[tile_id, "image_id"])
     return TileFeatures(
         tile_id=tile_id,
@@ -108,7 +101,7 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
         spot_fraction=np.asarray(targets.spot_fraction, dtype=np.float32),
         fan_direction_deg=np.asarray(targets.fan_direction_deg, dtype=np.float32),
         axis_deg=np.asarray(patch_axis_deg(X, spec), dtype=np.float32),
-        patch_darkness=pooled[rows, cols].astype(np.float32),
+        patch_darkness=X[:, spec.feature_names.index("int_dark")].astype(np.float32),
         summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
     )
 

@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 from scipy.optimize import minimize
 
-from detector.assemble import AssemblyParams
+from detector.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
 from detector.circstats import circular_mean
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError, TileSetError
@@ -21,6 +21,8 @@ from detector.model import (
     DETECTOR_ONNX,
     MODEL_CARD,
     MODEL_FORMAT_VERSION,
+    OBJECTS_ONNX,
+    ONNX_FILES,
     ORIENTATION_ONNX,
     Calibration,
     sha256_file,
@@ -31,6 +33,7 @@ from detector.unfamiliar import unfamiliarity_distance
 
 from .dataset import build_patch_set
 from .export import onnx_parity, to_onnx_bytes
+from .objects import candidate_set, fit_polarity_coef
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]
@@ -388,16 +391,33 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
                                         val.fan_direction_deg[fan_val], names)
     orientation = _fit_hgb(Xo, yo, Xov, yov, config)
 
+    # The object classifier learns from candidates whose patch maps come from models that
+    # never saw their image (two folds over the fitting images), like new images will.
+    params = AssemblyParams()
+    cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log)
+    full_patches = _CalibratedPredictor(classifier, calibration)
+    full_polarity = _PolarityPredictor(orientation, index)
+    polarity_coef, polarity_acc = fit_polarity_coef(cand_fit)
+    if polarity_coef is not None:
+        params = AssemblyParams.from_dict({**asdict(params), "polarity_coef": polarity_coef})
+    cand_val = candidate_set(tileset, ids["calibration"], spec, full_patches, full_polarity, params,
+                             workers=config.workers, desc="calibration candidates")
+    object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config)
+    log(f"objects: {len(cand_fit)} candidates ({np.bincount(cand_fit.label, minlength=3).tolist()} nothing/fan/spot), "
+        f"polarity stacking accuracy {polarity_acc if polarity_acc is None else round(polarity_acc, 3)}")
+
     det_bytes = to_onnx_bytes(classifier, train.X.shape[1])
     ori_bytes = to_onnx_bytes(orientation, len(index))
+    obj_bytes = to_onnx_bytes(object_model, cand_fit.F.shape[1])
     rng = np.random.default_rng(config.seed)
     probe = train.X[rng.choice(len(train), size=min(2000, len(train)), replace=False)]
     parity = {
         "detector_max_abs_diff": onnx_parity(det_bytes, classifier, probe),
         "orientation_max_abs_diff": onnx_parity(ori_bytes, orientation, probe[:, index]),
+        "objects_max_abs_diff": onnx_parity(obj_bytes, object_model, cand_fit.F[:2000]),
     }
-    log(f"ONNX parity: detector {parity['detector_max_abs_diff']:.2e}, "
-        f"orientation {parity['orientation_max_abs_diff']:.2e}")
+    log(f"ONNX parity (max abs difference of probabilities): detector {parity['detector_max_abs_diff']:.2e}, "
+        f"orientation {parity['orientation_max_abs_diff']:.2e}, objects {parity['objects_max_abs_diff']:.2e}")
 
     card = {
         "format_version": MODEL_FORMAT_VERSION,
@@ -409,7 +429,8 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": calibration.temperature, "bias": list(calibration.bias),
                         "before": cal_before, "after": cal_after, "images": cal_img},
-        "assembly": asdict(AssemblyParams()),
+        "assembly": {**asdict(params), "polarity_coef": list(params.polarity_coef)},
+        "object_features": list(OBJECT_FEATURE_NAMES),
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
@@ -420,6 +441,10 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
                         "calibration": int(len(val)), "orientation": int(len(yo))},
             "classifier_iterations": int(classifier.n_iter_),
             "orientation_iterations": int(orientation.n_iter_),
+            "object_iterations": int(object_model.n_iter_),
+            "candidates": {"fit": int(len(cand_fit)), "fit_by_class": np.bincount(cand_fit.label, minlength=3).tolist(),
+                           "calibration": int(len(cand_val))},
+            "polarity_stacking_accuracy": polarity_acc,
             "onnx_parity": parity,
             "versions": _versions(),
             "seed": config.seed,
@@ -430,14 +455,14 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     with atomic_dir(out, replace=True) as tmp:
         (tmp / DETECTOR_ONNX).write_bytes(det_bytes)
         (tmp / ORIENTATION_ONNX).write_bytes(ori_bytes)
-        card["files"] = {DETECTOR_ONNX: sha256_file(tmp / DETECTOR_ONNX),
-                         ORIENTATION_ONNX: sha256_file(tmp / ORIENTATION_ONNX)}
+        (tmp / OBJECTS_ONNX).write_bytes(obj_bytes)
+        card["files"] = {name: sha256_file(tmp / name) for name in ONNX_FILES}
         card["unfamiliarity"] = fit_unfamiliarity(fit_summaries) if len(fit_summaries) >= 3 else None
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         # Tune object assembly on the calibration images, then score the held-out images,
         # both through the exported ONNX files exactly as users will run them.
         tuning = _tune_assembly(tmp, tileset, ids["calibration"], log=log)
-        card["assembly"] = tuning["params"]
+        card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log)
@@ -446,6 +471,61 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         card["training"]["seconds"] = round(time.perf_counter() - started, 1)
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
     return card
+
+
+class _CalibratedPredictor:
+    """Calibrated patch probabilities from a scikit-learn classifier (picklable for workers)."""
+
+    def __init__(self, estimator, calibration):
+        self.estimator = estimator
+        self.calibration = calibration
+
+    def __call__(self, X):
+        return self.calibration.apply(self.estimator.predict_proba(X))
+
+
+class _PolarityPredictor:
+    """Polarity probabilities from a scikit-learn orientation model on its feature columns."""
+
+    def __init__(self, estimator, index):
+        self.estimator = estimator
+        self.index = index
+
+    def __call__(self, X):
+        return self.estimator.predict_proba(np.ascontiguousarray(X[:, self.index]))[:, 1].astype(np.float32)
+
+
+def _orientation_rows(patches, mask, index, names):
+    fan = mask & (patches.cls == 1) & np.isfinite(patches.fan_direction_deg)
+    return orientation_training_set(patches.X[fan][:, index], patches.axis_deg[fan],
+                                    patches.fan_direction_deg[fan], names)
+
+
+def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log):
+    from .objects import CandidateSet
+
+    rng = np.random.default_rng(config.seed + 7)
+    order = list(rng.permutation(fit_img))
+    folds = [order[0::2], order[1::2]] if len(order) >= 2 else [order]
+    Xov, yov = _orientation_rows(val, np.ones(len(val), bool), index, names)
+    parts = []
+    for held in folds:
+        rest = [i for i in fit_img if i not in held] or list(held)  # one image: in-sample, said in the card
+        mask = np.isin(train.image_id, rest)
+        clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, config)
+        cal = fit_calibration(clf.predict_proba(val.X), val.cls)
+        Xo, yo = _orientation_rows(train, mask, index, names)
+        ori = _fit_hgb(Xo, yo, Xov, yov, config) if len(np.unique(yo)) > 1 else None
+        polarity = _PolarityPredictor(ori, index) if ori is not None else (lambda X: np.full(len(X), 0.5, np.float32))
+        held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
+        parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
+                                   workers=config.workers, desc="out-of-fold candidates"))
+    return CandidateSet(
+        F=np.concatenate([p.F for p in parts]),
+        label=np.concatenate([p.label for p in parts]),
+        polarity_y=np.concatenate([p.polarity_y for p in parts]),
+        image_id=np.concatenate([p.image_id for p in parts]),
+    )
 
 
 def _writable(folder):
