@@ -64,6 +64,13 @@ _SCREEN_REQUIRED = ("tile_id", "image", "p_deposit", "unfamiliarity", "route")
 _HELDOUT_REQUIRED = ("tile_id", "p_deposit", "consensus_px", "n_detections", "f1", "fan_error_median_deg",
                      "mean_score", "mean_direction_confidence", "unfamiliarity")
 _MAX_CANDIDATES = 100
+# A power law fitted on a handful of points says little beyond this factor of the data.
+_MAX_EXTRAPOLATION = 100
+# Bound of the exponent b. Learning-curve exponents of classifiers mostly lie below 1 (value
+# from memory); 2 leaves room while keeping a fit through noisy points from becoming a cliff.
+_B_MAX = 2.0
+# Below this exponent a curve is flat: a 10x larger training set lowers the error by < 2.3 %.
+_B_FLAT = 0.01
 
 
 # --------------------------------------------------------------------------- thresholds
@@ -94,8 +101,9 @@ def skip_threshold(p_deposit, area_px, *, recall=0.98):
     """
     p = np.asarray(p_deposit, dtype=np.float64)
     area = np.asarray(area_px, dtype=np.float64)
+    # Tiles without a p_deposit are never skipped, so only the others need the recall.
     has = (area > 0) & np.isfinite(p)
-    total = area[area > 0].sum()
+    total = area[has].sum()
     if total <= 0 or not has.any():
         return 0.0
     order = np.argsort(-p[has], kind="stable")
@@ -717,12 +725,20 @@ def fit_power_law(n, error, *, with_c=None, c_max=None):
     c_max : float, optional
         Upper bound of ``c``; default the largest measured error.
 
+    Notes
+    -----
+    Bounds: ``a >= 0``, ``0 <= b <= 2``, ``0 <= c <= c_max``; the start is the
+    log-log line through the points. Parameters that end on an upper bound are
+    listed in ``at_upper_bound`` (the data then barely constrain the law).
+
     Returns
     -------
     fit : dict or None
         ``a``, ``b``, ``c``, ``with_c``, ``n_points``, ``rmse``; None with fewer than 2 points.
     """
-    from scipy.optimize import curve_fit
+    import warnings
+
+    from scipy.optimize import OptimizeWarning, curve_fit
 
     n = np.asarray(n, dtype=np.float64)
     e = np.asarray(error, dtype=np.float64)
@@ -737,23 +753,29 @@ def fit_power_law(n, error, *, with_c=None, c_max=None):
     pos = e > 0
     if pos.sum() >= 2:
         slope, icpt = np.polyfit(np.log(n[pos]), np.log(e[pos]), 1)
-        b0, a0 = float(np.clip(-slope, 0.0, 5.0)), float(np.exp(icpt))
+        b0, a0 = float(np.clip(-slope, 0.0, _B_MAX)), float(np.exp(icpt))
     else:
         b0, a0 = 0.5, e_max * np.sqrt(n.min())
-    a_hi = max(a0 * 100.0, e_max * n.max() ** 5 * 10.0, 1.0)
+    a_hi = max(a0 * 100.0, e_max * n.max() ** _B_MAX * 10.0, 1.0)
     try:
-        if with_c:
-            params, _ = curve_fit(power_law, n, e, p0=[a0, b0, min(0.5 * e.min(), c_hi)],
-                                  bounds=([0.0, 0.0, 0.0], [a_hi, 5.0, c_hi]), maxfev=20000)
-        else:
-            params, _ = curve_fit(lambda x, a, b: power_law(x, a, b), n, e, p0=[a0, b0],
-                                  bounds=([0.0, 0.0], [a_hi, 5.0]), maxfev=20000)
-            params = np.append(params, 0.0)
+        with warnings.catch_warnings():
+            # An exact fit (as many points as parameters) has no covariance; only the values are used.
+            warnings.simplefilter("ignore", OptimizeWarning)
+            if with_c:
+                params, _ = curve_fit(power_law, n, e, p0=[a0, b0, min(0.5 * e.min(), c_hi)],
+                                      bounds=([0.0, 0.0, 0.0], [a_hi, _B_MAX, c_hi]), maxfev=20000)
+            else:
+                params, _ = curve_fit(lambda x, a, b: power_law(x, a, b), n, e, p0=[a0, b0],
+                                      bounds=([0.0, 0.0], [a_hi, _B_MAX]), maxfev=20000)
+                params = np.append(params, 0.0)
     except (RuntimeError, ValueError):
         return None
     a, b, c = map(float, params)
     rmse = float(np.sqrt(np.mean((power_law(n, a, b, c) - e) ** 2)))
-    return {"a": a, "b": b, "c": c, "with_c": with_c, "n_points": int(len(n)), "rmse": rmse}
+    upper = {"a": a_hi, "b": _B_MAX, "c": c_hi if with_c else np.inf}
+    at_bound = [k for k, v in (("a", a), ("b", b), ("c", c)) if np.isclose(v, upper[k], rtol=1e-6)]
+    return {"a": a, "b": b, "c": c, "with_c": with_c, "n_points": int(len(n)), "rmse": rmse,
+            "at_upper_bound": at_bound}
 
 
 def tiles_needed(fit, target_error):
@@ -773,7 +795,9 @@ def tiles_needed(fit, target_error):
         return 0.0
     if b <= 0:
         return 0.0 if a + c <= target_error else math.inf
-    return float((a / (target_error - c)) ** (1.0 / b))
+    # In logs: a tiny exponent sends n past the float range.
+    log_n = (math.log(a) - math.log(target_error - c)) / b
+    return math.inf if log_n > 700.0 else float(math.exp(log_n))
 
 
 def _curve_verdicts(points, fits):
@@ -793,10 +817,19 @@ def _curve_verdicts(points, fits):
                          verdict=f"{target['target']}: too few measured points to fit a curve")
         else:
             need = tiles_needed(fit, target["target_error"])
-            if not math.isfinite(need):
+            if fit["b"] < _B_FLAT:
+                entry.update(reached=False, n_tiles_needed=None, more_tiles=None,
+                             verdict=f"{target['target']}: not reachable by this curve (the error does not "
+                                     f"fall with more tiles: b = {fit['b']:.2g})")
+            elif not math.isfinite(need):
                 entry.update(reached=False, n_tiles_needed=None, more_tiles=None,
                              verdict=f"{target['target']}: not reachable by this curve "
                                      f"(asymptote {fit['c']:.3g} is worse than the target)")
+            elif need > _MAX_EXTRAPOLATION * n_max:
+                entry.update(reached=False, n_tiles_needed=None, more_tiles=None, n_tiles_needed_fit=need,
+                             verdict=f"{target['target']}: not reachable by this curve within "
+                                     f"{_MAX_EXTRAPOLATION}x the measured data (the fit says ~{need:.3g} tiles, "
+                                     f"too far to extrapolate)")
             else:
                 more = max(0, math.ceil(need - n_max))
                 entry.update(reached=False, n_tiles_needed=math.ceil(need), more_tiles=more,
@@ -964,8 +997,11 @@ def _plot_learning_curve(curve, path):
             if fit:
                 ax.plot(grid, power_law(grid, fit["a"], fit["b"], fit["c"]), "-", color=colours[metric],
                         label=f"fit a={fit['a']:.2g} b={fit['b']:.2g} c={fit['c']:.2g}")
-            ax.axhline(target["target_error"], color=colours[metric], ls="--", lw=1,
-                       label=f"target: {target['target']}")
+        targets = sorted({curve["targets"][m]["target_error"] for m in metrics})
+        for value in targets:
+            names = " and ".join(curve["targets"][m]["target"] for m in metrics
+                                 if curve["targets"][m]["target_error"] == value)
+            ax.axhline(value, color="black", ls="--", lw=1, label=f"target: {names}")
         ax.set_xscale("log")
         ax.set_xlabel("consensus tiles used for training")
         ax.set_ylabel(ylabel)

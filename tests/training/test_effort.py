@@ -309,6 +309,8 @@ def test_tiles_needed_inverts_the_law():
     assert tiles_needed(fit, 0.2) == pytest.approx(400.0)
     assert power_law(400.0, 2.0, 0.5, 0.1) == pytest.approx(0.2)
     assert tiles_needed({"a": 2.0, "b": 0.5, "c": 0.25}, 0.2) == math.inf
+    # A nearly flat law needs more tiles than a float holds: infinite, not an overflow.
+    assert tiles_needed({"a": 1.0, "b": 1e-5, "c": 0.0}, 0.2) == math.inf
     points = [{"n_tiles": n, "errors": {"fan_f1": power_law(n, 2.0, 0.5, 0.1), "spot_f1": 0.1,
                                         "fan_direction_median_deg": power_law(n, 50.0, 0.3, 12.0)}}
               for n in (25, 50, 100)]
@@ -394,3 +396,33 @@ def test_run_effort_out_folder(folders, tmp_path):
     effort = run_effort(model, screen, out=out, seconds_per_classification=30.0, n_boot=100, log=lambda *_: None)
     assert (out / "effort.json").is_file() and (out / "routes.csv").is_file()
     assert effort["hours"] == pytest.approx(effort["tiles"]["crowd"] * 30 * 30 / 3600)
+
+
+@pytest.mark.slow
+def test_learning_curve_smoke(tmp_path):
+    from training.effort import learning_curve
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "tiles", n_images=4, tiles_per_image=2, seed=3)
+    curve = learning_curve(root, seed=0, out=tmp_path / "curve", max_patches=2000, max_iter=20, log=lambda *_: None)
+    assert [p["n_images"] for p in curve["points"]] == [2, 3]
+    # Nested subsets: the 2-image run's images are among the 3-image run's.
+    assert set(curve["points"][0]["images"]) <= set(curve["points"][1]["images"])
+    assert not set(curve["holdout_images"]) & set(curve["points"][1]["images"])
+    saved = json.loads((tmp_path / "curve" / "learning_curve.json").read_text())
+    assert saved["targets"].keys() == {"fan_f1", "spot_f1", "fan_direction_median_deg"}
+    assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
+
+
+def test_far_extrapolation_is_not_promised():
+    # 1 n^-0.05 at n = 100 is 0.79; reaching 0.2 needs n = 5^20 ~ 1e14 tiles: beyond 100 x 100.
+    fit = {"a": 1.0, "b": 0.05, "c": 0.0}
+    points = [{"n_tiles": 100, "errors": {"fan_f1": 0.79, "spot_f1": 0.79, "fan_direction_median_deg": 30.0}}]
+    verdicts = _curve_verdicts(points, {"fan_f1": fit, "spot_f1": None, "fan_direction_median_deg": None})
+    assert tiles_needed(fit, 0.2) == pytest.approx(5.0**20)
+    assert verdicts["fan_f1"]["more_tiles"] is None
+    assert "not reachable by this curve within 100x" in verdicts["fan_f1"]["verdict"]
+    assert "too few measured points" in verdicts["spot_f1"]["verdict"]
+    flat = _curve_verdicts(points, {"fan_f1": {"a": 0.3, "b": 1e-8, "c": 0.49}, "spot_f1": None,
+                                    "fan_direction_median_deg": None})
+    assert "does not fall with more tiles" in flat["fan_f1"]["verdict"]
