@@ -15,6 +15,7 @@ from training.effort import (
     effort_command,
     estimate_effort,
     fit_power_law,
+    learning_curve,
     machine_threshold,
     power_law,
     route_tiles,
@@ -400,15 +401,14 @@ def test_run_effort_out_folder(folders, tmp_path):
 
 @pytest.mark.slow
 def test_learning_curve_smoke(tmp_path):
-    from training.effort import learning_curve
     from training.synth import synthesize_tileset
 
-    root = synthesize_tileset(tmp_path / "tiles", n_images=4, tiles_per_image=2, seed=3)
+    root = synthesize_tileset(tmp_path / "tiles", n_images=3, tiles_per_image=2, seed=3)
     curve = learning_curve(root, seed=0, out=tmp_path / "curve", max_patches=2000, max_iter=20, log=lambda *_: None)
-    assert [p["n_images"] for p in curve["points"]] == [2, 3]
-    # Nested subsets: the 2-image run's images are among the 3-image run's.
-    assert set(curve["points"][0]["images"]) <= set(curve["points"][1]["images"])
-    assert not set(curve["holdout_images"]) & set(curve["points"][1]["images"])
+    # Three images: one held out, one run on the other two (fit + calibration).
+    assert [p["n_images"] for p in curve["points"]] == [2]
+    assert not set(curve["holdout_images"]) & set(curve["points"][0]["images"])
+    assert 0.0 <= curve["points"][0]["errors"]["fan_f1"] <= 1.0
     saved = json.loads((tmp_path / "curve" / "learning_curve.json").read_text())
     assert saved["targets"].keys() == {"fan_f1", "spot_f1", "fan_direction_median_deg"}
     assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
@@ -426,3 +426,57 @@ def test_far_extrapolation_is_not_promised():
     flat = _curve_verdicts(points, {"fan_f1": {"a": 0.3, "b": 1e-8, "c": 0.49}, "spot_f1": None,
                                     "fan_direction_median_deg": None})
     assert "does not fall with more tiles" in flat["fan_f1"]["verdict"]
+
+
+def _tiny_tileset(root, n_images=8):
+    from detector.io import write_image
+
+    root.mkdir(parents=True)
+    rows = []
+    for i in range(n_images):
+        for k in range(1 + i % 3):  # 1 to 3 tiles per image, so subset sizes differ
+            tile_id = f"IMG_{i:02d}_T{k}"
+            write_image(root / f"{tile_id}.png", np.full((32, 32), 100, np.uint8))
+            rows.append({"tile_id": tile_id, "image_id": f"IMG_{i:02d}", "path": f"{tile_id}.png"})
+    pd.DataFrame(rows).to_csv(root / "tiles.csv", index=False)
+    pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "spread_deg",
+                          "semi_major_px", "semi_minor_px", "votes"]).to_csv(root / "consensus.csv", index=False)
+    return root
+
+
+def test_learning_curve_orchestration_recovers_law(tmp_path, monkeypatch):
+    """Nested subsets, fixed held-out images and the fit, with training replaced by exact power laws."""
+    import training.train as train_module
+    from detector.tileset import load_tileset
+
+    root = _tiny_tileset(tmp_path / "tiles")
+    runs = []
+
+    def fake_train(subset, out, config, *, force, log):
+        tileset = load_tileset(subset)
+        hold = set(config.holdout_images)
+        n = int((~tileset.tiles["image_id"].isin(hold)).sum())
+        runs.append((set(tileset.image_ids) - hold, hold, config))
+        metrics = {"fan_f1": 1.0 - power_law(n, 2.0, 0.5, 0.05), "spot_f1": 1.0 - power_law(n, 1.5, 0.3, 0.0),
+                   "fan_direction_median_deg": power_law(n, 80.0, 0.6, 3.0)}
+        return {"heldout_metrics": metrics, "training": {"tiles": {"fit": n - 1, "calibration": 1}, "seconds": 0.0}}
+
+    monkeypatch.setattr(train_module, "train_model", fake_train)
+    curve = learning_curve(root, seed=1, out=tmp_path / "curve", log=lambda *_: None)
+    trained = [r[0] for r in runs]
+    # Held-out images chosen once and never trained on; subsets nested, 2 images up.
+    assert all(r[1] == runs[0][1] for r in runs) and runs[0][1]
+    assert all(not (t & runs[0][1]) for t in trained)
+    assert all(a < b for a, b in zip(trained, trained[1:]))
+    assert len(trained[0]) == 2
+    assert all(r[2].rotations == (0,) for r in runs)
+    fan = curve["fits"]["fan_f1"]
+    assert len(curve["points"]) >= 4 and fan["with_c"]
+    assert (fan["a"], fan["b"], fan["c"]) == pytest.approx((2.0, 0.5, 0.05), rel=1e-3, abs=1e-4)
+    # Hand inversion: 2 n^-0.5 + 0.05 = 0.2 -> n = (2 / 0.15)^2 = 177.8 -> 178 tiles in all.
+    n_max = max(p["n_tiles"] for p in curve["points"])
+    assert curve["targets"]["fan_f1"]["n_tiles_needed"] == 178
+    assert curve["targets"]["fan_f1"]["more_tiles"] == 178 - n_max
+    # 80 n^-0.6 + 3 = 10 -> n = (80 / 7)^(1 / 0.6) = 58.0.
+    assert curve["targets"]["fan_direction_median_deg"]["n_tiles_needed"] in (58, 59)
+    assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
