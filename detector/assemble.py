@@ -3,14 +3,20 @@
 The patch classifier says *whether* a neighbourhood holds deposits and of which
 kind; objects are found, placed and sized from dense per-pixel evidence (a
 locally normalised darkness map), because many spots are far smaller than a
-patch. Every dark component becomes a *candidate* described by a short vector
-of object features (shape, darkness, the patch probabilities under it, the
-orientation model's polarity vote); an object classifier trained on consensus
-decides fan, spot or nothing. A fan's axis comes from its own pixels and only
-its polarity (which end is the source) from the orientation model, stacked
-with the component's own asymmetry. Fans that share a vent form one dark
-component; they are split by the modes of the pixel directions seen from the
-vent, never merged into one.
+patch. Each dark component is read two ways:
+
+- as fans: fans are darkest at their source, so the peaks of the component's
+  smoothed darkness are its vents; each pixel belongs to its nearest vent and
+  each vent's pixels are split into fans by the modes of their directions seen
+  from the vent (several fans often share one vent and point different ways:
+  they are split, never merged);
+- as one spot (centre and axes from the pixel moments).
+
+Every reading gets a feature vector (the component's shape and darkness, the
+patch probabilities under it, the orientation model's polarity vote along the
+reading's direction, and the reading's own geometry); an object classifier
+trained on consensus gives each reading the probability that it is right. A
+component becomes fans or a spot, whichever reading scores higher.
 """
 
 from dataclasses import dataclass, field
@@ -20,17 +26,17 @@ import pandas as pd
 from scipy import ndimage
 
 from .contract import DETECTION_COLUMNS
-from .geometry import angular_difference, direction_deg
+from .geometry import angular_difference, direction_deg, unit_vector
 
 __all__ = [
     "AssemblyParams",
     "Candidate",
     "OBJECT_COLUMNS",
     "OBJECT_FEATURE_NAMES",
-    "POLARITY_FEATURE_NAMES",
     "local_darkness",
     "upsample_patch_maps",
     "find_candidates",
+    "reading_matrix",
     "candidate_rows",
     "objects_from_candidates",
 ]
@@ -38,8 +44,7 @@ __all__ = [
 #: Detections carry, for evaluation only, the axis (degrees mod 180) before polarity was chosen.
 OBJECT_COLUMNS = DETECTION_COLUMNS + ("axis_deg",)
 
-#: Features of a candidate component read by the object classifier, in order.
-OBJECT_FEATURE_NAMES = (
+_COMPONENT_FEATURES = (
     "obj_log_area",
     "obj_major_px",
     "obj_minor_px",
@@ -54,17 +59,25 @@ OBJECT_FEATURE_NAMES = (
     "obj_p_spot",
     "obj_p_fan_max",
     "obj_p_spot_max",
-    "obj_polarity_vote",
     "obj_skew",
     "obj_widening",
     "obj_dark_asymmetry",
-    "obj_n_modes",
-    "obj_mode_share",
+    "obj_n_vents",
+    "obj_n_fans",
     "obj_border",
 )
-
-#: Evidence along the component's axis stacked into the fan polarity (all odd under a flip).
-POLARITY_FEATURE_NAMES = ("obj_polarity_vote", "obj_skew", "obj_widening", "obj_dark_asymmetry")
+_READING_FEATURES = (
+    "read_is_fan",
+    "read_length_px",
+    "read_spread_deg",
+    "read_share",
+    "read_vent_dark",
+    "read_dark_mean",
+    "read_polarity_vote",
+    "read_p_fan",
+)
+#: Features of one reading of a candidate, read by the object classifier, in order.
+OBJECT_FEATURE_NAMES = _COMPONENT_FEATURES + _READING_FEATURES
 
 
 @dataclass(frozen=True)
@@ -81,35 +94,43 @@ class AssemblyParams:
     seed_k : float, default=3.0
         Darkness (robust z-score below the local background) a component must reach.
     grow_k : float, default=1.5
-        Darkness down to which a component grows from its seeds (hysteresis).
+        Darkness down to which a component grows from its seeds (hysteresis),
+        measured on the map smoothed by ``grow_smooth_px`` and renormalised by
+        its own robust spread, so faint fan ends far from the vent are kept.
+    grow_smooth_px : float, default=2.5
+        Gaussian sigma of the map that components grow on, px.
     min_area_px : int, default=15
         Smallest component kept, px.
     min_score : float, default=0.5
         Smallest object score (1 - probability of nothing) kept.
-    split_min_separation_deg : float, default=35.0
+    split_min_separation_deg : float, default=25.0
         Smallest angle between two direction modes of one vent for it to be split.
-    split_min_share : float, default=0.2
+    split_min_share : float, default=0.08
         Smallest share of a vent's pixel weight a mode needs to become a fan of its own.
-    polarity_coef : tuple of float, default=(4.0, 0.0, 0.0, 0.0)
-        Logistic weights of :data:`POLARITY_FEATURE_NAMES` for "the fan runs along +axis".
+    vent_smooth_px : float, default=3.0
+        Gaussian sigma of the darkness whose peaks are vents, px.
+    vent_min_separation_px : int, default=15
+        Smallest distance between two vents of one component, px.
+    max_vents : int, default=6
+        Most vents read in one component (the darkest).
     """
 
     background_px: int = 51
     open_px: int = 5
     seed_k: float = 3.0
     grow_k: float = 1.5
+    grow_smooth_px: float = 2.5
     min_area_px: int = 15
     min_score: float = 0.5
-    split_min_separation_deg: float = 35.0
-    split_min_share: float = 0.2
-    polarity_coef: tuple = (4.0, 0.0, 0.0, 0.0)
+    split_min_separation_deg: float = 25.0
+    split_min_share: float = 0.08
+    vent_smooth_px: float = 3.0
+    vent_min_separation_px: int = 15
+    max_vents: int = 6
 
     @classmethod
     def from_dict(cls, fields):
-        known = {k: v for k, v in (fields or {}).items() if k in cls.__dataclass_fields__}
-        if "polarity_coef" in known:
-            known["polarity_coef"] = tuple(float(v) for v in known["polarity_coef"])
-        return cls(**known)
+        return cls(**{k: v for k, v in (fields or {}).items() if k in cls.__dataclass_fields__})
 
 
 def local_darkness(image, valid, *, background_px=51):
@@ -186,22 +207,18 @@ def upsample_patch_maps(values, grid, shape):
 
 @dataclass
 class Candidate:
-    """One dark component: its pixels, object features and both readings of its shape.
+    """One dark component: its pixels, component features and its readings.
 
     Attributes
     ----------
     ys, xs : ndarray of int
         Pixels of the component.
-    features : ndarray of shape (len(OBJECT_FEATURE_NAMES),), float32
+    features : ndarray of shape (len(_COMPONENT_FEATURES),), float32
     fans : list of dict
-        The component read as one or more fans (split at a shared vent), with
-        their pixel subsets under ``"_pixels"``.
+        The component read as fans (contract fields, plus ``_pixels``, a mask
+        over the component's pixels, and ``_features``, the reading's features).
     spot : dict
-        The component read as a spot.
-    axis_dir_deg : float
-        Direction of the +axis that the odd features refer to, degrees clockwise from up.
-    fans_flipped : list of dict
-        The fan reading with the opposite polarity (only when asked for, in training).
+        The component read as a spot (contract fields and ``_features``).
     """
 
     ys: np.ndarray
@@ -209,8 +226,15 @@ class Candidate:
     features: np.ndarray
     fans: list = field(default_factory=list)
     spot: dict = field(default_factory=dict)
-    axis_dir_deg: float = 0.0
-    fans_flipped: list = field(default_factory=list)
+
+
+def _renormalised(values, valid):
+    """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
+    v = values[valid]
+    if v.size == 0:
+        return np.zeros_like(values)
+    mad = 1.4826 * np.median(np.abs(v - np.median(v)))
+    return np.where(valid, values / mad, 0.0) if mad > 0 else np.zeros_like(values)
 
 
 def _circ_mean_deg(angles, weights):
@@ -237,11 +261,8 @@ def _direction_modes(angles, weights, *, min_separation, min_share, n_bins=72):
     return kept
 
 
-def _sigmoid(z):
-    return 1.0 / (1.0 + np.exp(-z))
-
-
 def _axis_moments(xs, ys, w):
+    """Moments of a component along its principal axis: variances, skewness, widening, darkness asymmetry."""
     cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
     dx, dy = xs - cx, ys - cy
     cov = np.cov(np.vstack([dx, dy]), aweights=w) if len(xs) > 2 else np.eye(2)
@@ -258,16 +279,18 @@ def _axis_moments(xs, ys, w):
     dark_pos = np.mean(w[pos]) if pos.any() else 0.0
     dark_neg = np.mean(w[neg]) if neg.any() else 0.0
     asym = float((dark_pos - dark_neg) / max(dark_pos + dark_neg, 1e-6))
-    return (cx, cy), np.clip(evals, 0.25, None), (ux, uy), skew, widening, asym
+    return np.clip(evals, 0.25, None), skew, widening, asym
 
 
-def _fan_readings(xs, ys, w, u, params):
-    """The component read as fans running along +u from its near end, split at the vent."""
-    ux, uy = u
-    cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
-    s = (xs - cx) * ux + (ys - cy) * uy
-    near_end = s <= np.quantile(s, 0.03) + 2.0
-    ax, ay = float(np.mean(xs[near_end])), float(np.mean(ys[near_end]))
+def _fans_from_vent(xs, ys, w, apex, params):
+    """Fans running out of one vent, split by the modes of their pixels' directions.
+
+    Returns
+    -------
+    fans : list of dict
+        Contract fields plus ``_pixels`` (mask over the given pixels).
+    """
+    ax, ay = apex
     dx, dy = xs - ax, ys - ay
     r = np.hypot(dx, dy)
     far = r > max(3.0, 0.25 * r.max())
@@ -277,7 +300,7 @@ def _fan_readings(xs, ys, w, u, params):
         modes = _direction_modes(phi[far], (w * r)[far], min_separation=params.split_min_separation_deg,
                                  min_share=params.split_min_share)
     if len(modes) < 2:
-        modes = [_circ_mean_deg(phi[far], (w * r)[far]) if far.any() else float(direction_deg(ux, uy))]
+        modes = [_circ_mean_deg(phi[far], (w * r)[far]) if far.any() else _circ_mean_deg(phi, w)]
     modes = np.asarray(modes)
     owner = np.argmin(angular_difference(phi[:, None], modes[None, :]), axis=1)
     fans = []
@@ -289,11 +312,44 @@ def _fan_readings(xs, ys, w, u, params):
         if sel.sum() < 3:
             continue
         length = max(float(np.quantile(r[mine], 0.97)), 3.0)
+        # A sector of radius L and opening theta has area L^2 theta / 2.
         spread = float(np.clip(np.degrees(2.0 * mine.sum() / length**2), 5.0, 180.0))
-        fans.append(dict(kind="fan", x_px=ax, y_px=ay, direction_deg=_circ_mean_deg(phi[sel], (w * r)[sel]),
+        fans.append(dict(kind="fan", x_px=float(ax), y_px=float(ay),
+                         direction_deg=_circ_mean_deg(phi[sel], (w * r)[sel]),
                          length_px=length, spread_deg=spread, _pixels=mine))
-    shares = [f["_pixels"].sum() / len(xs) for f in fans]
-    return fans, len(fans), (min(shares) if shares else 0.0)
+    return fans
+
+
+def _vent_fans(smooth_local, mask_local, ly, lx, offset, xs, ys, w, params):
+    """The component read as fans from its vents (the peaks of its smoothed darkness)."""
+    peak_map = ndimage.gaussian_filter(np.where(mask_local, smooth_local, 0.0), params.vent_smooth_px)
+    is_max = (peak_map == ndimage.maximum_filter(peak_map, size=int(params.vent_min_separation_px))) & mask_local
+    py, px = np.nonzero(is_max)
+    if len(py):
+        height = peak_map[py, px]
+        keep = height >= 0.5 * height.max()
+        py, px = py[keep], px[keep]
+    if len(py) == 0:
+        k = int(np.argmax(peak_map[ly, lx]))
+        py, px = ly[k:k + 1], lx[k:k + 1]
+    order = np.argsort(-peak_map[py, px])[: params.max_vents]
+    vy, vx = py[order], px[order]
+    vent_dark = peak_map[vy, vx]
+    owner = np.argmin((lx[:, None] - vx[None, :]) ** 2 + (ly[:, None] - vy[None, :]) ** 2, axis=1)
+    fans = []
+    for k in range(len(vy)):
+        mine = owner == k
+        if mine.sum() < max(3, params.min_area_px // 2):
+            continue
+        idx = np.flatnonzero(mine)
+        apex = (float(vx[k] + offset[1]), float(vy[k] + offset[0]))
+        for f in _fans_from_vent(xs[mine], ys[mine], w[mine], apex, params):
+            full = np.zeros(len(xs), dtype=bool)
+            full[idx[f["_pixels"]]] = True
+            f["_pixels"] = full
+            f["_vent_dark"] = float(vent_dark[k])
+            fans.append(f)
+    return fans, len(vy)
 
 
 def _spot_reading(xs, ys):
@@ -309,8 +365,8 @@ def _spot_reading(xs, ys):
                 semi_minor_px=float(min(b, a)), axis_deg=axis)
 
 
-def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams(), both_polarities=False):
-    """Dark components of a tile with their object features and shape readings.
+def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams()):
+    """Dark components of a tile with their features and readings.
 
     Parameters
     ----------
@@ -323,9 +379,6 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         Per-pixel polarity vector (d_col, d_row): the orientation model's fan
         direction there, scaled by its confidence (2p - 1) and by the fan probability.
     params : AssemblyParams
-    both_polarities : bool, default=False
-        Also read every candidate as fans of the opposite polarity (training uses
-        both to label candidates independently of the polarity decision).
 
     Returns
     -------
@@ -336,7 +389,8 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     # fans and spots; the smoothing then suppresses single-pixel noise.
     opened = ndimage.grey_opening(dark, size=(params.open_px, params.open_px)) if params.open_px > 1 else dark
     smooth = np.where(valid, ndimage.gaussian_filter(opened, 1.0), 0.0)
-    labels, n = ndimage.label(smooth > params.grow_k)
+    grow = _renormalised(ndimage.gaussian_filter(opened, params.grow_smooth_px), valid)
+    labels, n = ndimage.label(grow > params.grow_k)
     if n == 0:
         return []
     index = np.arange(1, n + 1)
@@ -344,34 +398,19 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     area = ndimage.sum_labels(np.ones_like(smooth), labels, index=index)
     keep = np.flatnonzero((peak >= params.seed_k) & (area >= params.min_area_px)) + 1
     slices = ndimage.find_objects(labels)
-    coef = np.asarray(params.polarity_coef, dtype=float)
     out = []
     for lab in keep:
         sl = slices[lab - 1]
-        ly, lx = np.nonzero(labels[sl] == lab)
+        mask_local = labels[sl] == lab
+        ly, lx = np.nonzero(mask_local)
         ys, xs = ly + sl[0].start, lx + sl[1].start
         xf, yf = xs.astype(float), ys.astype(float)
         w = np.maximum(smooth[ys, xs], 1e-3)
-        (cx, cy), evals, u, skew, widening, asym = _axis_moments(xf, yf, w)
+        evals, skew, widening, asym = _axis_moments(xf, yf, w)
         p_none, p_fan, p_spot = (class_maps[c][ys, xs] for c in range(3))
         fan_mass = max(float(np.average(p_fan, weights=w)), 1e-6)
-        vote = float((np.average(polarity_maps[0][ys, xs], weights=w) * u[0]
-                      + np.average(polarity_maps[1][ys, xs], weights=w) * u[1]) / fan_mass)
-        vote = float(np.clip(vote, -1.0, 1.0))
-        z = float(coef @ np.array([vote, skew, widening, asym]))
-        p_along = _sigmoid(z)
-        u_run = u if p_along >= 0.5 else (-u[0], -u[1])
-        fans, n_modes, mode_share = _fan_readings(xf, yf, w, u_run, params)
-        axis = float(direction_deg(*u) % 180.0)
-        confidence = float(abs(2.0 * p_along - 1.0))
-        for f in fans:
-            f.update(axis_deg=axis, direction_confidence=confidence)
-        flipped = []
-        if both_polarities:
-            flipped, _, _ = _fan_readings(xf, yf, w, (-u_run[0], -u_run[1]), params)
-            for f in flipped:
-                f.update(axis_deg=axis, direction_confidence=confidence)
-        ring_sl = tuple(slice(max(s.start - 6, 0), s.stop + 6) for s in sl)
+        fans, n_vents = _vent_fans(smooth[sl], mask_local, ly, lx, (sl[0].start, sl[1].start), xf, yf, w, params)
+        ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
         ring = ndimage.binary_dilation(local, iterations=5) & ~local & valid[ring_sl]
         ring_dark = float(dark[ring_sl][ring].mean()) if ring.any() else 0.0
@@ -382,38 +421,73 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             float(w.mean()), float(w.max()), float(w.std()), ring_dark,
             float(np.average(p_none, weights=w)), float(np.average(p_fan, weights=w)),
             float(np.average(p_spot, weights=w)), float(p_fan.max()), float(p_spot.max()),
-            vote, skew, widening, asym, float(n_modes), float(mode_share), border,
+            skew, widening, asym, float(n_vents), float(len(fans)), border,
         ], dtype=np.float32)
-        out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=_spot_reading(xf, yf),
-                             axis_dir_deg=float(direction_deg(*u)), fans_flipped=flipped))
+        for f in fans:
+            mine = f["_pixels"]
+            d_col, d_row = unit_vector(f["direction_deg"])
+            wm = w[mine]
+            # The orientation model's vote along this fan's direction: +1 agrees, -1 opposes.
+            vote = (np.average(polarity_maps[0][ys[mine], xs[mine]], weights=wm) * d_col
+                    + np.average(polarity_maps[1][ys[mine], xs[mine]], weights=wm) * d_row) / fan_mass
+            vote = float(np.clip(vote, -1.0, 1.0))
+            f["direction_confidence"] = 0.5 * (1.0 + vote)
+            f["axis_deg"] = f["direction_deg"] % 180.0
+            f["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], mine.mean(), f.pop("_vent_dark"),
+                                       float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm))],
+                                      dtype=np.float32)
+        spot = _spot_reading(xf, yf)
+        spot["_features"] = np.array([0.0, spot["semi_major_px"], 0.0, 1.0, float(w.max()), float(w.mean()), 0.0,
+                                      float(np.average(p_spot, weights=w))], dtype=np.float32)
+        out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return out
 
 
-def candidate_rows(candidates, tile_id=""):
-    """Every reading of every candidate as contract rows, for labelling candidates in training.
+def reading_matrix(candidates):
+    """Feature rows of every reading (each fan reading, then the spot reading, per candidate).
 
     Returns
     -------
-    fans, spots : DataFrame
-        With a ``candidate`` column giving the candidate's index; fans also carry
-        ``flipped`` (True for the reading of opposite polarity).
+    F : ndarray of shape (n_readings, len(OBJECT_FEATURE_NAMES)), float32
+    owner : ndarray of shape (n_readings,), int
+        Index of the candidate each reading belongs to.
+    which : ndarray of shape (n_readings,), int
+        Index of the fan within its candidate, or -1 for the spot reading.
     """
-    fans = [{**{k: v for k, v in f.items() if k != "_pixels"}, "candidate": i, "tile_id": tile_id,
-             "flipped": flip}
-            for i, c in enumerate(candidates)
-            for flip, readings in ((False, c.fans), (True, c.fans_flipped)) for f in readings]
-    spots = [{**c.spot, "candidate": i, "tile_id": tile_id} for i, c in enumerate(candidates)]
-    return pd.DataFrame(fans), pd.DataFrame(spots)
+    rows, owner, which = [], [], []
+    for i, c in enumerate(candidates):
+        for j, f in enumerate(c.fans):
+            rows.append(np.concatenate([c.features, f["_features"]]))
+            owner.append(i)
+            which.append(j)
+        rows.append(np.concatenate([c.features, c.spot["_features"]]))
+        owner.append(i)
+        which.append(-1)
+    F = np.array(rows, dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
+    return F, np.array(owner, dtype=int), np.array(which, dtype=int)
 
 
-def objects_from_candidates(candidates, kind_proba, *, params=AssemblyParams(), tile_id=""):
-    """The catalog of one tile from its candidates and their object-class probabilities.
+def _public(reading):
+    return {k: v for k, v in reading.items() if not k.startswith("_")}
+
+
+def candidate_rows(candidates, tile_id=""):
+    """Every reading as one contract row, in the order of :func:`reading_matrix`."""
+    rows = []
+    for c in candidates:
+        rows.extend({**_public(f), "tile_id": tile_id} for f in c.fans)
+        rows.append({**_public(c.spot), "tile_id": tile_id})
+    return pd.DataFrame(rows, columns=OBJECT_COLUMNS[:-3] + ("axis_deg", "direction_confidence"))
+
+
+def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(), tile_id=""):
+    """The catalog of one tile from its candidates and their readings' scores.
 
     Parameters
     ----------
     candidates : list of Candidate
-    kind_proba : ndarray of shape (n_candidates, 3)
-        Probabilities of nothing, fan and spot per candidate.
+    reading_score : ndarray of shape (n_readings,)
+        Probability that each reading (order of :func:`reading_matrix`) is right.
     params : AssemblyParams
     tile_id : str
 
@@ -421,26 +495,31 @@ def objects_from_candidates(candidates, kind_proba, *, params=AssemblyParams(), 
     -------
     objects : DataFrame
         Columns :data:`OBJECT_COLUMNS`; geometry in tile px, directions in
-        degrees clockwise from image up; ``votes`` is empty.
+        degrees clockwise from image up; ``votes`` is empty; ``fan_fraction`` is
+        the best fan reading's share of the fan and spot scores.
     pixels : list of (ys, xs) int arrays
         The pixels of each object, in the same order.
     """
+    reading_score = np.asarray(reading_score, dtype=float)
     rows, pixels = [], []
-    for cand, p in zip(candidates, np.asarray(kind_proba, dtype=float)):
-        score = float(1.0 - p[0])
-        if score < params.min_score:
-            continue
-        fan_fraction = float(p[1] / max(p[1] + p[2], 1e-9))
-        if p[1] >= p[2] and cand.fans:
-            for f in cand.fans:
-                mine = f["_pixels"]
-                rows.append({**{k: v for k, v in f.items() if k != "_pixels"}, "score": score,
-                             "fan_fraction": fan_fraction, "tile_id": tile_id})
-                pixels.append((cand.ys[mine], cand.xs[mine]))
-        else:
-            rows.append({**cand.spot, "direction_confidence": np.nan, "score": score,
+    pos = 0
+    for c in candidates:
+        fan_scores = reading_score[pos:pos + len(c.fans)]
+        spot_score = float(reading_score[pos + len(c.fans)])
+        pos += len(c.fans) + 1
+        best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
+        fan_fraction = best_fan / max(best_fan + spot_score, 1e-9)
+        if best_fan >= spot_score:
+            for f, score in zip(c.fans, fan_scores):
+                if score >= params.min_score:
+                    mine = f["_pixels"]
+                    rows.append({**_public(f), "score": float(score), "fan_fraction": fan_fraction,
+                                 "tile_id": tile_id})
+                    pixels.append((c.ys[mine], c.xs[mine]))
+        elif spot_score >= params.min_score:
+            rows.append({**_public(c.spot), "direction_confidence": np.nan, "score": spot_score,
                          "fan_fraction": fan_fraction, "tile_id": tile_id})
-            pixels.append((cand.ys, cand.xs))
+            pixels.append((c.ys, c.xs))
     frame = pd.DataFrame(rows, columns=OBJECT_COLUMNS)
     frame["votes"] = np.nan
     return frame, pixels

@@ -7,11 +7,11 @@ import pandas as pd
 
 from . import _dense
 from .assemble import (
-    OBJECT_FEATURE_NAMES,
     AssemblyParams,
     find_candidates,
     local_darkness,
     objects_from_candidates,
+    reading_matrix,
     upsample_patch_maps,
 )
 from .features import extract_features
@@ -138,12 +138,11 @@ def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
     )
 
 
-def tile_candidates(tile, nodata_mask, maps, spec, params, *, both_polarities=False):
+def tile_candidates(tile, nodata_mask, maps, spec, params):
     """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`)."""
     prep = _dense.prepare_tile(tile, spec, nodata_mask)
     dark = local_darkness(prep.image, prep.valid, background_px=params.background_px)
-    return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params,
-                           both_polarities=both_polarities)
+    return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params)
 
 
 def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None):
@@ -176,8 +175,8 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     if min_score is not None:
         params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
     candidates = tile_candidates(tile, nodata_mask, maps, spec, params)
-    feats = np.array([c.features for c in candidates], dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
-    detections, pixels = objects_from_candidates(candidates, model.predict_objects(feats), params=params,
+    F, _, _ = reading_matrix(candidates)
+    detections, pixels = objects_from_candidates(candidates, model.predict_readings(F), params=params,
                                                  tile_id=tile_id)
     fan_cover = np.zeros(tile.shape, dtype=bool)
     spot_cover = np.zeros(tile.shape, dtype=bool)

@@ -2,7 +2,7 @@
 
 A model folder holds ``detector.onnx`` (patch classifier over none / fan / spot),
 ``orientation.onnx`` (fan polarity along the structure-tensor axis),
-``objects.onnx`` (object classifier over dark candidates: nothing / fan / spot)
+``objects.onnx`` (scores each reading of a dark candidate as a fan or a spot)
 and ``model.json``, the model card. Nothing here unpickles anything: the card is
 JSON and the models are ONNX graphs.
 """
@@ -127,22 +127,20 @@ class Model:
         return _run_proba(self._orientation, self.orientation_inputs(X))[:, 1]
 
 
-    def predict_objects(self, F):
-        """Probabilities of nothing, fan and spot for object candidates, shape (n, 3).
+    def predict_readings(self, F):
+        """Probability that each candidate reading is a right fan or spot, shape (n,).
 
-        Without an object model (a model folder being built), the mean patch
-        probabilities under each candidate stand in.
+        Without an object model (while training builds the folder) the mean patch
+        probability of the reading's kind under it stands in.
         """
         F = np.asarray(F, dtype=np.float32)
         if len(F) == 0:
-            return np.zeros((0, 3), dtype=np.float32)
+            return np.zeros(0, dtype=np.float32)
         if self._objects is None:
             from .assemble import OBJECT_FEATURE_NAMES
 
-            cols = [OBJECT_FEATURE_NAMES.index(n) for n in ("obj_p_none", "obj_p_fan", "obj_p_spot")]
-            p = np.clip(F[:, cols], 1e-6, None)
-            return (p / p.sum(axis=1, keepdims=True)).astype(np.float32)
-        return _run_proba(self._objects, F)
+            return F[:, OBJECT_FEATURE_NAMES.index("read_p_fan")].astype(np.float32)
+        return _run_proba(self._objects, F)[:, 1]
 
 
 def _run_proba(session, X):

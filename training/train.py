@@ -33,7 +33,7 @@ from detector.unfamiliar import unfamiliarity_distance
 
 from .dataset import build_patch_set
 from .export import onnx_parity, to_onnx_bytes
-from .objects import candidate_set, fit_polarity_coef
+from .objects import CandidateSet, candidate_set
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]
@@ -397,14 +397,11 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log)
     full_patches = _CalibratedPredictor(classifier, calibration)
     full_polarity = _PolarityPredictor(orientation, index)
-    polarity_coef, polarity_acc = fit_polarity_coef(cand_fit)
-    if polarity_coef is not None:
-        params = AssemblyParams.from_dict({**asdict(params), "polarity_coef": polarity_coef})
     cand_val = candidate_set(tileset, ids["calibration"], spec, full_patches, full_polarity, params,
                              workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config)
-    log(f"objects: {len(cand_fit)} candidates ({np.bincount(cand_fit.label, minlength=3).tolist()} nothing/fan/spot), "
-        f"polarity stacking accuracy {polarity_acc if polarity_acc is None else round(polarity_acc, 3)}")
+    log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
+        f"{object_model.n_iter_} iterations")
 
     det_bytes = to_onnx_bytes(classifier, train.X.shape[1])
     ori_bytes = to_onnx_bytes(orientation, len(index))
@@ -429,7 +426,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": calibration.temperature, "bias": list(calibration.bias),
                         "before": cal_before, "after": cal_after, "images": cal_img},
-        "assembly": {**asdict(params), "polarity_coef": list(params.polarity_coef)},
+        "assembly": asdict(params),
         "object_features": list(OBJECT_FEATURE_NAMES),
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
@@ -442,9 +439,8 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
             "classifier_iterations": int(classifier.n_iter_),
             "orientation_iterations": int(orientation.n_iter_),
             "object_iterations": int(object_model.n_iter_),
-            "candidates": {"fit": int(len(cand_fit)), "fit_by_class": np.bincount(cand_fit.label, minlength=3).tolist(),
-                           "calibration": int(len(cand_val))},
-            "polarity_stacking_accuracy": polarity_acc,
+            "readings": {"fit": int(len(cand_fit)), "fit_right": int(cand_fit.label.sum()),
+                         "calibration": int(len(cand_val))},
             "onnx_parity": parity,
             "versions": _versions(),
             "seed": config.seed,
@@ -502,8 +498,6 @@ def _orientation_rows(patches, mask, index, names):
 
 
 def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log):
-    from .objects import CandidateSet
-
     rng = np.random.default_rng(config.seed + 7)
     order = list(rng.permutation(fit_img))
     folds = [order[0::2], order[1::2]] if len(order) >= 2 else [order]
@@ -520,12 +514,7 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
         parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
                                    workers=config.workers, desc="out-of-fold candidates"))
-    return CandidateSet(
-        F=np.concatenate([p.F for p in parts]),
-        label=np.concatenate([p.label for p in parts]),
-        polarity_y=np.concatenate([p.polarity_y for p in parts]),
-        image_id=np.concatenate([p.image_id for p in parts]),
-    )
+    return CandidateSet.concat(parts)
 
 
 def _writable(folder):
