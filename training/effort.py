@@ -223,12 +223,14 @@ def _heldout_frame(card):
 
 
 def _thresholds(held, *, recall, min_f1, max_direction_error, min_tiles, candidates=None):
-    """Skip and machine thresholds from a held-out table (possibly a bootstrap resample)."""
-    skip = skip_threshold(held["p_deposit"], held["consensus_px"], recall=recall)
+    """Skip and machine thresholds from a held-out table or a dict of its columns (a resample)."""
+    col = {c: np.asarray(held[c]) for c in ("p_deposit", "consensus_px", "n_detections", "familiar",
+                                            "confidence", "f1", "fan_error_median_deg")}
+    skip = skip_threshold(col["p_deposit"], col["consensus_px"], recall=recall)
     # The machine route only ever sees familiar tiles with detections, so judge it on those.
-    eligible = (held["n_detections"] > 0) & held["familiar"]
-    machine = machine_threshold(held["confidence"][eligible], held["f1"][eligible],
-                                held["fan_error_median_deg"][eligible], min_f1=min_f1,
+    eligible = (col["n_detections"] > 0) & col["familiar"].astype(bool)
+    machine = machine_threshold(col["confidence"][eligible], col["f1"][eligible],
+                                col["fan_error_median_deg"][eligible], min_f1=min_f1,
                                 max_direction_error=max_direction_error, min_tiles=min_tiles,
                                 candidates=candidates)
     return skip, machine
@@ -434,6 +436,8 @@ def estimate_effort(routed_df, card, *, classifications_per_tile=30, seconds_per
     """
     if classifications_per_tile < 1:
         raise DetectorError(f"classifications per tile must be at least 1; got {classifications_per_tile!r}.")
+    if n_boot < 1:
+        raise DetectorError(f"bootstrap replicates must be at least 1; got {n_boot!r}.")
     assumed = seconds_per_classification is None
     seconds = DEFAULT_SECONDS_PER_CLASSIFICATION if assumed else float(seconds_per_classification)
     if not seconds > 0:
@@ -517,7 +521,7 @@ def _bootstrap(held, screen_arrays, *, recall, min_f1, max_direction_error, min_
     missed = np.full(n_boot, np.nan)
     for b in range(n_boot):
         idx = rng.integers(0, n, size=n)
-        sample = pd.DataFrame({c: v[idx] for c, v in cols.items()})
+        sample = {c: v[idx] for c, v in cols.items()}
         skip, machine = _thresholds(sample, recall=recall, min_f1=min_f1, max_direction_error=max_direction_error,
                                     min_tiles=min_tiles, candidates=candidates)
         pairs[b] = (skip, np.nan if machine is None else machine)
