@@ -110,6 +110,7 @@ _OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook
 _QUICKLOOK_PX = 2000
 _MAX_PANELS = 12
 _MAX_DRAWN = 3000
+_STRIP_BYTES = 16 * 2**20
 _ROSE_BINS = 36
 
 
@@ -610,12 +611,12 @@ def _assemble(tasks, entries):
 
 def _image_offsets(detections, tasks):
     """(file path, file-px x offset, file-px y offset) of every detection's tile."""
-    by_tile = {t.tile_id: t for t in tasks}
-    ids = detections["tile_id"].to_numpy()
-    path = np.array([by_tile[t].path for t in ids], dtype=object)
-    ox = np.array([by_tile[t].file_col0 for t in ids], dtype=float)
-    oy = np.array([by_tile[t].file_row0 for t in ids], dtype=float)
-    return path, ox, oy
+    table = pd.DataFrame(
+        {"path": [t.path for t in tasks], "ox": [t.file_col0 for t in tasks], "oy": [t.file_row0 for t in tasks]},
+        index=[t.tile_id for t in tasks],
+    )
+    rows = table.loc[detections["tile_id"].to_numpy()]
+    return rows["path"].to_numpy(dtype=object), rows["ox"].to_numpy(dtype=float), rows["oy"].to_numpy(dtype=float)
 
 
 def _geojson(detections, tasks, images):
@@ -656,43 +657,57 @@ def _write_csv(path, df):
 # ----------------------------------------------------------------------------- figures
 
 
-def _decimated(piece, band, nodata, scale):
-    """A piece read at ``scale`` (<= 1) with rasterio's decimated read, and its no-data mask."""
-    from rasterio.enums import Resampling
+def _decimated(piece, band, nodata, step):
+    """Every ``step``-th pixel of a piece in both axes, and its no-data mask.
 
-    from .raster import _quiet_rasterio
-
-    out_w = max(1, int(round(piece.width * scale)))
-    out_h = max(1, int(round(piece.height * scale)))
-    with _open(piece.path, band, nodata) as src, _quiet_rasterio():
-        array = src._dataset.read(src.band, out_shape=(out_h, out_w), resampling=Resampling.nearest)
-        fill = src.nodata
-    array = array.astype(np.float32)
-    mask = ~np.isfinite(array) | (array == fill)
-    return array, mask
+    The file is read in strips of full rows of a few tens of MB each, so
+    memory does not follow the image size. (A single resampled read with
+    ``out_shape`` was tens of times slower on tiled, compressed GeoTIFFs.)
+    """
+    with _open(piece.path, band, nodata) as src:
+        rows_per_strip = step * max(1, (_STRIP_BYTES // max(1, piece.width * src.dtype.itemsize)) // step)
+        strips, masks = [], []
+        for r0 in range(0, piece.height, rows_per_strip):
+            h = min(rows_per_strip, piece.height - r0)
+            array, mask = src.read((0, r0, piece.width, h))
+            strips.append(array[::step, ::step].astype(np.float32))
+            masks.append(mask[::step, ::step])
+    return np.vstack(strips), np.vstack(masks)
 
 
 def _canvas(entry, band, nodata, cap):
     pieces = entry["pieces"]
     width = max(p.col0 + p.width for p in pieces)
     height = max(p.row0 + p.height for p in pieces)
-    scale = min(1.0, cap / max(width, height))
-    canvas = np.full((max(1, int(round(height * scale))), max(1, int(round(width * scale)))), np.nan, np.float32)
+    step = max(1, math.ceil(max(width, height) / cap))
+    scale = 1.0 / step
+    canvas = np.full((-(-height // step), -(-width // step)), np.nan, np.float32)
     for p in pieces:
-        array, mask = _decimated(p, band, nodata, scale)
-        r0, c0 = int(round(p.row0 * scale)), int(round(p.col0 * scale))
+        array, mask = _decimated(p, band, nodata, step)
+        r0, c0 = -(-p.row0 // step), -(-p.col0 // step)
         h = min(array.shape[0], canvas.shape[0] - r0)
         w = min(array.shape[1], canvas.shape[1] - c0)
         canvas[r0 : r0 + h, c0 : c0 + w] = np.where(mask[:h, :w], np.nan, array[:h, :w])
     return canvas, scale
 
 
+def _gray_rgb(canvas):
+    """A 2-98 % stretched 8-bit RGB view of a canvas, no-data black (matplotlib then skips its float pipeline)."""
+    finite = np.isfinite(canvas)
+    lo, hi = np.percentile(canvas[finite], [2, 98]) if finite.any() else (0.0, 1.0)
+    gray = np.clip((np.nan_to_num(canvas, nan=lo) - lo) / max(hi - lo, 1e-9), 0.0, 1.0) * 255.0
+    gray = np.where(finite, gray, 0.0).astype(np.uint8)
+    return np.repeat(gray[:, :, None], 3, axis=2)
+
+
 def _canvas_positions(detections, tasks, images):
     """Detections' x, y in their image's quick-look canvas (unscaled px)."""
-    pieces = {p.path: p for entry in images.values() for p in entry["pieces"]}
+    pieces = pd.DataFrame(
+        [(p.path, p.col0, p.row0) for entry in images.values() for p in entry["pieces"]], columns=["path", "c", "r"]
+    ).set_index("path")
     paths, ox, oy = _image_offsets(detections, tasks)
-    px = np.array([pieces[p].col0 for p in paths], dtype=float)
-    py = np.array([pieces[p].row0 for p in paths], dtype=float)
+    px = pieces.loc[paths, "c"].to_numpy(dtype=float)
+    py = pieces.loc[paths, "r"].to_numpy(dtype=float)
     return detections["x_px"].to_numpy(dtype=float) + ox + px, detections["y_px"].to_numpy(dtype=float) + oy + py
 
 
@@ -724,9 +739,7 @@ def _quicklook(path, detections, tasks, images, *, band, nodata):
         cx, cy = _canvas_positions(detections, tasks, images)
     for ax, name in zip(axes, names, strict=True):
         canvas, scale = _canvas(images[name], band, nodata, cap)
-        finite = canvas[np.isfinite(canvas)]
-        lo, hi = np.percentile(finite, [2, 98]) if finite.size else (0.0, 1.0)
-        ax.imshow(canvas, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest")
+        ax.imshow(_gray_rgb(canvas), interpolation="nearest")
         title = name
         if not detections.empty:
             sel = (detections["image"] == name).to_numpy()

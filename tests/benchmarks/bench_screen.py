@@ -82,7 +82,8 @@ def _write(path, width, height, fill):
     write_by_windows(path, width, height, fill, crs=MARS_SOUTH_POLAR_STEREO, transform=transform, window=1024)
 
 
-def _tree_rss(proc):
+def _tree_rss(proc, peaks):
+    """Sum of RSS over a process and its descendants, bytes; also updates each one's peak in ``peaks``."""
     import psutil
 
     try:
@@ -92,9 +93,11 @@ def _tree_rss(proc):
     total = 0
     for p in procs:
         try:
-            total += p.memory_info().rss
+            rss = p.memory_info().rss
         except psutil.NoSuchProcess:
-            pass
+            continue
+        total += rss
+        peaks[p.pid] = max(peaks.get(p.pid, 0), rss)
     return total
 
 
@@ -106,15 +109,16 @@ def _screen(model, image, out, workers):
     start = time.perf_counter()
     proc = subprocess.Popen(argv, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
     ps = psutil.Process(proc.pid)
-    peak = 0
+    peak, peaks = 0, {}
     while proc.poll() is None:
-        peak = max(peak, _tree_rss(ps))
+        peak = max(peak, _tree_rss(ps, peaks))
         time.sleep(0.1)
     seconds = time.perf_counter() - start
     stdout = proc.stdout.read()
     if proc.returncode != 0:
         raise SystemExit(f"frostvane screen failed with exit code {proc.returncode}")
-    return seconds, peak / 2**20, stdout
+    parent = peaks.pop(proc.pid, 0)
+    return seconds, peak / 2**20, stdout, parent / 2**20, max(peaks.values(), default=0) / 2**20
 
 
 def main(argv=None):
@@ -139,7 +143,7 @@ def main(argv=None):
             t = time.perf_counter()
             _write(image, width, height, fill)
             write_s = time.perf_counter() - t
-            seconds, peak_mb, stdout = _screen(args.model, image, scratch / f"out_{width}x{height}", args.workers)
+            seconds, peak_mb, stdout, parent_mb, worker_mb = _screen(args.model, image, scratch / f"out_{width}x{height}", args.workers)
             mpx = width * height / 1e6
             entry = {
                 "megapixels": round(mpx, 1),
@@ -148,6 +152,8 @@ def main(argv=None):
                 "seconds": round(seconds, 1),
                 "mpx_per_s": round(mpx / seconds, 3),
                 "peak_rss_mb": round(peak_mb, 1),
+                "parent_peak_rss_mb": round(parent_mb, 1),
+                "worker_peak_rss_mb": round(worker_mb, 1),
                 "max_process_rss_mb": round(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024, 1),
             }
             results["sizes"][f"{width}x{height}"] = entry
