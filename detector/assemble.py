@@ -365,7 +365,7 @@ def _spot_reading(xs, ys):
                 semi_minor_px=float(min(b, a)), axis_deg=axis)
 
 
-def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams()):
+def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams(), axis_maps=None):
     """Dark components of a tile with their features and readings.
 
     Parameters
@@ -379,6 +379,10 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         Per-pixel polarity vector (d_col, d_row): the orientation model's fan
         direction there, scaled by its confidence (2p - 1) and by the fan probability.
     params : AssemblyParams
+    axis_maps : ndarray of shape (2, M, N), optional
+        cos and sin of twice the structure-tensor axis at every pixel; gives each
+        fan reading's ``axis_deg`` (the axis-only baseline of evaluation). Without
+        it the reading's own direction mod 180 is used.
 
     Returns
     -------
@@ -432,7 +436,12 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
                     + np.average(polarity_maps[1][ys[mine], xs[mine]], weights=wm) * d_row) / fan_mass
             vote = float(np.clip(vote, -1.0, 1.0))
             f["direction_confidence"] = 0.5 * (1.0 + vote)
-            f["axis_deg"] = f["direction_deg"] % 180.0
+            if axis_maps is None:
+                f["axis_deg"] = f["direction_deg"] % 180.0
+            else:
+                c2 = np.average(axis_maps[0][ys[mine], xs[mine]], weights=wm)
+                s2 = np.average(axis_maps[1][ys[mine], xs[mine]], weights=wm)
+                f["axis_deg"] = float(np.degrees(0.5 * np.arctan2(s2, c2)) % 180.0)
             f["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], mine.mean(), f.pop("_vent_dark"),
                                        float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm))],
                                       dtype=np.float32)

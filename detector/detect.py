@@ -88,6 +88,7 @@ class TileMaps:
     axis_deg: np.ndarray
     class_maps: np.ndarray
     polarity_maps: np.ndarray
+    axis_maps: np.ndarray
 
 
 def tile_summary_vector(X, valid):
@@ -128,13 +129,17 @@ def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
     if len(X) == 0:
         zeros = np.zeros((3,) + tuple(shape), np.float32)
         zeros[0] = 1.0
-        return TileMaps(proba, polarity, axis, zeros, np.zeros((2,) + tuple(shape), np.float32))
+        return TileMaps(proba, polarity, axis, zeros, np.zeros((2,) + tuple(shape), np.float32),
+                        np.zeros((2,) + tuple(shape), np.float32))
+    doubled = np.radians(2.0 * axis)
     return TileMaps(
         proba=proba,
         polarity=polarity,
         axis_deg=axis,
         class_maps=upsample_patch_maps(proba, grid, shape),
         polarity_maps=upsample_patch_maps(np.column_stack([signed * d_col, signed * d_row]), grid, shape),
+        # The structure-tensor axis as a doubled-angle vector, so that it can be interpolated.
+        axis_maps=upsample_patch_maps(np.column_stack([np.cos(doubled), np.sin(doubled)]), grid, shape),
     )
 
 
@@ -142,7 +147,8 @@ def tile_candidates(tile, nodata_mask, maps, spec, params):
     """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`)."""
     prep = _dense.prepare_tile(tile, spec, nodata_mask)
     dark = local_darkness(prep.image, prep.valid, background_px=params.background_px)
-    return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params)
+    return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params,
+                           axis_maps=maps.axis_maps)
 
 
 def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None):

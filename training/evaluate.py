@@ -22,7 +22,7 @@ from detector.unfamiliar import unfamiliarity_score
 from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
 
 __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_card", "evaluate_model",
-           "write_detections_csv"]
+           "write_detections_csv", "confidence_validation"]
 
 
 def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", keep_results=False):
@@ -175,10 +175,44 @@ def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0):
     scores = score_catalogs(detections, consensus, tiles, prevailing_deg=_prevailing(model), seed=seed, n_boot=200)
     patch = _patch_metrics(run)
     per_tile = _per_tile_table(run, detections, consensus, tiles, model)
+    scores["direction_confidence"] = confidence_validation(detections, consensus, tiles)
     objects = scores["objects"]
     log(f"held-out: fan F1 {_fmt(objects['fan']['f1'])}, spot F1 {_fmt(objects['spot']['f1'])}, "
         f"fan direction median {_fmt(scores['direction']['per_fan'].get('median'))} deg")
     return {"scores": scores, "patch": patch, "per_tile": per_tile, "detections": detections, "run": run}
+
+
+def confidence_validation(detections, consensus, tiles, *, n_bins=3):
+    """Direction error of matched fans by direction-confidence bin (equal-count bins).
+
+    A useful confidence has errors that fall as it rises; the Spearman rank
+    correlation between confidence and error (scipy.stats.spearmanr) says how
+    strongly.
+
+    Returns
+    -------
+    validation : dict
+        ``bins`` (confidence range, n, median and 90th percentile error),
+        ``spearman_rho`` and ``p_value``.
+    """
+    from scipy.stats import spearmanr
+
+    detections = detections.reset_index(drop=True)
+    consensus = consensus.reset_index(drop=True)
+    pairs = match_objects(detections, consensus)
+    fans = matched_fans(detections, consensus, pairs, tiles)
+    if len(fans) < 2 * n_bins:
+        return {"bins": [], "spearman_rho": None, "p_value": None, "n": int(len(fans))}
+    conf = detections.loc[fans["det_index"].to_numpy(), "direction_confidence"].to_numpy(float)
+    err = fans["error_deg"].to_numpy(float)
+    edges = np.quantile(conf, np.linspace(0, 1, n_bins + 1))
+    which = np.clip(np.searchsorted(edges, conf, side="right") - 1, 0, n_bins - 1)
+    bins = [{"confidence_from": float(edges[b]), "confidence_to": float(edges[b + 1]), "n": int((which == b).sum()),
+             "median_error_deg": float(np.median(err[which == b])) if (which == b).any() else None,
+             "p90_error_deg": float(np.quantile(err[which == b], 0.9)) if (which == b).any() else None}
+            for b in range(n_bins)]
+    rho, p = spearmanr(conf, err)
+    return {"bins": bins, "spearman_rho": float(rho), "p_value": float(p), "n": int(len(fans))}
 
 
 def _patch_metrics(run):
@@ -210,6 +244,7 @@ def summarise_for_card(heldout):
         "dice_mean": (s.get("coverage") or {}).get("dice_mean"),
         "covered_error_pp_mean": (s.get("coverage") or {}).get("covered_error_pp_mean"),
         "patch_f1": {name: heldout["patch"][name]["f1"] for name in CLASS_NAMES},
+        "direction_confidence": s.get("direction_confidence"),
     }
 
 
@@ -262,6 +297,7 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, 
     tiles = tileset.tiles
     scores = score_catalogs(detections, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
     patch = _patch_metrics(run)
+    scores["direction_confidence"] = confidence_validation(detections, tileset.consensus, tiles)
     ceiling = None
     truth_path = Path(tileset_root) / TRUTH_FILE
     if truth_path.is_file():
