@@ -367,6 +367,12 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, rotations=tuple(config.rotations),
                                seed=config.seed, neg_ratio=config.neg_ratio, max_patches=config.max_patches,
                                workers=config.workers, desc="fit features")
+    missing = [name for c, name in enumerate(CLASS_NAMES) if not np.any(train.cls == c)]
+    if missing:
+        raise TileSetError(
+            f"tile set {str(tileset_root)!r} has no {' or '.join(missing)} patches (coverage >= tau {config.tau}) "
+            f"in its fitting images {fit_img!r}; the patch classifier needs every class: add images or hold out others."
+        )
     val, cal_tiles, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
                                      seed=config.seed + 1, sample=False, workers=config.workers,
                                      desc="calibration features")
