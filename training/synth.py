@@ -58,6 +58,10 @@ _SCENARIO_PARAMS = {
     "faint": dict(density=30.0, p_spot=0.3, wind="one", faint=True),
 }
 
+#: Share of images with one deposit-free tile, and the vent-free margin around it, px.
+_QUIET_IMAGE_SHARE = 0.75
+_QUIET_MARGIN_PX = 160
+
 #: Standard deviation of fan directions about their wind, degrees (value chosen for the scenes).
 WIND_SCATTER_DEG = 12.0
 
@@ -130,8 +134,12 @@ def to_uint8(image):
     return np.round(np.clip(image, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
-def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata):
-    """Render a scene; also return hard-negative positions (K, 2) as (x, y) px."""
+def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, quiet_rows=None):
+    """Render a scene; also return hard-negative positions (K, 2) as (x, y) px.
+
+    ``quiet_rows`` (start, stop), optional: a band of rows where no vent lies, so
+    that a tile there holds terrain and hard negatives but no deposit.
+    """
     if scenario not in _SCENARIO_PARAMS:
         raise DetectorError(f"scenario {scenario!r} is unknown; expected one of {', '.join(SCENARIOS)}.")
     try:
@@ -154,6 +162,8 @@ def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata):
 
     # Vents cluster in active ground; a smooth field leaves bare stretches between.
     vents = _vents(shape, rng, valid, density=params["density"] * density, area_mpx=area_mpx)
+    if quiet_rows is not None:
+        vents = vents[(vents[:, 1] < quiet_rows[0]) | (vents[:, 1] >= quiet_rows[1])]
     truth = _deposits(vents, rng, params, wind_deg)
 
     # Araneiform troughs at most vents, plus networks that vented nothing.
@@ -655,13 +665,17 @@ def _image_layout(index, rng):
     scenario = _IMAGE_SCENARIOS[index % len(_IMAGE_SCENARIOS)]
     region = int(rng.integers(0, len(_REGIONS)))
     faint = _SCENARIO_PARAMS[scenario]["faint"]
-    return {
+    meta = {
         "scenario": scenario,
         "image_id": f"SYN_{index + 1:04d}_{'ABCD'[region]}",
         "region": _REGIONS[region],
         "solar_longitude_deg": round(float(rng.uniform(232.0, 250.0) if faint else rng.uniform(180.0, 232.0)), 1),
         "metres_per_px": round(float(rng.uniform(0.25, 0.5)), 3),
     }
+    # About half the images have one stretch of bare frost: a tile with terrain, hard
+    # negatives and no deposit, where false detections can be counted.
+    meta["quiet_fraction"] = float(rng.uniform()) if rng.random() < _QUIET_IMAGE_SHARE else None
+    return meta
 
 
 def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape):
@@ -676,8 +690,14 @@ def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape):
     meta = _image_layout(index, np.random.default_rng(meta_ss))
     height, width = tile_shape
     shape = (height * tiles_per_image, width)
+    quiet_rows = None
+    if meta["quiet_fraction"] is not None and tiles_per_image > 1:
+        k = int(meta["quiet_fraction"] * tiles_per_image)
+        # The margin keeps fans from vents outside the band from reaching into its tile.
+        quiet_rows = (k * height - _QUIET_MARGIN_PX, (k + 1) * height + _QUIET_MARGIN_PX)
     image, truth, negatives = _render_scene(
-        shape, np.random.default_rng(scene_ss), scenario=meta["scenario"], wind_deg=None, density=1.0, nodata=None
+        shape, np.random.default_rng(scene_ss), scenario=meta["scenario"], wind_deg=None, density=1.0, nodata=None,
+        quiet_rows=quiet_rows,
     )
     pixels = to_uint8(image)
     tile_ids = [f"{meta['image_id']}_T{k:02d}" for k in range(tiles_per_image)]
