@@ -311,11 +311,16 @@ def _fans_from_vent(xs, ys, w, apex, params):
             sel = mine
         if sel.sum() < 3:
             continue
-        length = max(float(np.quantile(r[mine], 0.97)), 3.0)
+        direction = _circ_mean_deg(phi[sel], (w * r)[sel])
+        # The grey opening removes a fan's narrow tip and the smoothing moves the darkness
+        # peak into the fan: the apex is where the fan's own pixels start along its direction.
+        u_col, u_row = unit_vector(direction)
+        back = min(float(np.quantile(dx[mine] * u_col + dy[mine] * u_row, 0.01)), 0.0)
+        fx, fy = ax + back * u_col, ay + back * u_row
+        length = max(float(np.quantile(np.hypot(xs[mine] - fx, ys[mine] - fy), 0.97)), 3.0)
         # A sector of radius L and opening theta has area L^2 theta / 2.
         spread = float(np.clip(np.degrees(2.0 * mine.sum() / length**2), 5.0, 180.0))
-        fans.append(dict(kind="fan", x_px=float(ax), y_px=float(ay),
-                         direction_deg=_circ_mean_deg(phi[sel], (w * r)[sel]),
+        fans.append(dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=direction,
                          length_px=length, spread_deg=spread, _pixels=mine))
     return fans
 
