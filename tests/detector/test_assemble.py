@@ -1,0 +1,261 @@
+"""Object assembly: upsampling of patch maps, local darkness, candidates and their readings."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.interpolate import RegularGridInterpolator
+
+from detector.assemble import (
+    AssemblyParams,
+    candidate_rows,
+    find_candidates,
+    local_darkness,
+    objects_from_candidates,
+    reading_matrix,
+    upsample_patch_maps,
+)
+from detector.features import patch_grid
+from detector.geometry import angular_difference
+from detector.labels import rasterise_features
+from detector.spec import FeatureSpec
+
+SHAPE = (220, 220)
+APEX = (110.0, 110.0)
+
+
+def _uniform_maps(shape):
+    class_maps = np.empty((3,) + shape, np.float32)
+    class_maps[:] = np.array([0.2, 0.5, 0.3], np.float32)[:, None, None]
+    return class_maps, np.zeros((2,) + shape, np.float32)
+
+
+def _frost(shape, seed):
+    return 0.6 + 0.02 * np.random.default_rng(seed).standard_normal(shape)
+
+
+def _fan_scene(directions, *, length=70.0, spread=40.0, seed=0, depth=0.35):
+    """Frost with dark sectors from APEX, darkest at the vent and fading outwards (common practice)."""
+    image = _frost(SHAPE, seed)
+    yy, xx = np.mgrid[: SHAPE[0], : SHAPE[1]]
+    r = np.hypot(xx - APEX[0], yy - APEX[1])
+    tau = np.zeros(SHAPE)
+    for d in directions:
+        row = dict(kind="fan", x_px=APEX[0], y_px=APEX[1], direction_deg=float(d), length_px=length, spread_deg=spread)
+        cover = rasterise_features(pd.DataFrame([row]), SHAPE).fan_cover
+        tau = np.maximum(tau, depth * cover * np.exp(-1.6 * r / length))
+    return image - tau
+
+
+def _candidates(image, params=AssemblyParams()):
+    valid = np.ones(image.shape, bool)
+    dark = local_darkness(image, valid, background_px=params.background_px)
+    class_maps, polarity_maps = _uniform_maps(image.shape)
+    return find_candidates(dark, valid, class_maps, polarity_maps, params=params)
+
+
+def _fan_readings(candidates):
+    return [f for c in candidates for f in c.fans]
+
+
+# --------------------------------------------------------------------------- upsampling
+
+
+def _naive_bilinear(values, grid, shape):
+    """Per-pixel oracle: bilinear interpolation between the four surrounding patch centres."""
+    v = values.reshape(grid.n_rows, grid.n_cols, -1)
+    ys = grid.y_px.reshape(grid.n_rows, grid.n_cols)[:, 0]
+    xs = grid.x_px.reshape(grid.n_rows, grid.n_cols)[0]
+    out = np.zeros((v.shape[2],) + tuple(shape))
+    for r in range(shape[0]):
+        y = min(max(r, ys[0]), ys[-1])
+        i = min(int(np.searchsorted(ys, y, side="right")) - 1, len(ys) - 2)
+        ty = (y - ys[i]) / (ys[i + 1] - ys[i])
+        for c in range(shape[1]):
+            x = min(max(c, xs[0]), xs[-1])
+            j = min(int(np.searchsorted(xs, x, side="right")) - 1, len(xs) - 2)
+            tx = (x - xs[j]) / (xs[j + 1] - xs[j])
+            out[:, r, c] = ((1 - ty) * (1 - tx) * v[i, j] + (1 - ty) * tx * v[i, j + 1]
+                            + ty * (1 - tx) * v[i + 1, j] + ty * tx * v[i + 1, j + 1])
+    return out
+
+
+@pytest.fixture(scope="module")
+def grid_and_values():
+    shape = (150, 170)
+    grid = patch_grid(shape, FeatureSpec())
+    values = np.random.default_rng(5).random((grid.n_patches, 2)).astype(np.float32)
+    return shape, grid, values
+
+
+def test_upsample_matches_naive_bilinear_oracle(grid_and_values):
+    shape, grid, values = grid_and_values
+    maps = upsample_patch_maps(values, grid, shape)
+    assert maps.shape == (2,) + shape and maps.dtype == np.float32
+    np.testing.assert_allclose(maps, _naive_bilinear(values, grid, shape), atol=1e-5)
+
+
+def test_upsample_matches_scipy_regular_grid_interpolator(grid_and_values):
+    # Reference: scipy.interpolate.RegularGridInterpolator(method="linear"), inside the hull of patch centres.
+    shape, grid, values = grid_and_values
+    maps = upsample_patch_maps(values, grid, shape)
+    ys = grid.y_px.reshape(grid.n_rows, grid.n_cols)[:, 0]
+    xs = grid.x_px.reshape(grid.n_rows, grid.n_cols)[0]
+    rows = np.arange(int(np.ceil(ys[0])), int(np.floor(ys[-1])) + 1)
+    cols = np.arange(int(np.ceil(xs[0])), int(np.floor(xs[-1])) + 1)
+    rr, cc = np.meshgrid(rows, cols, indexing="ij")
+    for k in range(values.shape[1]):
+        ref = RegularGridInterpolator((ys, xs), values[:, k].reshape(grid.n_rows, grid.n_cols))
+        expected = ref(np.column_stack([rr.ravel(), cc.ravel()])).reshape(rr.shape)
+        np.testing.assert_allclose(maps[k][np.ix_(rows, cols)], expected, atol=1e-5)
+
+
+# --------------------------------------------------------------------------- local darkness
+
+
+def test_local_darkness_is_zero_on_a_flat_tile():
+    dark = local_darkness(np.full((120, 140), 0.4), np.ones((120, 140), bool))
+    assert dark.dtype == np.float32
+    np.testing.assert_array_equal(dark, 0.0)
+
+
+def test_local_darkness_ignores_an_illumination_ramp():
+    shape = (200, 240)
+    ramp = np.linspace(0.3, 0.7, shape[1])[None, :] * np.ones(shape)
+    image = ramp + _frost(shape, 1) - 0.6
+    valid = np.ones(shape, bool)
+    dark = local_darkness(image, valid)
+    # Away from the borders (half a box) the ramp is removed; what is left is the noise.
+    inner = dark[60:-60, 60:-60]
+    assert np.abs(np.median(inner)) < 0.3
+    assert np.quantile(np.abs(inner), 0.99) < 4.0
+
+
+def test_local_darkness_is_large_on_a_dark_disk():
+    shape = (200, 200)
+    yy, xx = np.mgrid[: shape[0], : shape[1]]
+    disk = np.hypot(xx - 100, yy - 100) <= 8
+    image = _frost(shape, 2) - 0.2 * disk
+    dark = local_darkness(image, np.ones(shape, bool))
+    assert np.median(dark[disk]) > 5.0
+    assert np.median(dark[~disk]) < 1.0
+
+
+def test_local_darkness_is_zero_on_nodata():
+    image = _frost((100, 100), 3)
+    valid = np.ones((100, 100), bool)
+    valid[:, :30] = False
+    dark = local_darkness(image, valid)
+    np.testing.assert_array_equal(dark[:, :30], 0.0)
+
+
+# --------------------------------------------------------------------------- candidates
+
+
+@pytest.mark.parametrize("direction", [0.0, 90.0, 180.0, 270.0, 135.0, 320.0])
+def test_one_wedge_gives_a_fan_reading_at_its_apex_and_direction(direction):
+    candidates = _candidates(_fan_scene([direction], spread=30.0))
+    fans = _fan_readings(candidates)
+    assert len(candidates) == 1 and fans
+    best = max(fans, key=lambda f: f["_pixels"].sum())
+    # Direction convention (detector.geometry): 90 points to +x, 180 to +y.
+    assert angular_difference(best["direction_deg"], direction) < 10.0
+    # The grey opening removes the tip narrower than open_px: it reaches
+    # open_px / (2 tan(spread / 2)) px from the apex (about 9 px at 30 degrees).
+    tip = AssemblyParams().open_px / (2 * np.tan(np.radians(30.0 / 2)))
+    assert np.hypot(best["x_px"] - APEX[0], best["y_px"] - APEX[1]) <= tip + 3.0
+    assert 0.6 * 70.0 <= best["length_px"] <= 1.1 * 70.0
+
+
+def test_direction_convention_with_a_wedge_to_the_right():
+    fans = _fan_readings(_candidates(_fan_scene([90.0], spread=30.0)))
+    best = max(fans, key=lambda f: f["_pixels"].sum())
+    # A fan pointing to +x has its pixels to the right of its apex.
+    assert best["direction_deg"] == pytest.approx(90.0, abs=10.0)
+
+
+def test_two_wedges_sharing_a_vent_give_two_fans():
+    fans = _fan_readings(_candidates(_fan_scene([60.0, 200.0], spread=30.0)))
+    assert len(fans) >= 2
+    for truth in (60.0, 200.0):
+        err = min(angular_difference(f["direction_deg"], truth) for f in fans)
+        assert err < 10.0, (truth, [f["direction_deg"] for f in fans])
+        near = min(fans, key=lambda f: angular_difference(f["direction_deg"], truth))
+        assert np.hypot(near["x_px"] - APEX[0], near["y_px"] - APEX[1]) <= 15.0
+
+
+def test_a_small_dark_disk_gives_a_spot_reading():
+    radius = 8.0
+    yy, xx = np.mgrid[: SHAPE[0], : SHAPE[1]]
+    image = _frost(SHAPE, 4) - 0.3 * (np.hypot(xx - 90, yy - 130) <= radius)
+    candidates = _candidates(image)
+    assert len(candidates) == 1
+    spot = candidates[0].spot
+    assert spot["kind"] == "spot"
+    assert np.hypot(spot["x_px"] - 90, spot["y_px"] - 130) < 1.5
+    assert spot["semi_major_px"] == pytest.approx(radius, rel=0.3)
+    assert spot["semi_minor_px"] == pytest.approx(radius, rel=0.3)
+
+
+def test_thin_dark_lines_give_no_candidates():
+    # Channels 1-2 px wide are thinner than the grey opening and must not become objects.
+    image = _frost(SHAPE, 5)
+    image[30:190, 100] -= 0.3
+    image[110, 20:200] -= 0.3
+    image[40:42, 20:200] -= 0.3
+    assert _candidates(image) == []
+
+
+# --------------------------------------------------------------------------- readings and objects
+
+
+@pytest.fixture(scope="module")
+def two_candidates():
+    """A two-fan wedge pair and a separate disk: two candidates."""
+    image = _fan_scene([60.0, 200.0], spread=30.0)
+    yy, xx = np.mgrid[: SHAPE[0], : SHAPE[1]]
+    image[np.hypot(xx - 40, yy - 40) <= 7] -= 0.3
+    candidates = _candidates(image)
+    assert len(candidates) >= 2
+    return candidates
+
+
+def test_candidate_rows_follow_reading_matrix_order(two_candidates):
+    F, owner, which = reading_matrix(two_candidates)
+    rows = candidate_rows(two_candidates, tile_id="t1")
+    assert len(rows) == len(F) == len(owner) == len(which)
+    for i, (o, w) in enumerate(zip(owner, which)):
+        c = two_candidates[o]
+        reading = c.spot if w == -1 else c.fans[w]
+        assert rows.loc[i, "kind"] == reading["kind"]
+        assert rows.loc[i, "x_px"] == pytest.approx(reading["x_px"])
+        assert rows.loc[i, "direction_deg"] == pytest.approx(reading["direction_deg"])
+        np.testing.assert_array_equal(F[i, -8:], reading["_features"])
+    assert (rows["tile_id"] == "t1").all()
+
+
+def _scores(candidates, fan_score, spot_score):
+    _, _, which = reading_matrix(candidates)
+    return np.where(which >= 0, fan_score, spot_score)
+
+
+def test_objects_pick_fans_when_fan_readings_score_higher(two_candidates):
+    objects, pixels = objects_from_candidates(two_candidates, _scores(two_candidates, 0.9, 0.3))
+    n_fans = sum(len(c.fans) for c in two_candidates)
+    assert (objects["kind"] == "fan").sum() == n_fans and len(pixels) == len(objects)
+    assert np.allclose(objects["score"], 0.9)
+    assert np.allclose(objects["fan_fraction"], 0.9 / 1.2)
+
+
+def test_objects_pick_the_spot_when_it_scores_higher(two_candidates):
+    objects, _ = objects_from_candidates(two_candidates, _scores(two_candidates, 0.3, 0.8))
+    assert (objects["kind"] == "spot").sum() == len(two_candidates)
+    assert objects["direction_confidence"].isna().all()
+
+
+def test_objects_respect_min_score(two_candidates):
+    scores = _scores(two_candidates, 0.45, 0.2)
+    kept, _ = objects_from_candidates(two_candidates, scores, params=AssemblyParams(min_score=0.5))
+    assert len(kept) == 0
+    kept, _ = objects_from_candidates(two_candidates, scores, params=AssemblyParams(min_score=0.4))
+    assert len(kept) == sum(len(c.fans) for c in two_candidates)
+    assert (kept["score"] >= 0.4).all()
