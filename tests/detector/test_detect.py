@@ -1,0 +1,64 @@
+"""Running an exported model on one tile."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from detector.assemble import OBJECT_COLUMNS
+from detector.contract import DETECTION_COLUMNS
+from detector.detect import detect_tile
+from detector.model import load_model
+from detector.tileset import load_tileset
+
+
+@pytest.fixture(scope="module")
+def model_and_tile(tiny_model, tiny_tileset):
+    model = load_model(tiny_model[0])
+    tileset = load_tileset(tiny_tileset)
+    tile_id = tileset.tiles["tile_id"].iloc[0]
+    return model, tileset.read_tile(tile_id), tile_id
+
+
+def test_detect_tile_columns_and_ranges(model_and_tile):
+    model, tile, tile_id = model_and_tile
+    result = detect_tile(model, tile, tile_id=tile_id, min_score=0.0)
+    det = result.detections
+    assert tuple(det.columns) == OBJECT_COLUMNS
+    assert set(DETECTION_COLUMNS) <= set(det.columns)
+    assert len(det) > 0
+    rows, cols = tile.shape
+    assert det["x_px"].between(-0.5, cols - 0.5).all()
+    assert det["y_px"].between(-0.5, rows - 0.5).all()
+    assert ((det["direction_deg"] >= 0) & (det["direction_deg"] < 360)).all()
+    assert (det["tile_id"] == tile_id).all()
+    assert set(det["kind"]) <= {"fan", "spot"}
+    assert det["score"].between(0, 1).all()
+    assert result.proba.shape == (result.grid.n_patches, 3)
+    assert 0.0 <= result.p_deposit <= 1.0
+    assert result.fan_cover.shape == tile.shape
+
+
+def test_detect_tile_is_deterministic(model_and_tile):
+    model, tile, tile_id = model_and_tile
+    a = detect_tile(model, tile, tile_id=tile_id)
+    b = detect_tile(model, tile, tile_id=tile_id)
+    pd.testing.assert_frame_equal(a.detections, b.detections)
+    np.testing.assert_array_equal(a.proba, b.proba)
+
+
+def test_min_score_filters(model_and_tile):
+    model, tile, tile_id = model_and_tile
+    low = detect_tile(model, tile, tile_id=tile_id, min_score=0.0).detections
+    high = detect_tile(model, tile, tile_id=tile_id, min_score=0.9).detections
+    assert len(high) <= len(low)
+    assert (high["score"] >= 0.9).all()
+
+
+def test_all_nodata_tile(model_and_tile):
+    model, tile, _ = model_and_tile
+    empty = np.zeros_like(tile)  # 0 is the spec's no-data value
+    result = detect_tile(model, empty, tile_id="blank")
+    assert len(result.detections) == 0
+    assert result.p_deposit == 0.0
+    assert result.valid_fraction == 0.0
+    assert not result.fan_cover.any() and not result.spot_cover.any()

@@ -1,0 +1,133 @@
+"""Loading an exported model: round trip, ONNX parity, integrity and compatibility checks, calibration."""
+
+import json
+import shutil
+
+import numpy as np
+import pytest
+
+from detector.errors import ModelError, SpecError
+from detector.model import DETECTOR_ONNX, MODEL_CARD, ORIENTATION_ONNX, Calibration, load_model
+from training.export import onnx_parity, to_onnx_bytes
+
+
+@pytest.fixture
+def model_copy(tiny_model, tmp_path):
+    folder, _ = tiny_model
+    copy = tmp_path / "model"
+    shutil.copytree(folder, copy)
+    return copy
+
+
+def _edit_card(folder, edit):
+    path = folder / MODEL_CARD
+    card = json.loads(path.read_text())
+    edit(card)
+    path.write_text(json.dumps(card))
+
+
+def test_load_model_round_trip(tiny_model):
+    folder, card = tiny_model
+    model = load_model(folder)
+    assert model.card["files"] == card["files"]
+    assert model.feature_spec.feature_names == tuple(card["feature_names"])
+    assert model.calibration.temperature == pytest.approx(card["calibration"]["temperature"])
+    X = np.random.default_rng(0).normal(size=(7, len(card["feature_names"]))).astype(np.float32)
+    p = model.predict_patches(X)
+    assert p.shape == (7, 3) and np.allclose(p.sum(axis=1), 1.0, atol=1e-5)
+    pol = model.predict_polarity(X)
+    assert pol.shape == (7,) and ((pol >= 0) & (pol <= 1)).all()
+    assert model.predict_patches(X[:0]).shape == (0, 3)
+
+
+def test_onnxruntime_matches_scikit_learn_probabilities():
+    # As scikit-learn / skl2onnx compare converted models: onnxruntime's probabilities
+    # agree with predict_proba to float32 precision (tolerance 1e-5, value from memory).
+    from sklearn.ensemble import HistGradientBoostingClassifier
+
+    rng = np.random.default_rng(11)
+    X = rng.normal(size=(600, 6)).astype(np.float32)
+    y = (X[:, 0] + 0.5 * X[:, 1] > 0).astype(int) + (X[:, 2] > 1.0).astype(int)
+    clf = HistGradientBoostingClassifier(max_iter=30, random_state=0).fit(X, y)
+    model_bytes = to_onnx_bytes(clf, X.shape[1])
+
+    import onnxruntime as ort
+
+    session = ort.InferenceSession(model_bytes, providers=["CPUExecutionProvider"])
+    probe = rng.normal(size=(200, 6)).astype(np.float32)
+    onnx_proba = session.run(None, {session.get_inputs()[0].name: probe})[1]
+    np.testing.assert_allclose(onnx_proba, clf.predict_proba(probe), atol=1e-5)
+    assert onnx_parity(model_bytes, clf, probe) < 1e-5
+
+
+def test_missing_card(model_copy):
+    (model_copy / MODEL_CARD).unlink()
+    with pytest.raises(ModelError, match="model.json"):
+        load_model(model_copy)
+
+
+def test_missing_onnx_file(model_copy):
+    (model_copy / ORIENTATION_ONNX).unlink()
+    with pytest.raises(ModelError, match="orientation.onnx"):
+        load_model(model_copy)
+
+
+def test_tampered_onnx_file_is_refused(model_copy):
+    path = model_copy / DETECTOR_ONNX
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    path.write_bytes(bytes(data))
+    with pytest.raises(ModelError, match=r"detector\.onnx.*sha256"):
+        load_model(model_copy)
+
+
+def test_wrong_format_version(model_copy):
+    _edit_card(model_copy, lambda c: c.update(format_version=99))
+    with pytest.raises(ModelError, match="format_version 99"):
+        load_model(model_copy)
+
+
+def test_other_feature_version_asks_for_re_export(model_copy):
+    _edit_card(model_copy, lambda c: c["feature_spec"].update(version=0))
+    with pytest.raises(SpecError, match="re-export"):
+        load_model(model_copy)
+
+
+def test_other_feature_parameters_ask_for_re_export(model_copy):
+    # Fewer HOG bins: the spec now names other features than the model was fitted on.
+    _edit_card(model_copy, lambda c: c["feature_spec"].update(hog_orientations=6))
+    with pytest.raises(SpecError, match="re-export"):
+        load_model(model_copy)
+
+
+def test_model_folder_holds_no_pickles_and_load_never_unpickles(tiny_model, monkeypatch):
+    folder, _ = tiny_model
+    assert not [p for p in folder.rglob("*") if p.suffix in {".pkl", ".pickle", ".joblib"}]
+    import pickle
+
+    import joblib
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("load_model must not unpickle")
+
+    monkeypatch.setattr(pickle, "load", refuse)
+    monkeypatch.setattr(pickle, "loads", refuse)
+    monkeypatch.setattr(joblib, "load", refuse)
+    load_model(folder)
+
+
+def test_calibration_rows_sum_to_one():
+    proba = np.random.default_rng(2).dirichlet(np.ones(3), size=50)
+    out = Calibration(temperature=1.7, bias=(0.0, 0.4, -0.3)).apply(proba)
+    assert out.dtype == np.float32
+    np.testing.assert_allclose(out.sum(axis=1), 1.0, atol=1e-6)
+
+
+def test_calibration_identity():
+    proba = np.random.default_rng(3).dirichlet(np.ones(3), size=50)
+    np.testing.assert_allclose(Calibration().apply(proba), proba, atol=1e-6)
+
+
+def test_calibration_rejects_bad_temperature():
+    with pytest.raises(SpecError, match="temperature"):
+        Calibration(temperature=0.0)
