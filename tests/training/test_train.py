@@ -1,0 +1,224 @@
+"""Training: grouped split, calibration scores and fit, orientation targets, unfamiliarity, bad input, the card."""
+
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import brier_score_loss, log_loss
+
+from detector.errors import DetectorError, TileSetError
+from detector.spec import FeatureSpec, POLARITY_ODD_FEATURES
+from training.train import (
+    TrainConfig,
+    calibration_scores,
+    fit_calibration,
+    fit_unfamiliarity,
+    orientation_feature_names,
+    orientation_training_set,
+    split_images,
+    train_model,
+)
+
+FAST = TrainConfig(seed=1, rotations=(0,), max_patches=5000, max_iter=20)
+
+
+def test_split_images_is_grouped_and_complete():
+    images = [f"IMG_{i}" for i in range(10)]
+    fit, cal, hold = split_images(images, seed=4)
+    assert not (set(fit) & set(cal)) and not (set(fit) & set(hold)) and not (set(cal) & set(hold))
+    assert sorted(fit + cal + hold) == sorted(images)
+    assert hold and cal and fit
+    assert split_images(images, seed=4) == (fit, cal, hold)
+
+
+def test_split_images_explicit_holdout():
+    fit, cal, hold = split_images(["a", "b", "c", "d"], holdout_images=("c",))
+    assert hold == ["c"] and "c" not in fit + cal
+
+
+def test_split_images_needs_three_images():
+    with pytest.raises(TileSetError, match="at least 3"):
+        split_images(["a", "b", "a"])
+
+
+def test_split_images_unknown_holdout():
+    with pytest.raises(TileSetError, match="nope"):
+        split_images(["a", "b", "c"], holdout_images=("nope",))
+
+
+def test_brier_matches_sklearn_one_vs_rest():
+    rng = np.random.default_rng(0)
+    proba = rng.dirichlet(np.ones(3), size=200)
+    y = rng.integers(0, 3, 200)
+    # Multi-class Brier (Brier 1950) = sum over classes of the binary Brier score of each one-vs-rest column.
+    expected = sum(brier_score_loss((y == k).astype(int), proba[:, k]) for k in range(3))
+    assert calibration_scores(proba, y)["brier"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_ece_hand_case():
+    # Top-label ECE (Guo et al. 2017): bins of confidence, |accuracy - confidence| weighted by bin share.
+    proba = np.array([[0.9, 0.05, 0.05], [0.9, 0.05, 0.05], [0.1, 0.6, 0.3], [0.2, 0.2, 0.6]])
+    y = np.array([0, 1, 1, 0])
+    # Bin of 0.9: two patches, accuracy 0.5 -> |0.5 - 0.9| = 0.4, weight 1/2.
+    # Bin of 0.6: two patches (0.6 and 0.6), accuracy 0.5 -> 0.1, weight 1/2.
+    assert calibration_scores(proba, y, n_bins=10)["ece"] == pytest.approx(0.5 * 0.4 + 0.5 * 0.1)
+
+
+def test_fit_calibration_lowers_log_loss():
+    rng = np.random.default_rng(1)
+    n = 2000
+    y = rng.integers(0, 3, n)
+    logits = rng.normal(size=(n, 3))
+    logits[np.arange(n), y] += 1.0
+    true_p = np.exp(logits) / np.exp(logits).sum(axis=1, keepdims=True)
+    overconfident = true_p**3 / (true_p**3).sum(axis=1, keepdims=True)
+    cal = fit_calibration(overconfident, y)
+    before = log_loss(y, overconfident, labels=[0, 1, 2])
+    after = log_loss(y, cal.apply(overconfident), labels=[0, 1, 2])
+    assert after < before - 0.05
+    assert cal.temperature > 1.5  # undoes the cube (temperature 3, value of the construction)
+
+
+def test_orientation_training_set_flips_odd_features_and_targets():
+    spec = FeatureSpec()
+    names = orientation_feature_names(spec)
+    assert not any(n.startswith("hog_") for n in names)
+    rng = np.random.default_rng(2)
+    X = rng.normal(size=(5, len(names)))
+    axis = np.array([10.0, 40.0, 100.0, 170.0, 0.0])
+    direction = np.array([15.0, 220.0, 95.0, 345.0, 180.0])
+    Xo, y = orientation_training_set(X, axis, direction, names)
+    # |345 - 170| = 175 > 90: that fan runs along axis + 180.
+    np.testing.assert_array_equal(y[:5], [1, 0, 1, 0, 0])
+    np.testing.assert_array_equal(y[5:], 1 - y[:5])
+    odd = np.array([n in POLARITY_ODD_FEATURES for n in names])
+    assert odd.any()
+    np.testing.assert_array_equal(Xo[5:, odd], -X[:, odd])
+    np.testing.assert_array_equal(Xo[5:, ~odd], X[:, ~odd])
+
+
+def test_fit_unfamiliarity_scores_training_low_and_far_high():
+    from detector.unfamiliar import unfamiliarity_score
+
+    rng = np.random.default_rng(3)
+    summaries = rng.normal(size=(40, 12))
+    stats = fit_unfamiliarity(summaries)
+    assert np.quantile(unfamiliarity_score(stats, summaries), 0.95) <= 1.0
+    far = summaries.mean(axis=0) + 20.0
+    assert unfamiliarity_score(stats, far[None, :])[0] > 1.0
+
+
+# --------------------------------------------------------------------------- train_model bad input
+
+
+def _leftovers(parent, name):
+    return [p.name for p in parent.iterdir() if p.name.startswith(f".{name}.")]
+
+
+def _copy_set(src, dst, consensus_filter=None, tiles_filter=None):
+    shutil.copytree(src, dst)
+    if consensus_filter is not None:
+        cons = pd.read_csv(dst / "consensus.csv")
+        consensus_filter(cons).to_csv(dst / "consensus.csv", index=False)
+    if tiles_filter is not None:
+        tiles = pd.read_csv(dst / "tiles.csv")
+        tiles_filter(tiles).to_csv(dst / "tiles.csv", index=False)
+    return dst
+
+
+def test_train_rejects_empty_tile_set(tiny_tileset, tmp_path):
+    root = _copy_set(tiny_tileset, tmp_path / "set", tiles_filter=lambda t: t.iloc[:0],
+                     consensus_filter=lambda c: c.iloc[:0])
+    with pytest.raises(TileSetError, match="tiles.csv"):
+        train_model(root, tmp_path / "out" / "model", FAST, log=lambda s: None)
+    assert not (tmp_path / "out" / "model").exists()
+
+
+def test_train_rejects_one_image(tiny_tileset, tmp_path):
+    first = pd.read_csv(tiny_tileset / "tiles.csv")["image_id"].iloc[0]
+    root = _copy_set(tiny_tileset, tmp_path / "set", tiles_filter=lambda t: t[t["image_id"] == first],
+                     consensus_filter=lambda c: c[c["tile_id"].str.startswith(first)])
+    with pytest.raises(TileSetError, match="at least 3"):
+        train_model(root, tmp_path / "model", FAST, log=lambda s: None)
+    assert not (tmp_path / "model").exists() and not _leftovers(tmp_path, "model")
+
+
+def test_train_rejects_fitting_images_without_fans(tiny_tileset, tmp_path):
+    root = _copy_set(tiny_tileset, tmp_path / "set", consensus_filter=lambda c: c[c["kind"] != "fan"])
+    with pytest.raises(TileSetError, match="no fans"):
+        train_model(root, tmp_path / "model", FAST, log=lambda s: None)
+    assert not (tmp_path / "model").exists() and not _leftovers(tmp_path, "model")
+
+
+def test_train_rejects_fitting_images_without_spots(tiny_tileset, tmp_path):
+    root = _copy_set(tiny_tileset, tmp_path / "set", consensus_filter=lambda c: c[c["kind"] != "spot"])
+    with pytest.raises(TileSetError, match="no spot patches"):
+        train_model(root, tmp_path / "model", FAST, log=lambda s: None)
+    assert not (tmp_path / "model").exists() and not _leftovers(tmp_path, "model")
+
+
+def test_train_refuses_non_empty_output(tiny_tileset, tmp_path):
+    out = tmp_path / "model"
+    out.mkdir()
+    (out / "keep.txt").write_text("x")
+    with pytest.raises(DetectorError, match="not empty"):
+        train_model(tiny_tileset, out, FAST, log=lambda s: None)
+    assert (out / "keep.txt").read_text() == "x"
+
+
+def test_train_refuses_unwritable_output(tiny_tileset, tmp_path):
+    import os
+
+    parent = tmp_path / "ro"
+    parent.mkdir()
+    parent.chmod(0o500)
+    try:
+        if os.access(parent, os.W_OK):
+            pytest.skip("running as a user who may write anywhere (root): permissions cannot be tested")
+        with pytest.raises(DetectorError, match="not writable"):
+            train_model(tiny_tileset, parent / "model", FAST, log=lambda s: None)
+    finally:
+        parent.chmod(0o700)
+
+
+def test_train_rejects_a_file_as_output_parent(tiny_tileset, tmp_path):
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    with pytest.raises(DetectorError, match="cannot be created"):
+        train_model(tiny_tileset, blocker / "model", FAST, log=lambda s: None)
+
+
+# --------------------------------------------------------------------------- the model card
+
+
+def test_model_card_fields(tiny_model):
+    folder, card = tiny_model
+    assert set(card["files"]) == {"detector.onnx", "orientation.onnx", "objects.onnx"}
+    assert all(len(h) == 64 for h in card["files"].values())
+    assert card["feature_spec"]["version"] >= 1
+    for key in ("before", "after"):
+        assert {"brier", "ece"} <= set(card["calibration"][key])
+    t = card["training"]
+    assert len(t["data_sha256"]) == 64
+    assert {"numpy", "scikit-learn", "onnxruntime", "skl2onnx"} <= set(t["versions"])
+    assert t["seed"] == 1
+    assert max(t["onnx_parity"].values()) < 1e-5
+    h = card["heldout_metrics"]
+    for key in ("fan_f1", "spot_f1", "fan_direction_median_deg", "flip_rate"):
+        assert key in h
+    assert 0.0 <= h["fan_f1"] <= 1.0 and 0.0 <= h["spot_f1"] <= 1.0
+    assert not [p for p in folder.parent.iterdir() if p.name.startswith(".model.")]
+    assert not [p for p in folder.rglob("*") if p.suffix in {".pkl", ".joblib"}]
+
+
+def test_same_seed_gives_the_same_detector(tiny_model, tiny_tileset, tmp_path):
+    from threadpoolctl import threadpool_limits
+
+    from tests.conftest import TINY_CONFIG
+
+    folder, card = tiny_model
+    with threadpool_limits(limits=1):
+        again = train_model(tiny_tileset, tmp_path / "model", TINY_CONFIG, log=lambda s: None)
+    assert again["files"]["detector.onnx"] == card["files"]["detector.onnx"]
+    assert again["heldout_metrics"]["fan_f1"] == card["heldout_metrics"]["fan_f1"]
