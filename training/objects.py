@@ -19,7 +19,7 @@ from detector.features import extract_features
 
 from .scoring import match_objects
 
-__all__ = ["CandidateSet", "label_readings", "candidate_set"]
+__all__ = ["CandidateSet", "label_readings", "candidate_set", "rotate_features"]
 
 
 @dataclass
@@ -67,31 +67,67 @@ def label_readings(candidates, consensus, tile_id):
     return label
 
 
-def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params):
+def rotate_features(features, shape, quarter_turns):
+    """Consensus rows of a tile turned by quarter turns clockwise, as ``np.rot90(tile, -k)`` turns the tile.
+
+    Parameters
+    ----------
+    features : DataFrame
+        Contract rows (x_px, y_px, direction_deg ...).
+    shape : tuple of int
+        (rows, cols) of the unturned tile.
+    quarter_turns : int
+
+    Returns
+    -------
+    turned : DataFrame
+        A clockwise quarter turn maps (x, y) to (rows - 1 - y, x) and adds 90 degrees
+        to every direction (spot axes stay mod 180 by the same rule).
+    """
+    out = features.copy()
+    rows, cols = shape
+    for _ in range(int(quarter_turns) % 4):
+        x, y = out["x_px"].to_numpy(float), out["y_px"].to_numpy(float)
+        out["x_px"], out["y_px"] = rows - 1 - y, x
+        out["direction_deg"] = (out["direction_deg"].to_numpy(float) + 90.0) % 360.0
+        spot = (out["kind"] == "spot").to_numpy()
+        out.loc[spot, "direction_deg"] = out.loc[spot, "direction_deg"] % 180.0
+        rows, cols = cols, rows
+    return out
+
+
+def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0):
     tile = tileset.read_tile(tile_id)
+    consensus = tileset.features_of(tile_id)
+    if rotation % 4:
+        consensus = rotate_features(consensus, tile.shape, rotation)
+        tile = np.ascontiguousarray(np.rot90(tile, -rotation))
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
     candidates = tile_candidates(tile, nodata, maps, spec, params)
     F, _, _ = reading_matrix(candidates)
-    return F, label_readings(candidates, tileset.features_of(tile_id), tile_id)
+    return F, label_readings(candidates, consensus, tile_id)
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
-                  desc="candidates"):
+                  rotations=(0,), desc="candidates"):
     """Labelled candidate readings of some tiles under given patch and polarity predictors.
+
+    ``rotations`` (quarter turns clockwise) augments the readings: each tile is
+    also read turned, with its consensus turned alike.
 
     Returns
     -------
     readings : CandidateSet
     """
     image = tileset.tiles.set_index("tile_id")["image_id"]
-    tile_ids = list(tile_ids)
+    jobs = [(tid, r) for tid in tile_ids for r in rotations]
     results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
-        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params)
-        for tid in tqdm(tile_ids, desc=desc, unit="tile", leave=False)
+        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r)
+        for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )
     return CandidateSet.concat(
         CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object))
-        for t, (F, label) in zip(tile_ids, results)
+        for (t, _), (F, label) in zip(jobs, results)
     )

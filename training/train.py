@@ -240,6 +240,9 @@ def _fit_hgb(X, y, X_val, y_val, config, *, class_weight=None):
         class_weight=class_weight,
         random_state=config.seed,
     )
+    # Validation rows of a class the fitting rows lack cannot be scored by the model.
+    seen = np.isin(y_val, np.unique(y))
+    X_val, y_val = X_val[seen], y_val[seen]
     if len(np.unique(y_val)) < 2:
         model.set_params(validation_fraction=0.15)
         model.fit(X, y)
@@ -376,6 +379,12 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     val, cal_tiles, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
                                      seed=config.seed + 1, sample=False, workers=config.workers,
                                      desc="calibration features")
+    missing = [CLASS_NAMES[c] for c in range(len(CLASS_NAMES)) if not (train.cls == c).any()]
+    if missing:
+        raise TileSetError(
+            f"the fitting images {fit_img!r} of {str(tileset_root)!r} hold no {' or '.join(missing)} patches; "
+            f"the patch classifier needs examples of none, fan and spot (add images or lower --min-votes)."
+        )
     log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
         f"calibration {len(val)}")
 
@@ -519,7 +528,8 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         polarity = _PolarityPredictor(ori, index) if ori is not None else (lambda X: np.full(len(X), 0.5, np.float32))
         held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
         parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
-                                   workers=config.workers, desc="out-of-fold candidates"))
+                                   workers=config.workers, rotations=tuple(config.rotations),
+                                   desc="out-of-fold candidates"))
     return CandidateSet.concat(parts)
 
 
