@@ -75,6 +75,7 @@ _READING_FEATURES = (
     "read_dark_mean",
     "read_polarity_vote",
     "read_p_fan",
+    "read_concentration",
 )
 #: Features of one reading of a candidate, read by the object classifier, in order.
 OBJECT_FEATURE_NAMES = _COMPONENT_FEATURES + _READING_FEATURES
@@ -311,7 +312,12 @@ def _fans_from_vent(xs, ys, w, apex, params):
             sel = mine
         if sel.sum() < 3:
             continue
-        direction = _circ_mean_deg(phi[sel], (w * r)[sel])
+        weights = (w * r)[sel]
+        direction = _circ_mean_deg(phi[sel], weights)
+        rad = np.radians(phi[sel])
+        # Resultant length of the pixel directions: how tightly the fan points one way.
+        concentration = float(np.hypot(np.sum(weights * np.sin(rad)), np.sum(weights * np.cos(rad)))
+                              / max(float(np.sum(weights)), 1e-9))
         # The grey opening removes a fan's narrow tip and the smoothing moves the darkness
         # peak into the fan: the apex is where the fan's own pixels start along its direction.
         u_col, u_row = unit_vector(direction)
@@ -321,7 +327,7 @@ def _fans_from_vent(xs, ys, w, apex, params):
         # A sector of radius L and opening theta has area L^2 theta / 2.
         spread = float(np.clip(np.degrees(2.0 * mine.sum() / length**2), 5.0, 180.0))
         fans.append(dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=direction,
-                         length_px=length, spread_deg=spread, _pixels=mine))
+                         length_px=length, spread_deg=spread, _pixels=mine, _concentration=concentration))
     return fans
 
 
@@ -448,11 +454,11 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
                 s2 = np.average(axis_maps[1][ys[mine], xs[mine]], weights=wm)
                 f["axis_deg"] = float(np.degrees(0.5 * np.arctan2(s2, c2)) % 180.0)
             f["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], mine.mean(), f.pop("_vent_dark"),
-                                       float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm))],
-                                      dtype=np.float32)
+                                       float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm)),
+                                       f.pop("_concentration")], dtype=np.float32)
         spot = _spot_reading(xf, yf)
         spot["_features"] = np.array([0.0, spot["semi_major_px"], 0.0, 1.0, float(w.max()), float(w.mean()), 0.0,
-                                      float(np.average(p_spot, weights=w))], dtype=np.float32)
+                                      float(np.average(p_spot, weights=w)), 0.0], dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return out
 
@@ -494,7 +500,8 @@ def candidate_rows(candidates, tile_id=""):
     return pd.DataFrame(rows, columns=OBJECT_COLUMNS[:-3] + ("axis_deg", "direction_confidence"))
 
 
-def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(), tile_id=""):
+def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(), tile_id="",
+                            direction_confidence=None):
     """The catalog of one tile from its candidates and their readings' scores.
 
     Parameters
@@ -503,6 +510,9 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
     reading_score : ndarray of shape (n_readings,)
         Probability that each reading (order of :func:`reading_matrix`) is right.
     params : AssemblyParams
+    direction_confidence : ndarray of shape (n_readings,), optional
+        Each fan reading's direction confidence; default the orientation model's
+        agreement with the reading's direction, ``(1 + vote) / 2``.
     tile_id : str
 
     Returns
@@ -520,6 +530,9 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
     for c in candidates:
         fan_scores = reading_score[pos:pos + len(c.fans)]
         spot_score = float(reading_score[pos + len(c.fans)])
+        if direction_confidence is not None:
+            for f, conf in zip(c.fans, direction_confidence[pos:pos + len(c.fans)]):
+                f["direction_confidence"] = float(conf)
         pos += len(c.fans) + 1
         best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
         fan_fraction = best_fan / max(best_fan + spot_score, 1e-9)

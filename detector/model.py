@@ -143,6 +143,26 @@ class Model:
         return _run_proba(self._objects, F)[:, 1]
 
 
+    def direction_confidence(self, F):
+        """Probability that each fan reading's direction is within the card's error bound, shape (n,).
+
+        A logistic model over reading features, stored in the card as plain numbers
+        (``direction_confidence``: feature names, mean, scale, coef, intercept,
+        bound_deg). Without it, the orientation model's agreement ``(1 + vote) / 2``.
+        """
+        from .assemble import OBJECT_FEATURE_NAMES
+
+        F = np.asarray(F, dtype=np.float64)
+        fit = self.card.get("direction_confidence")
+        if len(F) == 0:
+            return np.zeros(0)
+        if not fit:
+            return 0.5 * (1.0 + F[:, OBJECT_FEATURE_NAMES.index("read_polarity_vote")])
+        idx = [OBJECT_FEATURE_NAMES.index(n) for n in fit["features"]]
+        z = (F[:, idx] - np.asarray(fit["mean"])) / np.asarray(fit["scale"])
+        return 1.0 / (1.0 + np.exp(-(z @ np.asarray(fit["coef"]) + float(fit["intercept"]))))
+
+
 def _run_proba(session, X):
     X = np.ascontiguousarray(X, dtype=np.float32)
     name = session.get_inputs()[0].name

@@ -19,7 +19,8 @@ from detector.features import extract_features
 
 from .scoring import match_objects
 
-__all__ = ["CandidateSet", "label_readings", "candidate_set", "rotate_features"]
+__all__ = ["CandidateSet", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
+           "CONFIDENCE_FEATURES"]
 
 
 @dataclass
@@ -33,11 +34,14 @@ class CandidateSet:
     label : ndarray of shape (n,), int
         1 when the reading matches a consensus feature of its kind, else 0.
     image_id : ndarray of shape (n,), object
+    error_deg : ndarray of shape (n,)
+        Direction error of a matched fan reading against its consensus fan (NaN otherwise).
     """
 
     F: np.ndarray
     label: np.ndarray
     image_id: np.ndarray
+    error_deg: np.ndarray = None
 
     def __len__(self):
         return len(self.label)
@@ -46,9 +50,10 @@ class CandidateSet:
     def concat(cls, parts):
         parts = list(parts)
         if not parts:
-            return cls(np.zeros((0, len(OBJECT_FEATURE_NAMES)), np.float32), np.zeros(0, int), np.zeros(0, object))
+            return cls(np.zeros((0, len(OBJECT_FEATURE_NAMES)), np.float32), np.zeros(0, int), np.zeros(0, object),
+                       np.zeros(0))
         return cls(np.concatenate([p.F for p in parts]), np.concatenate([p.label for p in parts]),
-                   np.concatenate([p.image_id for p in parts]))
+                   np.concatenate([p.image_id for p in parts]), np.concatenate([p.error_deg for p in parts]))
 
 
 def label_readings(candidates, consensus, tile_id):
@@ -57,14 +62,20 @@ def label_readings(candidates, consensus, tile_id):
     Returns
     -------
     label : ndarray of int, one per reading in the order of :func:`detector.assemble.reading_matrix`
+    error_deg : ndarray of float
+        Direction error of each matched fan reading (NaN for the others).
     """
     readings = candidate_rows(candidates, tile_id)
     label = np.zeros(len(readings), dtype=np.int64)
+    error = np.full(len(readings), np.nan)
     if len(readings) == 0 or consensus.empty:
-        return label
+        return label, error
     pairs = match_objects(readings, consensus.reset_index(drop=True))
-    label[pairs["det_index"].to_numpy(int)] = 1
-    return label
+    idx = pairs["det_index"].to_numpy(int)
+    label[idx] = 1
+    fan = (pairs["kind"] == "fan").to_numpy()
+    error[idx[fan]] = pairs["direction_error_deg"].to_numpy(float)[fan]
+    return label, error
 
 
 def rotate_features(features, shape, quarter_turns):
@@ -107,7 +118,7 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
     candidates = tile_candidates(tile, nodata, maps, spec, params)
     F, _, _ = reading_matrix(candidates)
-    return F, label_readings(candidates, consensus, tile_id)
+    return (F, *label_readings(candidates, consensus, tile_id))
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
@@ -128,6 +139,38 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )
     return CandidateSet.concat(
-        CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object))
-        for (t, _), (F, label) in zip(jobs, results)
+        CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object), error)
+        for (t, _), (F, label, error) in zip(jobs, results)
     )
+
+
+#: Reading features the direction confidence is fitted on.
+CONFIDENCE_FEATURES = ("read_length_px", "read_spread_deg", "read_share", "read_vent_dark", "read_dark_mean",
+                       "read_polarity_vote", "read_p_fan", "read_concentration", "obj_n_fans")
+
+
+def fit_direction_confidence(readings, *, bound_deg=20.0, C=1.0):
+    """Logistic model of "this fan reading's direction is within ``bound_deg`` of consensus".
+
+    Fitted on matched fan readings (out of fold); stored in the model card as
+    plain numbers and evaluated by :meth:`detector.model.Model.direction_confidence`.
+
+    Returns
+    -------
+    fit : dict or None
+        None when there are too few matched fans (or only one outcome).
+    """
+    from sklearn.linear_model import LogisticRegression
+
+    ok = np.isfinite(readings.error_deg)
+    y = (readings.error_deg[ok] <= bound_deg).astype(int)
+    if ok.sum() < 20 or len(np.unique(y)) < 2:
+        return None
+    idx = [OBJECT_FEATURE_NAMES.index(n) for n in CONFIDENCE_FEATURES]
+    Z = readings.F[ok][:, idx].astype(np.float64)
+    mean, scale = Z.mean(axis=0), Z.std(axis=0)
+    scale[scale < 1e-9] = 1.0
+    model = LogisticRegression(C=C, max_iter=1000).fit((Z - mean) / scale, y)
+    return {"features": list(CONFIDENCE_FEATURES), "mean": mean.tolist(), "scale": scale.tolist(),
+            "coef": model.coef_[0].tolist(), "intercept": float(model.intercept_[0]), "bound_deg": float(bound_deg),
+            "n": int(ok.sum()), "share_within_bound": float(y.mean())}

@@ -33,7 +33,7 @@ from detector.unfamiliar import unfamiliarity_distance
 
 from .dataset import build_patch_set
 from .export import onnx_parity, to_onnx_bytes
-from .objects import CandidateSet, candidate_set
+from .objects import CandidateSet, candidate_set, fit_direction_confidence
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]
@@ -415,6 +415,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     cand_val = candidate_set(tileset, ids["calibration"], spec, full_patches, full_polarity, params,
                              workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config)
+    confidence_fit = fit_direction_confidence(cand_fit)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
 
@@ -443,6 +444,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
                         "before": cal_before, "after": cal_after, "images": cal_img},
         "assembly": asdict(params),
         "object_features": list(OBJECT_FEATURE_NAMES),
+        "direction_confidence": confidence_fit,
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
