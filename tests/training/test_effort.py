@@ -403,7 +403,8 @@ def test_run_effort_out_folder(folders, tmp_path):
 def test_learning_curve_smoke(tmp_path):
     from training.synth import synthesize_tileset
 
-    root = synthesize_tileset(tmp_path / "tiles", n_images=3, tiles_per_image=2, seed=3)
+    # The same tiny set as the session fixtures: every class occurs in its fitting image.
+    root = synthesize_tileset(tmp_path / "tiles", n_images=3, tiles_per_image=1, seed=3)
     curve = learning_curve(root, seed=0, out=tmp_path / "curve", max_patches=2000, max_iter=20, log=lambda *_: None)
     # Three images: one held out, one run on the other two (fit + calibration).
     assert [p["n_images"] for p in curve["points"]] == [2]
