@@ -48,7 +48,8 @@ def _add_training_commands(commands):
     evaluate.add_argument("model_dir", type=Path)
     evaluate.add_argument("tile_set", type=Path)
     evaluate.add_argument("--out", type=Path, required=True)
-    evaluate.add_argument("--min-score", type=float, default=0.5)
+    evaluate.add_argument("--min-score", type=float, default=None,
+                          help="Smallest detection score kept (default: the model's tuned threshold, else 0.5).")
     evaluate.add_argument("--force", action="store_true")
     evaluate.set_defaults(func=_evaluate)
 

@@ -82,7 +82,9 @@ def run_demo(out, *, tiles, model, retrain=False):
         import shutil
 
         shutil.rmtree(screen_dir)
-    screen(model_dir, [mosaic], screen_dir)
+    summary = screen(model_dir, [mosaic], screen_dir)
+    print(summary.format())
+    print(f"screening outputs: {screen_dir} (quicklook.png, rose.png, tiles.csv, detections.csv, detections.geojson)")
 
     _section("5. remaining volunteer effort")
     from .effort import run_effort

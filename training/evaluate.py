@@ -255,7 +255,7 @@ def write_detections_csv(detections, path):
         frame.to_csv(tmp, index=False, float_format="%.3f")
 
 
-def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, force=False, seed=0, log=print):
+def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print):
     """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
 
     Parameters
@@ -264,8 +264,10 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, 
     tileset_root : path-like
     out : path-like
         Report folder (must be new or empty unless ``force``).
-    min_score : float, default=0.5
-        Smallest detection score kept.
+    min_score : float, optional
+        Smallest detection score kept; default the model's own threshold (tuned on
+        its calibration images and stored in the card), so that the report and the
+        card's held-out metrics use the same operating point.
     images : sequence of str, optional
         Score only these images of the tile set (e.g. the model's held-out images).
 
@@ -279,9 +281,11 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, 
     out = Path(out)
     if out.exists() and any(out.iterdir()) and not force:
         raise DetectorError(f"report folder {str(out)!r} is not empty; choose another or pass --force.")
-    if not 0.0 <= min_score <= 1.0:
+    if min_score is not None and not 0.0 <= min_score <= 1.0:
         raise DetectorError(f"--min-score must be in [0, 1]; got {min_score!r}.")
     model = load_model(model_dir)
+    if min_score is None:
+        min_score = float(model.assembly.get("min_score", 0.5))
     tileset = load_tileset(tileset_root, min_votes=int(model.card["training"]["config"]["min_votes"]))
     if images is not None:
         unknown = sorted(set(images) - set(tileset.image_ids))
@@ -291,6 +295,7 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=0.5, images=None, 
     if len(tileset.tiles) == 0:
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
     tile_ids = tileset.tiles["tile_id"].tolist()
+    model.card["assembly"] = {**model.assembly, "min_score": min(min_score, float(model.assembly.get("min_score", 0.5)))}
     run = run_on_tiles(model, tileset, tile_ids, desc="evaluate")
     detections = run["detections"]
     detections = detections[detections["score"] >= min_score].reset_index(drop=True)
