@@ -31,6 +31,7 @@ from scipy.special import expit
 
 from detector.contract import (
     CONSENSUS_COLUMNS,
+    CONSENSUS_REQUIRED,
     CONSENSUS_FILE,
     TILES_OPTIONAL,
     TILES_REQUIRED,
@@ -65,18 +66,8 @@ _QUIET_MARGIN_PX = 160
 #: Standard deviation of fan directions about their wind, degrees (value chosen for the scenes).
 WIND_SCATTER_DEG = 12.0
 
-_TRUTH_COLUMNS = (
-    "kind",
-    "x_px",
-    "y_px",
-    "direction_deg",
-    "length_px",
-    "spread_deg",
-    "semi_major_px",
-    "semi_minor_px",
-    "contrast",
-    "vent",
-)
+# The contract's geometry columns (kind .. semi_minor_px) plus what only the renderer knows.
+_TRUTH_COLUMNS = CONSENSUS_REQUIRED[1:9] + ("contrast", "vent")
 
 
 # ----------------------------------------------------------------------------- rendering
