@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 
 from . import _dense
+from .circstats import circular_std, robust_circular_mean
 from .assemble import (
     AssemblyParams,
     find_candidates,
@@ -18,7 +19,8 @@ from .features import extract_features
 from .geometry import unit_vector
 from .spec import patch_axis_deg
 
-__all__ = ["TileResult", "TileMaps", "detect_tile", "tile_maps", "tile_candidates", "tile_summary_vector"]
+__all__ = ["TileResult", "TileMaps", "detect_tile", "tile_maps", "tile_candidates", "tile_summary_vector",
+           "fan_direction_weights", "tile_direction_stats"]
 
 
 @dataclass
@@ -89,6 +91,44 @@ class TileMaps:
     class_maps: np.ndarray
     polarity_maps: np.ndarray
     axis_maps: np.ndarray
+
+
+def fan_direction_weights(detections):
+    """Weight of each detected fan in its tile's mean direction: score x direction confidence x length.
+
+    Wrong fans, not matched ones, spoil a tile's mean, so fans the model is
+    less sure of count less. A missing score or confidence counts as 1.
+    """
+    def column(name):
+        if name not in detections:
+            return np.ones(len(detections))
+        return np.nan_to_num(detections[name].to_numpy(dtype=float), nan=1.0)
+
+    return column("score") * column("direction_confidence") * detections["length_px"].to_numpy(dtype=float)
+
+
+def tile_direction_stats(direction_deg, weights):
+    """Robust mean direction and circular spread of a tile's fans.
+
+    Parameters
+    ----------
+    direction_deg : ndarray of shape (n,)
+        Fan directions, degrees clockwise from image up.
+    weights : ndarray of shape (n,)
+        Non-negative weights, e.g. :func:`fan_direction_weights`.
+
+    Returns
+    -------
+    mean_deg, spread_deg : float
+        :func:`detector.circstats.robust_circular_mean` and
+        :func:`detector.circstats.circular_std` (weighted), degrees; NaN
+        without fans or weight.
+    """
+    direction_deg = np.asarray(direction_deg, dtype=float)
+    weights = np.nan_to_num(np.clip(np.asarray(weights, dtype=float), 0.0, None), nan=0.0)
+    if direction_deg.size == 0 or weights.sum() <= 0:
+        return np.nan, np.nan
+    return float(robust_circular_mean(direction_deg, weights)), float(circular_std(direction_deg, weights))
 
 
 def tile_summary_vector(X, valid):

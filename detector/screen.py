@@ -54,7 +54,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .circstats import circular_std, robust_circular_mean
+from .detect import fan_direction_weights, tile_direction_stats
 from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
 from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson
@@ -302,38 +302,6 @@ def _cached_source(path, band, nodata):
     return _SOURCES[key]
 
 
-def tile_direction_stats(direction_deg, weights):
-    """Robust mean direction and circular spread of a tile's fans.
-
-    Parameters
-    ----------
-    direction_deg : ndarray of shape (n,)
-        Fan directions, degrees clockwise from image up.
-    weights : ndarray of shape (n,)
-        Non-negative weights, e.g. ``score * direction_confidence * length_px``.
-
-    Returns
-    -------
-    mean_deg, spread_deg : float
-        :func:`detector.circstats.robust_circular_mean` and
-        :func:`detector.circstats.circular_std` (weighted), degrees; NaN
-        without fans or weight.
-    """
-    direction_deg = np.asarray(direction_deg, dtype=float)
-    weights = np.nan_to_num(np.clip(np.asarray(weights, dtype=float), 0.0, None), nan=0.0)
-    if direction_deg.size == 0 or weights.sum() <= 0:
-        return np.nan, np.nan
-    return float(robust_circular_mean(direction_deg, weights)), float(circular_std(direction_deg, weights))
-
-
-def _fan_weights(df):
-    return (
-        df["score"].to_numpy(dtype=float)
-        * df["direction_confidence"].to_numpy(dtype=float)
-        * df["length_px"].to_numpy(dtype=float)
-    )
-
-
 def _empty_detections():
     return {c: [] for c in DETECTION_OUTPUT_COLUMNS}
 
@@ -409,7 +377,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         # The core is narrower than a patch: fall back to the whole window read.
         p_deposit = result.p_deposit
     fans = det.loc[is_fan]
-    mean_dir, spread = tile_direction_stats(fans["direction_deg"].to_numpy(dtype=float), _fan_weights(fans))
+    mean_dir, spread = tile_direction_stats(fans["direction_deg"].to_numpy(dtype=float), fan_direction_weights(fans))
     fan_core = result.fan_cover[core]
     row.update(
         p_deposit=p_deposit,
@@ -877,7 +845,7 @@ def _per_image(tiles, detections):
         area = float((scored["width"] * scored["height"]).sum())
         cover = float(((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
         fans = detections[(detections["image"] == name) & (detections["kind"] == "fan")]
-        w = _fan_weights(fans)
+        w = fan_direction_weights(fans)
         mean, spread = tile_direction_stats(fans["direction_deg"].to_numpy(dtype=float), w)
         rec = {
             "image": str(name), "tiles": len(group), "fans": len(fans),

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from detector.circstats import grouped_circular_mean
+from detector.detect import fan_direction_weights, tile_direction_stats
 from detector.errors import DetectorError
 from detector.geometry import angular_difference, axial_difference
 
@@ -451,9 +452,13 @@ def _tile_means(df, angle_col, weight_col):
 def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
     """Error of the per-tile mean fan direction, for tiles with at least ``min_fans`` consensus fans.
 
-    Both sides use the same estimator: the circular mean of the tile's fans
-    weighted by their length (detections by their own length, consensus by
-    its length). A tile without any detected fan gets a NaN error.
+    The consensus side is the circular mean of the tile's fans weighted by
+    length. The detections' side pools robustly
+    (:func:`detector.detect.tile_direction_stats`), weighting each fan by
+    score x direction confidence x length
+    (:func:`detector.detect.fan_direction_weights`), because a few wrong fans
+    would otherwise drag the mean; without those columns it is the length-weighted
+    robust mean. A tile without any detected fan gets a NaN error.
 
     Returns
     -------
@@ -466,7 +471,9 @@ def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
     keep = counts.index[counts >= min_fans]
     cons_mean = _tile_means(cf[cf["tile_id"].isin(keep)], "direction_deg", "length_px")
     df_ = detections[(detections["kind"] == "fan") & detections["tile_id"].isin(keep)]
-    pred_mean = _tile_means(df_, "direction_deg", "length_px").reindex(cons_mean.index)
+    pred = {tid: tile_direction_stats(g["direction_deg"].to_numpy(float), fan_direction_weights(g))[0]
+            for tid, g in df_.groupby("tile_id")}
+    pred_mean = pd.Series(pred, dtype=float).reindex(cons_mean.index)
     image = tiles.set_index("tile_id")["image_id"]
     out = pd.DataFrame(
         {

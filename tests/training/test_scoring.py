@@ -2,6 +2,7 @@ import json
 
 import numpy as np
 import pandas as pd
+from scipy.stats import circmean
 import pytest
 from scipy.spatial import distance
 from sklearn import metrics
@@ -225,17 +226,22 @@ def test_oracle_polarity_never_worse_than_random():
     assert m["prevailing"]["skill_median"] == pytest.approx(1 - np.median(e["model"]) / np.median(e["prevailing"]))
 
 
-def test_tile_mean_uses_length_weights():
+def test_tile_mean_weights_consensus_by_length_and_pools_detections_robustly():
     tiles = pd.DataFrame({"tile_id": ["t"], "image_id": ["I"], "width": [100], "height": [100]})
     cons = pd.DataFrame([_fan("t", 10, 10, 0, length=10), _fan("t", 50, 10, 90, length=10),
                          _fan("t", 90, 10, 90, length=20)])
-    det = pd.DataFrame([_fan("t", 10, 10, 0, length=10), _fan("t", 50, 10, 90, length=20)])
+    # Three detected fans about 90 degrees and one wrong fan pointing the other way.
+    det = pd.DataFrame([_fan("t", 10, 10, 80, length=20), _fan("t", 30, 10, 90, length=20),
+                        _fan("t", 50, 10, 100, length=20), _fan("t", 70, 10, 200, length=15)])
     out = scoring.tile_mean_errors(det, cons, tiles)
+    # Consensus: circular mean weighted by length, sum of (sin, cos) * length by hand.
     cons_mean = np.degrees(np.arctan2(30, 10))
-    det_mean = np.degrees(np.arctan2(20, 10))
     assert out["consensus_mean_deg"].iloc[0] == pytest.approx(cons_mean)
-    assert out["predicted_mean_deg"].iloc[0] == pytest.approx(det_mean)
-    assert out["error_deg"].iloc[0] == pytest.approx(cons_mean - det_mean, abs=1e-9)
+    # The symmetric cluster's mean is 90; the wrong fan does not move the robust mean.
+    assert out["predicted_mean_deg"].iloc[0] == pytest.approx(90.0, abs=0.5)
+    plain = circmean(np.radians(np.repeat([80, 90, 100, 200], [20, 20, 20, 15])), high=2 * np.pi)  # scipy reference
+    assert abs(np.degrees(plain) - 90.0) > 5.0
+    assert out["error_deg"].iloc[0] == pytest.approx(abs(cons_mean - 90.0), abs=0.5)
 
 
 def test_bootstrap_deterministic_and_brackets():
