@@ -50,6 +50,7 @@ def _add_training_commands(commands):
     evaluate.add_argument("--out", type=Path, required=True)
     evaluate.add_argument("--min-score", type=float, default=None,
                           help="Smallest detection score kept (default: the model's tuned threshold, else 0.5).")
+    evaluate.add_argument("--workers", type=int, default=1)
     evaluate.add_argument("--force", action="store_true")
     evaluate.set_defaults(func=_evaluate)
 
@@ -94,7 +95,8 @@ def _train(args):
 def _evaluate(args):
     from .evaluate import evaluate_model
 
-    evaluate_model(args.model_dir, args.tile_set, args.out, min_score=args.min_score, force=args.force)
+    evaluate_model(args.model_dir, args.tile_set, args.out, min_score=args.min_score, force=args.force,
+                   workers=args.workers)
     print(f"report: {args.out / 'report.md'}")
 
 

@@ -11,7 +11,7 @@ from detector.features import extract_features, patch_targets
 from detector.spec import patch_axis_deg
 from detector.labels import rasterise_features
 
-__all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels"]
+__all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs"]
 
 
 @dataclass
@@ -154,8 +154,31 @@ def _sample_tile(tf, rng, *, neg_ratio, hard_share):
     return idx, weight
 
 
+def rotation_jobs(tile_ids, rotations, *, per_tile=None, seed=0):
+    """(tile_id, quarter turns) pairs: every rotation of every tile, or ``per_tile`` drawn ones.
+
+    Drawing one rotation per tile keeps rotation augmentation in a large catalog
+    (the set as a whole sees every orientation) at the cost of one extraction per
+    tile. The unturned tile of each tile is always among its draws, so that
+    per-tile summaries exist.
+    """
+    rotations = tuple(int(r) % 4 for r in rotations)
+    if per_tile is None or per_tile >= len(rotations):
+        return [(tid, r) for tid in tile_ids for r in rotations]
+    rng = np.random.default_rng(seed)
+    jobs = []
+    for tid in tile_ids:
+        extra = [r for r in rotations if r != 0]
+        picked = [0] if per_tile >= 1 and 0 in rotations else []
+        picked += list(rng.choice(extra, size=max(per_tile - len(picked), 0), replace=False)) if extra else []
+        if not picked:
+            picked = [int(rng.choice(rotations))]
+        jobs.extend((tid, int(r)) for r in picked)
+    return jobs
+
+
 def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0, neg_ratio=3.0,
-                    hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features"):
+                    hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features", jobs=None):
     """Extract, label and sample the patches of some tiles.
 
     Parameters
@@ -177,6 +200,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         joblib processes.
     sample : bool, default=True
         False keeps every valid patch (calibration wants the true class mix).
+    jobs : list of (tile_id, quarter_turns), optional
+        Explicit extraction jobs (see :func:`rotation_jobs`); overrides ``tile_ids`` x ``rotations``.
 
     Returns
     -------
@@ -186,7 +211,7 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
     summaries : ndarray of shape (n_tiles, n_features)
         Mean feature vector of each unrotated tile (for the unfamiliarity score).
     """
-    jobs = [(tid, r) for tid in tile_ids for r in rotations]
+    jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     seeds = np.random.SeedSequence(seed).spawn(len(jobs))
     iterator = tqdm(list(zip(jobs, seeds)), desc=desc, unit="tile", leave=False)
     # Sampling happens inside the worker so that only kept patches travel back: memory

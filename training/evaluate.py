@@ -25,7 +25,44 @@ __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_car
            "write_detections_csv", "confidence_validation"]
 
 
-def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", keep_results=False):
+def _run_one(model, tileset, tile_id, tau):
+    """Detections and patch targets of one labelled tile (``model`` is a Model or a model folder)."""
+    if not hasattr(model, "feature_spec"):
+        model = _worker_model(str(model), None)
+    spec = model.feature_spec
+    tile = tileset.read_tile(tile_id)
+    nodata = tile == spec.nodata_value
+    X, grid = extract_features(tile, spec, nodata_mask=nodata)
+    masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
+    targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
+    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid))
+    valid = np.asarray(grid.valid, dtype=bool)
+    info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
+            "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
+            "shape": tile.shape, "valid_fraction": result.valid_fraction}
+    return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
+
+
+_MODELS = {}
+
+
+def _worker_model(folder, assembly):
+    """A worker process's loaded model, loaded once per folder (and assembly override)."""
+    key = (folder, None if assembly is None else json.dumps(assembly, sort_keys=True))
+    if key not in _MODELS:
+        model = load_model(folder)
+        if assembly is not None:
+            model.card["assembly"] = assembly
+        _MODELS.clear()
+        _MODELS[key] = model
+    return _MODELS[key]
+
+
+def _run_one_in_worker(folder, assembly, tileset, tile_id, tau):
+    return _run_one(_worker_model(folder, assembly), tileset, tile_id, tau)
+
+
+def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1):
     """Detections and patch-level targets of the model on labelled tiles.
 
     Parameters
@@ -35,44 +72,34 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", keep_resu
     tile_ids : sequence of str
     tau : float, optional
         Coverage threshold for the patch targets; default the model's training tau.
-    keep_results : bool, default=False
-        Keep every TileResult (memory grows with tiles).
+    workers : int, default=1
+        joblib processes; each loads the model from its folder once.
 
     Returns
     -------
     run : dict
         ``detections`` (DataFrame, OBJECT_COLUMNS), ``patch_true`` (int array),
         ``patch_proba`` (n, 3), ``per_tile`` (list of dict: tile_id, p_deposit,
-        summary...), ``features`` (list of (X, grid) kept for re-assembly, only
-        with keep_results), ``results``.
+        summary...).
     """
+    from joblib import Parallel, delayed
+
     tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
-    spec = model.feature_spec
-    frames, y_true, proba, per_tile, cache = [], [], [], [], []
-    for tile_id in tqdm(list(tile_ids), desc=desc, unit="tile", leave=False):
-        tile = tileset.read_tile(tile_id)
-        nodata = tile == spec.nodata_value
-        X, grid = extract_features(tile, spec, nodata_mask=nodata)
-        masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
-        targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
-        result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid))
-        valid = np.asarray(grid.valid, dtype=bool)
-        y_true.append(np.asarray(targets.label)[valid])
-        proba.append(result.proba[valid])
-        frames.append(result.detections)
-        per_tile.append({"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
-                         "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
-                         "shape": tile.shape, "valid_fraction": result.valid_fraction})
-        if keep_results:
-            cache.append((tile, nodata, X, grid, result))
-    detections = pd.concat([f for f in frames if len(f)], ignore_index=True) if any(len(f) for f in frames) \
-        else pd.DataFrame(columns=OBJECT_COLUMNS)
+    tile_ids = list(tile_ids)
+    iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False)
+    if workers > 1:
+        results = Parallel(n_jobs=workers, backend="loky")(
+            delayed(_run_one_in_worker)(str(model.folder), model.assembly, tileset, tid, tau) for tid in iterator
+        )
+    else:
+        results = [_run_one(model, tileset, tid, tau) for tid in iterator]
+    frames = [r[0] for r in results if len(r[0])]
+    detections = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=OBJECT_COLUMNS)
     return {
         "detections": detections,
-        "patch_true": np.concatenate(y_true) if y_true else np.zeros(0, int),
-        "patch_proba": np.concatenate(proba) if proba else np.zeros((0, 3)),
-        "per_tile": per_tile,
-        "cache": cache,
+        "patch_true": np.concatenate([r[1] for r in results]) if results else np.zeros(0, int),
+        "patch_proba": np.concatenate([r[2] for r in results]) if results else np.zeros((0, 3)),
+        "per_tile": [r[3] for r in results],
     }
 
 
@@ -90,7 +117,7 @@ def _prevailing(model):
     return model.card.get("training", {}).get("prevailing_deg")
 
 
-def tune_assembly(model_dir, tileset, tile_ids, *, log=print):
+def tune_assembly(model_dir, tileset, tile_ids, *, log=print, workers=1):
     """Choose the smallest object score kept, maximising mean object F1 on some tiles.
 
     Returns
@@ -100,10 +127,10 @@ def tune_assembly(model_dir, tileset, tile_ids, *, log=print):
     """
     model = load_model(model_dir)
     model.card["assembly"] = {**model.assembly, "min_score": 0.0}
-    run = run_on_tiles(model, tileset, tile_ids, desc="tune")
+    run = run_on_tiles(model, tileset, tile_ids, desc="tune", workers=workers)
     consensus = _consensus_of(tileset, tile_ids)
     table = []
-    for min_score in np.round(np.arange(0.2, 0.85, 0.05), 2):
+    for min_score in np.round(np.arange(0.05, 0.9, 0.05), 2):
         det = run["detections"]
         f1 = _object_f1(det[det["score"] >= min_score].reset_index(drop=True), consensus)
         table.append({"min_score": float(min_score), **f1})
@@ -158,7 +185,7 @@ def _per_tile_table(run, detections, consensus, tiles, model):
     return rows
 
 
-def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0):
+def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0, workers=1):
     """Score a model on some tiles of a labelled tile set (the training run's held-out images).
 
     Returns
@@ -168,7 +195,7 @@ def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0):
         metrics), ``per_tile`` (per-tile figures for the effort estimate).
     """
     model = load_model(model_dir)
-    run = run_on_tiles(model, tileset, tile_ids, desc="held-out")
+    run = run_on_tiles(model, tileset, tile_ids, desc="held-out", workers=workers)
     consensus = _consensus_of(tileset, tile_ids)
     tiles = _tiles_frame(tileset, tile_ids)
     detections = run["detections"]
@@ -255,7 +282,8 @@ def write_detections_csv(detections, path):
         frame.to_csv(tmp, index=False, float_format="%.3f")
 
 
-def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print):
+def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print,
+                   workers=1):
     """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
 
     Parameters
@@ -296,7 +324,7 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
     tile_ids = tileset.tiles["tile_id"].tolist()
     model.card["assembly"] = {**model.assembly, "min_score": min(min_score, float(model.assembly.get("min_score", 0.5)))}
-    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate")
+    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate", workers=workers)
     detections = run["detections"]
     detections = detections[detections["score"] >= min_score].reset_index(drop=True)
     tiles = tileset.tiles

@@ -122,18 +122,19 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
-                  rotations=(0,), desc="candidates"):
+                  rotations=(0,), jobs=None, desc="candidates"):
     """Labelled candidate readings of some tiles under given patch and polarity predictors.
 
     ``rotations`` (quarter turns clockwise) augments the readings: each tile is
-    also read turned, with its consensus turned alike.
+    also read turned, with its consensus turned alike. ``jobs`` (pairs of tile id
+    and quarter turns) replaces ``tile_ids`` x ``rotations``.
 
     Returns
     -------
     readings : CandidateSet
     """
     image = tileset.tiles.set_index("tile_id")["image_id"]
-    jobs = [(tid, r) for tid in tile_ids for r in rotations]
+    jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
         delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r)
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)

@@ -31,7 +31,7 @@ from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_distance
 
-from .dataset import build_patch_set
+from .dataset import build_patch_set, rotation_jobs
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, fit_direction_confidence
 
@@ -62,6 +62,12 @@ class TrainConfig:
         64 px patch) still teach the classifier.
     rotations : tuple of int, default=(0, 1, 2, 3)
         Quarter-turn rotation augmentation of the training tiles.
+    rotations_per_tile : int, optional
+        How many of ``rotations`` each fitting tile is extracted in (the unturned
+        one first, the others drawn). Default: all of them for up to
+        ``all_rotations_below`` fitting tiles, else 2, so that large catalogs keep
+        the augmentation at about twice the cost of no augmentation.
+    all_rotations_below : int, default=200
     neg_ratio : float, default=3.0
     max_iter : int, default=300
     learning_rate : float, default=0.1
@@ -77,6 +83,8 @@ class TrainConfig:
     workers: int = 1
     tau: float = 0.05
     rotations: tuple = (0, 1, 2, 3)
+    rotations_per_tile: int = None
+    all_rotations_below: int = 200
     neg_ratio: float = 3.0
     max_iter: int = 300
     learning_rate: float = 0.1
@@ -367,9 +375,14 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         )
     log(f"images: fit {len(fit_img)}, calibration {len(cal_img)}, held out {len(hold_img)} ({', '.join(hold_img)})")
 
-    train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, rotations=tuple(config.rotations),
-                               seed=config.seed, neg_ratio=config.neg_ratio, max_patches=config.max_patches,
-                               workers=config.workers, desc="fit features")
+    per_tile = config.rotations_per_tile
+    if per_tile is None:
+        per_tile = len(config.rotations) if len(ids["fit"]) < config.all_rotations_below else 2
+    fit_jobs = rotation_jobs(ids["fit"], config.rotations, per_tile=per_tile, seed=config.seed)
+    train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
+                                              seed=config.seed, neg_ratio=config.neg_ratio,
+                                              max_patches=config.max_patches, workers=config.workers,
+                                              desc="fit features")
     missing = [name for c, name in enumerate(CLASS_NAMES) if not np.any(train.cls == c)]
     if missing:
         raise TileSetError(
@@ -409,7 +422,8 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     # The object classifier learns from candidates whose patch maps come from models that
     # never saw their image (two folds over the fitting images), like new images will.
     params = AssemblyParams()
-    cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log)
+    cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log,
+                                       per_tile)
     full_patches = _CalibratedPredictor(classifier, calibration)
     full_polarity = _PolarityPredictor(orientation, index)
     cand_val = candidate_set(tileset, ids["calibration"], spec, full_patches, full_polarity, params,
@@ -474,11 +488,11 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         # Tune object assembly on the calibration images, then score the held-out images,
         # both through the exported ONNX files exactly as users will run them.
-        tuning = _tune_assembly(tmp, tileset, ids["calibration"], log=log)
+        tuning = _tune_assembly(tmp, tileset, ids["calibration"], log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
-        heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log)
+        heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log, workers=config.workers)
         card["heldout_metrics"] = summarise_for_card(heldout)
         card["heldout_tiles"] = heldout["per_tile"]
         card["training"]["seconds"] = round(time.perf_counter() - started, 1)
@@ -514,7 +528,7 @@ def _orientation_rows(patches, mask, index, names):
                                     patches.fan_direction_deg[fan], names)
 
 
-def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log):
+def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log, per_tile):
     rng = np.random.default_rng(config.seed + 7)
     order = list(rng.permutation(fit_img))
     folds = [order[0::2], order[1::2]] if len(order) >= 2 else [order]
@@ -529,9 +543,9 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         ori = _fit_hgb(Xo, yo, Xov, yov, config) if len(np.unique(yo)) > 1 else None
         polarity = _PolarityPredictor(ori, index) if ori is not None else (lambda X: np.full(len(X), 0.5, np.float32))
         held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
+        jobs = rotation_jobs(held_tiles, config.rotations, per_tile=per_tile, seed=config.seed + 3)
         parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
-                                   workers=config.workers, rotations=tuple(config.rotations),
-                                   desc="out-of-fold candidates"))
+                                   workers=config.workers, jobs=jobs, desc="out-of-fold candidates"))
     return CandidateSet.concat(parts)
 
 
@@ -541,10 +555,10 @@ def _writable(folder):
     return os.access(folder, os.W_OK)
 
 
-def _tune_assembly(model_dir, tileset, tile_ids, *, log):
+def _tune_assembly(model_dir, tileset, tile_ids, *, log, workers=1):
     from .evaluate import tune_assembly
 
-    return tune_assembly(model_dir, tileset, tile_ids, log=log)
+    return tune_assembly(model_dir, tileset, tile_ids, log=log, workers=workers)
 
 
 def format_card_summary(card, folder):

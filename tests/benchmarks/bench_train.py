@@ -29,7 +29,8 @@ def main():
     parser.add_argument("--tiles", type=int, default=1000)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--seed", type=int, default=7)
-    parser.add_argument("--keep", type=Path, default=None, help="Keep the tile set and model here.")
+    parser.add_argument("--keep", type=Path, default=None,
+                        help="Keep the tile set and model here (a tile set already there is reused).")
     args = parser.parse_args()
     from training.synth import synthesize_tileset
 
@@ -38,9 +39,11 @@ def main():
     n_images = max(3, -(-args.tiles // tiles_per_image))
     tileset = work / "tiles"
     t0 = time.perf_counter()
-    synthesize_tileset(tileset, n_images=n_images, tiles_per_image=tiles_per_image, seed=args.seed, force=True)
-    render_s = time.perf_counter() - t0
-    print(f"rendered {n_images * tiles_per_image} tiles in {render_s:.0f} s (not timed)", flush=True)
+    if args.keep and (tileset / "tiles.csv").is_file():
+        print(f"reusing the tile set in {tileset}", flush=True)
+    else:
+        synthesize_tileset(tileset, n_images=n_images, tiles_per_image=tiles_per_image, seed=args.seed, force=True)
+        print(f"rendered {n_images * tiles_per_image} tiles in {time.perf_counter() - t0:.0f} s (not timed)", flush=True)
     code = (
         "import sys; sys.path.insert(0, %r)\n"
         "from training.train import TrainConfig, train_model\n"
