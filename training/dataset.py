@@ -264,11 +264,18 @@ def _concat(parts):
 
 
 def _cap(cls, max_patches, rng):
-    pos = np.flatnonzero(cls > 0)
-    neg = np.flatnonzero(cls == 0)
-    if len(pos) >= max_patches:
-        return np.sort(rng.choice(pos, size=max_patches, replace=False))
-    return np.sort(np.concatenate([pos, rng.choice(neg, size=max_patches - len(pos), replace=False)]))
+    """Indices of a class-stratified uniform sample of ``max_patches`` patches.
+
+    Every class keeps the same share of its patches, so the class mix chosen by
+    the per-tile sampling (background vs deposits) survives the cap.
+    """
+    keep = []
+    share = max_patches / len(cls)
+    for c in np.unique(cls):
+        idx = np.flatnonzero(cls == c)
+        n = int(round(share * len(idx)))
+        keep.append(rng.choice(idx, size=min(n, len(idx)), replace=False))
+    return np.sort(np.concatenate(keep))
 
 
 def _take(p, idx):

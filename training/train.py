@@ -68,6 +68,10 @@ class TrainConfig:
         ``all_rotations_below`` fitting tiles, else 2, so that large catalogs keep
         the augmentation at about twice the cost of no augmentation.
     all_rotations_below : int, default=200
+    max_candidate_tiles : int, default=300
+        Most fitting tile extractions read for the object classifier's candidates
+        (drawn evenly over the two folds); a few thousand readings suffice, and
+        reading candidates costs a second feature extraction.
     neg_ratio : float, default=3.0
     max_iter : int, default=300
     learning_rate : float, default=0.1
@@ -85,6 +89,7 @@ class TrainConfig:
     rotations: tuple = (0, 1, 2, 3)
     rotations_per_tile: int = None
     all_rotations_below: int = 200
+    max_candidate_tiles: int = 300
     neg_ratio: float = 3.0
     max_iter: int = 300
     learning_rate: float = 0.1
@@ -544,6 +549,10 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         polarity = _PolarityPredictor(ori, index) if ori is not None else (lambda X: np.full(len(X), 0.5, np.float32))
         held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
         jobs = rotation_jobs(held_tiles, config.rotations, per_tile=per_tile, seed=config.seed + 3)
+        cap = max(1, config.max_candidate_tiles // len(folds))
+        if len(jobs) > cap:
+            keep = np.sort(rng.choice(len(jobs), size=cap, replace=False))
+            jobs = [jobs[i] for i in keep]
         parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
                                    workers=config.workers, jobs=jobs, desc="out-of-fold candidates"))
     return CandidateSet.concat(parts)
