@@ -178,7 +178,8 @@ def rotation_jobs(tile_ids, rotations, *, per_tile=None, seed=0):
 
 
 def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0, neg_ratio=3.0,
-                    hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features", jobs=None):
+                    hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features", jobs=None,
+                    keep_tiles=True):
     """Extract, label and sample the patches of some tiles.
 
     Parameters
@@ -200,6 +201,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         joblib processes.
     sample : bool, default=True
         False keeps every valid patch (calibration wants the true class mix).
+    keep_tiles : bool, default=True
+        With ``sample=False``, also return every tile's full TileFeatures.
     jobs : list of (tile_id, quarter_turns), optional
         Explicit extraction jobs (see :func:`rotation_jobs`); overrides ``tile_ids`` x ``rotations``.
 
@@ -226,7 +229,7 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         keep = _cap(patches.cls, max_patches, rng)
         patches = _take(patches, keep)
     summaries = np.array([tf.summary for tf, _, _ in results if tf.rotation == 0])
-    return patches, ([tf for tf, _, _ in results] if not sample else []), summaries
+    return patches, ([tf for tf, _, _ in results] if not sample and keep_tiles else []), summaries
 
 
 def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share):

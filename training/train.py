@@ -4,7 +4,7 @@ import hashlib
 import json
 import platform
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -394,15 +394,11 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
             f"tile set {str(tileset_root)!r} has no {' or '.join(missing)} patches (coverage >= tau {config.tau}) "
             f"in its fitting images {fit_img!r}; the patch classifier needs every class: add images or hold out others."
         )
-    val, cal_tiles, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
-                                     seed=config.seed + 1, sample=False, workers=config.workers,
-                                     desc="calibration features")
-    missing = [CLASS_NAMES[c] for c in range(len(CLASS_NAMES)) if not (train.cls == c).any()]
-    if missing:
-        raise TileSetError(
-            f"the fitting images {fit_img!r} of {str(tileset_root)!r} hold no {' or '.join(missing)} patches; "
-            f"the patch classifier needs examples of none, fan and spot (add images or lower --min-votes)."
-        )
+    # Calibration wants the true class mix, so its patches are a uniform sample (capped for memory).
+    val, _, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
+                                seed=config.seed + 1, sample=False, keep_tiles=False,
+                                max_patches=config.max_patches, workers=config.workers,
+                                desc="calibration features")
     log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
         f"calibration {len(val)}")
 
@@ -428,10 +424,11 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     # never saw their image (two folds over the fitting images), like new images will.
     params = AssemblyParams()
     cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log,
-                                       per_tile)
+                                       per_tile, classifier.n_iter_)
     full_patches = _CalibratedPredictor(classifier, calibration)
     full_polarity = _PolarityPredictor(orientation, index)
-    cand_val = candidate_set(tileset, ids["calibration"], spec, full_patches, full_polarity, params,
+    cal_sample = _tile_sample(ids["calibration"], config.max_candidate_tiles, config.seed + 5)
+    cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
                              workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config)
     confidence_fit = fit_direction_confidence(cand_fit)
@@ -493,7 +490,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         # Tune object assembly on the calibration images, then score the held-out images,
         # both through the exported ONNX files exactly as users will run them.
-        tuning = _tune_assembly(tmp, tileset, ids["calibration"], log=log, workers=config.workers)
+        tuning = _tune_assembly(tmp, tileset, cal_sample, log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
@@ -503,6 +500,15 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         card["training"]["seconds"] = round(time.perf_counter() - started, 1)
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
     return card
+
+
+def _tile_sample(tile_ids, cap, seed):
+    """At most ``cap`` of the tiles, drawn at random (in their order); all when fewer."""
+    tile_ids = list(tile_ids)
+    if len(tile_ids) <= cap:
+        return tile_ids
+    keep = np.sort(np.random.default_rng(seed).choice(len(tile_ids), size=cap, replace=False))
+    return [tile_ids[i] for i in keep]
 
 
 class _CalibratedPredictor:
@@ -533,7 +539,8 @@ def _orientation_rows(patches, mask, index, names):
                                     patches.fan_direction_deg[fan], names)
 
 
-def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log, per_tile):
+def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log, per_tile,
+                            n_iter):
     rng = np.random.default_rng(config.seed + 7)
     order = list(rng.permutation(fit_img))
     folds = [order[0::2], order[1::2]] if len(order) >= 2 else [order]
@@ -542,7 +549,9 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
     for held in folds:
         rest = [i for i in fit_img if i not in held] or list(held)  # one image: in-sample, said in the card
         mask = np.isin(train.image_id, rest)
-        clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, config)
+        # Fold models only stand in for the full one on unseen images: no more boosting
+        # iterations than it needed.
+        clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, replace(config, max_iter=n_iter))
         cal = fit_calibration(clf.predict_proba(val.X), val.cls)
         Xo, yo = _orientation_rows(train, mask, index, names)
         ori = _fit_hgb(Xo, yo, Xov, yov, config) if len(np.unique(yo)) > 1 else None
