@@ -35,6 +35,7 @@ __all__ = [
     "OBJECT_FEATURE_NAMES",
     "local_darkness",
     "upsample_patch_maps",
+    "PatchField",
     "find_candidates",
     "reading_matrix",
     "candidate_rows",
@@ -162,7 +163,8 @@ def local_darkness(image, valid, *, background_px=51):
         den = ndimage.uniform_filter(den, background_px, mode="constant")
     background = num / np.maximum(den, 1e-6)
     resid = np.where(valid, background - img, 0.0)
-    values = resid[valid]
+    # Every 4th valid pixel estimates the spread as well and four times faster.
+    values = resid[valid][::4]
     if values.size == 0:
         return np.zeros(image.shape, dtype=np.float32)
     mad = 1.4826 * np.median(np.abs(values - np.median(values)))
@@ -206,6 +208,48 @@ def upsample_patch_maps(values, grid, shape):
     return np.moveaxis(out, -1, 0).astype(np.float32)
 
 
+class PatchField:
+    """Per-patch values that can be read at any pixel by bilinear interpolation.
+
+    Equal to :func:`upsample_patch_maps` at the pixels asked for, without
+    building the full-resolution maps (objects only need their own pixels).
+
+    Parameters
+    ----------
+    values : ndarray of shape (n_patches, k)
+    grid : PatchGrid
+    """
+
+    def __init__(self, values, grid):
+        self.values = np.asarray(values, dtype=np.float32).reshape(grid.n_rows, grid.n_cols, -1)
+        self.n_rows, self.n_cols = grid.n_rows, grid.n_cols
+        self.y0, self.x0 = float(grid.y_px[0]), float(grid.x_px[0])
+        self.step_y = float(grid.y_px[grid.n_cols] - self.y0) if grid.n_rows > 1 else 1.0
+        self.step_x = float(grid.x_px[1] - self.x0) if grid.n_cols > 1 else 1.0
+
+    def at(self, ys, xs):
+        """Interpolated values at pixels (ys, xs), shape (n, k), float32."""
+        iy = np.clip((np.asarray(ys, dtype=np.float32) - self.y0) / self.step_y, 0, self.n_rows - 1)
+        ix = np.clip((np.asarray(xs, dtype=np.float32) - self.x0) / self.step_x, 0, self.n_cols - 1)
+        y_lo = np.minimum(np.floor(iy).astype(int), max(self.n_rows - 2, 0))
+        x_lo = np.minimum(np.floor(ix).astype(int), max(self.n_cols - 2, 0))
+        y_hi = np.minimum(y_lo + 1, self.n_rows - 1)
+        x_hi = np.minimum(x_lo + 1, self.n_cols - 1)
+        fy = (iy - y_lo)[:, None]
+        fx = (ix - x_lo)[:, None]
+        v = self.values
+        top = v[y_lo, x_lo] * (1 - fx) + v[y_lo, x_hi] * fx
+        bottom = v[y_hi, x_lo] * (1 - fx) + v[y_hi, x_hi] * fx
+        return (top * (1 - fy) + bottom * fy).astype(np.float32)
+
+
+def _sample(maps, ys, xs):
+    """Values of per-pixel maps (k, M, N) or of a :class:`PatchField` at pixels, shape (k, n)."""
+    if hasattr(maps, "at"):
+        return maps.at(ys, xs).T
+    return np.asarray(maps)[:, ys, xs]
+
+
 @dataclass
 class Candidate:
     """One dark component: its pixels, component features and its readings.
@@ -231,7 +275,7 @@ class Candidate:
 
 def _renormalised(values, valid):
     """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
-    v = values[valid]
+    v = values[valid][::4]
     if v.size == 0:
         return np.zeros_like(values)
     mad = 1.4826 * np.median(np.abs(v - np.median(v)))
@@ -384,13 +428,13 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     dark : ndarray of shape (M, N), float32
         From :func:`local_darkness`.
     valid : ndarray of shape (M, N), bool
-    class_maps : ndarray of shape (3, M, N)
+    class_maps : ndarray of shape (3, M, N) or PatchField
         Calibrated probabilities of none, fan and spot at every pixel.
-    polarity_maps : ndarray of shape (2, M, N)
+    polarity_maps : ndarray of shape (2, M, N) or PatchField
         Per-pixel polarity vector (d_col, d_row): the orientation model's fan
         direction there, scaled by its confidence (2p - 1) and by the fan probability.
     params : AssemblyParams
-    axis_maps : ndarray of shape (2, M, N), optional
+    axis_maps : ndarray of shape (2, M, N) or PatchField, optional
         cos and sin of twice the structure-tensor axis at every pixel; gives each
         fan reading's ``axis_deg`` (the axis-only baseline of evaluation). Without
         it the reading's own direction mod 180 is used.
@@ -422,7 +466,9 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         xf, yf = xs.astype(float), ys.astype(float)
         w = np.maximum(smooth[ys, xs], 1e-3)
         evals, skew, widening, asym = _axis_moments(xf, yf, w)
-        p_none, p_fan, p_spot = (class_maps[c][ys, xs] for c in range(3))
+        p_none, p_fan, p_spot = _sample(class_maps, ys, xs)
+        polarity = _sample(polarity_maps, ys, xs)
+        axes = None if axis_maps is None else _sample(axis_maps, ys, xs)
         fan_mass = max(float(np.average(p_fan, weights=w)), 1e-6)
         fans, n_vents = _vent_fans(smooth[sl], mask_local, ly, lx, (sl[0].start, sl[1].start), xf, yf, w, params)
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
@@ -443,15 +489,15 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             d_col, d_row = unit_vector(f["direction_deg"])
             wm = w[mine]
             # The orientation model's vote along this fan's direction: +1 agrees, -1 opposes.
-            vote = (np.average(polarity_maps[0][ys[mine], xs[mine]], weights=wm) * d_col
-                    + np.average(polarity_maps[1][ys[mine], xs[mine]], weights=wm) * d_row) / fan_mass
+            vote = (np.average(polarity[0][mine], weights=wm) * d_col
+                    + np.average(polarity[1][mine], weights=wm) * d_row) / fan_mass
             vote = float(np.clip(vote, -1.0, 1.0))
             f["direction_confidence"] = 0.5 * (1.0 + vote)
-            if axis_maps is None:
+            if axes is None:
                 f["axis_deg"] = f["direction_deg"] % 180.0
             else:
-                c2 = np.average(axis_maps[0][ys[mine], xs[mine]], weights=wm)
-                s2 = np.average(axis_maps[1][ys[mine], xs[mine]], weights=wm)
+                c2 = np.average(axes[0][mine], weights=wm)
+                s2 = np.average(axes[1][mine], weights=wm)
                 f["axis_deg"] = float(np.degrees(0.5 * np.arctan2(s2, c2)) % 180.0)
             f["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], mine.mean(), f.pop("_vent_dark"),
                                        float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm)),

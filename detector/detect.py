@@ -9,11 +9,11 @@ from . import _dense
 from .circstats import circular_std, robust_circular_mean
 from .assemble import (
     AssemblyParams,
+    PatchField,
     find_candidates,
     local_darkness,
     objects_from_candidates,
     reading_matrix,
-    upsample_patch_maps,
 )
 from .features import extract_features
 from .geometry import unit_vector
@@ -83,14 +83,14 @@ class TileResult:
 
 @dataclass
 class TileMaps:
-    """Patch outputs of a tile and their per-pixel versions."""
+    """Patch outputs of a tile, readable at any pixel (:class:`detector.assemble.PatchField`)."""
 
     proba: np.ndarray
     polarity: np.ndarray
     axis_deg: np.ndarray
-    class_maps: np.ndarray
-    polarity_maps: np.ndarray
-    axis_maps: np.ndarray
+    class_maps: object
+    polarity_maps: object
+    axis_maps: object
 
 
 def fan_direction_weights(detections):
@@ -176,10 +176,10 @@ def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
         proba=proba,
         polarity=polarity,
         axis_deg=axis,
-        class_maps=upsample_patch_maps(proba, grid, shape),
-        polarity_maps=upsample_patch_maps(np.column_stack([signed * d_col, signed * d_row]), grid, shape),
+        class_maps=PatchField(proba, grid),
+        polarity_maps=PatchField(np.column_stack([signed * d_col, signed * d_row]), grid),
         # The structure-tensor axis as a doubled-angle vector, so that it can be interpolated.
-        axis_maps=upsample_patch_maps(np.column_stack([np.cos(doubled), np.sin(doubled)]), grid, shape),
+        axis_maps=PatchField(np.column_stack([np.cos(doubled), np.sin(doubled)]), grid),
     )
 
 

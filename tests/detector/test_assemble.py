@@ -6,6 +6,7 @@ import pytest
 from scipy.interpolate import RegularGridInterpolator
 
 from detector.assemble import (
+    PatchField,
     AssemblyParams,
     candidate_rows,
     find_candidates,
@@ -92,6 +93,18 @@ def test_upsample_matches_naive_bilinear_oracle(grid_and_values):
     maps = upsample_patch_maps(values, grid, shape)
     assert maps.shape == (2,) + shape and maps.dtype == np.float32
     np.testing.assert_allclose(maps, _naive_bilinear(values, grid, shape), atol=1e-5)
+
+
+def test_patch_field_reads_the_upsampled_maps_at_any_pixel(grid_and_values):
+    # Oracle: the full-resolution maps of upsample_patch_maps, read at random pixels (edges included).
+    shape, grid, values = grid_and_values
+    maps = upsample_patch_maps(values, grid, shape)
+    rng = np.random.default_rng(5)
+    ys = np.concatenate([[0, shape[0] - 1], rng.integers(0, shape[0], 500)])
+    xs = np.concatenate([[0, shape[1] - 1], rng.integers(0, shape[1], 500)])
+    got = PatchField(values, grid).at(ys, xs)
+    assert got.shape == (len(ys), values.shape[1]) and got.dtype == np.float32
+    np.testing.assert_allclose(got.T, maps[:, ys, xs], atol=1e-5)
 
 
 def test_upsample_matches_scipy_regular_grid_interpolator(grid_and_values):
