@@ -83,7 +83,8 @@ def circular_std(angles, weights=None):
     r = resultant_length(angles, weights)
     if not np.isfinite(r):
         return np.nan
-    return float(np.degrees(np.sqrt(-2.0 * np.log(max(r, 1e-300)))))
+    # Rounding can put R a hair above 1 for identical angles: that spread is 0.
+    return float(np.degrees(np.sqrt(-2.0 * np.log(min(max(r, 1e-300), 1.0)))))
 
 
 def rayleigh_test(angles):
