@@ -39,7 +39,7 @@ from .errors import DetectorError
 from .io import atomic_path
 from .labels import ellipse_polygon, sector_polygon
 
-__all__ = ["detections_to_geojson", "write_geojson", "ring_signed_area"]
+__all__ = ["detections_to_geojson", "write_geojson", "write_geojson_chunks", "ring_signed_area"]
 
 _BASE_COLUMNS = ("kind", "x_px", "y_px", "direction_deg")
 _KIND_COLUMNS = {"fan": ("length_px", "spread_deg"), "spot": ("semi_major_px", "semi_minor_px")}
@@ -197,3 +197,37 @@ def write_geojson(path, collection):
         raise DetectorError(f"GeoJSON for {str(path)!r} cannot be written: {err}.") from err
     with atomic_path(path) as tmp:
         tmp.write_text(text + "\n", encoding="utf-8")
+
+
+def write_geojson_chunks(path, collections):
+    """Write FeatureCollections one after another as one collection, streaming, atomically.
+
+    The members of the first collection other than ``features`` (type, CRS,
+    coordinate note) head the file; the features of every collection follow,
+    each serialised on its own, so memory holds one chunk at a time, not the
+    whole catalog.
+
+    Parameters
+    ----------
+    path : path-like
+    collections : iterable of dict
+        FeatureCollections of consecutive chunks of detections (at least one).
+    """
+    path = Path(path)
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8") as handle:
+        head_written, n_written = False, 0
+        try:
+            for collection in collections:
+                if not head_written:
+                    head = {k: v for k, v in collection.items() if k != "features"}
+                    text = json.dumps(head, allow_nan=False, ensure_ascii=False)
+                    handle.write(text[:-1] + (', "features": [' if head else '"features": ['))
+                    head_written = True
+                for feature in collection["features"]:
+                    handle.write((",\n" if n_written else "") + json.dumps(feature, allow_nan=False, ensure_ascii=False))
+                    n_written += 1
+            if not head_written:
+                handle.write('{"type": "FeatureCollection", "features": [')
+            handle.write("]}\n")
+        except (TypeError, ValueError) as err:
+            raise DetectorError(f"GeoJSON for {str(path)!r} cannot be written: {err}.") from err

@@ -57,7 +57,7 @@ import pandas as pd
 from .detect import fan_direction_weights, tile_direction_stats
 from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
 from .errors import DetectorError, ImageError, SpecError, TileSetError
-from .geojson import write_geojson
+from .geojson import write_geojson_chunks
 from .io import atomic_path
 
 __all__ = [
@@ -587,6 +587,15 @@ def _image_offsets(detections, tasks):
     return rows["path"].to_numpy(dtype=object), rows["ox"].to_numpy(dtype=float), rows["oy"].to_numpy(dtype=float)
 
 
+def _geojson_chunks(detections, tasks, images, *, chunk=2000):
+    """FeatureCollections of consecutive chunks of the detections (at least one, maybe empty)."""
+    if len(detections) <= chunk:
+        yield _geojson(detections, tasks, images)
+        return
+    for start in range(0, len(detections), chunk):
+        yield _geojson(detections.iloc[start:start + chunk], tasks, images)
+
+
 def _geojson(detections, tasks, images):
     from .geojson import detections_to_geojson
 
@@ -938,7 +947,8 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     with _staged(out) as stage:
         _write_csv(stage / "tiles.csv", tiles)
         _write_csv(stage / "detections.csv", detections)
-        write_geojson(stage / "detections.geojson", _geojson(detections, tasks, images))
+        # Streamed in chunks of detections so memory does not follow the catalog's size.
+        write_geojson_chunks(stage / "detections.geojson", _geojson_chunks(detections, tasks, images))
         _quicklook(stage / "quicklook.png", detections, tasks, images, band=band, nodata=nodata)
         _rose(stage / "rose.png", detections, images)
 

@@ -145,3 +145,16 @@ def test_empty_and_bad_detections():
         detections_to_geojson(bad)
     with pytest.raises(DetectorError, match="lack column"):
         detections_to_geojson(_detections().drop(columns="y_px"))
+
+
+def test_chunked_writing_equals_one_collection(tmp_path):
+    from detector.geojson import write_geojson, write_geojson_chunks
+
+    def collection(k0, k1):
+        return {"type": "FeatureCollection", "coordinates": "image_px",
+                "features": [{"type": "Feature", "properties": {"i": i},
+                              "geometry": {"type": "Point", "coordinates": [float(i), 0.5]}} for i in range(k0, k1)]}
+
+    write_geojson(tmp_path / "whole.geojson", collection(0, 7))
+    write_geojson_chunks(tmp_path / "chunks.geojson", iter([collection(0, 3), collection(3, 3), collection(3, 7)]))
+    assert json.loads((tmp_path / "chunks.geojson").read_text()) == json.loads((tmp_path / "whole.geojson").read_text())
