@@ -7,7 +7,7 @@ The public API (everything else is private or lives in its module):
 - features: :class:`FeatureSpec`, :data:`FEATURE_VERSION`, :func:`extract_features`,
   :func:`patch_grid`, :func:`patch_targets`, :class:`PatchGrid`
 - models: :func:`load_model`, :class:`Model`, :func:`detect_tile`, :class:`TileResult`
-- screening: :func:`screen`
+- screening: :func:`detector.screen.screen` (module ``detector.screen``)
 - conventions: :func:`direction_deg`, :func:`unit_vector`, :func:`angular_difference`
 - circular statistics: :func:`circular_mean`, :func:`circular_std`, :func:`rayleigh_test`
 - errors: :class:`DetectorError`, :class:`TileSetError`, :class:`SpecError`, :class:`ImageError`,
@@ -23,13 +23,6 @@ from .labels import LabelMasks, rasterise_features
 from .model import Model, load_model
 from .spec import FEATURE_VERSION, FeatureSpec
 from .tileset import TileSet, format_summary, load_tileset, summarize_tileset
-
-
-def screen(*args, **kwargs):
-    """Screen images or tile sets into a folder (see :func:`detector.screen.screen`)."""
-    from .screen import screen as _screen
-
-    return _screen(*args, **kwargs)
 
 
 __all__ = [
@@ -58,7 +51,6 @@ __all__ = [
     "patch_targets",
     "rasterise_features",
     "rayleigh_test",
-    "screen",
     "summarize_tileset",
     "unit_vector",
 ]
