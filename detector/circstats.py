@@ -132,9 +132,10 @@ def axial_std(angles, weights=None):
 def robust_circular_mean(angles, weights=None, *, cutoff_deg=45.0, max_iter=50, tol_deg=1e-6):
     """Mean direction that ignores outliers far from the main mode.
 
-    Starts at the weighted mode (the angle with the largest von Mises kernel
-    density among the data, so a minority of flipped or stray fans cannot drag
-    the start) and iterates a Tukey-biweight reweighted circular mean:
+    Starts at the weighted mode (the peak of a von Mises kernel density, so a
+    minority of flipped or stray fans cannot drag the start; evaluated on a
+    0.5 degree grid by circular convolution of a weighted histogram, so time
+    and memory grow linearly with the data) and iterates a Tukey-biweight reweighted circular mean:
     an angle ``d`` degrees from the current mean gets weight
     ``w * (1 - (d / cutoff_deg)**2)**2`` and none beyond ``cutoff_deg``.
 
@@ -163,9 +164,12 @@ def robust_circular_mean(angles, weights=None, *, cutoff_deg=45.0, max_iter=50, 
         return np.nan
     # Kernel concentration tied to the cutoff: a kernel half-width of about cutoff / 2.
     kappa = 1.0 / np.radians(cutoff_deg / 2.0) ** 2
-    diff = np.radians(angles[:, None] - angles[None, :])
-    density = (np.exp(kappa * (np.cos(diff) - 1.0)) * weights[None, :]).sum(axis=1)
-    mean = angles[np.argmax(density)] % 360.0
+    n_bins = 720
+    hist, _ = np.histogram(angles % 360.0, bins=n_bins, range=(0.0, 360.0), weights=weights)
+    offsets = np.radians(np.arange(n_bins) * (360.0 / n_bins))
+    kernel = np.exp(kappa * (np.cos(offsets) - 1.0))
+    density = np.real(np.fft.ifft(np.fft.fft(hist) * np.fft.fft(kernel)))
+    mean = (np.argmax(density) + 0.5) * (360.0 / n_bins)
     for _ in range(max_iter):
         d = angular_difference(angles, mean)
         w = weights * np.clip(1.0 - (d / cutoff_deg) ** 2, 0.0, None) ** 2
