@@ -93,5 +93,5 @@ def run_demo(out, *, tiles, model, retrain=False):
 
     _section("done")
     print(f"everything is in {out}/: consensus_overlay.png, report/ (report.md, *.png), "
-          f"screen/ (tiles.csv, detections.csv, detections.geojson, quicklook.png, rose.png), effort.json")
+          f"screen/ (tiles.csv, detections.csv, detections.geojson, quicklook.png, rose.png, effort.json, routes.csv)")
     print(f"demo took {time.perf_counter() - started:.0f} s")
