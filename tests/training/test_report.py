@@ -8,19 +8,11 @@ from sklearn.calibration import calibration_curve
 
 from detector.errors import DetectorError
 from training import report, scoring
+from tests.training._boxes import box_rasteriser
 
 
-class _Masks:
-    def __init__(self, fan, spot):
-        self.fan_cover, self.spot_cover = fan, spot
-
-
-def _box_rasterise(features, shape):
-    fan = np.zeros(shape, bool)
-    spot = np.zeros(shape, bool)
-    for kind, x, y in zip(features["kind"], features["x_px"].astype(int), features["y_px"].astype(int)):
-        (fan if kind == "fan" else spot)[max(y - 3, 0):y + 4, max(x - 3, 0):x + 4] = True
-    return _Masks(fan, spot)
+# Each feature is a 7 x 7 box around (x, y).
+_box_rasterise = box_rasteriser(3)
 
 
 def _catalogs(seed=0):

@@ -9,6 +9,7 @@ from sklearn import metrics
 
 from detector.errors import DetectorError
 from training import scoring
+from tests.training._boxes import box_rasteriser
 
 
 def _fan(tile, x, y, d, length=40.0, **extra):
@@ -158,18 +159,8 @@ def test_dice_edge_cases():
         scoring.dice(z, np.zeros((3, 4), bool))
 
 
-class _Masks:
-    def __init__(self, fan, spot):
-        self.fan_cover, self.spot_cover = fan, spot
-
-
-def _box_rasterise(features, shape):
-    """Test rasteriser: each feature is a 5 x 5 box around (x, y)."""
-    fan = np.zeros(shape, bool)
-    spot = np.zeros(shape, bool)
-    for kind, x, y in zip(features["kind"], features["x_px"].astype(int), features["y_px"].astype(int)):
-        (fan if kind == "fan" else spot)[max(y - 2, 0):y + 3, max(x - 2, 0):x + 3] = True
-    return _Masks(fan, spot)
+# Each feature is a 5 x 5 box around (x, y).
+_box_rasterise = box_rasteriser(2)
 
 
 def test_coverage_with_own_masks():
