@@ -135,6 +135,12 @@ def main(argv=None):
         for line in problems:
             print(f"frostvane: error: {line}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # The reader of our output went away (e.g. `| head`): stop quietly, as Unix tools do.
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
     except KeyboardInterrupt:
         print("frostvane: interrupted; finished work is kept and a rerun continues from it.", file=sys.stderr)
         return 130
