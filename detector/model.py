@@ -28,6 +28,7 @@ __all__ = [
     "Calibration",
     "Model",
     "load_model",
+    "cached_model",
     "sha256_file",
 ]
 
@@ -267,3 +268,31 @@ def load_model(folder):
         _orientation=_session(folder / ORIENTATION_ONNX),
         _objects=_session(folder / OBJECTS_ONNX) if (folder / OBJECTS_ONNX).is_file() else None,
     )
+
+
+_LOADED = {}
+
+
+def cached_model(folder):
+    """The model of a folder, loaded once per process (workers screen many tiles with one model).
+
+    Parameters
+    ----------
+    folder : path-like
+
+    Returns
+    -------
+    model : Model
+        Shared within the process: treat it as read-only. A model card rewritten
+        since it was loaded (same folder, new ``model.json``) is loaded again.
+    """
+    folder = Path(folder).resolve()
+    try:
+        stat = (folder / MODEL_CARD).stat()
+        key = (str(folder), stat.st_mtime_ns, stat.st_size)
+    except OSError:
+        return load_model(folder)  # let load_model say what is missing
+    if key not in _LOADED:
+        _LOADED.clear()
+        _LOADED[key] = load_model(folder)
+    return _LOADED[key]

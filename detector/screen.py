@@ -55,6 +55,7 @@ import numpy as np
 import pandas as pd
 
 from .detect import fan_direction_weights, tile_direction_stats
+from .model import cached_model
 from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
 from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson_chunks
@@ -272,20 +273,10 @@ def _plan(inputs, *, tile, overlap, nodata, band):
 
 # ----------------------------------------------------------------------------- per-tile work
 
-# Per process: one loaded model per folder and a few open rasters, so that a
-# worker pays for loading once, not once per tile.
-_MODELS = {}
+# Per process: a few open rasters, so that a worker pays for opening once, not once
+# per tile (models are cached by detector.model.cached_model).
 _SOURCES = OrderedDict()
 _MAX_OPEN = 8
-
-
-def _cached_model(model_dir):
-    from .model import load_model
-
-    key = str(Path(model_dir).resolve())
-    if key not in _MODELS:
-        _MODELS[key] = load_model(model_dir)
-    return _MODELS[key]
 
 
 def _cached_source(path, band, nodata):
@@ -311,7 +302,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
     from .detect import detect_tile
     from .unfamiliar import unfamiliarity_score
 
-    model = _cached_model(model_dir)
+    model = cached_model(model_dir)
     src, georef = _cached_source(task.path, task.band, task.nodata)
     array, mask = src.read((task.read_col0, task.read_row0, task.read_width, task.read_height))
     dx = task.file_col0 - task.read_col0
@@ -916,7 +907,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     t_start = time.perf_counter()
     workers = _check_workers(workers)
     model_dir = Path(model_dir)
-    _cached_model(model_dir)  # a missing or tampered model fails here, before anything is written
+    cached_model(model_dir)  # a missing or tampered model fails here, before anything is written
     tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
     params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)

@@ -1,10 +1,8 @@
 """``frostvane demo``: the whole job on the shipped demo tiles and model."""
 
-import json
 import time
 from pathlib import Path
 
-from detector.errors import DetectorError
 from detector.tileset import format_summary, load_tileset, summarize_tileset
 
 __all__ = ["run_demo"]

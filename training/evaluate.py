@@ -1,7 +1,5 @@
 """Run a model over labelled tiles and score it against consensus (and the truth ceiling)."""
 
-import json
-from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
@@ -15,7 +13,7 @@ from detector.errors import DetectorError, TileSetError
 from detector.features import extract_features, patch_targets
 from detector.io import atomic_dir, atomic_path
 from detector.labels import rasterise_features
-from detector.model import CLASS_NAMES, load_model
+from detector.model import CLASS_NAMES, cached_model, load_model
 from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_score
 
@@ -25,17 +23,17 @@ __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_car
            "write_detections_csv", "confidence_validation"]
 
 
-def _run_one(model, tileset, tile_id, tau):
+def _run_one(model, tileset, tile_id, tau, min_score=None):
     """Detections and patch targets of one labelled tile (``model`` is a Model or a model folder)."""
     if not hasattr(model, "feature_spec"):
-        model = _worker_model(str(model), None)
+        model = cached_model(model)
     spec = model.feature_spec
     tile = tileset.read_tile(tile_id)
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
     masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
     targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
-    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid))
+    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid), min_score=min_score)
     valid = np.asarray(grid.valid, dtype=bool)
     info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
             "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
@@ -43,26 +41,7 @@ def _run_one(model, tileset, tile_id, tau):
     return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
 
 
-_MODELS = {}
-
-
-def _worker_model(folder, assembly):
-    """A worker process's loaded model, loaded once per folder (and assembly override)."""
-    key = (folder, None if assembly is None else json.dumps(assembly, sort_keys=True))
-    if key not in _MODELS:
-        model = load_model(folder)
-        if assembly is not None:
-            model.card["assembly"] = assembly
-        _MODELS.clear()
-        _MODELS[key] = model
-    return _MODELS[key]
-
-
-def _run_one_in_worker(folder, assembly, tileset, tile_id, tau):
-    return _run_one(_worker_model(folder, assembly), tileset, tile_id, tau)
-
-
-def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1):
+def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1, min_score=None):
     """Detections and patch-level targets of the model on labelled tiles.
 
     Parameters
@@ -74,6 +53,8 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
         Coverage threshold for the patch targets; default the model's training tau.
     workers : int, default=1
         joblib processes; each loads the model from its folder once.
+    min_score : float, optional
+        Smallest object score kept; default the model card's.
 
     Returns
     -------
@@ -89,10 +70,10 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
     iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False)
     if workers > 1:
         results = Parallel(n_jobs=workers, backend="loky")(
-            delayed(_run_one_in_worker)(str(model.folder), model.assembly, tileset, tid, tau) for tid in iterator
+            delayed(_run_one)(str(model.folder), tileset, tid, tau, min_score) for tid in iterator
         )
     else:
-        results = [_run_one(model, tileset, tid, tau) for tid in iterator]
+        results = [_run_one(model, tileset, tid, tau, min_score) for tid in iterator]
     frames = [r[0] for r in results if len(r[0])]
     detections = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=OBJECT_COLUMNS)
     return {
@@ -126,8 +107,7 @@ def tune_assembly(model_dir, tileset, tile_ids, *, log=print, workers=1):
         ``min_score`` and ``table`` (every threshold tried with its F1s).
     """
     model = load_model(model_dir)
-    model.card["assembly"] = {**model.assembly, "min_score": 0.0}
-    run = run_on_tiles(model, tileset, tile_ids, desc="tune", workers=workers)
+    run = run_on_tiles(model, tileset, tile_ids, desc="tune", workers=workers, min_score=0.0)
     consensus = _consensus_of(tileset, tile_ids)
     table = []
     for min_score in np.round(np.arange(0.05, 0.9, 0.05), 2):
@@ -323,10 +303,8 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
     if len(tileset.tiles) == 0:
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
     tile_ids = tileset.tiles["tile_id"].tolist()
-    model.card["assembly"] = {**model.assembly, "min_score": min(min_score, float(model.assembly.get("min_score", 0.5)))}
-    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate", workers=workers)
-    detections = run["detections"]
-    detections = detections[detections["score"] >= min_score].reset_index(drop=True)
+    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate", workers=workers, min_score=min_score)
+    detections = run["detections"].reset_index(drop=True)
     tiles = tileset.tiles
     scores = score_catalogs(detections, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
     patch = _patch_metrics(run)

@@ -9,7 +9,6 @@ is scored.
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 from joblib import Parallel, delayed
 from tqdm.auto import tqdm
 

@@ -32,6 +32,7 @@ from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_distance
 
 from .dataset import build_patch_set, rotation_jobs
+from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, fit_direction_confidence
 
@@ -348,8 +349,6 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     card : dict
         The model card written as ``model.json``.
     """
-    from .evaluate import evaluate_tiles, summarise_for_card
-
     started = time.perf_counter()
     out = Path(out)
     spec = spec or FeatureSpec()
@@ -490,7 +489,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         # Tune object assembly on the calibration images, then score the held-out images,
         # both through the exported ONNX files exactly as users will run them.
-        tuning = _tune_assembly(tmp, tileset, cal_sample, log=log, workers=config.workers)
+        tuning = tune_assembly(tmp, tileset, cal_sample, log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
@@ -571,12 +570,6 @@ def _writable(folder):
     import os
 
     return os.access(folder, os.W_OK)
-
-
-def _tune_assembly(model_dir, tileset, tile_ids, *, log, workers=1):
-    from .evaluate import tune_assembly
-
-    return tune_assembly(model_dir, tileset, tile_ids, log=log, workers=workers)
 
 
 def format_card_summary(card, folder):
