@@ -396,6 +396,12 @@ class _Journal:
     def _path(self, index):
         return self.folder / f"{index:07d}.json"
 
+    def sweep(self):
+        """Remove temporary files an interrupted run left behind (a killed write never renamed)."""
+        if self.folder.is_dir():
+            for stale in self.folder.glob(".*.tmp*"):
+                stale.unlink(missing_ok=True)
+
     def write(self, index, entry):
         self.folder.mkdir(parents=True, exist_ok=True)
         with atomic_path(self._path(index)) as tmp:
@@ -914,6 +920,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     out = Path(out)
     record = _claim(out, params)
     journal = _Journal(out)
+    journal.sweep()
     entries = journal.finished(tasks)
     n_resumed = len(entries)
     todo = [(i, t) for i, t in enumerate(tasks) if i not in entries]

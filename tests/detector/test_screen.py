@@ -317,6 +317,10 @@ def test_nodata_tiles_are_routed_and_not_scored(model_dir, tmp_path):
 # ----------------------------------------------------------------------------- resuming and workers
 
 
+def _journal_entries(journal):
+    return [p for p in journal.glob("*.json") if p.stem.isdigit()] if journal.is_dir() else []
+
+
 def test_killed_run_resumes_to_the_same_outputs(model_dir, big_png, big_reference, tmp_path):
     out = tmp_path / "killed"
     argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "200x150")
@@ -327,14 +331,15 @@ def test_killed_run_resumes_to_the_same_outputs(model_dir, big_png, big_referenc
     deadline = time.monotonic() + 300
     try:
         while time.monotonic() < deadline and proc.poll() is None:
-            if journal.is_dir() and len(list(journal.glob("*.json"))) >= 3:
+            if len(_journal_entries(journal)) >= 3:
                 break
             time.sleep(0.02)
         assert proc.poll() is None, "the run ended before it could be interrupted"
         proc.send_signal(signal.SIGKILL)
     finally:
         proc.wait(timeout=30)
-    n_done = len(list(journal.glob("*.json")))
+    # A write cut by the kill leaves a temporary file; it is not an entry and is swept on resume.
+    n_done = len(_journal_entries(journal))
     assert 3 <= n_done < 36
     assert not any((out / name).exists() for name in OUTPUT_FILES)
     json.loads((out / "run.json").read_text())  # the run record is whole
@@ -368,6 +373,24 @@ def test_rerun_of_a_finished_run_reuses_it(model_dir, png_image, png_run, tmp_pa
     shutil.copytree(png_run[0], out)
     summary = screen(model_dir, [png_image], out, tile=TILE, progress=False)
     assert summary.n_resumed == 9 and summary.megapixels == 0
+    _same_outputs(out, png_run[0])
+
+
+def test_resume_ignores_a_cut_write_and_a_damaged_entry(model_dir, png_image, png_run, tmp_path):
+    out = tmp_path / "cut"
+    shutil.copytree(png_run[0], out)
+    journal = out / ".partial"
+    entries = sorted(p for p in journal.glob("*.json") if p.stem.isdigit())
+    assert len(entries) == 9
+    # What a kill leaves: a temporary file never renamed, and (on a crashed disk) a torn entry.
+    stale = journal / f".{entries[0].name}.abc123.tmp.json"
+    stale.write_text('{"tile_id": ')
+    entries[1].write_text('{"tile_id": ')
+    for name in OUTPUT_FILES:
+        (out / name).unlink()
+    summary = screen(model_dir, [png_image], out, tile=TILE, progress=False)
+    assert summary.n_resumed == 8
+    assert not stale.exists()
     _same_outputs(out, png_run[0])
 
 
