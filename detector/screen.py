@@ -108,7 +108,7 @@ DEPOSIT_THRESHOLD = 0.5
 _JOURNAL = ".partial"
 _RUN_FILE = "run.json"
 _OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook.png", "rose.png")
-_QUICKLOOK_PX = 2000
+_QUICKLOOK_PX = 1000  # about the panel's width in output pixels (9 in at 110 dpi): more is only resampled away
 _MAX_PANELS = 12
 _MAX_DRAWN = 3000
 _STRIP_BYTES = 16 * 2**20
@@ -645,7 +645,8 @@ def _decimated(piece, band, nodata, step):
             h = min(rows_per_strip, piece.height - r0)
             array, mask = src.read((0, r0, piece.width, h))
             strips.append(array[::step, ::step].astype(np.float32))
-            masks.append(mask[::step, ::step])
+            # A copy: a strided view would keep every strip's full-size mask alive.
+            masks.append(mask[::step, ::step].copy())
     return np.vstack(strips), np.vstack(masks)
 
 
