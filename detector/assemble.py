@@ -452,10 +452,11 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     labels, n = ndimage.label(grow > params.grow_k)
     if n == 0:
         return []
-    index = np.arange(1, n + 1)
-    peak = ndimage.maximum(smooth, labels, index=index)
-    area = ndimage.sum_labels(np.ones_like(smooth), labels, index=index)
-    keep = np.flatnonzero((peak >= params.seed_k) & (area >= params.min_area_px)) + 1
+    # A component is kept when it is large enough and holds a seed (its peak reaches seed_k).
+    area = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    seeded = np.zeros(n + 1, dtype=bool)
+    seeded[labels[smooth >= params.seed_k]] = True
+    keep = np.flatnonzero(seeded[1:] & (area >= params.min_area_px)) + 1
     slices = ndimage.find_objects(labels)
     out = []
     for lab in keep:
