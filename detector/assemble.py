@@ -273,6 +273,35 @@ class Candidate:
     spot: dict = field(default_factory=dict)
 
 
+def _running_extreme(x, size, axis, op):
+    """Running minimum or maximum (``op``) of ``size`` samples centred on each sample along ``axis``;
+    edges mirrored as in ``scipy.ndimage`` mode 'reflect' (d c b a | a b c d)."""
+    r = size // 2
+    pad = [(0, 0)] * x.ndim
+    pad[axis] = (r, size - 1 - r)
+    padded = np.pad(x, pad, mode="symmetric")
+    n = x.shape[axis]
+    lead = (slice(None),) * axis
+    out = padded[lead + (slice(0, n),)].copy()
+    for k in range(1, size):
+        op(out, padded[lead + (slice(k, k + n),)], out=out)
+    return out
+
+
+def grey_opening_square(image, size):
+    """Grey opening by a flat ``size`` x ``size`` square, equal to
+    ``scipy.ndimage.grey_opening(image, size=(size, size))``.
+
+    Odd sizes are computed as separable running minima then maxima over shifted
+    views (about 3x faster than scipy here; min and max are exact, so the result is
+    identical); even sizes, whose dilation origin scipy shifts, go to scipy.
+    """
+    if size % 2 == 0:
+        return ndimage.grey_opening(image, size=(size, size))
+    eroded = _running_extreme(_running_extreme(image, size, 0, np.minimum), size, 1, np.minimum)
+    return _running_extreme(_running_extreme(eroded, size, 0, np.maximum), size, 1, np.maximum)
+
+
 def _renormalised(values, valid):
     """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
     v = values[valid][::4]
@@ -446,7 +475,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     rows, cols = dark.shape
     # Grey opening removes dark lines thinner than open_px (channels, troughs) but keeps
     # fans and spots; the smoothing then suppresses single-pixel noise.
-    opened = ndimage.grey_opening(dark, size=(params.open_px, params.open_px)) if params.open_px > 1 else dark
+    opened = grey_opening_square(dark, params.open_px) if params.open_px > 1 else dark
     smooth = np.where(valid, ndimage.gaussian_filter(opened, 1.0), 0.0)
     grow = _renormalised(ndimage.gaussian_filter(opened, params.grow_smooth_px), valid)
     labels, n = ndimage.label(grow > params.grow_k)

@@ -3,6 +3,7 @@
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import ndimage
 from scipy.interpolate import RegularGridInterpolator
 
 from detector.assemble import (
@@ -10,6 +11,7 @@ from detector.assemble import (
     AssemblyParams,
     candidate_rows,
     find_candidates,
+    grey_opening_square,
     local_darkness,
     objects_from_candidates,
     reading_matrix,
@@ -123,6 +125,16 @@ def test_upsample_matches_scipy_regular_grid_interpolator(grid_and_values):
 
 
 # --------------------------------------------------------------------------- local darkness
+
+
+@pytest.mark.parametrize("shape", [(66, 87), (3, 3), (1, 9), (12, 1)])
+@pytest.mark.parametrize("size", [2, 3, 4, 5, 7])
+def test_grey_opening_equals_scipy(shape, size):
+    # Reference: scipy.ndimage.grey_opening with a flat square and its default 'reflect' edges.
+    rng = np.random.default_rng(size)
+    image = rng.normal(size=shape).astype(np.float32)
+    image[rng.random(shape) < 0.3] = 0.0  # ties, as on no-data
+    np.testing.assert_array_equal(grey_opening_square(image, size), ndimage.grey_opening(image, size=(size, size)))
 
 
 def test_local_darkness_is_zero_on_a_flat_tile():
