@@ -32,8 +32,10 @@ The screening folder
 ``.partial/``
     The journal: one small JSON file per finished tile, written atomically,
     so a run that is interrupted continues where it stopped when it is started
-    again with the same arguments. Final outputs are assembled from it in a
-    fixed order (image, row0, col0).
+    again with the same arguments. Final outputs are written from it in a
+    fixed order (image, row0, col0), one image at a time: the run keeps no
+    tile results in memory, so memory follows the largest image's catalog,
+    not the number of tiles or images.
 
 Work runs serially, in local processes (``workers``, joblib's loky backend) or
 on a running Dask distributed cluster (``scheduler``). Every worker loads the
@@ -410,21 +412,37 @@ class _Journal:
                 handle.flush()
                 os.fsync(handle.fileno())
 
+    def read(self, index):
+        """The entry of one plan index, or None when it is missing or unreadable."""
+        try:
+            return json.loads(self._path(index).read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return None
+
+    def entry(self, index, task):
+        """The entry of ``task`` at plan index ``index``; an error when it is missing or damaged."""
+        entry = self.read(index)
+        if entry is None or entry.get("tile_id") != task.tile_id:
+            raise DetectorError(
+                f"journal entry {str(self._path(index))!r} of tile {task.tile_id!r} is missing or damaged; "
+                f"run the same command again to recompute it."
+            )
+        return entry
+
     def finished(self, tasks):
-        """Entries already in the journal, by plan index (entries of other tiles are ignored)."""
-        done = {}
+        """Plan indices whose entry is already in the journal (entries of other tiles are ignored).
+
+        Entries are checked, not kept: the outputs read them again one image at a
+        time, so memory does not follow the number of tiles.
+        """
         if not self.folder.is_dir():
-            return done
+            return set()
+        done = set()
         for index, task in enumerate(tasks):
-            path = self._path(index)
-            if not path.is_file():
-                continue
-            try:
-                entry = json.loads(path.read_text(encoding="utf-8"))
-            except (OSError, ValueError):
-                continue  # an unreadable entry is simply computed again
-            if entry.get("tile_id") == task.tile_id:
-                done[index] = entry
+            entry = self.read(index) if self._path(index).is_file() else None
+            # an unreadable entry, or one of another tile, is simply computed again
+            if entry is not None and entry.get("tile_id") == task.tile_id:
+                done.add(index)
         return done
 
 
@@ -547,19 +565,17 @@ def _write_json(path, obj):
 # ----------------------------------------------------------------------------- assembly
 
 
-def _assemble(tasks, entries):
-    rows = [entries[i]["tile"] for i in range(len(tasks))]
-    tiles = pd.DataFrame(rows, columns=list(TILE_COLUMNS))
+def _frames(entries, columns):
+    """tiles.csv and detections.csv rows of some journal entries (one image's), typed."""
+    tiles = pd.DataFrame([e["tile"] for e in entries], columns=list(TILE_COLUMNS))
     for c in ("col0", "row0"):
         tiles[c] = pd.array(np.where(np.isfinite(tiles[c].to_numpy(dtype=float)), tiles[c], np.nan)).astype("Int64")
     for c in ("width", "height", "n_fans", "n_spots"):
         tiles[c] = tiles[c].astype(np.int64)
     tiles["route"] = tiles["route"].astype(str)
-    georeferenced = any(entries[i]["georeferenced"] for i in range(len(tasks)))
-    columns = list(DETECTION_OUTPUT_COLUMNS) + (list(GEO_COLUMNS) if georeferenced else [])
     merged = {c: [] for c in columns}
-    for i in range(len(tasks)):
-        det = entries[i]["detections"]
+    for entry in entries:
+        det = entry["detections"]
         n = len(det["tile_id"])
         for c in columns:
             merged[c].extend(det.get(c, [np.nan] * n))
@@ -584,28 +600,44 @@ def _image_offsets(detections, tasks):
     return rows["path"].to_numpy(dtype=object), rows["ox"].to_numpy(dtype=float), rows["oy"].to_numpy(dtype=float)
 
 
-def _geojson_chunks(detections, tasks, images, *, chunk=2000):
+@dataclass(frozen=True)
+class _GeoContext:
+    """Run-wide georeferencing: every file's georeferencer, and whether the GeoJSON is in map coordinates."""
+
+    georefs: dict
+    use_map: bool
+
+    @property
+    def any_georeferenced(self):
+        return any(g is not None for g in self.georefs.values())
+
+    @classmethod
+    def of(cls, images):
+        georefs = {}
+        for entry in images.values():
+            georefs.update(entry["georefs"])
+        crs_wkts = {None if g is None else g.crs.to_wkt() for g in georefs.values()}
+        # Map coordinates only when every file shares one CRS; otherwise image px for all.
+        return cls(georefs, None not in crs_wkts and len(crs_wkts) == 1)
+
+
+def _geojson_chunks(detections, tasks, geo, *, chunk=2000):
     """FeatureCollections of consecutive chunks of the detections (at least one, maybe empty)."""
     if len(detections) <= chunk:
-        yield _geojson(detections, tasks, images)
+        yield _geojson(detections, tasks, geo)
         return
     for start in range(0, len(detections), chunk):
-        yield _geojson(detections.iloc[start:start + chunk], tasks, images)
+        yield _geojson(detections.iloc[start:start + chunk], tasks, geo)
 
 
-def _geojson(detections, tasks, images):
+def _geojson(detections, tasks, geo):
     from .geojson import detections_to_geojson
 
-    georefs = {}
-    for entry in images.values():
-        georefs.update(entry["georefs"])
+    georefs, use_map = geo.georefs, geo.use_map
     if detections.empty:
         first = next(iter(georefs.values()), None)
-        all_geo = all(g is not None for g in georefs.values())
-        return detections_to_geojson(detections.iloc[0:0], georef=first if all_geo else None)
+        return detections_to_geojson(detections.iloc[0:0], georef=first if use_map else None)
     paths, ox, oy = _image_offsets(detections, tasks)
-    crs_wkts = {None if g is None else g.crs.to_wkt() for g in georefs.values()}
-    use_map = None not in crs_wkts and len(crs_wkts) == 1
     df = detections.copy()
     if not use_map:
         # Image px: tile px plus the tile's offset in its image (the file offset when the image offset is unknown).
@@ -621,11 +653,6 @@ def _geojson(detections, tasks, images):
         features.extend(collection["features"])
     collection["features"] = features
     return collection
-
-
-def _write_csv(path, df):
-    with atomic_path(path) as tmp:
-        df.to_csv(tmp, index=False)
 
 
 # ----------------------------------------------------------------------------- figures
@@ -701,70 +728,148 @@ def _figure(n, panel_in, polar=False):
     return fig, axes[:n]
 
 
-def _quicklook(path, detections, tasks, images, *, band, nodata):
-    from matplotlib.cm import ScalarMappable
-    from matplotlib.colors import Normalize
+class _Figures:
+    """The quick-look and the rose figures, filled one image's panel at a time.
 
-    from .plots import DIRECTION_CMAP, draw_features
+    Parameters
+    ----------
+    names : list of str
+        All images of the run, sorted; the first ``_MAX_PANELS`` get a panel.
+    use_azimuth : bool
+        Rose of azimuths (georeferenced run) rather than of image directions.
+    """
 
-    names = sorted(images)[:_MAX_PANELS]
-    cap = _QUICKLOOK_PX if len(names) == 1 else max(600, _QUICKLOOK_PX // min(3, len(names)))
-    fig, axes = _figure(len(names), 9.0 if len(names) == 1 else 4.5)
+    def __init__(self, names, *, use_azimuth):
+        self.names = list(names)[:_MAX_PANELS]
+        n = len(self.names)
+        self.cap = _QUICKLOOK_PX if n == 1 else max(600, _QUICKLOOK_PX // min(3, n))
+        self.use_azimuth = use_azimuth
+        self.quick, quick_axes = _figure(n, 9.0 if n == 1 else 4.5)
+        self.rose, rose_axes = _figure(n, 3.6, polar=True)
+        self.quick_axes = dict(zip(self.names, quick_axes, strict=True))
+        self.rose_axes = dict(zip(self.names, rose_axes, strict=True))
+
+    def add(self, name, detections, tasks, images, *, band, nodata):
+        """Draw one image's panels (a no-op for images beyond the panel limit)."""
+        if name in self.quick_axes:
+            _quicklook_panel(self.quick_axes[name], name, detections, tasks, images, self.cap, band=band,
+                             nodata=nodata)
+            _rose_panel(self.rose_axes[name], name, detections, self.use_azimuth)
+
+    def save(self, quicklook_path, rose_path):
+        from matplotlib.cm import ScalarMappable
+        from matplotlib.colors import Normalize
+
+        from .plots import DIRECTION_CMAP
+
+        bar = self.quick.colorbar(ScalarMappable(norm=Normalize(0, 360), cmap=DIRECTION_CMAP),
+                                  ax=list(self.quick_axes.values()), shrink=0.7, ticks=[0, 90, 180, 270, 360])
+        bar.set_label("fan direction, degrees clockwise from image up", fontsize=7)
+        self.rose.suptitle(
+            ("fan azimuth, degrees clockwise from north" if self.use_azimuth
+             else "fan direction, degrees clockwise from image up") + "; weighted by length", fontsize=8,
+        )
+        for fig, path in ((self.quick, quicklook_path), (self.rose, rose_path)):
+            with atomic_path(path) as tmp:
+                fig.savefig(tmp, format="png")
+
+
+def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata):
+    from .plots import draw_features
+
+    canvas, scale = _canvas(images[name], band, nodata, cap)
+    ax.imshow(_gray_rgb(canvas), interpolation="nearest")
+    title = name
     if not detections.empty:
         cx, cy = _canvas_positions(detections, tasks, images)
-    for ax, name in zip(axes, names, strict=True):
-        canvas, scale = _canvas(images[name], band, nodata, cap)
-        ax.imshow(_gray_rgb(canvas), interpolation="nearest")
-        title = name
-        if not detections.empty:
-            sel = (detections["image"] == name).to_numpy()
-            shown = detections.loc[sel].assign(x_px=cx[sel], y_px=cy[sel])
-            n_all = len(shown)
-            if n_all > _MAX_DRAWN:
-                # Matplotlib slows down with many patches; the strongest detections tell the story.
-                shown = shown.nlargest(_MAX_DRAWN, "score")
-            shown = shown.assign(
-                x_px=shown["x_px"] * scale, y_px=shown["y_px"] * scale, length_px=shown["length_px"] * scale,
-                semi_major_px=shown["semi_major_px"] * scale, semi_minor_px=shown["semi_minor_px"] * scale,
-            )
-            draw_features(ax, shown, linewidth=0.6)
-            title += f"  ({n_all} detections" + (f", {len(shown)} strongest drawn)" if n_all > len(shown) else ")")
-        ax.set_xlim(-0.5, canvas.shape[1] - 0.5)
-        ax.set_ylim(canvas.shape[0] - 0.5, -0.5)
-        ax.set_title(title + (f"  [1:{1 / scale:.0f}]" if scale < 1 else ""), fontsize=8)
-        ax.tick_params(labelsize=6)
-    bar = fig.colorbar(ScalarMappable(norm=Normalize(0, 360), cmap=DIRECTION_CMAP), ax=list(axes), shrink=0.7,
-                       ticks=[0, 90, 180, 270, 360])
-    bar.set_label("fan direction, degrees clockwise from image up", fontsize=7)
-    with atomic_path(path) as tmp:
-        fig.savefig(tmp, format="png")
+        shown = detections.assign(x_px=cx, y_px=cy)
+        n_all = len(shown)
+        if n_all > _MAX_DRAWN:
+            # Matplotlib slows down with many patches; the strongest detections tell the story.
+            shown = shown.nlargest(_MAX_DRAWN, "score")
+        shown = shown.assign(
+            x_px=shown["x_px"] * scale, y_px=shown["y_px"] * scale, length_px=shown["length_px"] * scale,
+            semi_major_px=shown["semi_major_px"] * scale, semi_minor_px=shown["semi_minor_px"] * scale,
+        )
+        draw_features(ax, shown, linewidth=0.6)
+        title += f"  ({n_all} detections" + (f", {len(shown)} strongest drawn)" if n_all > len(shown) else ")")
+    ax.set_xlim(-0.5, canvas.shape[1] - 0.5)
+    ax.set_ylim(canvas.shape[0] - 0.5, -0.5)
+    ax.set_title(title + (f"  [1:{1 / scale:.0f}]" if scale < 1 else ""), fontsize=8)
+    ax.tick_params(labelsize=6)
 
 
-def _rose(path, detections, images):
-    names = sorted(images)[:_MAX_PANELS]
-    fig, axes = _figure(len(names), 3.6, polar=True)
-    use_azimuth = "azimuth_deg" in detections.columns
+def _rose_panel(ax, name, detections, use_azimuth):
     edges = np.linspace(0.0, 360.0, _ROSE_BINS + 1)
-    for ax, name in zip(axes, names, strict=True):
-        fans = detections.loc[(detections["image"] == name) & (detections["kind"] == "fan")]
-        angles = fans["azimuth_deg" if use_azimuth else "direction_deg"].to_numpy(dtype=float)
-        if use_azimuth and not np.isfinite(angles).all():
-            angles = np.where(np.isfinite(angles), angles, fans["direction_deg"].to_numpy(dtype=float))
-        weights = np.nan_to_num(fans["length_px"].to_numpy(dtype=float))
-        counts, _ = np.histogram(angles % 360.0, bins=edges, weights=weights)
-        ax.set_theta_zero_location("N")
-        ax.set_theta_direction(-1)
-        ax.bar(np.radians(edges[:-1]), counts, width=np.radians(360.0 / _ROSE_BINS), align="edge",
-               color="tab:orange", edgecolor="black", linewidth=0.3)
-        ax.set_title(f"{name} ({len(fans)} fans)", fontsize=8)
-        ax.tick_params(labelsize=6)
-        ax.set_yticklabels([])
-    fig.suptitle(
-        ("fan azimuth, degrees clockwise from north" if use_azimuth else "fan direction, degrees clockwise from image up")
-        + "; weighted by length", fontsize=8,
-    )
-    with atomic_path(path) as tmp:
-        fig.savefig(tmp, format="png")
+    fans = detections.loc[detections["kind"] == "fan"]
+    angles = fans["azimuth_deg" if use_azimuth else "direction_deg"].to_numpy(dtype=float)
+    if use_azimuth and not np.isfinite(angles).all():
+        angles = np.where(np.isfinite(angles), angles, fans["direction_deg"].to_numpy(dtype=float))
+    weights = np.nan_to_num(fans["length_px"].to_numpy(dtype=float))
+    counts, _ = np.histogram(angles % 360.0, bins=edges, weights=weights)
+    ax.set_theta_zero_location("N")
+    ax.set_theta_direction(-1)
+    ax.bar(np.radians(edges[:-1]), counts, width=np.radians(360.0 / _ROSE_BINS), align="edge",
+           color="tab:orange", edgecolor="black", linewidth=0.3)
+    # In a run mixing georeferenced and plain images, say which panels are not azimuths.
+    plain = use_azimuth and len(fans) and not np.isfinite(fans["azimuth_deg"].to_numpy(dtype=float)).any()
+    ax.set_title(f"{name} ({len(fans)} fans" + (", from image up)" if plain else ")"), fontsize=8)
+    ax.tick_params(labelsize=6)
+    ax.set_yticklabels([])
+
+
+def _write_outputs(stage, tasks, journal, images, *, band, nodata):
+    """Write the five outputs into ``stage`` from the journal, one image at a time.
+
+    Only one image's entries and rows are in memory at once, so memory follows
+    the largest image's catalog, not the run's.
+
+    Returns
+    -------
+    totals : dict
+        Counts and areas over the whole run for the summary.
+    per_image : DataFrame
+        See :class:`ScreenSummary`.
+    """
+    geo = _GeoContext.of(images)
+    columns = list(DETECTION_OUTPUT_COLUMNS) + (list(GEO_COLUMNS) if geo.any_georeferenced else [])
+    groups = {}
+    for index, task in enumerate(tasks):
+        groups.setdefault(task.image, []).append(index)
+    names = sorted(images)
+    figures = _Figures(names, use_azimuth="azimuth_deg" in columns)
+    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, area=0.0,
+                  covered=0.0)
+    records = []
+
+    def image_chunks(tiles_out, detections_out):
+        # Each image's rows go to both CSVs, its panels and counts, then its GeoJSON features.
+        for k, name in enumerate(names):
+            indices = groups.get(name, [])
+            image_tasks = [tasks[i] for i in indices]
+            tiles, detections = _frames([journal.entry(i, tasks[i]) for i in indices], columns)
+            tiles.to_csv(tiles_out, index=False, header=k == 0)
+            detections.to_csv(detections_out, index=False, header=k == 0)
+            figures.add(name, detections, image_tasks, {name: images[name]}, band=band, nodata=nodata)
+            records.append(_per_image(tiles, detections))
+            scored = tiles[tiles["route"] != "nodata"]
+            totals["n_tiles"] += len(tiles)
+            totals["n_scored"] += len(scored)
+            totals["n_nodata"] += int((tiles["route"] == "nodata").sum())
+            totals["n_fans"] += int((detections["kind"] == "fan").sum())
+            totals["n_spots"] += int((detections["kind"] == "spot").sum())
+            totals["n_deposit_tiles"] += int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum())
+            totals["area"] += float((scored["width"] * scored["height"]).sum())
+            totals["covered"] += float(
+                ((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
+            yield from _geojson_chunks(detections, image_tasks, geo)
+
+    # The stage folder is moved in only when everything is written, so plain files suffice here.
+    with open(stage / "tiles.csv", "w", encoding="utf-8", newline="") as tiles_out, \
+            open(stage / "detections.csv", "w", encoding="utf-8", newline="") as detections_out:
+        write_geojson_chunks(stage / "detections.geojson", image_chunks(tiles_out, detections_out))
+    figures.save(stage / "quicklook.png", stage / "rose.png")
+    return totals, pd.concat(records, ignore_index=True)
 
 
 # ----------------------------------------------------------------------------- summary
@@ -922,9 +1027,9 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     record = _claim(out, params)
     journal = _Journal(out)
     journal.sweep()
-    entries = journal.finished(tasks)
-    n_resumed = len(entries)
-    todo = [(i, t) for i, t in enumerate(tasks) if i not in entries]
+    finished = journal.finished(tasks)
+    n_resumed = len(finished)
+    todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
     model_arg = str(model_dir.resolve())
     if scheduler:
         results = _run_dask(todo, model_arg, min_score, scheduler)
@@ -936,40 +1041,26 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     t_tiles = time.perf_counter()
     with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
         for index, entry in results:
-            journal.write(index, entry)
-            entries[index] = entry
+            journal.write(index, entry)  # the entry is not kept: the outputs read the journal
             pixels += entry["pixels"]
             bar.update(1)
     t_tiles = time.perf_counter() - t_tiles
 
-    tiles, detections = _assemble(tasks, entries)
     with _staged(out) as stage:
-        _write_csv(stage / "tiles.csv", tiles)
-        _write_csv(stage / "detections.csv", detections)
-        # Streamed in chunks of detections so memory does not follow the catalog's size.
-        write_geojson_chunks(stage / "detections.geojson", _geojson_chunks(detections, tasks, images))
-        _quicklook(stage / "quicklook.png", detections, tasks, images, band=band, nodata=nodata)
-        _rose(stage / "rose.png", detections, images)
+        totals, per_image = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
 
     seconds = time.perf_counter() - t_start
-    scored = tiles[tiles["route"] != "nodata"]
-    area = float((scored["width"] * scored["height"]).sum())
-    covered = float(((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
+    area, covered = totals.pop("area"), totals.pop("covered")
     summary = ScreenSummary(
         out=out,
-        n_tiles=len(tiles),
-        n_scored=len(scored),
-        n_nodata=int((tiles["route"] == "nodata").sum()),
         n_resumed=n_resumed,
-        n_fans=int((detections["kind"] == "fan").sum()),
-        n_spots=int((detections["kind"] == "spot").sum()),
-        n_deposit_tiles=int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum()),
         covered_percent=100.0 * covered / area if area else 0.0,
         megapixels=pixels / 1e6,
         seconds=seconds,
         mpx_per_s=pixels / 1e6 / seconds if seconds > 0 else math.nan,
         workers=workers,
-        per_image=_per_image(tiles, detections),
+        per_image=per_image,
+        **totals,
     )
     record = {
         **record,

@@ -160,6 +160,16 @@ def test_tileset_input_keeps_tile_ids(model_dir, tmp_path):
     assert set(detections["tile_id"]) <= set(listed["tile_id"])
     assert summary.n_tiles == 4
     assert (tiles["n_fans"] + tiles["n_spots"]).sum() == len(detections)
+    # Outputs are written one image at a time: every image's rows once, in plan order, one header.
+    assert list(pd.unique(detections["image"])) == sorted(set(detections["image"]))
+    assert (out / "detections.csv").read_text().count("tile_id,") == 1
+    per_tile = detections.groupby("tile_id").size()
+    assert (per_tile.reindex(tiles["tile_id"], fill_value=0).to_numpy()
+            == (tiles["n_fans"] + tiles["n_spots"]).to_numpy()).all()
+    collection = json.loads((out / "detections.geojson").read_text())
+    assert len(collection["features"]) == len(detections)
+    assert summary.n_fans + summary.n_spots == len(detections)
+    assert summary.per_image["image"].tolist() == sorted(listed["image_id"].unique())
 
 
 # ----------------------------------------------------------------------------- image tiling
