@@ -677,10 +677,15 @@ def _decimated(piece, band, nodata, step):
     return np.vstack(strips), np.vstack(masks)
 
 
+def _image_size(entry):
+    """(width, height) of an image's quick-look canvas at full resolution, px."""
+    pieces = entry["pieces"]
+    return max(p.col0 + p.width for p in pieces), max(p.row0 + p.height for p in pieces)
+
+
 def _canvas(entry, band, nodata, cap):
     pieces = entry["pieces"]
-    width = max(p.col0 + p.width for p in pieces)
-    height = max(p.row0 + p.height for p in pieces)
+    width, height = _image_size(entry)
     step = max(1, math.ceil(max(width, height) / cap))
     scale = 1.0 / step
     canvas = np.full((-(-height // step), -(-width // step)), np.nan, np.float32)
@@ -713,13 +718,29 @@ def _canvas_positions(detections, tasks, images):
     return detections["x_px"].to_numpy(dtype=float) + ox + px, detections["y_px"].to_numpy(dtype=float) + oy + py
 
 
-def _figure(n, panel_in, polar=False):
+def _figure(n, panel_in, polar=False, aspect=None, extra_width_in=0.8):
+    """A figure of ``n`` panels whose longer side is ``panel_in`` inches.
+
+    With ``aspect`` (panel height / width, e.g. of the images shown) the panels
+    take that shape and the grid gets as many columns as keep the figure
+    roughly square, so tall strips stand side by side instead of leaving most
+    of a square figure empty. ``extra_width_in`` is room for a colour bar.
+    """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    ncols = int(min(n, 3 if n > 4 else n if n <= 2 else 2))
+    if aspect is None:
+        ncols = int(min(n, 3 if n > 4 else n if n <= 2 else 2))
+        width_in = height_in = panel_in
+    else:
+        aspect = float(np.clip(aspect, 0.2, 5.0))
+        ncols = int(min(n, max(1, math.ceil(math.sqrt(n * aspect)))))
+        # 2.5 in at least, so that a tall panel's title still fits
+        width_in = max(panel_in / max(aspect, 1.0), 2.5)
+        height_in = panel_in * min(aspect, 1.0)
     nrows = -(-n // ncols)
-    fig = Figure(figsize=(panel_in * ncols + 0.8, panel_in * nrows + 0.6), dpi=110, layout="constrained")
+    fig = Figure(figsize=(width_in * ncols + extra_width_in, height_in * nrows + 0.6), dpi=110,
+                 layout="constrained")
     FigureCanvasAgg(fig)
     kw = {"projection": "polar"} if polar else {}
     axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False, subplot_kw=kw)).ravel()
@@ -735,16 +756,20 @@ class _Figures:
     ----------
     names : list of str
         All images of the run, sorted; the first ``_MAX_PANELS`` get a panel.
+    images : dict
+        The plan's images (their pieces give each canvas's size).
     use_azimuth : bool
         Rose of azimuths (georeferenced run) rather than of image directions.
     """
 
-    def __init__(self, names, *, use_azimuth):
+    def __init__(self, names, images, *, use_azimuth):
         self.names = list(names)[:_MAX_PANELS]
         n = len(self.names)
         self.cap = _QUICKLOOK_PX if n == 1 else max(600, _QUICKLOOK_PX // min(3, n))
         self.use_azimuth = use_azimuth
-        self.quick, quick_axes = _figure(n, 9.0 if n == 1 else 4.5)
+        sizes = [_image_size(images[name]) for name in self.names]
+        aspect = float(np.median([h / w for w, h in sizes])) if sizes else 1.0
+        self.quick, quick_axes = _figure(n, 9.0 if n == 1 else 4.5, aspect=aspect, extra_width_in=1.5)
         self.rose, rose_axes = _figure(n, 3.6, polar=True)
         self.quick_axes = dict(zip(self.names, quick_axes, strict=True))
         self.rose_axes = dict(zip(self.names, rose_axes, strict=True))
@@ -837,7 +862,7 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
     for index, task in enumerate(tasks):
         groups.setdefault(task.image, []).append(index)
     names = sorted(images)
-    figures = _Figures(names, use_azimuth="azimuth_deg" in columns)
+    figures = _Figures(names, images, use_azimuth="azimuth_deg" in columns)
     totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, area=0.0,
                   covered=0.0)
     records = []
