@@ -19,6 +19,7 @@ trained on consensus gives each reading the probability that it is right. A
 component becomes fans or a spot, whichever reading scores higher.
 """
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -135,6 +136,21 @@ class AssemblyParams:
         return cls(**{k: v for k, v in (fields or {}).items() if k in cls.__dataclass_fields__})
 
 
+def _box_weights(valid, background_px):
+    """The twice-applied box mean of the valid mask: each pixel's share of valid background."""
+    den = valid.astype(np.float32)
+    for _ in range(2):
+        den = ndimage.uniform_filter(den, background_px, mode="constant")
+    return den
+
+
+@functools.lru_cache(maxsize=4)
+def _full_box_weights(shape, background_px):
+    den = _box_weights(np.ones(shape, dtype=bool), background_px)
+    den.setflags(write=False)
+    return den
+
+
 def local_darkness(image, valid, *, background_px=51):
     """Darkness below the local background, in units of the tile's robust residual spread.
 
@@ -155,12 +171,12 @@ def local_darkness(image, valid, *, background_px=51):
         ``(background - image) / (1.4826 * MAD)`` of the residual; 0 on no-data
         and everywhere on a flat tile.
     """
-    v = valid.astype(np.float32)
     img = np.where(valid, image, 0.0).astype(np.float32)
-    num, den = img, v
+    num = img
     for _ in range(2):
         num = ndimage.uniform_filter(num, background_px, mode="constant")
-        den = ndimage.uniform_filter(den, background_px, mode="constant")
+    # Most tiles are wholly valid and of one size: their weights are computed once.
+    den = _full_box_weights(valid.shape, background_px) if valid.all() else _box_weights(valid, background_px)
     background = num / np.maximum(den, 1e-6)
     resid = np.where(valid, background - img, 0.0)
     # Every 4th valid pixel estimates the spread as well and four times faster.

@@ -137,6 +137,28 @@ def test_grey_opening_equals_scipy(shape, size):
     np.testing.assert_array_equal(grey_opening_square(image, size), ndimage.grey_opening(image, size=(size, size)))
 
 
+@pytest.mark.parametrize("with_nodata", [False, True])
+def test_local_darkness_follows_its_formula(with_nodata):
+    # The documented formula, written out with scipy.ndimage's box filter: background = box(box(image
+    # on valid)) / box(box(valid)); darkness = (background - image) / (1.4826 MAD) of the residual.
+    rng = np.random.default_rng(3)
+    image = rng.random((70, 90)).astype(np.float32)
+    valid = np.ones(image.shape, dtype=bool)
+    if with_nodata:
+        valid[:, :12] = False
+    num = np.where(valid, image, 0.0).astype(np.float32)
+    den = valid.astype(np.float32)
+    for _ in range(2):
+        num = ndimage.uniform_filter(num, 21, mode="constant")
+        den = ndimage.uniform_filter(den, 21, mode="constant")
+    resid = np.where(valid, num / np.maximum(den, 1e-6) - image, 0.0)
+    values = resid[valid][::4]
+    mad = 1.4826 * np.median(np.abs(values - np.median(values)))
+    expected = resid / mad
+    for _ in range(2):  # the second call uses the cached weights of a wholly valid tile
+        np.testing.assert_allclose(local_darkness(image, valid, background_px=21), expected, rtol=1e-6, atol=1e-6)
+
+
 def test_local_darkness_is_zero_on_a_flat_tile():
     dark = local_darkness(np.full((120, 140), 0.4), np.ones((120, 140), bool))
     assert dark.dtype == np.float32
