@@ -124,10 +124,24 @@ def build_parser():
     return parser
 
 
+class _Terminated(Exception):
+    """SIGTERM as an exception, so that a run stops as on Ctrl-C: workers shut down, finished work kept."""
+
+
+def _raise_terminated(signum, frame):
+    raise _Terminated()
+
+
 def main(argv=None):
     """Entry point of the ``frostvane`` console script; returns the exit code."""
+    import signal
+    import threading
+
     parser = build_parser()
     args = parser.parse_args(argv)
+    # Without this, `kill` (SIGTERM) ends the process at once and its worker processes live on.
+    on_main_thread = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _raise_terminated) if on_main_thread else None
     try:
         code = args.func(args)
     except DetectorError as err:
@@ -144,6 +158,12 @@ def main(argv=None):
     except KeyboardInterrupt:
         print("frostvane: interrupted; finished work is kept and a rerun continues from it.", file=sys.stderr)
         return 130
+    except _Terminated:
+        print("frostvane: terminated; finished work is kept and a rerun continues from it.", file=sys.stderr)
+        return 143  # 128 + SIGTERM, as a shell reports a process ended by it
+    finally:
+        if on_main_thread:
+            signal.signal(signal.SIGTERM, previous)
     return 0 if code is None else int(code)
 
 

@@ -363,6 +363,61 @@ def test_killed_run_resumes_to_the_same_outputs(model_dir, big_png, big_referenc
     assert run["timing"]["tiles_resumed"] + run["timing"]["tiles_computed"] == 36
 
 
+def _child_pids(pid):
+    """Processes whose parent is ``pid``, from Linux /proc."""
+    kids = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid:
+            kids.append(int(stat.parent.name))
+    return kids
+
+
+def _running(pid):
+    """True while ``pid`` exists and is not a zombie (exited, not yet reaped)."""
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from Linux /proc")
+def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, big_reference, tmp_path):
+    # `kill PID` (SIGTERM) must end a run as Ctrl-C does: exit 128 + 15, its worker processes gone,
+    # no final outputs, the journal kept for the rerun (common practice for command-line tools).
+    out = tmp_path / "terminated"
+    argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "200x150", "--workers", "2")
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    journal = out / ".partial"
+    deadline = time.monotonic() + 300
+    try:
+        while time.monotonic() < deadline and proc.poll() is None and len(_journal_entries(journal)) < 2:
+            time.sleep(0.02)
+        assert proc.poll() is None, "the run ended before it could be stopped"
+        workers = _child_pids(proc.pid)
+        assert len(workers) >= 2
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 143, err
+    assert "terminated; finished work is kept" in err
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline and any(_running(p) for p in workers):
+        time.sleep(0.1)
+    assert not [p for p in workers if _running(p)]
+    assert not any((out / name).exists() for name in OUTPUT_FILES)
+    summary = screen(model_dir, [big_png], out, tile=TILE, overlap=32, progress=False)
+    assert summary.n_resumed >= 2
+    _same_outputs(out, big_reference)
+
+
 def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path):
     from distributed import LocalCluster
 
