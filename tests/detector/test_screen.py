@@ -386,11 +386,15 @@ def _running(pid):
 
 
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from Linux /proc")
-def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, big_reference, tmp_path):
+def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_path):
     # `kill PID` (SIGTERM) must end a run as Ctrl-C does: exit 128 + 15, its worker processes gone,
     # no final outputs, the journal kept for the rerun (common practice for command-line tools).
+    # Small tiles (144 of them), so that two workers are still busy when the signal comes.
+    small = (100, 75)
+    reference = tmp_path / "reference"
+    screen(model_dir, [big_png], reference, tile=small, overlap=32, progress=False)
     out = tmp_path / "terminated"
-    argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "200x150", "--workers", "2")
+    argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "100x75", "--workers", "2")
     env = {**os.environ, "OMP_NUM_THREADS": "1"}
     proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     journal = out / ".partial"
@@ -413,9 +417,9 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, big_re
         time.sleep(0.1)
     assert not [p for p in workers if _running(p)]
     assert not any((out / name).exists() for name in OUTPUT_FILES)
-    summary = screen(model_dir, [big_png], out, tile=TILE, overlap=32, progress=False)
-    assert summary.n_resumed >= 2
-    _same_outputs(out, big_reference)
+    summary = screen(model_dir, [big_png], out, tile=small, overlap=32, progress=False)
+    assert summary.n_tiles == 144 and 2 <= summary.n_resumed < 144
+    _same_outputs(out, reference)
 
 
 def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path):
