@@ -172,6 +172,25 @@ def test_tileset_input_keeps_tile_ids(model_dir, tmp_path):
     assert summary.per_image["image"].tolist() == sorted(listed["image_id"].unique())
 
 
+def test_first_image_without_detections_still_heads_the_outputs(model_dir, tmp_path):
+    # Outputs are written image by image; an empty first image must still write the CSV headers.
+    root = tmp_path / "ts"
+    root.mkdir()
+    write_image(root / "flat.png", np.full((192, 256), 140, dtype=np.uint8))
+    write_image(root / "scene.png", _scene((192, 256), 21, scenario="windy", nodata=False))
+    pd.DataFrame({"tile_id": ["A_T0", "B_T0"], "image_id": ["A_flat", "B_scene"],
+                  "path": ["flat.png", "scene.png"]}).to_csv(root / "tiles.csv", index=False)
+    out = tmp_path / "out"
+    summary = screen(model_dir, [root], out, progress=False)
+    detections = pd.read_csv(out / "detections.csv")
+    assert len(detections) > 0 and set(detections["image"]) == {"B_scene"}
+    assert list(detections.columns[:3]) == ["tile_id", "kind", "x_px"]
+    tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+    assert tiles["tile_id"].tolist() == ["A_T0", "B_T0"]
+    assert len(json.loads((out / "detections.geojson").read_text())["features"]) == len(detections)
+    assert summary.per_image.set_index("image").loc["A_flat", "fans"] == 0
+
+
 # ----------------------------------------------------------------------------- image tiling
 
 
