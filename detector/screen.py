@@ -62,6 +62,7 @@ from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUI
 from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson_chunks
 from .io import atomic_path
+from .raster import TileWindow, open_raster, plan_windows
 
 __all__ = [
     "TILE_COLUMNS",
@@ -122,23 +123,25 @@ _ROSE_BINS = 36
 
 @dataclass(frozen=True)
 class _TileTask:
-    """Everything a worker needs to screen one tile; small and picklable (no pixels)."""
+    """Everything a worker needs to screen one tile; small and picklable (no pixels).
 
-    tile_id: str
-    image: str
+    ``window`` is the tile's core and read window in the pixels of its file;
+    ``col0``, ``row0`` place the core in its image (NaN when a tile set does not say).
+    """
+
+    window: TileWindow
     path: str
     band: object
     nodata: object
-    col0: float  # image px of the core's top-left pixel (NaN when a tile set does not say)
+    col0: float
     row0: float
-    file_col0: int  # file px of the core's top-left pixel
-    file_row0: int
-    width: int
-    height: int
-    read_col0: int
-    read_row0: int
-    read_width: int
-    read_height: int
+
+    tile_id = property(lambda self: self.window.tile_id)
+    image = property(lambda self: self.window.image)
+    width = property(lambda self: self.window.width)
+    height = property(lambda self: self.window.height)
+    file_col0 = property(lambda self: self.window.col0)
+    file_row0 = property(lambda self: self.window.row0)
 
     @property
     def sort_key(self):
@@ -160,22 +163,17 @@ class _Piece:
 
 
 def _open(path, band, nodata):
-    from .raster import open_raster
-
     return open_raster(path, band=band, nodata=nodata)
 
 
 def _plan_raster(path, *, tile, overlap, nodata, band):
-    from .raster import plan_windows
-
     with _open(path, band, nodata) as src:
         windows = plan_windows(src.width, src.height, tile=tile, overlap=overlap, image=src.name)
         georef = src.georeferencer() if src.is_georeferenced else None
         size = (src.width, src.height)
         used_nodata = src.nodata
     tasks = [
-        _TileTask(w.tile_id, w.image, str(path), band, nodata, float(w.col0), float(w.row0), w.col0, w.row0,
-                  w.width, w.height, w.read_col0, w.read_row0, w.read_width, w.read_height)
+        _TileTask(w, str(path), band, nodata, float(w.col0), float(w.row0))
         for w in windows
     ]
     pieces = [_Piece(str(path), 0, 0, size[0], size[1])]
@@ -224,7 +222,8 @@ def _plan_tileset(root, *, nodata, band):
             w, h = src.width, src.height
             georef = src.georeferencer() if src.is_georeferenced else None
             used_nodata = src.nodata
-        tasks.append(_TileTask(tile_id, image, str(path), band, nodata, float(c), float(r), 0, 0, w, h, 0, 0, w, h))
+        window = TileWindow(tile_id, image, 0, 0, w, h, 0, 0, w, h)  # the whole file is the tile
+        tasks.append(_TileTask(window, str(path), band, nodata, float(c), float(r)))
         entry = images.setdefault(image, dict(pieces=[], georefs={}, nodata=used_nodata))
         entry["georefs"][str(path)] = georef
         entry["pieces"].append((float(c), float(r), str(path), w, h))
@@ -306,10 +305,9 @@ def _screen_tile(index, task, model_dir, min_score=None):
 
     model = cached_model(model_dir)
     src, georef = _cached_source(task.path, task.band, task.nodata)
-    array, mask = src.read((task.read_col0, task.read_row0, task.read_width, task.read_height))
-    dx = task.file_col0 - task.read_col0
-    dy = task.file_row0 - task.read_row0
-    core = slice(dy, dy + task.height), slice(dx, dx + task.width)
+    array, mask = src.read(task.window)
+    core = task.window.core_slices
+    dy, dx = core[0].start, core[1].start
     valid_share = float(1.0 - mask[core].mean())
     row = {
         "tile_id": task.tile_id, "image": task.image, "col0": task.col0, "row0": task.row0,
