@@ -369,19 +369,12 @@ def lbp_uniform(image, P, R, *, strip_rows=32):
         for i, (minr, maxr, key) in enumerate(neighbours):
             H = interp[key]
             top = H[pad + minr:pad + minr + m]
-            if minr == maxr:
-                if column_sets[key][0] == column_sets[key][1]:
-                    # integer offset: the interpolation returns the pixel itself
-                    np.greater_equal(top, centre, out=bi)
-                else:
-                    r = rows + rp[i]
-                    fr = (r - np.floor(r))[:, None]
-                    np.multiply(1 - fr, top, out=tv)
-                    np.multiply(fr, top, out=bov)
-                    tv += bov
-                    np.greater_equal(tv, centre, out=bi)
+            if minr == maxr and column_sets[key][0] == column_sets[key][1]:
+                # integer offset: the interpolation returns the pixel itself
+                np.greater_equal(top, centre, out=bi)
             else:
-                bottom = H[pad + maxr:pad + maxr + m]
+                # on an integer row offset the bottom row is the top one, as in scikit-image
+                bottom = top if minr == maxr else H[pad + maxr:pad + maxr + m]
                 r = rows + rp[i]
                 fr = (r - np.floor(r))[:, None]
                 np.multiply(1 - fr, top, out=tv)
