@@ -15,7 +15,7 @@ from .assemble import (
     objects_from_candidates,
     reading_matrix,
 )
-from .features import extract_features
+from .features import _features_of_prepared
 from .geometry import unit_vector
 from .spec import patch_axis_deg
 
@@ -183,9 +183,12 @@ def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
     )
 
 
-def tile_candidates(tile, nodata_mask, maps, spec, params):
-    """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`)."""
-    prep = _dense.prepare_tile(tile, spec, nodata_mask)
+def tile_candidates(tile, nodata_mask, maps, spec, params, *, prep=None):
+    """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`).
+
+    ``prep``, the tile from ``_dense.prepare_tile``, saves preparing it again.
+    """
+    prep = _dense.prepare_tile(tile, spec, nodata_mask) if prep is None else prep
     dark = local_darkness(prep.image, prep.valid, background_px=params.background_px)
     return find_candidates(dark, prep.valid, maps.class_maps, maps.polarity_maps, params=params,
                            axis_maps=maps.axis_maps)
@@ -215,12 +218,13 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     tile = np.asarray(tile)
     if nodata_mask is None:
         nodata_mask = tile == spec.nodata_value
-    X, grid = extract_features(tile, spec, nodata_mask=nodata_mask) if features is None else features
+    prep = _dense.prepare_tile(tile, spec, nodata_mask)
+    X, grid = _features_of_prepared(prep, spec) if features is None else features
     maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
     params = AssemblyParams.from_dict(model.assembly)
     if min_score is not None:
         params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
-    candidates = tile_candidates(tile, nodata_mask, maps, spec, params)
+    candidates = tile_candidates(tile, nodata_mask, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
     detections, pixels = objects_from_candidates(candidates, model.predict_readings(F), params=params,
                                                  tile_id=tile_id, direction_confidence=model.direction_confidence(F))

@@ -163,7 +163,15 @@ def extract_features(tile, spec=None, *, nodata_mask=None):
         The tile is not a non-empty 2-D array of a supported dtype.
     """
     spec = FeatureSpec() if spec is None else spec
-    prep = _dense.prepare_tile(tile, spec, nodata_mask)
+    return _features_of_prepared(_dense.prepare_tile(tile, spec, nodata_mask), spec)
+
+
+def _features_of_prepared(prep, spec):
+    """:func:`extract_features` of a tile already made ready by ``_dense.prepare_tile``.
+
+    For callers that also need the prepared tile (detection finds its candidates
+    on it), so that a tile is prepared once.
+    """
     shape = prep.image.shape
     r, c, _, _ = _grid_indices(shape, spec)
     n = r.size
@@ -363,7 +371,7 @@ class _Pooler:
         return np.stack(cols, axis=1), axis
 
     def polarity(self, signed, mag, st_axis):
-        spec, prep = self.spec, self.prep
+        spec = self.spec
         cp, k = spec.cell_px, self.k
         nb = spec.signed_hist_bins
         sh = self.pool(self.hist(signed, nb, weights=mag))
