@@ -342,7 +342,7 @@ def lbp_uniform(image, P, R, *, strip_rows=32):
     m_pad = n + 2 * pad
     rows_buf = {key: np.empty((m_pad, w)) for key, (minc, maxc, _, _) in column_sets.items() if minc != maxc}
     tmp_pad = np.empty((m_pad, w))
-    t, bo, tm = np.empty((n, w)), np.empty((n, w)), np.empty((n, w))
+    t, bo = np.empty((n, w)), np.empty((n, w))
     bit, prev = np.empty((n, w), dtype=bool), np.empty((n, w), dtype=bool)
     ones, changes = np.empty((n, w), dtype=np.uint8), np.empty((n, w), dtype=np.uint8)
     for a in range(0, h, n):
@@ -362,7 +362,7 @@ def lbp_uniform(image, P, R, *, strip_rows=32):
             np.multiply(fc, padded[a:a + mp, pad + maxc:pad + maxc + w], out=tmp_pad[:mp])
             out += tmp_pad[:mp]
             interp[key] = out
-        tv, bov, tmv, bi, pr = t[:m], bo[:m], tm[:m], bit[:m], prev[:m]
+        tv, bov, bi, pr = t[:m], bo[:m], bit[:m], prev[:m]
         on, ch = ones[:m], changes[:m]
         on[:] = 0
         ch[:] = 0

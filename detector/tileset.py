@@ -24,7 +24,6 @@ from .contract import (
     KIND_FIELDS,
     KINDS,
     TILES_FILE,
-    TILES_OPTIONAL,
     TILES_REQUIRED,
 )
 from .errors import DetectorError, ImageError, TileSetError

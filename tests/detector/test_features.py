@@ -1,6 +1,5 @@
 """Patch features against scikit-image, published worked examples and symmetry facts."""
 
-import warnings
 
 import numpy as np
 import pytest
