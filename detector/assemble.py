@@ -179,11 +179,7 @@ def local_darkness(image, valid, *, background_px=51):
     den = _full_box_weights(valid.shape, background_px) if valid.all() else _box_weights(valid, background_px)
     background = num / np.maximum(den, 1e-6)
     resid = np.where(valid, background - img, 0.0)
-    # Every 4th valid pixel estimates the spread as well and four times faster.
-    values = resid[valid][::4]
-    if values.size == 0:
-        return np.zeros(image.shape, dtype=np.float32)
-    mad = 1.4826 * np.median(np.abs(values - np.median(values)))
+    mad = _robust_spread(resid, valid)
     if mad <= 0:
         return np.zeros(image.shape, dtype=np.float32)
     return (resid / mad).astype(np.float32)
@@ -318,12 +314,20 @@ def grey_opening_square(image, size):
     return _running_extreme(_running_extreme(eroded, size, 0, np.maximum), size, 1, np.maximum)
 
 
-def _renormalised(values, valid):
-    """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
+def _robust_spread(values, valid):
+    """1.4826 MAD of a map's valid pixels (0 when there are none).
+
+    Every 4th valid pixel estimates the spread as well and four times faster.
+    """
     v = values[valid][::4]
     if v.size == 0:
-        return np.zeros_like(values)
-    mad = 1.4826 * np.median(np.abs(v - np.median(v)))
+        return 0.0
+    return 1.4826 * np.median(np.abs(v - np.median(v)))
+
+
+def _renormalised(values, valid):
+    """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
+    mad = _robust_spread(values, valid)
     return np.where(valid, values / mad, 0.0) if mad > 0 else np.zeros_like(values)
 
 
