@@ -410,17 +410,18 @@ class _Journal:
                 handle.flush()
                 os.fsync(handle.fileno())
 
-    def read(self, index):
-        """The entry of one plan index, or None when it is missing or unreadable."""
+    def _checked(self, index, task):
+        """The entry of ``task`` at plan index ``index``; None when missing, unreadable or of another tile."""
         try:
-            return json.loads(self._path(index).read_text(encoding="utf-8"))
+            entry = json.loads(self._path(index).read_text(encoding="utf-8"))
         except (OSError, ValueError):
             return None
+        return entry if entry.get("tile_id") == task.tile_id else None
 
     def entry(self, index, task):
         """The entry of ``task`` at plan index ``index``; an error when it is missing or damaged."""
-        entry = self.read(index)
-        if entry is None or entry.get("tile_id") != task.tile_id:
+        entry = self._checked(index, task)
+        if entry is None:
             raise DetectorError(
                 f"journal entry {str(self._path(index))!r} of tile {task.tile_id!r} is missing or damaged; "
                 f"run the same command again to recompute it."
@@ -428,20 +429,15 @@ class _Journal:
         return entry
 
     def finished(self, tasks):
-        """Plan indices whose entry is already in the journal (entries of other tiles are ignored).
+        """Plan indices whose entry is already in the journal; others (missing, unreadable, of
+        another tile) are computed again.
 
         Entries are checked, not kept: the outputs read them again one image at a
         time, so memory does not follow the number of tiles.
         """
         if not self.folder.is_dir():
             return set()
-        done = set()
-        for index, task in enumerate(tasks):
-            entry = self.read(index) if self._path(index).is_file() else None
-            # an unreadable entry, or one of another tile, is simply computed again
-            if entry is not None and entry.get("tile_id") == task.tile_id:
-                done.add(index)
-        return done
+        return {index for index, task in enumerate(tasks) if self._checked(index, task) is not None}
 
 
 # ----------------------------------------------------------------------------- running
