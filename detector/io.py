@@ -1,6 +1,7 @@
 """The only code that opens files: images, CSV tables and atomic writes."""
 
 import contextlib
+import json
 import os
 import shutil
 import tempfile
@@ -10,7 +11,7 @@ import numpy as np
 
 from .errors import ImageError
 
-__all__ = ["read_image", "write_image", "atomic_path", "atomic_dir"]
+__all__ = ["read_image", "write_image", "write_json", "atomic_path", "atomic_dir"]
 
 
 def read_image(path, *, band=None):
@@ -84,6 +85,12 @@ def write_image(path, image):
             from PIL import Image
 
             Image.fromarray(image).save(tmp, format="PNG")
+
+
+def write_json(path, obj, *, indent=2, end=""):
+    """Write ``obj`` as JSON (no NaN or infinity allowed), atomically; ``end`` follows the text."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(json.dumps(obj, indent=indent, allow_nan=False) + end, encoding="utf-8")
 
 
 @contextlib.contextmanager

@@ -61,7 +61,7 @@ from .model import cached_model
 from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
 from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson_chunks
-from .io import atomic_path
+from .io import atomic_path, write_json
 from .raster import TileWindow, open_raster, plan_windows
 
 __all__ = [
@@ -547,13 +547,8 @@ def _claim(out, params):
         )
     record = {"status": "running", "parameters": params, "version": _version(),
               "started": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
-    _write_json(run_file, record)
+    write_json(run_file, record, end="\n")
     return record
-
-
-def _write_json(path, obj):
-    with atomic_path(path) as tmp:
-        tmp.write_text(json.dumps(obj, indent=2, allow_nan=False) + "\n", encoding="utf-8")
 
 
 # ----------------------------------------------------------------------------- assembly
@@ -1097,7 +1092,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
                    for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles")},
         "outputs": list(_OUTPUT_FILES),
     }
-    _write_json(out / _RUN_FILE, _finite(record))
+    write_json(out / _RUN_FILE, _finite(record), end="\n")
     return summary
 
 

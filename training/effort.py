@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from detector.errors import DetectorError
-from detector.io import atomic_path
+from detector.io import atomic_path, write_json
 
 __all__ = [
     "ROUTES",
@@ -617,11 +617,6 @@ def _read_card(model_dir):
         raise DetectorError(f"{str(path)!r} is not valid JSON: {err}.") from err
 
 
-def _write_json(path, payload):
-    with atomic_path(path) as tmp:
-        tmp.write_text(json.dumps(payload, indent=1, allow_nan=False), encoding="utf-8")
-
-
 def _jsonable(value):
     if isinstance(value, dict):
         return {k: _jsonable(v) for k, v in value.items()}
@@ -664,7 +659,7 @@ def run_effort(model_dir, screen_dir, *, out=None, classifications_per_tile=30, 
     effort["screen_dir"] = str(screen_dir)
     out = Path(screen_dir if out is None else out)
     routes = routed[["tile_id", "image", "route", "unfamiliar", "p_deposit", "unfamiliarity"]]
-    _write_json(out / "effort.json", _jsonable(effort))
+    write_json(out / "effort.json", _jsonable(effort), indent=1)
     with atomic_path(out / "routes.csv") as tmp:
         routes.to_csv(tmp, index=False)
     updated = tiles.copy()
@@ -955,7 +950,7 @@ def learning_curve(tileset_root, *, seed=0, fractions=None, out=None, max_patche
     curve["targets"] = _jsonable(_curve_verdicts(points, fits))
     if out is not None:
         out = Path(out)
-        _write_json(out / "learning_curve.json", curve)
+        write_json(out / "learning_curve.json", curve, indent=1)
         _plot_learning_curve(curve, out / "learning_curve.png")
     return curve
 

@@ -1,13 +1,12 @@
 """Evaluation report: report.json, report.md and PNG plots from :func:`training.scoring.score_catalogs`."""
 
-import json
 import math
 from pathlib import Path
 
 import numpy as np
 
 from detector.errors import DetectorError
-from detector.io import atomic_path
+from detector.io import atomic_path, write_json
 
 __all__ = ["TARGETS", "write_report", "headline_table", "evaluate_targets", "reliability_bins"]
 
@@ -394,8 +393,7 @@ def write_report(
     payload = _clean({"title": title, "scores": scores, "ceiling": ceiling, "targets": evaluate_targets(scores),
                       "reliability": rel_bins})
     written["json"] = out_dir / "report.json"
-    with atomic_path(written["json"]) as tmp:
-        tmp.write_text(json.dumps(payload, indent=2, allow_nan=False), encoding="utf-8")
+    write_json(written["json"], payload)
 
     ref = scores.get("reference", {})
     md = [
