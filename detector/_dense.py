@@ -1,16 +1,15 @@
 """Dense per-pixel maps of a tile and their pooling into cells and patches.
 
 Every map is computed once per tile; per-``cell_px`` cell sums or histograms
-(one ``np.bincount`` over all pixels, key ``cell * n_bins + bin``) are then
-pooled into patch windows with a summed-area table over the cell grid, so no
-Python loop runs over patches or pixels.
+(one compiled pass over the pixels, :mod:`detector._kernels`) are then pooled
+into patch windows with a summed-area table over the cell grid, so no Python
+loop runs over patches or pixels.
 """
-
-import functools
 
 import numpy as np
 from scipy import ndimage as ndi
 
+from . import _kernels
 from .errors import ImageError
 
 _U16 = 65535.0
@@ -97,29 +96,29 @@ def prepare_tile(tile, spec, nodata_mask=None):
 
 
 # -- cells -------------------------------------------------------------------
-@functools.lru_cache(maxsize=8)
-def cell_index(shape, cell_px):
-    """Cell number of each pixel (row-major over full cells); pixels outside full cells get ``n_cells``.
+def cell_grid(shape, cell_px):
+    """Rows and columns of full ``cell_px`` cells in a tile of ``shape``."""
+    return shape[0] // cell_px, shape[1] // cell_px
 
-    Cached per shape (windows of a large image mostly share one); the map is read-only.
+
+def cell_histogram(bins, cell_px, n_bins, weights=None, mask=None):
+    """Per-cell histograms (ncr, ncc, n_bins) of small integer ``bins`` (M, N) over full cells.
+
+    Counts are int64; with ``weights`` (M, N) the sums are float64, added in
+    row-major pixel order (as ``np.bincount`` adds them). Pixels where ``mask``
+    is False are left out (counts only).
     """
-    h, w = shape
-    ncr, ncc = h // cell_px, w // cell_px
-    rows = np.arange(h) // cell_px
-    cols = np.arange(w) // cell_px
-    idx = rows[:, None] * ncc + cols[None, :]
-    idx[(rows >= ncr)[:, None] | (cols >= ncc)[None, :]] = ncr * ncc
-    idx = idx.astype(np.int64)
-    idx.flags.writeable = False
-    return idx, ncr, ncc
-
-
-def cell_histogram(cells, n_cells, bins, n_bins, weights=None):
-    """Per-cell histograms (n_cells, n_bins) with one bincount; ``cells`` may hold the dump cell ``n_cells``."""
-    key = cells * n_bins + bins
-    counts = np.bincount(key.ravel(), weights=None if weights is None else weights.ravel(),
-                         minlength=(n_cells + 1) * n_bins)
-    return counts[: n_cells * n_bins].reshape(n_cells, n_bins)
+    bins = np.ascontiguousarray(bins)
+    if bins.dtype.kind not in "ui":
+        raise TypeError(f"bins must be integers, not {bins.dtype}.")
+    ncr, ncc = cell_grid(bins.shape, cell_px)
+    if weights is not None:
+        if mask is not None:
+            raise ValueError("cell_histogram takes weights or a mask, not both.")
+        return _kernels.cell_weighted(bins, np.ascontiguousarray(weights), cell_px, ncr, ncc, n_bins)
+    use = mask is not None
+    mask = np.ascontiguousarray(mask, dtype=bool) if use else np.ones((1, 1), dtype=bool)
+    return _kernels.cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use)
 
 
 def cell_sums(a, cell_px, ncr, ncc):
@@ -199,13 +198,13 @@ def glcm_offsets(distances, angles_deg):
 
 
 def quantise(image, lo, hi, levels):
-    """Grey levels 0 .. levels - 1 of a [0, 1] image, linear between ``lo`` and ``hi``."""
+    """Grey levels 0 .. levels - 1 (uint8, levels <= 256) of a [0, 1] image, linear between ``lo`` and ``hi``."""
     q = np.floor((image - np.float32(lo)) * np.float32(levels / (hi - lo)))
-    return np.clip(q, 0, levels - 1).astype(np.int64)
+    return np.clip(q, 0, levels - 1).astype(np.uint8)
 
 
-def glcm_cell_counts(q, cells, n_cells, offsets, levels, valid=None, *, folded=False):
-    """Co-occurrence counts per cell.
+def glcm_cell_counts(q, cell_px, offsets, levels, valid=None, *, folded=False):
+    """Co-occurrence counts per full ``cell_px`` cell (cells row-major).
 
     A pair (first pixel, first + offset) is counted in the cell of its first pixel
     when both pixels lie in the tile (and are valid).
@@ -217,44 +216,17 @@ def glcm_cell_counts(q, cells, n_cells, offsets, levels, valid=None, *, folded=F
         ``folded=True``: (n_offsets, n_cells, levels (levels + 1) / 2), the count of
         the unordered pair {i, j} (i <= j), i.e. :func:`glcm_fold` with the diagonal halved.
     """
-    h, w = q.shape
-    L2 = levels * levels
-    n_codes = levels * (levels + 1) // 2 if folded else L2
-    small = np.uint16 if levels <= 128 else np.int64
-    q_small = q.astype(small)
-    q_first = (q * levels).astype(small)
-    base = cells * n_codes
-    dump = n_cells * n_codes
-    # flat buffers so that each offset's (rows, cols) view is contiguous
-    buf = [np.empty(q.size, dtype=small) for _ in range(3)]
-    key_buf = np.empty(q.size, dtype=np.int64)
-    out = {}
-    for dr, dc in dict.fromkeys(offsets):
-        r0, r1 = max(0, -dr), min(h, h - dr)
-        c0, c1 = max(0, -dc), min(w, w - dc)
-        shape = (r1 - r0, c1 - c0)
-        n = shape[0] * shape[1]
-        a, b, code = (x[:n].reshape(shape) for x in buf)
-        kk = key_buf[:n].reshape(shape)
-        first, second = q_small[r0:r1, c0:c1], q_small[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
-        if folded:
-            # row-major index of {lo, hi} in the upper triangle: lo (2L + 1 - lo) / 2 - lo + hi
-            np.minimum(first, second, out=a)
-            np.maximum(first, second, out=b)
-            np.subtract(small(2 * levels + 1), a, out=code)
-            code *= a
-            code >>= 1
-            code -= a
-            code += b
-        else:
-            np.add(q_first[r0:r1, c0:c1], second, out=code)
-        np.add(base[r0:r1, c0:c1], code, out=kk)
-        if valid is not None:
-            ok = valid[r0:r1, c0:c1] & valid[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
-            kk[~ok] = dump
-        counts = np.bincount(kk.ravel(), minlength=dump + n_codes)
-        out[(dr, dc)] = counts[:dump].reshape((n_cells, n_codes) if folded else (n_cells, levels, levels))
-    return np.stack([out[o] for o in offsets])
+    q = np.asarray(q)
+    if q.size and (q.min() < 0 or q.max() >= levels):
+        raise ValueError(f"grey levels must lie in 0 .. {levels - 1}.")
+    q = np.ascontiguousarray(q, dtype=np.uint8)
+    ncr, ncc = cell_grid(q.shape, cell_px)
+    d_rows = np.array([o[0] for o in offsets], dtype=np.int64)
+    d_cols = np.array([o[1] for o in offsets], dtype=np.int64)
+    use = valid is not None
+    valid = np.ascontiguousarray(valid, dtype=bool) if use else np.ones((1, 1), dtype=bool)
+    kernel = _kernels.glcm_folded_counts if folded else _kernels.glcm_full_counts
+    return kernel(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use)
 
 
 def unfold_diagonal(F, levels):
@@ -310,16 +282,16 @@ def glcm_props(P):
 
 
 # -- local binary patterns --------------------------------------------------
-def lbp_uniform(image, P, R, *, strip_rows=32):
+def lbp_uniform(image, P, R):
     """Rotation-invariant uniform LBP codes 0 .. P + 1 (Ojala, Pietikainen and Maenpaa 2002).
 
-    Whole-array re-implementation of ``skimage.feature.local_binary_pattern(image, P,
-    R, 'uniform')``: same neighbour positions (rounded to 5 decimals), same bilinear
+    Re-implementation of ``skimage.feature.local_binary_pattern(image, P, R,
+    'uniform')``: same neighbour positions (rounded to 5 decimals), same bilinear
     interpolation with zeros outside the image, same float64 arithmetic in the same
-    order, so codes are identical. The column interpolation is shared by the
-    neighbours with the same column offset, and rows go in strips that stay in cache.
+    order, so codes are identical. The fractional positions are computed once
+    per neighbour and row or column, the codes by :func:`_kernels.lbp_codes`.
     """
-    img = np.ascontiguousarray(image, dtype=np.float64)
+    img = np.asarray(image, dtype=np.float64)
     h, w = img.shape
     k = np.arange(P, dtype=np.float64)
     rp = np.round(-R * np.sin(2 * np.pi * k / P), 5)
@@ -327,70 +299,13 @@ def lbp_uniform(image, P, R, *, strip_rows=32):
     pad = int(np.ceil(R)) + 1
     padded = np.zeros((h + 2 * pad, w + 2 * pad))
     padded[pad:-pad, pad:-pad] = img
-    cols = np.arange(w, dtype=np.float64)
-    column_sets = {}  # column offset -> (minc, maxc, 1 - fc, fc)
-    neighbours = []
-    for i in range(P):
-        minr, maxr = int(np.floor(rp[i])), int(np.ceil(rp[i]))
-        if cp[i] not in column_sets:
-            c = cols + cp[i]
-            fc = c - np.floor(c)
-            column_sets[cp[i]] = (int(np.floor(cp[i])), int(np.ceil(cp[i])), 1 - fc, fc)
-        neighbours.append((minr, maxr, cp[i]))
-    codes = np.empty((h, w), dtype=np.uint8)
-    n = min(strip_rows, h)
-    m_pad = n + 2 * pad
-    rows_buf = {key: np.empty((m_pad, w)) for key, (minc, maxc, _, _) in column_sets.items() if minc != maxc}
-    tmp_pad = np.empty((m_pad, w))
-    t, bo = np.empty((n, w)), np.empty((n, w))
-    bit, prev = np.empty((n, w), dtype=bool), np.empty((n, w), dtype=bool)
-    ones, changes = np.empty((n, w), dtype=np.uint8), np.empty((n, w), dtype=np.uint8)
-    for a in range(0, h, n):
-        b = min(a + n, h)
-        m = b - a
-        mp = m + 2 * pad
-        rows = np.arange(a, b, dtype=np.float64)
-        centre = img[a:b]
-        # top = (1 - dc) * top_left + dc * top_right, for every padded row of the strip
-        interp = {}
-        for key, (minc, maxc, gc, fc) in column_sets.items():
-            if minc == maxc:
-                interp[key] = padded[a:a + mp, pad + minc:pad + minc + w]
-                continue
-            out = rows_buf[key][:mp]
-            np.multiply(gc, padded[a:a + mp, pad + minc:pad + minc + w], out=out)
-            np.multiply(fc, padded[a:a + mp, pad + maxc:pad + maxc + w], out=tmp_pad[:mp])
-            out += tmp_pad[:mp]
-            interp[key] = out
-        tv, bov, bi, pr = t[:m], bo[:m], bit[:m], prev[:m]
-        on, ch = ones[:m], changes[:m]
-        on[:] = 0
-        ch[:] = 0
-        for i, (minr, maxr, key) in enumerate(neighbours):
-            H = interp[key]
-            top = H[pad + minr:pad + minr + m]
-            if minr == maxr and column_sets[key][0] == column_sets[key][1]:
-                # integer offset: the interpolation returns the pixel itself
-                np.greater_equal(top, centre, out=bi)
-            else:
-                # on an integer row offset the bottom row is the top one, as in scikit-image
-                bottom = top if minr == maxr else H[pad + maxr:pad + maxr + m]
-                r = rows + rp[i]
-                fr = (r - np.floor(r))[:, None]
-                np.multiply(1 - fr, top, out=tv)
-                np.multiply(fr, bottom, out=bov)
-                tv += bov
-                # for finite doubles a - b >= 0 exactly when a >= b
-                np.greater_equal(tv, centre, out=bi)
-            on += bi.view(np.uint8)
-            if i:
-                np.not_equal(bi, pr, out=pr)
-                ch += pr.view(np.uint8)
-            # this neighbour's bits become the previous ones
-            bit, prev = prev, bit
-            bi, pr = pr, bi
-        codes[a:b] = np.where(ch <= 2, on, np.uint8(P + 1))
-    return codes
+    # skimage interpolates at (r + rp, c + cp): floor, ceil and the fraction of each
+    r = np.arange(h, dtype=np.float64)[None, :] + rp[:, None]
+    c = np.arange(w, dtype=np.float64)[None, :] + cp[:, None]
+    fr, fc = r - np.floor(r), c - np.floor(c)
+    minr, maxr = np.floor(rp).astype(np.int64), np.ceil(rp).astype(np.int64)
+    minc, maxc = np.floor(cp).astype(np.int64), np.ceil(cp).astype(np.int64)
+    return _kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P)
 
 
 # -- structure tensor --------------------------------------------------------

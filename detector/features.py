@@ -194,8 +194,7 @@ class _Pooler:
     def __init__(self, prep, spec, r, c):
         self.prep, self.spec = prep, spec
         cp = spec.cell_px
-        self.cells, self.ncr, self.ncc = _dense.cell_index(prep.image.shape, cp)
-        self.n_cells = self.ncr * self.ncc
+        self.ncr, self.ncc = _dense.cell_grid(prep.image.shape, cp)
         self.i0, self.j0 = r // cp, c // cp
         self.k = spec.patch_px // cp
         h, w = prep.image.shape
@@ -216,9 +215,7 @@ class _Pooler:
         return _dense.box(table, self.i0 - grow, self.j0 - grow, self.i0 + k + grow, self.j0 + k + grow)
 
     def hist(self, bins, n_bins, weights=None, mask=None):
-        cells = self.cells if mask is None else np.where(mask, self.cells, self.n_cells)
-        h = _dense.cell_histogram(cells, self.n_cells, bins, n_bins, weights)
-        return h.reshape(self.ncr, self.ncc, n_bins)
+        return _dense.cell_histogram(bins, self.spec.cell_px, n_bins, weights=weights, mask=mask)
 
     def run(self):
         spec, prep = self.spec, self.prep
@@ -280,7 +277,7 @@ class _Pooler:
         q = _dense.quantise(prep.image, prep.lo, prep.hi, L)
         offsets = _dense.glcm_offsets(spec.glcm_distances, spec.glcm_angles_deg)
         unique = list(dict.fromkeys(offsets))
-        folded = _dense.glcm_cell_counts(q, self.cells, self.n_cells, unique, L,
+        folded = _dense.glcm_cell_counts(q, spec.cell_px, unique, L,
                                          prep.valid if prep.has_nodata else None, folded=True)
         nf = folded.shape[-1]
         cells = np.moveaxis(folded.reshape(len(unique), self.ncr, self.ncc, nf), 0, 2)

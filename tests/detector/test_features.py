@@ -37,9 +37,7 @@ def test_hog_cell_histograms_match_skimage():
     img = (tile / np.float32(65535)).astype(np.float32)
     g_row, g_col = _dense.central_gradients(img)
     unsigned, _ = _dense.orientation_bins(g_row, g_col, 9, 12)
-    cells, ncr, ncc = _dense.cell_index(img.shape, 32)
-    h = _dense.cell_histogram(cells, ncr * ncc, unsigned, 9, weights=np.hypot(g_row, g_col))
-    h = h.reshape(ncr, ncc, 9) / 32**2
+    h = _dense.cell_histogram(unsigned, 32, 9, weights=np.hypot(g_row, g_col)) / 32**2
     # skimage returns cell histograms only normalised; one-cell L1 blocks expose them.
     ref = hog(img, orientations=9, pixels_per_cell=(32, 32), cells_per_block=(1, 1),
               block_norm="L1", feature_vector=False)[:, :, 0, 0, :]
@@ -63,9 +61,8 @@ def test_hog_block_descriptors_match_skimage_where_grids_align():
 def test_cooccurrence_counts_match_skimage():
     rng = np.random.default_rng(1)
     q = rng.integers(0, 8, size=(96, 128))
-    cells, ncr, ncc = _dense.cell_index(q.shape, 16)
     offsets = _dense.glcm_offsets(SPEC.glcm_distances, SPEC.glcm_angles_deg)
-    counts = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8).sum(axis=1)
+    counts = _dense.glcm_cell_counts(q, 16, offsets, 8).sum(axis=1)
     ref = graycomatrix(q.astype(np.uint8), SPEC.glcm_distances, np.radians(SPEC.glcm_angles_deg), levels=8)
     ref = np.moveaxis(ref.reshape(8, 8, -1), -1, 0)
     np.testing.assert_array_equal(counts, ref)
@@ -86,10 +83,61 @@ def test_haralick_worked_example():
         (1, 1): [[2, 1, 3, 0], [1, 2, 1, 0], [3, 1, 0, 2], [0, 0, 2, 0]],  # 135 degrees (Haralick)
         (1, -1): [[4, 1, 0, 0], [1, 2, 2, 0], [0, 2, 4, 1], [0, 0, 1, 0]],  # 45 degrees (Haralick)
     }
-    cells, ncr, ncc = _dense.cell_index(image.shape, 4)
-    counts = _dense.glcm_cell_counts(image, cells, 1, list(published), 4)[:, 0]
+    counts = _dense.glcm_cell_counts(image, 4, list(published), 4)[:, 0]
     for k, matrix in enumerate(published.values()):
         np.testing.assert_array_equal(counts[k] + counts[k].T, matrix)
+
+
+def test_masked_cooccurrence_counts_match_skimage_with_a_level_for_no_data():
+    # skimage's graycomatrix has no mask: give no-data pixels an extra grey level L and
+    # drop its row and column, which leaves exactly the pairs of two valid pixels.
+    rng = np.random.default_rng(12)
+    q = rng.integers(0, 8, size=(96, 112))
+    valid = rng.random(q.shape) > 0.2
+    valid[:20, :30] = False
+    offsets = _dense.glcm_offsets(SPEC.glcm_distances, SPEC.glcm_angles_deg)
+    counts = _dense.glcm_cell_counts(q, 16, offsets, 8, valid).sum(axis=1)
+    marked = np.where(valid, q, 8).astype(np.uint8)
+    ref = graycomatrix(marked, SPEC.glcm_distances, np.radians(SPEC.glcm_angles_deg), levels=9)[:8, :8]
+    np.testing.assert_array_equal(counts, np.moveaxis(ref.reshape(8, 8, -1), -1, 0))
+
+
+def test_cell_counts_of_a_ragged_tile_follow_the_pair_rule():
+    # A pair counts in the full cell of its first pixel; pixels past the last full
+    # cell start no pair but may end one (checked by np.add.at over every pair).
+    rng = np.random.default_rng(13)
+    q = rng.integers(0, 4, size=(37, 45))
+    valid = rng.random(q.shape) > 0.1
+    offsets = [(0, 1), (1, -1), (2, 0), (-1, 3)]
+    mine = _dense.glcm_cell_counts(q, 8, offsets, 4, valid)
+    h, w = q.shape
+    expect = np.zeros((len(offsets), (h // 8) * (w // 8), 4, 4), dtype=np.int64)
+    r, c = np.mgrid[: (h // 8) * 8, : (w // 8) * 8]
+    for k, (dr, dc) in enumerate(offsets):
+        r2, c2 = r + dr, c + dc
+        inside = (r2 >= 0) & (r2 < h) & (c2 >= 0) & (c2 < w)
+        a, b, a2, b2 = r[inside], c[inside], r2[inside], c2[inside]
+        ok = valid[a, b] & valid[a2, b2]
+        cell = (a // 8) * (w // 8) + b // 8
+        np.add.at(expect[k], (cell[ok], q[a, b][ok], q[a2, b2][ok]), 1)
+    np.testing.assert_array_equal(mine, expect)
+
+
+def test_cell_histograms_equal_numpy_bincount():
+    rng = np.random.default_rng(14)
+    bins = rng.integers(0, 10, size=(50, 70)).astype(np.uint8)
+    weights = rng.random(bins.shape).astype(np.float32)
+    mask = rng.random(bins.shape) > 0.3
+    cell = (np.arange(48)[:, None] // 16) * 4 + np.arange(64)[None, :] // 16
+    b, wt, m = bins[:48, :64], weights[:48, :64], mask[:48, :64]
+    counts = _dense.cell_histogram(bins, 16, 10, mask=mask)
+    np.testing.assert_array_equal(counts.reshape(12, 10),
+                                  np.bincount((cell * 10 + b)[m], minlength=120).reshape(12, 10))
+    sums = _dense.cell_histogram(bins, 16, 10, weights=weights)
+    # same additions in the same (row-major) order as bincount: equal to the last bit
+    np.testing.assert_array_equal(sums.reshape(12, 10),
+                                  np.bincount((cell * 10 + b).ravel(), weights=wt.ravel(), minlength=120)
+                                  .reshape(12, 10))
 
 
 @pytest.mark.parametrize("P,R", SPEC.lbp)
@@ -97,7 +145,8 @@ def test_lbp_codes_match_skimage(P, R):
     tile = _smooth_tile(seed=2)
     # coarse levels create exact ties between interpolated neighbours and the centre
     coarse = (tile // 8000 * 8000).astype(np.uint16)
-    for image in (tile, coarse):
+    tiny = np.random.default_rng(3).integers(0, 4, size=(3, 5)).astype(np.uint16)  # smaller than the ring
+    for image in (tile, coarse, tiny):
         np.testing.assert_array_equal(_dense.lbp_uniform(image, P, R), local_binary_pattern(image, P, R, "uniform"))
 
 
@@ -292,10 +341,9 @@ def test_patch_targets_classes_and_direction():
 def test_folded_cooccurrence_counts_equal_symmetrised_matrix():
     rng = np.random.default_rng(10)
     q = rng.integers(0, 8, size=(64, 80))
-    cells, ncr, ncc = _dense.cell_index(q.shape, 16)
     offsets = _dense.glcm_offsets((1, 4), (0, 135))
-    full = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8)
-    folded = _dense.glcm_cell_counts(q, cells, ncr * ncc, offsets, 8, folded=True)
+    full = _dense.glcm_cell_counts(q, 16, offsets, 8)
+    folded = _dense.glcm_cell_counts(q, 16, offsets, 8, folded=True)
     np.testing.assert_array_equal(_dense.unfold_diagonal(folded, 8), _dense.glcm_fold(full))
 
 

@@ -1,0 +1,147 @@
+"""Compiled per-pixel loops of the dense maps (numba, CPU, single thread).
+
+Each kernel does in one pass over the pixels what the whole-array numpy code
+did in many: no temporary maps, no int64 key arrays. They reproduce the
+numpy / scikit-image arithmetic exactly (same float64 operations in the same
+order, no fast-math, sums in row-major pixel order), so features do not depend
+on which implementation made them; the tests hold them to scikit-image.
+
+Compiled functions are cached on disk (``cache=True``): the first run on a
+machine compiles them (a few seconds), later processes load the cache.
+"""
+
+import numpy as np
+from numba import njit
+
+__all__ = ["lbp_codes", "cell_counts", "cell_weighted", "glcm_folded_counts", "glcm_full_counts"]
+
+
+@njit(cache=True, nogil=True)
+def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P):
+    """Rotation-invariant uniform LBP codes of the (h, w) image inside ``padded``.
+
+    ``padded`` is the float64 image with ``pad`` zero rows and columns on every
+    side. Neighbour ``i`` lies between rows ``minr[i]``, ``maxr[i]`` and
+    columns ``minc[i]``, ``maxc[i]`` (offsets); ``fr[i, r]`` and ``fc[i, c]`` are
+    its fractional row and column positions at pixel (r, c), as
+    scikit-image's bilinear interpolation computes them. A row at a time, one
+    neighbour after the other, so the inner loop runs along contiguous columns.
+    """
+    codes = np.empty((h, w), dtype=np.uint8)
+    ones = np.empty(w, dtype=np.uint8)
+    changes = np.empty(w, dtype=np.uint8)
+    prev = np.empty(w, dtype=np.uint8)
+    for r in range(h):
+        centre = padded[r + pad, pad:pad + w]
+        ones[:] = 0
+        changes[:] = 0
+        for i in range(P):
+            top_row = padded[r + pad + minr[i]]
+            bottom_row = padded[r + pad + maxr[i]]
+            a, b = pad + minc[i], pad + maxc[i]
+            tl, tr = top_row[a:a + w], top_row[b:b + w]
+            bl, br = bottom_row[a:a + w], bottom_row[b:b + w]
+            dr = fr[i, r]
+            dc = fc[i]
+            for c in range(w):
+                top = (1.0 - dc[c]) * tl[c] + dc[c] * tr[c]
+                bottom = (1.0 - dc[c]) * bl[c] + dc[c] * br[c]
+                v = (1.0 - dr) * top + dr * bottom
+                bit = np.uint8(v - centre[c] >= 0)
+                ones[c] += bit
+                if i:
+                    changes[c] += bit ^ prev[c]
+                prev[c] = bit
+        for c in range(w):
+            codes[r, c] = ones[c] if changes[c] <= 2 else P + 1
+    return codes
+
+
+@njit(cache=True, nogil=True)
+def cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask):
+    """Per-cell histogram (ncr, ncc, n_bins) int64 of small integer ``bins`` over full cells.
+
+    Pixels where ``use_mask`` and not ``mask`` are left out.
+    """
+    out = np.zeros((ncr, ncc, n_bins), dtype=np.int64)
+    for r in range(ncr * cell_px):
+        i = r // cell_px
+        for j in range(ncc):
+            hist = out[i, j]
+            for c in range(j * cell_px, (j + 1) * cell_px):
+                if use_mask and not mask[r, c]:
+                    continue
+                hist[bins[r, c]] += 1
+    return out
+
+
+@njit(cache=True, nogil=True)
+def cell_weighted(bins, weights, cell_px, ncr, ncc, n_bins):
+    """Per-cell weighted histogram (ncr, ncc, n_bins) float64; sums in row-major pixel order."""
+    out = np.zeros((ncr, ncc, n_bins), dtype=np.float64)
+    for r in range(ncr * cell_px):
+        i = r // cell_px
+        for j in range(ncc):
+            hist = out[i, j]
+            for c in range(j * cell_px, (j + 1) * cell_px):
+                hist[bins[r, c]] += np.float64(weights[r, c])
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes):
+    """Counts (n_offsets, ncr * ncc, n_codes) of ``code[q[p], q[p + offset]]`` in the cell of p.
+
+    A pair counts when both pixels lie in the tile and p lies in a full cell;
+    a ``code`` of ``n_codes`` is not counted (no-data pairs).
+    A row of codes is made first, then added to the cells' histograms.
+    """
+    h, w = q.shape
+    n_levels = code.shape[1]
+    flat = code.ravel()
+    out = np.zeros((d_rows.size, ncr * ncc, n_codes + 1), dtype=np.int32)
+    row_codes = np.empty(w, dtype=np.int32)
+    for k in range(d_rows.size):
+        dr, dc = d_rows[k], d_cols[k]
+        r0, r1 = max(0, -dr), min(ncr * cell_px, h - dr)
+        c0, c1 = max(0, -dc), min(ncc * cell_px, w - dc)
+        for r in range(r0, r1):
+            first = q[r, c0:c1]
+            second = q[r + dr, c0 + dc:c1 + dc]
+            for c in range(c1 - c0):
+                row_codes[c] = flat[np.intp(first[c]) * n_levels + np.intp(second[c])]
+            row_cell = (r // cell_px) * ncc
+            for j in range(ncc):
+                hist = out[k, row_cell + j]
+                for c in range(max(c0, j * cell_px), min(c1, (j + 1) * cell_px)):
+                    hist[row_codes[c - c0]] += 1
+    return out[:, :, :n_codes].astype(np.int64)
+
+
+def _marked(q, levels, valid, use_valid):
+    """Grey levels with no-data pixels moved to the extra level ``levels``."""
+    if not use_valid:
+        return q
+    return np.where(valid, q, np.uint8(levels)).astype(np.uint8) if levels < 256 else np.where(valid, q, levels)
+
+
+def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
+    """Unordered-pair co-occurrence counts (n_offsets, ncr * ncc, levels (levels + 1) / 2) int64.
+
+    The pair {lo, hi} (lo <= hi) has the row-major index of the upper triangle;
+    pairs with a no-data pixel (``use_valid`` and not ``valid``) are not counted.
+    """
+    iu, ju = np.triu_indices(levels)
+    code = np.full((levels + 1, levels + 1), iu.size, dtype=np.int32)
+    code[iu, ju] = np.arange(iu.size)
+    code[ju, iu] = np.arange(iu.size)
+    return _pair_counts(_marked(q, levels, valid, use_valid), cell_px, ncr, ncc, d_rows, d_cols, code, iu.size)
+
+
+def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
+    """Ordered-pair co-occurrence counts (n_offsets, ncr * ncc, levels, levels) int64 (see above)."""
+    code = np.full((levels + 1, levels + 1), levels * levels, dtype=np.int32)
+    code[:levels, :levels] = np.arange(levels * levels).reshape(levels, levels)
+    out = _pair_counts(_marked(q, levels, valid, use_valid), cell_px, ncr, ncc, d_rows, d_cols, code,
+                       levels * levels)
+    return out.reshape(d_rows.size, ncr * ncc, levels, levels)
