@@ -145,3 +145,25 @@ def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_va
     out = _pair_counts(_marked(q, levels, valid, use_valid), cell_px, ncr, ncc, d_rows, d_cols, code,
                        levels * levels)
     return out.reshape(d_rows.size, ncr * ncc, levels, levels)
+
+
+@njit(cache=True, nogil=True)
+def summed_area(cells, table):
+    """Fill ``table`` (ncr + 1, ncc + 1, C), zeros, with the summed-area table of ``cells`` (ncr, ncc, C).
+
+    The additions of ``np.cumsum`` down the rows, then along the columns, in
+    the same order (so float sums are the same to the last bit).
+    """
+    ncr, ncc, n_ch = cells.shape
+    for j in range(ncc):
+        for k in range(n_ch):
+            table[1, j + 1, k] = cells[0, j, k]
+    for i in range(1, ncr):
+        for j in range(ncc):
+            for k in range(n_ch):
+                table[i + 1, j + 1, k] = table[i, j + 1, k] + cells[i, j, k]
+    for i in range(1, ncr + 1):
+        for j in range(2, ncc + 1):
+            for k in range(n_ch):
+                table[i, j, k] = table[i, j - 1, k] + table[i, j, k]
+    return table

@@ -239,6 +239,20 @@ class PatchField:
         self.step_y = float(grid.y_px[grid.n_cols] - self.y0) if grid.n_rows > 1 else 1.0
         self.step_x = float(grid.x_px[1] - self.x0) if grid.n_cols > 1 else 1.0
 
+    @classmethod
+    def joined(cls, fields):
+        """One field holding the channels of several fields on the same grid (None if they are not)."""
+        if not all(isinstance(f, cls) for f in fields):
+            return None
+        first = fields[0]
+        key = (first.n_rows, first.n_cols, first.y0, first.x0, first.step_y, first.step_x)
+        if any((f.n_rows, f.n_cols, f.y0, f.x0, f.step_y, f.step_x) != key for f in fields):
+            return None
+        out = cls.__new__(cls)
+        out.__dict__.update(first.__dict__)
+        out.values = np.concatenate([f.values for f in fields], axis=-1)
+        return out
+
     def at(self, ys, xs):
         """Interpolated values at pixels (ys, xs), shape (n, k), float32."""
         iy = np.clip((np.asarray(ys, dtype=np.float32) - self.y0) / self.step_y, 0, self.n_rows - 1)
@@ -331,6 +345,49 @@ def _renormalised(values, valid):
     return np.where(valid, values / mad, 0.0) if mad > 0 else np.zeros_like(values)
 
 
+def _quantile(values, q):
+    """``np.quantile(values, q)`` (method 'linear') of a 1-D float array without NaN, to the last bit.
+
+    The same order statistics (by ``np.partition``) and the same interpolation
+    as numpy's, without its general machinery (it is called per fan).
+    """
+    n = values.size
+    virtual = (n - 1) * q
+    if virtual >= n - 1:
+        return float(values.max())
+    lo = int(np.floor(virtual))
+    part = np.partition(values, (lo, lo + 1))
+    a, b = float(part[lo]), float(part[lo + 1])
+    t = virtual - lo
+    diff = b - a
+    # numpy's lerp: from the nearer end
+    return b - diff * (1 - t) if t >= 0.5 else a + diff * t
+
+
+@functools.lru_cache(maxsize=4)
+def _uniform_edges(n_bins):
+    edges = np.linspace(0.0, 360.0, n_bins + 1)
+    edges.setflags(write=False)
+    return edges
+
+
+def _direction_histogram(angles, weights, n_bins):
+    """``np.histogram(angles, bins=n_bins, range=(0, 360), weights=weights)[0]``, to the last bit.
+
+    numpy's equal-bin rule (scaled index, then corrected against the edges;
+    the last bin holds 360) without its general machinery.
+    """
+    keep = (angles >= 0.0) & (angles <= 360.0)
+    if not keep.all():
+        angles, weights = angles[keep], weights[keep]
+    edges = _uniform_edges(n_bins)
+    idx = ((angles - 0.0) / 360.0 * n_bins).astype(np.intp)
+    idx[idx == n_bins] -= 1
+    idx[angles < edges[idx]] -= 1
+    idx[(angles >= edges[idx + 1]) & (idx != n_bins - 1)] += 1
+    return np.bincount(idx, weights=weights, minlength=n_bins)
+
+
 def _circ_mean_deg(angles, weights):
     rad = np.radians(angles)
     return float(np.degrees(np.arctan2(np.sum(weights * np.sin(rad)), np.sum(weights * np.cos(rad)))) % 360.0)
@@ -338,7 +395,7 @@ def _circ_mean_deg(angles, weights):
 
 def _direction_modes(angles, weights, *, min_separation, min_share, n_bins=72):
     """Peaks of a circularly smoothed, weighted histogram of directions (degrees)."""
-    hist, _ = np.histogram(angles, bins=n_bins, range=(0.0, 360.0), weights=weights)
+    hist = _direction_histogram(angles, weights, n_bins)
     smooth = ndimage.gaussian_filter1d(hist.astype(float), sigma=1.5, mode="wrap")
     total = smooth.sum()
     if total <= 0:
@@ -414,9 +471,9 @@ def _fans_from_vent(xs, ys, w, apex, params):
         # The grey opening removes a fan's narrow tip and the smoothing moves the darkness
         # peak into the fan: the apex is where the fan's own pixels start along its direction.
         u_col, u_row = unit_vector(direction)
-        back = min(float(np.quantile(dx[mine] * u_col + dy[mine] * u_row, 0.01)), 0.0)
+        back = min(_quantile(dx[mine] * u_col + dy[mine] * u_row, 0.01), 0.0)
         fx, fy = ax + back * u_col, ay + back * u_row
-        length = max(float(np.quantile(np.hypot(xs[mine] - fx, ys[mine] - fy), 0.97)), 3.0)
+        length = max(_quantile(np.hypot(xs[mine] - fx, ys[mine] - fy), 0.97), 3.0)
         # A sector of radius L and opening theta has area L^2 theta / 2.
         spread = float(np.clip(np.degrees(2.0 * mine.sum() / length**2), 5.0, 180.0))
         fans.append(dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=direction,
@@ -507,6 +564,9 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     seeded[labels[smooth >= params.seed_k]] = True
     keep = np.flatnonzero(seeded[1:] & (area >= params.min_area_px)) + 1
     slices = ndimage.find_objects(labels)
+    maps = [class_maps, polarity_maps] + ([] if axis_maps is None else [axis_maps])
+    joint = PatchField.joined(maps)
+    split = None if joint is None else np.cumsum([m.values.shape[-1] for m in maps])[:-1]
     out = []
     for lab in keep:
         sl = slices[lab - 1]
@@ -516,9 +576,12 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         xf, yf = xs.astype(float), ys.astype(float)
         w = np.maximum(smooth[ys, xs], 1e-3)
         evals, skew, widening, asym = _axis_moments(xf, yf, w)
-        p_none, p_fan, p_spot = _sample(class_maps, ys, xs)
-        polarity = _sample(polarity_maps, ys, xs)
-        axes = None if axis_maps is None else _sample(axis_maps, ys, xs)
+        if joint is None:
+            sampled = [_sample(m, ys, xs) for m in maps]
+        else:
+            sampled = np.split(joint.at(ys, xs).T, split)
+        (p_none, p_fan, p_spot), polarity = sampled[:2]
+        axes = sampled[2] if len(sampled) > 2 else None
         fan_mass = max(float(np.average(p_fan, weights=w)), 1e-6)
         fans, n_vents = _vent_fans(smooth[sl], mask_local, ly, lx, (sl[0].start, sl[1].start), xf, yf, w, params)
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)

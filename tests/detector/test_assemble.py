@@ -7,6 +7,8 @@ from scipy import ndimage
 from scipy.interpolate import RegularGridInterpolator
 
 from detector.assemble import (
+    _direction_histogram,
+    _quantile,
     PatchField,
     AssemblyParams,
     candidate_rows,
@@ -135,6 +137,33 @@ def test_grey_opening_equals_scipy(shape, size):
     image = rng.normal(size=shape).astype(np.float32)
     image[rng.random(shape) < 0.3] = 0.0  # ties, as on no-data
     np.testing.assert_array_equal(grey_opening_square(image, size), ndimage.grey_opening(image, size=(size, size)))
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 7, 8, 9, 130, 1001])
+@pytest.mark.parametrize("q", [0.0, 0.01, 0.25, 0.5, 0.97, 1.0])
+def test_quantile_equals_numpy_to_the_last_bit(n, q):
+    values = np.random.default_rng(n).normal(size=n) * 50.0
+    values[::3] = np.round(values[::3])  # ties
+    assert _quantile(values.copy(), q) == float(np.quantile(values, q))
+
+
+def test_direction_histogram_equals_numpy_on_edges_and_bounds():
+    rng = np.random.default_rng(5)
+    edges = np.linspace(0.0, 360.0, 73)
+    # values on every edge, next to them, at both ends, and out of range
+    angles = np.concatenate([rng.uniform(0, 360, 500), edges, np.nextafter(edges, 0), np.nextafter(edges, 400),
+                             [-1e-12, 360.0, 360.0 + 1e-9, -5.0]])
+    weights = rng.random(angles.size)
+    ref, _ = np.histogram(angles, bins=72, range=(0.0, 360.0), weights=weights)
+    assert _direction_histogram(angles, weights, 72).tobytes() == ref.tobytes()
+
+
+def test_joined_patch_fields_read_as_each_field(grid_and_values):
+    _, grid, values = grid_and_values
+    fields = [PatchField(values[:, :1], grid), PatchField(values[:, 1:], grid)]
+    joined = PatchField.joined(fields)
+    ys, xs = np.array([0, 17, 40, 63]), np.array([5, 0, 33, 70])
+    np.testing.assert_array_equal(joined.at(ys, xs), np.concatenate([f.at(ys, xs) for f in fields], axis=1))
 
 
 @pytest.mark.parametrize("with_nodata", [False, True])
