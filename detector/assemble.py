@@ -26,8 +26,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
+from . import _readings
 from .contract import DETECTION_COLUMNS
-from .geometry import angular_difference, direction_deg, unit_vector
 
 __all__ = [
     "AssemblyParams",
@@ -345,144 +345,21 @@ def _renormalised(values, valid):
     return np.where(valid, values / mad, 0.0) if mad > 0 else np.zeros_like(values)
 
 
-def _quantile(values, q):
-    """``np.quantile(values, q)`` (method 'linear') of a 1-D float array without NaN, to the last bit.
-
-    The same order statistics (by ``np.partition``) and the same interpolation
-    as numpy's, without its general machinery (it is called per fan).
-    """
-    n = values.size
-    virtual = (n - 1) * q
-    if virtual >= n - 1:
-        return float(values.max())
-    lo = int(np.floor(virtual))
-    part = np.partition(values, (lo, lo + 1))
-    a, b = float(part[lo]), float(part[lo + 1])
-    t = virtual - lo
-    diff = b - a
-    # numpy's lerp: from the nearer end
-    return b - diff * (1 - t) if t >= 0.5 else a + diff * t
+#: Gaussian weights (sigma 1.5 bins, radius 6) that smooth a vent's direction histogram.
+_MODE_SMOOTHING = np.exp(-0.5 / 1.5**2 * np.arange(-6, 7, dtype=np.float64) ** 2)
+_MODE_SMOOTHING /= _MODE_SMOOTHING.sum()
 
 
-@functools.lru_cache(maxsize=4)
-def _uniform_edges(n_bins):
-    edges = np.linspace(0.0, 360.0, n_bins + 1)
-    edges.setflags(write=False)
-    return edges
-
-
-def _direction_histogram(angles, weights, n_bins):
-    """``np.histogram(angles, bins=n_bins, range=(0, 360), weights=weights)[0]``, to the last bit.
-
-    numpy's equal-bin rule (scaled index, then corrected against the edges;
-    the last bin holds 360) without its general machinery.
-    """
-    keep = (angles >= 0.0) & (angles <= 360.0)
-    if not keep.all():
-        angles, weights = angles[keep], weights[keep]
-    edges = _uniform_edges(n_bins)
-    idx = ((angles - 0.0) / 360.0 * n_bins).astype(np.intp)
-    idx[idx == n_bins] -= 1
-    idx[angles < edges[idx]] -= 1
-    idx[(angles >= edges[idx + 1]) & (idx != n_bins - 1)] += 1
-    return np.bincount(idx, weights=weights, minlength=n_bins)
-
-
-def _circ_mean_deg(angles, weights):
-    rad = np.radians(angles)
-    return float(np.degrees(np.arctan2(np.sum(weights * np.sin(rad)), np.sum(weights * np.cos(rad)))) % 360.0)
-
-
-def _direction_modes(angles, weights, *, min_separation, min_share, n_bins=72):
-    """Peaks of a circularly smoothed, weighted histogram of directions (degrees)."""
-    hist = _direction_histogram(angles, weights, n_bins)
-    smooth = ndimage.gaussian_filter1d(hist.astype(float), sigma=1.5, mode="wrap")
-    total = smooth.sum()
-    if total <= 0:
-        return []
-    is_peak = (smooth >= np.roll(smooth, 1)) & (smooth > np.roll(smooth, -1))
-    centres = (np.arange(n_bins) + 0.5) * (360.0 / n_bins)
-    kept = []
-    for i in sorted(np.flatnonzero(is_peak), key=lambda i: -smooth[i]):
-        near = angular_difference(centres, centres[i]) <= min_separation / 2
-        if smooth[near].sum() / total < min_share:
-            continue
-        if all(angular_difference(centres[i], k) >= min_separation for k in kept):
-            kept.append(float(centres[i]))
-    return kept
-
-
-def _axis_moments(xs, ys, w):
-    """Moments of a component along its principal axis: variances, skewness, widening, darkness asymmetry."""
-    cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
-    dx, dy = xs - cx, ys - cy
-    cov = np.cov(np.vstack([dx, dy]), aweights=w) if len(xs) > 2 else np.eye(2)
-    evals, evecs = np.linalg.eigh(cov)
-    ux, uy = evecs[:, 1]
-    s = dx * ux + dy * uy
-    t = -dx * uy + dy * ux
-    sd = np.sqrt(max(np.average(s**2, weights=w), 1e-6))
-    skew = float(np.average(s**3, weights=w) / sd**3)
-    pos, neg = s > 0, s < 0
-    wide_pos = np.sqrt(np.average(t[pos] ** 2)) if pos.sum() > 2 else 0.0
-    wide_neg = np.sqrt(np.average(t[neg] ** 2)) if neg.sum() > 2 else 0.0
-    widening = float((wide_pos - wide_neg) / max(wide_pos + wide_neg, 1e-6))
-    dark_pos = np.mean(w[pos]) if pos.any() else 0.0
-    dark_neg = np.mean(w[neg]) if neg.any() else 0.0
-    asym = float((dark_pos - dark_neg) / max(dark_pos + dark_neg, 1e-6))
-    return np.clip(evals, 0.25, None), skew, widening, asym
-
-
-def _fans_from_vent(xs, ys, w, apex, params):
-    """Fans running out of one vent, split by the modes of their pixels' directions.
+def _vents(smooth_local, mask_local, ly, lx, params):
+    """Vents of a component: the peaks of its smoothed darkness, strongest first.
 
     Returns
     -------
-    fans : list of dict
-        Contract fields plus ``_pixels`` (mask over the given pixels).
+    vx, vy : ndarray of int64
+        Vent pixels in the component's box.
+    vent_dark : ndarray of float64
+        Smoothed darkness at each vent.
     """
-    ax, ay = apex
-    dx, dy = xs - ax, ys - ay
-    r = np.hypot(dx, dy)
-    far = r > max(3.0, 0.25 * r.max())
-    phi = direction_deg(dx, dy)
-    modes = []
-    if far.sum() >= 10:
-        modes = _direction_modes(phi[far], (w * r)[far], min_separation=params.split_min_separation_deg,
-                                 min_share=params.split_min_share)
-    if len(modes) < 2:
-        modes = [_circ_mean_deg(phi[far], (w * r)[far]) if far.any() else _circ_mean_deg(phi, w)]
-    modes = np.asarray(modes)
-    owner = np.argmin(angular_difference(phi[:, None], modes[None, :]), axis=1)
-    fans = []
-    for k in range(len(modes)):
-        mine = owner == k
-        sel = mine & far
-        if sel.sum() < 3:
-            sel = mine
-        if sel.sum() < 3:
-            continue
-        weights = (w * r)[sel]
-        direction = _circ_mean_deg(phi[sel], weights)
-        rad = np.radians(phi[sel])
-        # Resultant length of the pixel directions: how tightly the fan points one way.
-        concentration = float(np.hypot(np.sum(weights * np.sin(rad)), np.sum(weights * np.cos(rad)))
-                              / max(float(np.sum(weights)), 1e-9))
-        # The grey opening removes a fan's narrow tip and the smoothing moves the darkness
-        # peak into the fan: the apex is where the fan's own pixels start along its direction.
-        u_col, u_row = unit_vector(direction)
-        back = min(_quantile(dx[mine] * u_col + dy[mine] * u_row, 0.01), 0.0)
-        fx, fy = ax + back * u_col, ay + back * u_row
-        length = max(_quantile(np.hypot(xs[mine] - fx, ys[mine] - fy), 0.97), 3.0)
-        # A sector of radius L and opening theta has area L^2 theta / 2.
-        spread = float(np.clip(np.degrees(2.0 * mine.sum() / length**2), 5.0, 180.0))
-        fans.append(dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=direction,
-                         length_px=length, spread_deg=spread, _pixels=mine, _concentration=concentration))
-    return fans
-
-
-def _vent_fans(smooth_local, mask_local, ly, lx, offset, xs, ys, w, params):
-    """The component read as fans from its vents (the peaks of its smoothed darkness)."""
     peak_map = ndimage.gaussian_filter(np.where(mask_local, smooth_local, 0.0), params.vent_smooth_px)
     is_max = (peak_map == ndimage.maximum_filter(peak_map, size=int(params.vent_min_separation_px))) & mask_local
     py, px = np.nonzero(is_max)
@@ -495,35 +372,20 @@ def _vent_fans(smooth_local, mask_local, ly, lx, offset, xs, ys, w, params):
         py, px = ly[k:k + 1], lx[k:k + 1]
     order = np.argsort(-peak_map[py, px])[: params.max_vents]
     vy, vx = py[order], px[order]
-    vent_dark = peak_map[vy, vx]
-    owner = np.argmin((lx[:, None] - vx[None, :]) ** 2 + (ly[:, None] - vy[None, :]) ** 2, axis=1)
-    fans = []
-    for k in range(len(vy)):
-        mine = owner == k
-        if mine.sum() < max(3, params.min_area_px // 2):
-            continue
-        idx = np.flatnonzero(mine)
-        apex = (float(vx[k] + offset[1]), float(vy[k] + offset[0]))
-        for f in _fans_from_vent(xs[mine], ys[mine], w[mine], apex, params):
-            full = np.zeros(len(xs), dtype=bool)
-            full[idx[f["_pixels"]]] = True
-            f["_pixels"] = full
-            f["_vent_dark"] = float(vent_dark[k])
-            fans.append(f)
-    return fans, len(vy)
+    return vx.astype(np.int64), vy.astype(np.int64), peak_map[vy, vx].astype(np.float64)
 
 
-def _spot_reading(xs, ys):
-    cx, cy = float(xs.mean()), float(ys.mean())
-    cov = np.cov(np.vstack([xs - cx, ys - cy])) if len(xs) > 2 else np.eye(2)
-    evals, evecs = np.linalg.eigh(cov)
-    evals = np.clip(evals, 0.25, None)
-    ux, uy = evecs[:, 1]
-    axis = float(direction_deg(ux, uy) % 180.0)
-    # A uniform ellipse of semi-axis a has variance a^2 / 4 along that axis.
-    a, b = 2.0 * np.sqrt(evals[1]), 2.0 * np.sqrt(evals[0])
-    return dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=float(a),
-                semi_minor_px=float(min(b, a)), axis_deg=axis)
+def _fan_reading(row, pixels, has_axis):
+    """A fan reading (contract fields, ``_pixels`` and ``_features``) from a row of
+    :func:`detector._readings.describe_component`."""
+    f = dict(zip(_readings.FAN_FIELDS, (float(v) for v in row)))
+    reading = dict(kind="fan", x_px=f["x_px"], y_px=f["y_px"], direction_deg=f["direction_deg"],
+                   length_px=f["length_px"], spread_deg=f["spread_deg"], _pixels=pixels,
+                   direction_confidence=0.5 * (1.0 + f["vote"]),
+                   axis_deg=f["axis_deg"] if has_axis else f["direction_deg"] % 180.0)
+    reading["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], f["share"], f["vent_dark"],
+                                     f["dark_mean"], f["vote"], f["p_fan"], f["concentration"]], dtype=np.float32)
+    return reading
 
 
 def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams(), axis_maps=None):
@@ -549,7 +411,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     -------
     candidates : list of Candidate
     """
-    rows, cols = dark.shape
+    rows_px, cols = dark.shape
     # Grey opening removes dark lines thinner than open_px (channels, troughs) but keeps
     # fans and spots; the smoothing then suppresses single-pixel noise.
     opened = grey_opening_square(dark, params.open_px) if params.open_px > 1 else dark
@@ -566,7 +428,6 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     slices = ndimage.find_objects(labels)
     maps = [class_maps, polarity_maps] + ([] if axis_maps is None else [axis_maps])
     joint = PatchField.joined(maps)
-    split = None if joint is None else np.cumsum([m.values.shape[-1] for m in maps])[:-1]
     out = []
     for lab in keep:
         sl = slices[lab - 1]
@@ -575,21 +436,27 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         ys, xs = ly + sl[0].start, lx + sl[1].start
         xf, yf = xs.astype(float), ys.astype(float)
         w = np.maximum(smooth[ys, xs], 1e-3)
-        evals, skew, widening, asym = _axis_moments(xf, yf, w)
         if joint is None:
-            sampled = [_sample(m, ys, xs) for m in maps]
+            samples = np.concatenate([_sample(m, ys, xs) for m in maps]).astype(np.float32)
         else:
-            sampled = np.split(joint.at(ys, xs).T, split)
-        (p_none, p_fan, p_spot), polarity = sampled[:2]
-        axes = sampled[2] if len(sampled) > 2 else None
-        fan_mass = max(float(np.average(p_fan, weights=w)), 1e-6)
-        fans, n_vents = _vent_fans(smooth[sl], mask_local, ly, lx, (sl[0].start, sl[1].start), xf, yf, w, params)
+            samples = np.ascontiguousarray(joint.at(ys, xs).T)
+        if axis_maps is None:
+            samples = np.concatenate([samples, np.zeros((2, len(xs)), np.float32)])
+        p_none, p_fan, p_spot = samples[:3]
+        w64 = w.astype(np.float64)
+        minor_var, major_var, skew, widening, asym = _readings.axis_moments(xf, yf, w64, w)
+        vx, vy, vent_dark = _vents(smooth[sl], mask_local, ly, lx, params)
+        rows, owner, n_vents = _readings.describe_component(
+            xf, yf, lx.astype(np.int64), ly.astype(np.int64), w64, w, samples, vx, vy, vent_dark,
+            max(3, params.min_area_px // 2), params.split_min_separation_deg, params.split_min_share,
+            _MODE_SMOOTHING)
+        fans = [_fan_reading(row, owner == j, axis_maps is not None) for j, row in enumerate(rows)]
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
         ring = ndimage.binary_dilation(local, iterations=5) & ~local & valid[ring_sl]
         ring_dark = float(dark[ring_sl][ring].mean()) if ring.any() else 0.0
-        major, minor = 2.0 * np.sqrt(evals[1]), 2.0 * np.sqrt(evals[0])
-        border = float(min(xs.min(), ys.min(), cols - 1 - xs.max(), rows - 1 - ys.max()) <= 1)
+        major, minor = 2.0 * np.sqrt(major_var), 2.0 * np.sqrt(minor_var)
+        border = float(min(xs.min(), ys.min(), cols - 1 - xs.max(), rows_px - 1 - ys.max()) <= 1)
         features = np.array([
             np.log(len(xs)), major, minor, major / max(minor, 1e-3), len(xs) / (np.pi * major * minor),
             float(w.mean()), float(w.max()), float(w.std()), ring_dark,
@@ -597,26 +464,10 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             float(np.average(p_spot, weights=w)), float(p_fan.max()), float(p_spot.max()),
             skew, widening, asym, float(n_vents), float(len(fans)), border,
         ], dtype=np.float32)
-        for f in fans:
-            mine = f["_pixels"]
-            d_col, d_row = unit_vector(f["direction_deg"])
-            wm = w[mine]
-            # The orientation model's vote along this fan's direction: +1 agrees, -1 opposes.
-            vote = (np.average(polarity[0][mine], weights=wm) * d_col
-                    + np.average(polarity[1][mine], weights=wm) * d_row) / fan_mass
-            vote = float(np.clip(vote, -1.0, 1.0))
-            f["direction_confidence"] = 0.5 * (1.0 + vote)
-            if axes is None:
-                f["axis_deg"] = f["direction_deg"] % 180.0
-            else:
-                c2 = np.average(axes[0][mine], weights=wm)
-                s2 = np.average(axes[1][mine], weights=wm)
-                f["axis_deg"] = float(np.degrees(0.5 * np.arctan2(s2, c2)) % 180.0)
-            f["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], mine.mean(), f.pop("_vent_dark"),
-                                       float(wm.mean()), vote, float(np.average(p_fan[mine], weights=wm)),
-                                       f.pop("_concentration")], dtype=np.float32)
-        spot = _spot_reading(xf, yf)
-        spot["_features"] = np.array([0.0, spot["semi_major_px"], 0.0, 1.0, float(w.max()), float(w.mean()), 0.0,
+        cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xf, yf)
+        spot = dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
+                    semi_minor_px=semi_minor, axis_deg=axis)
+        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, float(w.max()), float(w.mean()), 0.0,
                                       float(np.average(p_spot, weights=w)), 0.0], dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return out

@@ -6,9 +6,8 @@ import pytest
 from scipy import ndimage
 from scipy.interpolate import RegularGridInterpolator
 
+from detector import _readings
 from detector.assemble import (
-    _direction_histogram,
-    _quantile,
     PatchField,
     AssemblyParams,
     candidate_rows,
@@ -20,7 +19,7 @@ from detector.assemble import (
     upsample_patch_maps,
 )
 from detector.features import patch_grid
-from detector.geometry import angular_difference
+from detector.geometry import angular_difference, axial_difference
 from detector.labels import rasterise_features
 from detector.spec import FeatureSpec
 
@@ -144,7 +143,13 @@ def test_grey_opening_equals_scipy(shape, size):
 def test_quantile_equals_numpy_to_the_last_bit(n, q):
     values = np.random.default_rng(n).normal(size=n) * 50.0
     values[::3] = np.round(values[::3])  # ties
-    assert _quantile(values.copy(), q) == float(np.quantile(values, q))
+    assert _readings.quantile(values, q) == float(np.quantile(values, q))
+
+
+@pytest.mark.parametrize("n", [0, 1, 7, 8, 9, 127, 128, 129, 1000, 70001])
+def test_sum_follows_numpy_pairwise_order(n):
+    values = np.random.default_rng(n).normal(size=n) * 10.0 ** np.random.default_rng(n + 1).uniform(-6, 6, n)
+    assert _readings.psum(values) == float(np.sum(values))
 
 
 def test_direction_histogram_equals_numpy_on_edges_and_bounds():
@@ -155,7 +160,68 @@ def test_direction_histogram_equals_numpy_on_edges_and_bounds():
                              [-1e-12, 360.0, 360.0 + 1e-9, -5.0]])
     weights = rng.random(angles.size)
     ref, _ = np.histogram(angles, bins=72, range=(0.0, 360.0), weights=weights)
-    assert _direction_histogram(angles, weights, 72).tobytes() == ref.tobytes()
+    np.testing.assert_allclose(_readings.direction_histogram(angles, weights, 72), ref, rtol=1e-13, atol=0)
+    counts, _ = np.histogram(angles, bins=72, range=(0.0, 360.0))
+    np.testing.assert_array_equal(_readings.direction_histogram(angles, np.ones(angles.size), 72), counts)
+
+
+def test_circular_smoothing_equals_scipy_gaussian_wrap():
+    hist = np.random.default_rng(6).random(72)
+    weights = np.exp(-0.5 / 1.5**2 * np.arange(-6, 7) ** 2)
+    weights /= weights.sum()
+    ref = ndimage.gaussian_filter1d(hist, 1.5, mode="wrap", truncate=4.0)
+    np.testing.assert_allclose(_readings.circular_smooth(hist, weights), ref, rtol=1e-14, atol=1e-16)
+
+
+def test_direction_modes_find_two_separated_peaks_and_drop_a_small_one():
+    rng = np.random.default_rng(7)
+    angles = np.concatenate([rng.normal(40, 4, 400), rng.normal(130, 4, 300), rng.normal(250, 2, 10)]) % 360
+    weights = np.ones(angles.size)
+    smoothing = np.exp(-0.5 / 1.5**2 * np.arange(-6, 7) ** 2)
+    modes = _readings.direction_modes(angles, weights, 25.0, 0.08, smoothing / smoothing.sum(), 72)
+    assert len(modes) == 2
+    assert abs(modes[0] - 40) <= 5 and abs(modes[1] - 130) <= 5  # strongest first
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_axis_moments_follow_numpy_with_lapacks_eigenvector(seed):
+    # the moments written with numpy's np.cov, np.linalg.eigh and np.average
+    rng = np.random.default_rng(20 + seed)
+    xs, ys = rng.gamma(2.0, 6.0, 400), rng.normal(30, 4, 400)
+    w32 = (rng.random(400) + 0.05).astype(np.float32)
+    w = w32.astype(np.float64)
+    cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
+    dx, dy = xs - cx, ys - cy
+    evals, evecs = np.linalg.eigh(np.cov(np.vstack([dx, dy]), aweights=w))
+    ux, uy = evecs[:, 1]
+    s, t = dx * ux + dy * uy, -dx * uy + dy * ux
+    sd = np.sqrt(max(np.average(s**2, weights=w), 1e-6))
+    skew = np.average(s**3, weights=w) / sd**3
+    wp, wn = np.sqrt(np.mean(t[s > 0] ** 2)), np.sqrt(np.mean(t[s < 0] ** 2))
+    dp, dn = np.mean(w32[s > 0]), np.mean(w32[s < 0])
+    expect = [max(evals[0], 0.25), max(evals[1], 0.25), skew, (wp - wn) / (wp + wn), (dp - dn) / (dp + dn)]
+    np.testing.assert_allclose(_readings.axis_moments(xs, ys, w, w32), expect, rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_weighted_moments_match_numpy_cov_and_eigh(seed):
+    rng = np.random.default_rng(seed)
+    xs, ys = rng.normal(50, 8, 300), rng.normal(40, 3, 300)
+    xs, ys = xs + 0.5 * ys, ys
+    w = rng.random(300) + 0.1
+    cov = np.cov(np.vstack([xs - xs.mean(), ys - ys.mean()]), aweights=w)
+    np.testing.assert_allclose(_readings._cov2(xs - xs.mean(), ys - ys.mean(), w), cov, rtol=1e-12)
+    evals, evecs = np.linalg.eigh(cov)
+    small, big, ux, uy = _readings._eigh2(cov)
+    np.testing.assert_allclose([small, big], evals, rtol=1e-12)
+    assert abs(abs(ux * evecs[0, 1] + uy * evecs[1, 1]) - 1.0) < 1e-12  # the same axis, either sign
+    # the spot reading of an unweighted cloud: centre and axes from numpy's mean and cov
+    cx, cy, axis, a, b = _readings.spot_reading(xs, ys)
+    ev = np.linalg.eigvalsh(np.cov(np.vstack([xs, ys])))
+    np.testing.assert_allclose([cx, cy, a, b], [xs.mean(), ys.mean(), 2 * np.sqrt(ev[1]), 2 * np.sqrt(ev[0])],
+                               rtol=1e-12)
+    ref_axis = np.degrees(np.arctan2(evecs[0, 1], -evecs[1, 1])) % 180.0  # unweighted axis is close
+    assert axial_difference(axis, ref_axis) < 5.0
 
 
 def test_joined_patch_fields_read_as_each_field(grid_and_values):
