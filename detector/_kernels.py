@@ -167,3 +167,59 @@ def summed_area(cells, table):
             for k in range(n_ch):
                 table[i, j, k] = table[i, j - 1, k] + table[i, j, k]
     return table
+
+
+@njit(cache=True, nogil=True)
+def box_mean_rows(image, size, out):
+    """Running mean of ``size`` samples down each column (zeros beyond the edges, window
+    centred with ``size // 2`` samples before), as ``scipy.ndimage.uniform_filter1d(image,
+    size, axis=0, mode='constant')`` computes it: a running float64 sum (the first window
+    summed in order, then ``+ (entering - leaving)`` per step) divided by ``size`` at each
+    output, stored in ``out``'s dtype. All columns advance together (contiguous rows)."""
+    h, w = image.shape
+    before = size // 2
+    acc = np.zeros(w)
+    for k in range(size):
+        r = k - before
+        if 0 <= r < h:
+            for c in range(w):
+                acc[c] += image[r, c]
+    for c in range(w):
+        out[0, c] = acc[c] / size
+    for r in range(1, h):
+        enter = r + size - 1 - before
+        leave = r - 1 - before
+        if enter < h and leave >= 0:
+            for c in range(w):
+                acc[c] += np.float64(image[enter, c]) - np.float64(image[leave, c])
+        elif enter < h:
+            for c in range(w):
+                acc[c] += np.float64(image[enter, c]) - 0.0
+        elif leave >= 0:
+            for c in range(w):
+                acc[c] += 0.0 - np.float64(image[leave, c])
+        for c in range(w):
+            out[r, c] = acc[c] / size
+    return out
+
+
+@njit(cache=True, nogil=True)
+def box_mean_cols(image, size, out):
+    """As :func:`box_mean_rows`, along each row (``axis=1``)."""
+    h, w = image.shape
+    before = size // 2
+    for r in range(h):
+        acc = 0.0
+        for k in range(size):
+            c = k - before
+            if 0 <= c < w:
+                acc += image[r, c]
+        out[r, 0] = acc / size
+        for c in range(1, w):
+            enter = c + size - 1 - before
+            leave = c - 1 - before
+            e = np.float64(image[r, enter]) if enter < w else 0.0
+            s = np.float64(image[r, leave]) if leave >= 0 else 0.0
+            acc += e - s
+            out[r, c] = acc / size
+    return out

@@ -8,6 +8,7 @@ from scipy.interpolate import RegularGridInterpolator
 
 from detector import _readings
 from detector.assemble import (
+    _box_mean,
     PatchField,
     AssemblyParams,
     candidate_rows,
@@ -230,6 +231,15 @@ def test_joined_patch_fields_read_as_each_field(grid_and_values):
     joined = PatchField.joined(fields)
     ys, xs = np.array([0, 17, 40, 63]), np.array([5, 0, 33, 70])
     np.testing.assert_array_equal(joined.at(ys, xs), np.concatenate([f.at(ys, xs) for f in fields], axis=1))
+
+
+@pytest.mark.parametrize("shape", [(664, 864), (30, 20), (5, 70)])
+@pytest.mark.parametrize("size", [51, 21, 4, 3, 1])
+def test_box_mean_equals_scipy_uniform_filter_to_the_last_bit(shape, size):
+    image = np.random.default_rng(size).random(shape).astype(np.float32)
+    image[image < 0.2] = 0.0
+    ref = ndimage.uniform_filter(image, size, mode="constant")
+    assert _box_mean(image, size).tobytes() == ref.tobytes()
 
 
 @pytest.mark.parametrize("with_nodata", [False, True])
