@@ -223,3 +223,49 @@ def box_mean_cols(image, size, out):
             acc += e - s
             out[r, c] = acc / size
     return out
+
+
+@njit(cache=True, nogil=True)
+def _reflect(i, n):
+    """Index ``i`` folded into 0 .. n - 1 by mirroring at the edges (d c b a | a b c d)."""
+    while i < 0 or i >= n:
+        i = -i - 1 if i < 0 else 2 * n - i - 1
+    return i
+
+
+@njit(cache=True, nogil=True)
+def running_extreme(image, size, axis, maximum):
+    """Running minimum (or maximum) of ``size`` samples along ``axis`` (0 or 1), window
+    from ``-(size // 2)`` to ``size - 1 - size // 2``, edges mirrored; a new array."""
+    h, w = image.shape
+    out = np.empty_like(image)
+    lo = -(size // 2)
+    if axis == 0:
+        for r in range(h):
+            for c in range(w):
+                out[r, c] = image[_reflect(r + lo, h), c]
+            for k in range(lo + 1, lo + size):
+                rr = _reflect(r + k, h)
+                for c in range(w):
+                    v = image[rr, c]
+                    if (v > out[r, c]) if maximum else (v < out[r, c]):
+                        out[r, c] = v
+    else:
+        for r in range(h):
+            for c in range(w):
+                best = image[r, _reflect(c + lo, w)]
+                for k in range(lo + 1, lo + size):
+                    v = image[r, _reflect(c + k, w)]
+                    if (v > best) if maximum else (v < best):
+                        best = v
+                out[r, c] = best
+    return out
+
+
+@njit(cache=True, nogil=True)
+def label_areas(labels, n):
+    """Pixels of each label 1 .. n (``np.bincount(labels.ravel(), minlength=n + 1)[1:]``)."""
+    area = np.zeros(n + 1, dtype=np.int64)
+    for v in labels.ravel():
+        area[v] += 1
+    return area[1:]

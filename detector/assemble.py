@@ -307,33 +307,20 @@ class Candidate:
     spot: dict = field(default_factory=dict)
 
 
-def _running_extreme(x, size, axis, op):
-    """Running minimum or maximum (``op``) of ``size`` samples centred on each sample along ``axis``;
-    edges mirrored as in ``scipy.ndimage`` mode 'reflect' (d c b a | a b c d)."""
-    r = size // 2
-    pad = [(0, 0)] * x.ndim
-    pad[axis] = (r, size - 1 - r)
-    padded = np.pad(x, pad, mode="symmetric")
-    n = x.shape[axis]
-    lead = (slice(None),) * axis
-    out = padded[lead + (slice(0, n),)].copy()
-    for k in range(1, size):
-        op(out, padded[lead + (slice(k, k + n),)], out=out)
-    return out
-
-
 def grey_opening_square(image, size):
     """Grey opening by a flat ``size`` x ``size`` square, equal to
     ``scipy.ndimage.grey_opening(image, size=(size, size))``.
 
-    Odd sizes are computed as separable running minima then maxima over shifted
-    views (about 3x faster than scipy here; min and max are exact, so the result is
-    identical); even sizes, whose dilation origin scipy shifts, go to scipy.
+    Odd sizes are computed as separable running minima then maxima by compiled
+    loops with mirrored edges (min and max are exact, so the result is identical);
+    even sizes, whose dilation origin scipy shifts, go to scipy.
     """
     if size % 2 == 0:
         return ndimage.grey_opening(image, size=(size, size))
-    eroded = _running_extreme(_running_extreme(image, size, 0, np.minimum), size, 1, np.minimum)
-    return _running_extreme(_running_extreme(eroded, size, 0, np.maximum), size, 1, np.maximum)
+    image = np.ascontiguousarray(image)
+    ext = _kernels.running_extreme
+    eroded = ext(ext(image, size, 0, False), size, 1, False)
+    return ext(ext(eroded, size, 0, True), size, 1, True)
 
 
 def _robust_spread(values, valid):
@@ -429,25 +416,31 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     if n == 0:
         return []
     # A component is kept when it is large enough and holds a seed (its peak reaches seed_k).
-    area = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    area = _kernels.label_areas(labels, n)
     seeded = np.zeros(n + 1, dtype=bool)
     seeded[labels[smooth >= params.seed_k]] = True
     keep = np.flatnonzero(seeded[1:] & (area >= params.min_area_px)) + 1
     slices = ndimage.find_objects(labels)
     maps = [class_maps, polarity_maps] + ([] if axis_maps is None else [axis_maps])
     joint = PatchField.joined(maps)
-    out = []
+    parts = []
     for lab in keep:
         sl = slices[lab - 1]
         mask_local = labels[sl] == lab
         ly, lx = np.nonzero(mask_local)
-        ys, xs = ly + sl[0].start, lx + sl[1].start
+        parts.append((lab, sl, mask_local, ly, lx, ly + sl[0].start, lx + sl[1].start))
+    if joint is not None and parts:
+        # the maps at every component pixel in one read (the same values as one read per component)
+        every = joint.at(np.concatenate([p[5] for p in parts]), np.concatenate([p[6] for p in parts]))
+        bounds = np.cumsum([0] + [len(p[5]) for p in parts])
+    out = []
+    for i, (lab, sl, mask_local, ly, lx, ys, xs) in enumerate(parts):
         xf, yf = xs.astype(float), ys.astype(float)
         w = np.maximum(smooth[ys, xs], 1e-3)
         if joint is None:
             samples = np.concatenate([_sample(m, ys, xs) for m in maps]).astype(np.float32)
         else:
-            samples = np.ascontiguousarray(joint.at(ys, xs).T)
+            samples = np.ascontiguousarray(every[bounds[i]:bounds[i + 1]].T)
         if axis_maps is None:
             samples = np.concatenate([samples, np.zeros((2, len(xs)), np.float32)])
         p_none, p_fan, p_spot = samples[:3]

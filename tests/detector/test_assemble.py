@@ -411,3 +411,10 @@ def test_objects_respect_min_score(two_candidates):
     kept, _ = objects_from_candidates(two_candidates, scores, params=AssemblyParams(min_score=0.4))
     assert len(kept) == sum(len(c.fans) for c in two_candidates)
     assert (kept["score"] >= 0.4).all()
+
+
+def test_label_areas_equal_numpy_bincount():
+    from detector import _kernels
+
+    labels, n = ndimage.label(np.random.default_rng(8).random((90, 120)) > 0.6)
+    np.testing.assert_array_equal(_kernels.label_areas(labels, n), np.bincount(labels.ravel(), minlength=n + 1)[1:])
