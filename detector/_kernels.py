@@ -269,3 +269,55 @@ def label_areas(labels, n):
     for v in labels.ravel():
         area[v] += 1
     return area[1:]
+
+
+@njit(cache=True, nogil=True)
+def _symmetric_pass(image, weights, axis, out):
+    """One axis of ``scipy.ndimage.correlate1d(image, weights, axis, mode='reflect')`` for
+    symmetric odd-length ``weights``, as scipy computes it: in float64, the centre term
+    first, then the pairs from the outermost in, ``+= (left + right) * w``; stored in
+    ``out``'s dtype."""
+    h, w = image.shape
+    radius = weights.size // 2
+    if axis == 0:
+        acc = np.empty(w)
+        for r in range(h):
+            for c in range(w):
+                acc[c] = np.float64(image[r, c]) * weights[radius]
+            for d in range(radius, 0, -1):
+                up, down = _reflect(r - d, h), _reflect(r + d, h)
+                wd = weights[radius - d]
+                for c in range(w):
+                    acc[c] += (np.float64(image[up, c]) + np.float64(image[down, c])) * wd
+            for c in range(w):
+                out[r, c] = acc[c]
+    else:
+        line = np.empty(w + 2 * radius)
+        acc = np.empty(w)
+        for r in range(h):
+            for k in range(w + 2 * radius):
+                line[k] = image[r, _reflect(k - radius, w)]
+            for c in range(w):
+                acc[c] = line[c + radius] * weights[radius]
+            # each output adds its pairs in the same order; the loop over outputs is innermost
+            for d in range(radius, 0, -1):
+                wd = weights[radius - d]
+                left = line[radius - d:radius - d + w]
+                right = line[radius + d:radius + d + w]
+                for c in range(w):
+                    acc[c] += (left[c] + right[c]) * wd
+            for c in range(w):
+                out[r, c] = acc[c]
+    return out
+
+
+def gaussian(image, sigma, truncate=4.0):
+    """``scipy.ndimage.gaussian_filter(image, sigma, mode='reflect', truncate=truncate)`` of a
+    2-D float image (axis 0 then axis 1, each pass stored in the image's dtype), the same values."""
+    radius = int(truncate * float(sigma) + 0.5)
+    x = np.arange(-radius, radius + 1)
+    weights = np.exp(-0.5 / (sigma * sigma) * x**2)
+    weights = weights / weights.sum()
+    image = np.ascontiguousarray(image)
+    first = _symmetric_pass(image, weights, 0, np.empty_like(image))
+    return _symmetric_pass(first, weights, 1, np.empty_like(image))

@@ -418,3 +418,16 @@ def test_label_areas_equal_numpy_bincount():
 
     labels, n = ndimage.label(np.random.default_rng(8).random((90, 120)) > 0.6)
     np.testing.assert_array_equal(_kernels.label_areas(labels, n), np.bincount(labels.ravel(), minlength=n + 1)[1:])
+
+
+@pytest.mark.parametrize("shape", [(664, 864), (30, 20), (5, 70), (3, 3)])
+@pytest.mark.parametrize("sigma", [1.0, 2.5, 3.0])
+def test_gaussian_equals_scipy_gaussian_filter_to_the_last_bit(shape, sigma):
+    from detector import _kernels
+
+    image = (np.random.default_rng(9).random(shape) * 5).astype(np.float32)
+    image[image < 1] = 0
+    ref = ndimage.gaussian_filter(image, sigma)
+    assert _kernels.gaussian(image, sigma).tobytes() == ref.tobytes()
+    wide = image.astype(np.float64)
+    assert _kernels.gaussian(wide, sigma).tobytes() == ndimage.gaussian_filter(wide, sigma).tobytes()
