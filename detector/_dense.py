@@ -150,7 +150,22 @@ def box(table, i0, j0, i1, j1):
     ncr, ncc = table.shape[0] - 1, table.shape[1] - 1
     i0, i1 = np.clip(i0, 0, ncr), np.clip(i1, 0, ncr)
     j0, j1 = np.clip(j0, 0, ncc), np.clip(j1, 0, ncc)
+    if table.ndim == 3 and np.ndim(i0) == 1 and table.dtype in (np.float64, np.int32, np.int64):
+        # one compiled pass, the same expression in the same order
+        index = [np.ascontiguousarray(np.broadcast_to(v, np.shape(i0)), dtype=np.int64) for v in (i0, j0, i1, j1)]
+        return _kernels.box_sums(np.ascontiguousarray(table), *index)
     return table[i1, j1] - table[i0, j1] - table[i1, j0] + table[i0, j0]
+
+
+def erode_square(mask, size):
+    """``scipy.ndimage.minimum_filter(mask, size, mode='nearest')`` of a boolean mask (odd size):
+    True where the whole ``size`` x ``size`` square around a pixel, within the tile, is True.
+
+    Mirrored edges give the same minimum as repeated ones (a mirrored pixel lies in the
+    window already), so the compiled running minimum serves.
+    """
+    m = np.ascontiguousarray(mask, dtype=np.uint8)
+    return _kernels.running_extreme(_kernels.running_extreme(m, size, 0, False), size, 1, False).astype(bool)
 
 
 # -- gradients and HOG ----------------------------------------------------------
@@ -339,12 +354,12 @@ def structure_tensor_maps(image, *, gradient_sigma, tensor_sigma, central=None):
         d_c = ndi.sobel(img, axis=1, mode="reflect")
     else:
         # ndi.sobel = [-1, 0, 1] along the axis, then [1, 2, 1] across; with mode
-        # 'reflect' the outer differences are one-sided
-        g_row, g_col = (g.copy() for g in central)
-        g_row[0], g_row[-1] = img[1] - img[0], img[-1] - img[-2]
-        g_col[:, 0], g_col[:, -1] = img[:, 1] - img[:, 0], img[:, -1] - img[:, -2]
-        d_r = ndi.correlate1d(g_row, [1, 2, 1], axis=1, mode="reflect")
-        d_c = ndi.correlate1d(g_col, [1, 2, 1], axis=0, mode="reflect")
+        # 'reflect' the outer differences are one-sided (one compiled pass, the same values)
+        g_row, g_col = (np.ascontiguousarray(g, dtype=np.float32) for g in central)
+        prods = _kernels.sobel_products(np.ascontiguousarray(img), g_row, g_col)
+        if tensor_sigma > 0:
+            prods = tuple(ndi.gaussian_filter(p, tensor_sigma, mode="reflect", truncate=4.0) for p in prods)
+        return prods
     prods = (d_r * d_r, d_r * d_c, d_c * d_c)
     if tensor_sigma > 0:
         prods = tuple(ndi.gaussian_filter(p, tensor_sigma, mode="reflect", truncate=4.0) for p in prods)

@@ -251,14 +251,19 @@ def running_extreme(image, size, axis, maximum):
                     if (v > out[r, c]) if maximum else (v < out[r, c]):
                         out[r, c] = v
     else:
+        line = np.empty(w + size - 1, dtype=image.dtype)
         for r in range(h):
+            for k in range(w + size - 1):
+                line[k] = image[r, _reflect(k + lo, w)]
+            row = out[r]
             for c in range(w):
-                best = image[r, _reflect(c + lo, w)]
-                for k in range(lo + 1, lo + size):
-                    v = image[r, _reflect(c + k, w)]
-                    if (v > best) if maximum else (v < best):
-                        best = v
-                out[r, c] = best
+                row[c] = line[c]
+            for k in range(1, size):
+                shifted = line[k:k + w]
+                for c in range(w):
+                    v = shifted[c]
+                    if (v > row[c]) if maximum else (v < row[c]):
+                        row[c] = v
     return out
 
 
@@ -321,3 +326,66 @@ def gaussian(image, sigma, truncate=4.0):
     image = np.ascontiguousarray(image)
     first = _symmetric_pass(image, weights, 0, np.empty_like(image))
     return _symmetric_pass(first, weights, 1, np.empty_like(image))
+
+
+@njit(cache=True, nogil=True)
+def box_sums(table, i0, j0, i1, j1):
+    """``table[i1, j1] - table[i0, j1] - table[i1, j0] + table[i0, j0]`` for every box
+    (indices already clipped), evaluated left to right as numpy does; shape (n, C)."""
+    n = i0.size
+    n_ch = table.shape[2]
+    out = np.empty((n, n_ch), dtype=table.dtype)
+    for p in range(n):
+        a, b, c, d = i0[p], j0[p], i1[p], j1[p]
+        for k in range(n_ch):
+            out[p, k] = table[c, d, k] - table[a, d, k] - table[c, b, k] + table[a, b, k]
+    return out
+
+
+@njit(cache=True, nogil=True)
+def sobel_products(image, g_row, g_col):
+    """Structure-tensor products (A_rr, A_rc, A_cc) of a float32 image from its central
+    differences ``g_row``, ``g_col`` (zero on the border rows / columns).
+
+    The Sobel derivative along an axis is the central difference (one-sided on the
+    outer rows or columns, as ``mode='reflect'`` gives) smoothed by [1, 2, 1] across
+    with mirrored edges, computed as ``scipy.ndimage.correlate1d`` does (float64:
+    ``2 x + (left + right)``, stored in float32); products in float32.
+    """
+    h, w = image.shape
+    d_r = np.empty((h, w), dtype=np.float32)
+    d_c = np.empty((h, w), dtype=np.float32)
+    gr = np.empty(w, dtype=np.float32)
+    for r in range(h):
+        # the row derivative of row r, one-sided at the first and last rows
+        if r == 0:
+            for c in range(w):
+                gr[c] = image[1, c] - image[0, c] if h > 1 else g_row[0, c]
+        elif r == h - 1:
+            for c in range(w):
+                gr[c] = image[h - 1, c] - image[h - 2, c]
+        else:
+            for c in range(w):
+                gr[c] = g_row[r, c]
+        for c in range(w):
+            left = gr[_reflect(c - 1, w)]
+            right = gr[_reflect(c + 1, w)]
+            d_r[r, c] = np.float64(gr[c]) * 2.0 + (np.float64(left) + np.float64(right)) * 1.0
+    for r in range(h):
+        up, down = _reflect(r - 1, h), _reflect(r + 1, h)
+        for c in range(w):
+            d_c[r, c] = (np.float64(_col_diff(image, g_col, r, c)) * 2.0
+                         + (np.float64(_col_diff(image, g_col, up, c)) + np.float64(_col_diff(image, g_col, down, c)))
+                         * 1.0)
+    return d_r * d_r, d_r * d_c, d_c * d_c
+
+
+@njit(cache=True, nogil=True)
+def _col_diff(image, g_col, r, c):
+    """The column derivative at (r, c), one-sided at the first and last columns."""
+    w = image.shape[1]
+    if c == 0 and w > 1:
+        return image[r, 1] - image[r, 0]
+    if c == w - 1 and w > 1:
+        return image[r, w - 1] - image[r, w - 2]
+    return g_col[r, c]

@@ -293,9 +293,8 @@ class _Pooler:
             codes = _dense.lbp_uniform(prep.u16, P, R)
             mask = None
             if prep.has_nodata:
-                from scipy import ndimage as ndi
-
-                mask = ndi.minimum_filter(prep.valid, size=2 * int(np.ceil(R)) + 1, mode="nearest")
+                # pixels whose whole LBP ring is valid
+                mask = _dense.erode_square(prep.valid, 2 * int(np.ceil(R)) + 1)
             pooled = self.pool(self.hist(codes, P + 2, mask=mask)).astype(np.float64)
             parts.append(_safe_div(pooled, pooled.sum(axis=1, keepdims=True)))
         return np.concatenate(parts, axis=1)

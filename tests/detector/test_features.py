@@ -355,3 +355,22 @@ def test_structure_tensor_from_central_gradients_matches_skimage():
     ref = structure_tensor(img.astype(np.float64), sigma=1e-6, mode="reflect", order="rc")
     for a, b in zip(mine, ref):
         np.testing.assert_allclose(a, b, rtol=1e-4, atol=1e-6 * np.abs(b).max())
+
+
+@pytest.mark.parametrize("shape", [(96, 112), (2, 9), (7, 2)])
+def test_structure_products_from_central_gradients_equal_scipy_sobel(shape):
+    img = (_smooth_tile(shape=shape, seed=12) / 65535.0).astype(np.float32) if min(shape) > 8 else \
+        np.random.default_rng(12).random(shape).astype(np.float32)
+    mine = _dense.structure_tensor_maps(img, gradient_sigma=0.0, tensor_sigma=0.0,
+                                        central=_dense.central_gradients(img))
+    d_r, d_c = ndi.sobel(img, axis=0, mode="reflect"), ndi.sobel(img, axis=1, mode="reflect")
+    for a, b in zip(mine, (d_r * d_r, d_r * d_c, d_c * d_c)):
+        np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.parametrize("size", [3, 5])
+def test_square_erosion_equals_scipy_minimum_filter(size):
+    mask = np.random.default_rng(size).random((61, 47)) > 0.05
+    mask[:, :3] = True
+    ref = ndi.minimum_filter(mask, size=size, mode="nearest")
+    np.testing.assert_array_equal(_dense.erode_square(mask, size), ref)
