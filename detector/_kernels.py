@@ -389,3 +389,63 @@ def _col_diff(image, g_col, r, c):
     if c == w - 1 and w > 1:
         return image[r, w - 1] - image[r, w - 2]
     return g_col[r, c]
+
+
+@njit(cache=True, nogil=True)
+def patch_field_at(values, y0, x0, step_y, step_x, ys, xs):
+    """Bilinear read of per-patch ``values`` (n_rows, n_cols, k) float32 at pixels (ys, xs),
+    as :meth:`detector.assemble.PatchField.at` computes it with numpy: positions in
+    float32, weights and sums in float64, result float32."""
+    n_rows, n_cols, k = values.shape
+    n = ys.size
+    out = np.empty((n, k), dtype=np.float32)
+    y0f, x0f = np.float32(y0), np.float32(x0)
+    sy, sx = np.float32(step_y), np.float32(step_x)
+    top_row, top_col = np.float32(n_rows - 1), np.float32(n_cols - 1)
+    for p in range(n):
+        iy = (np.float32(ys[p]) - y0f) / sy
+        ix = (np.float32(xs[p]) - x0f) / sx
+        iy = min(max(iy, np.float32(0)), top_row)
+        ix = min(max(ix, np.float32(0)), top_col)
+        y_lo = min(int(np.floor(iy)), max(n_rows - 2, 0))
+        x_lo = min(int(np.floor(ix)), max(n_cols - 2, 0))
+        y_hi = min(y_lo + 1, n_rows - 1)
+        x_hi = min(x_lo + 1, n_cols - 1)
+        fy = np.float64(iy) - y_lo
+        fx = np.float64(ix) - x_lo
+        for c in range(k):
+            top = np.float64(values[y_lo, x_lo, c]) * (1 - fx) + np.float64(values[y_lo, x_hi, c]) * fx
+            bottom = np.float64(values[y_hi, x_lo, c]) * (1 - fx) + np.float64(values[y_hi, x_hi, c]) * fx
+            out[p, c] = top * (1 - fy) + bottom * fy
+    return out
+
+
+@njit(cache=True, nogil=True)
+def city_block_ring(local, valid, radius):
+    """Valid pixels outside ``local`` within city-block distance ``radius`` of it:
+    ``binary_dilation(local, iterations=radius) & ~local & valid`` with scipy's default
+    cross, by the exact two-pass city-block distance (paths stay inside the box)."""
+    h, w = local.shape
+    far = h + w + radius + 1
+    d = np.empty((h, w), dtype=np.int64)
+    for r in range(h):
+        for c in range(w):
+            v = 0 if local[r, c] else far
+            if r > 0 and d[r - 1, c] + 1 < v:
+                v = d[r - 1, c] + 1
+            if c > 0 and d[r, c - 1] + 1 < v:
+                v = d[r, c - 1] + 1
+            d[r, c] = v
+    for r in range(h - 1, -1, -1):
+        for c in range(w - 1, -1, -1):
+            v = d[r, c]
+            if r < h - 1 and d[r + 1, c] + 1 < v:
+                v = d[r + 1, c] + 1
+            if c < w - 1 and d[r, c + 1] + 1 < v:
+                v = d[r, c + 1] + 1
+            d[r, c] = v
+    out = np.zeros((h, w), dtype=np.bool_)
+    for r in range(h):
+        for c in range(w):
+            out[r, c] = d[r, c] <= radius and not local[r, c] and valid[r, c]
+    return out

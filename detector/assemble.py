@@ -262,7 +262,16 @@ class PatchField:
         return out
 
     def at(self, ys, xs):
-        """Interpolated values at pixels (ys, xs), shape (n, k), float32."""
+        """Interpolated values at pixels (ys, xs), shape (n, k), float32 (compiled; the same
+        values as :meth:`at_numpy`)."""
+        ys, xs = np.atleast_1d(ys), np.atleast_1d(xs)
+        if ys.ndim != 1 or ys.shape != xs.shape:
+            return self.at_numpy(ys, xs)
+        return _kernels.patch_field_at(np.ascontiguousarray(self.values), self.y0, self.x0, self.step_y,
+                                       self.step_x, ys, xs)
+
+    def at_numpy(self, ys, xs):
+        """Interpolated values at pixels (ys, xs), shape (n, k), float32, in numpy."""
         iy = np.clip((np.asarray(ys, dtype=np.float32) - self.y0) / self.step_y, 0, self.n_rows - 1)
         ix = np.clip((np.asarray(xs, dtype=np.float32) - self.x0) / self.step_x, 0, self.n_cols - 1)
         y_lo = np.minimum(np.floor(iy).astype(int), max(self.n_rows - 2, 0))
@@ -356,7 +365,12 @@ def _vents(smooth_local, mask_local, ly, lx, params):
         Smoothed darkness at each vent.
     """
     peak_map = _kernels.gaussian(np.where(mask_local, smooth_local, 0.0), params.vent_smooth_px)
-    is_max = (peak_map == ndimage.maximum_filter(peak_map, size=int(params.vent_min_separation_px))) & mask_local
+    size = int(params.vent_min_separation_px)
+    if size % 2:  # scipy's maximum_filter (mirrored edges) as a separable compiled running maximum
+        local_max = _kernels.running_extreme(_kernels.running_extreme(peak_map, size, 0, True), size, 1, True)
+    else:
+        local_max = ndimage.maximum_filter(peak_map, size=size)
+    is_max = (peak_map == local_max) & mask_local
     py, px = np.nonzero(is_max)
     if len(py):
         height = peak_map[py, px]
@@ -455,7 +469,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         fans = [_fan_reading(row, owner == j, axis_maps is not None) for j, row in enumerate(rows)]
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
-        ring = ndimage.binary_dilation(local, iterations=5) & ~local & valid[ring_sl]
+        ring = _kernels.city_block_ring(local, np.ascontiguousarray(valid[ring_sl]), 5)
         ring_dark = float(dark[ring_sl][ring].mean()) if ring.any() else 0.0
         major, minor = 2.0 * np.sqrt(major_var), 2.0 * np.sqrt(minor_var)
         border = float(min(xs.min(), ys.min(), cols - 1 - xs.max(), rows_px - 1 - ys.max()) <= 1)

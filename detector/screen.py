@@ -330,7 +330,10 @@ def _screen_tile(index, task, model_dir, min_score=None):
     det = det.loc[keep].reset_index(drop=True)
     det = det.reindex(columns=list(DETECTION_COLUMNS))
     numeric = [c for c in DETECTION_COLUMNS if c not in ("tile_id", "kind")]
-    det[numeric] = det[numeric].apply(pd.to_numeric, errors="coerce").astype(float)
+    if all(det[c].dtype.kind in "fiub" for c in numeric):
+        det[numeric] = det[numeric].astype(float)
+    else:  # a column of another type (e.g. all missing): coerced
+        det[numeric] = det[numeric].apply(pd.to_numeric, errors="coerce").astype(float)
     det["x_px"] = x[keep]
     det["y_px"] = y[keep]
     det["tile_id"] = task.tile_id

@@ -431,3 +431,32 @@ def test_gaussian_equals_scipy_gaussian_filter_to_the_last_bit(shape, sigma):
     assert _kernels.gaussian(image, sigma).tobytes() == ref.tobytes()
     wide = image.astype(np.float64)
     assert _kernels.gaussian(wide, sigma).tobytes() == ndimage.gaussian_filter(wide, sigma).tobytes()
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_city_block_ring_equals_scipy_iterated_dilation(seed):
+    from detector import _kernels
+
+    rng = np.random.default_rng(30 + seed)
+    local = ndimage.binary_opening(rng.random((40, 55)) > 0.7)
+    local[0, :4] = True  # touching the box edge
+    valid = rng.random(local.shape) > 0.1
+    ref = ndimage.binary_dilation(local, iterations=5) & ~local & valid
+    np.testing.assert_array_equal(_kernels.city_block_ring(local, valid, 5), ref)
+
+
+def test_patch_field_compiled_read_equals_numpy(grid_and_values):
+    _, grid, values = grid_and_values
+    field = PatchField(values, grid)
+    rng = np.random.default_rng(31)
+    ys, xs = rng.integers(-3, 155, 500), rng.integers(-3, 175, 500)
+    assert field.at(ys, xs).tobytes() == field.at_numpy(ys, xs).tobytes()
+
+
+@pytest.mark.parametrize("shape", [(40, 55), (5, 9), (3, 30)])
+def test_separable_running_maximum_equals_scipy_maximum_filter(shape):
+    from detector import _kernels
+
+    x = np.random.default_rng(shape[0]).random(shape).astype(np.float32)
+    mine = _kernels.running_extreme(_kernels.running_extreme(x, 15, 0, True), 15, 1, True)
+    assert mine.tobytes() == ndimage.maximum_filter(x, size=15).tobytes()
