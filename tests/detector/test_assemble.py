@@ -151,6 +151,8 @@ def test_quantile_equals_numpy_to_the_last_bit(n, q):
 def test_sum_follows_numpy_pairwise_order(n):
     values = np.random.default_rng(n).normal(size=n) * 10.0 ** np.random.default_rng(n + 1).uniform(-6, 6, n)
     assert _readings.psum(values) == float(np.sum(values))
+    single = values.astype(np.float32)  # float32 sums are accumulated in float32, as numpy's are
+    assert _readings.psum(single) == np.sum(single)
 
 
 def test_direction_histogram_equals_numpy_on_edges_and_bounds():
