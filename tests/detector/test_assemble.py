@@ -462,3 +462,14 @@ def test_separable_running_maximum_equals_scipy_maximum_filter(shape):
     x = np.random.default_rng(shape[0]).random(shape).astype(np.float32)
     mine = _kernels.running_extreme(_kernels.running_extreme(x, 15, 0, True), 15, 1, True)
     assert mine.tobytes() == ndimage.maximum_filter(x, size=15).tobytes()
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 8, 39, 1000, 1001])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_median_equals_numpy_to_the_last_bit(n, dtype):
+    from detector.assemble import _median
+
+    v = (np.random.default_rng(n).standard_normal(n) * 3).astype(dtype)
+    v[::5] = np.round(v[::5])  # ties
+    mine, ref = _median(v), np.median(v)
+    assert type(mine) is type(ref) and mine.tobytes() == np.asarray(ref).tobytes()
