@@ -119,10 +119,11 @@ def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes):
 
 
 def _marked(q, levels, valid, use_valid):
-    """Grey levels with no-data pixels moved to the extra level ``levels``."""
+    """Grey levels with no-data pixels moved to the extra level ``levels`` (in a dtype that holds it)."""
     if not use_valid:
         return q
-    return np.where(valid, q, np.uint8(levels)).astype(np.uint8) if levels < 256 else np.where(valid, q, levels)
+    dtype = np.promote_types(q.dtype, np.min_scalar_type(levels))
+    return np.where(valid, q.astype(dtype, copy=False), dtype.type(levels))
 
 
 def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):

@@ -102,6 +102,17 @@ def test_masked_cooccurrence_counts_match_skimage_with_a_level_for_no_data():
     np.testing.assert_array_equal(counts, np.moveaxis(ref.reshape(8, 8, -1), -1, 0))
 
 
+def test_masked_cooccurrence_counts_with_256_levels_leave_no_data_out():
+    # with 256 grey levels the no-data level 256 no longer fits in uint8
+    rng = np.random.default_rng(15)
+    q = rng.integers(0, 256, size=(48, 64))
+    valid = rng.random(q.shape) > 0.2
+    counts = _dense.glcm_cell_counts(q, 16, [(0, 1), (1, 0)], 256, valid).sum(axis=1)
+    marked = np.where(valid, q, 256).astype(np.uint16)
+    ref = graycomatrix(marked, [1], [0.0, np.pi / 2], levels=257)[:256, :256, 0, :]
+    np.testing.assert_array_equal(counts, np.moveaxis(ref, -1, 0))
+
+
 def test_cell_counts_of_a_ragged_tile_follow_the_pair_rule():
     # A pair counts in the full cell of its first pixel; pixels past the last full
     # cell start no pair but may end one (checked by np.add.at over every pair).
