@@ -164,8 +164,7 @@ def erode_square(mask, size):
     Mirrored edges give the same minimum as repeated ones (a mirrored pixel lies in the
     window already), so the compiled running minimum serves.
     """
-    m = np.ascontiguousarray(mask, dtype=np.uint8)
-    return _kernels.running_extreme(_kernels.running_extreme(m, size, 0, False), size, 1, False).astype(bool)
+    return _kernels.square_extreme(np.asarray(mask, dtype=np.uint8), size, False).astype(bool)
 
 
 # -- gradients and HOG ----------------------------------------------------------
@@ -352,15 +351,12 @@ def structure_tensor_maps(image, *, gradient_sigma, tensor_sigma, central=None):
     if central is None or min(img.shape) < 2:
         d_r = ndi.sobel(img, axis=0, mode="reflect")
         d_c = ndi.sobel(img, axis=1, mode="reflect")
+        prods = (d_r * d_r, d_r * d_c, d_c * d_c)
     else:
         # ndi.sobel = [-1, 0, 1] along the axis, then [1, 2, 1] across; with mode
         # 'reflect' the outer differences are one-sided (one compiled pass, the same values)
         g_row, g_col = (np.ascontiguousarray(g, dtype=np.float32) for g in central)
         prods = _kernels.sobel_products(np.ascontiguousarray(img), g_row, g_col)
-        if tensor_sigma > 0:
-            prods = tuple(ndi.gaussian_filter(p, tensor_sigma, mode="reflect", truncate=4.0) for p in prods)
-        return prods
-    prods = (d_r * d_r, d_r * d_c, d_c * d_c)
     if tensor_sigma > 0:
         prods = tuple(ndi.gaussian_filter(p, tensor_sigma, mode="reflect", truncate=4.0) for p in prods)
     return prods

@@ -268,6 +268,13 @@ def running_extreme(image, size, axis, maximum):
     return out
 
 
+def square_extreme(image, size, maximum):
+    """Minimum (or maximum) over the ``size`` x ``size`` square around each pixel, edges
+    mirrored: :func:`running_extreme` down the columns, then along the rows."""
+    image = np.ascontiguousarray(image)
+    return running_extreme(running_extreme(image, size, 0, maximum), size, 1, maximum)
+
+
 @njit(cache=True, nogil=True)
 def label_areas(labels, n):
     """Pixels of each label 1 .. n (``np.bincount(labels.ravel(), minlength=n + 1)[1:]``)."""
@@ -317,13 +324,18 @@ def _symmetric_pass(image, weights, axis, out):
     return out
 
 
-def gaussian(image, sigma, truncate=4.0):
-    """``scipy.ndimage.gaussian_filter(image, sigma, mode='reflect', truncate=truncate)`` of a
-    2-D float image (axis 0 then axis 1, each pass stored in the image's dtype), the same values."""
+def gaussian_weights(sigma, truncate=4.0):
+    """The normalised Gaussian weights scipy.ndimage uses: radius ``int(truncate * sigma + 0.5)``."""
     radius = int(truncate * float(sigma) + 0.5)
     x = np.arange(-radius, radius + 1)
     weights = np.exp(-0.5 / (sigma * sigma) * x**2)
-    weights = weights / weights.sum()
+    return weights / weights.sum()
+
+
+def gaussian(image, sigma, truncate=4.0):
+    """``scipy.ndimage.gaussian_filter(image, sigma, mode='reflect', truncate=truncate)`` of a
+    2-D float image (axis 0 then axis 1, each pass stored in the image's dtype), the same values."""
+    weights = gaussian_weights(sigma, truncate)
     image = np.ascontiguousarray(image)
     first = _symmetric_pass(image, weights, 0, np.empty_like(image))
     return _symmetric_pass(first, weights, 1, np.empty_like(image))

@@ -200,10 +200,10 @@ def direction_modes(angles, weights, min_separation, min_share, smoothing, n_bin
     order = np.argsort(-smooth[peaks], kind="mergesort")
     centres = (np.arange(n_bins) + 0.5) * width
     out = np.empty(n_peaks)
+    sel = np.empty(n_bins)
     n_kept = 0
     for p in order:
         c = centres[peaks[p]]
-        sel = np.empty(n_bins)
         m = 0
         for i in range(n_bins):
             if _angular_difference(centres[i], c) <= min_separation / 2:

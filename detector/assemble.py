@@ -326,10 +326,7 @@ def grey_opening_square(image, size):
     """
     if size % 2 == 0:
         return ndimage.grey_opening(image, size=(size, size))
-    image = np.ascontiguousarray(image)
-    ext = _kernels.running_extreme
-    eroded = ext(ext(image, size, 0, False), size, 1, False)
-    return ext(ext(eroded, size, 0, True), size, 1, True)
+    return _kernels.square_extreme(_kernels.square_extreme(image, size, False), size, True)
 
 
 def _median(v):
@@ -365,8 +362,7 @@ def _renormalised(values, valid):
 
 
 #: Gaussian weights (sigma 1.5 bins, radius 6) that smooth a vent's direction histogram.
-_MODE_SMOOTHING = np.exp(-0.5 / 1.5**2 * np.arange(-6, 7, dtype=np.float64) ** 2)
-_MODE_SMOOTHING /= _MODE_SMOOTHING.sum()
+_MODE_SMOOTHING = _kernels.gaussian_weights(1.5)
 
 
 def _vents(smooth_local, mask_local, ly, lx, params):
@@ -382,7 +378,7 @@ def _vents(smooth_local, mask_local, ly, lx, params):
     peak_map = _kernels.gaussian(np.where(mask_local, smooth_local, 0.0), params.vent_smooth_px)
     size = int(params.vent_min_separation_px)
     if size % 2:  # scipy's maximum_filter (mirrored edges) as a separable compiled running maximum
-        local_max = _kernels.running_extreme(_kernels.running_extreme(peak_map, size, 0, True), size, 1, True)
+        local_max = _kernels.square_extreme(peak_map, size, True)
     else:
         local_max = ndimage.maximum_filter(peak_map, size=size)
     is_max = (peak_map == local_max) & mask_local
