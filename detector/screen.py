@@ -300,9 +300,11 @@ def _empty_detections():
 
 def _screen_tile(index, task, model_dir, min_score=None):
     """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
+    from ._allocator import reuse_freed_memory
     from .detect import detect_tile
     from .unfamiliar import unfamiliarity_score
 
+    reuse_freed_memory()
     model = cached_model(model_dir)
     src, georef = _cached_source(task.path, task.band, task.nodata)
     array, mask = src.read(task.window)

@@ -10,6 +10,7 @@ from detector.detect import tile_summary_vector
 from detector.features import extract_features, patch_targets
 from detector.spec import patch_axis_deg
 from detector.labels import rasterise_features
+from detector._allocator import reuse_freed_memory
 
 __all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs"]
 
@@ -233,6 +234,7 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
 
 
 def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share):
+    reuse_freed_memory()
     tf = tile_features(tileset, tile_id, spec, rotation=rotation, tau=tau)
     if sample:
         idx, weight = _sample_tile(tf, np.random.default_rng(seed_seq), neg_ratio=neg_ratio, hard_share=hard_share)

@@ -16,6 +16,7 @@ from detector.labels import rasterise_features
 from detector.model import CLASS_NAMES, cached_model, load_model
 from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_score
+from detector._allocator import reuse_freed_memory
 
 from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
 
@@ -25,6 +26,7 @@ __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_car
 
 def _run_one(model, tileset, tile_id, tau, min_score=None):
     """Detections and patch targets of one labelled tile (``model`` is a Model or a model folder)."""
+    reuse_freed_memory()
     if not hasattr(model, "feature_spec"):
         model = cached_model(model)
     spec = model.feature_spec

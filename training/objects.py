@@ -15,6 +15,7 @@ from tqdm.auto import tqdm
 from detector.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
 from detector.detect import tile_candidates, tile_maps
 from detector.features import extract_features
+from detector._allocator import reuse_freed_memory
 
 from .scoring import match_objects
 
@@ -107,6 +108,7 @@ def rotate_features(features, shape, quarter_turns):
 
 
 def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0):
+    reuse_freed_memory()
     tile = tileset.read_tile(tile_id)
     consensus = tileset.features_of(tile_id)
     if rotation % 4:
