@@ -6,6 +6,8 @@ into patch windows with a summed-area table over the cell grid, so no Python
 loop runs over patches or pixels.
 """
 
+import functools
+
 import numpy as np
 from scipy import ndimage as ndi
 
@@ -276,23 +278,30 @@ def glcm_props_folded(S, levels):
         contrast, dissimilarity, homogeneity, ASM, energy, correlation.
     """
     shape = S.shape[:-1]
-    flat = S.reshape(-1, S.shape[-1]).astype(np.float64, copy=False)
+    flat = np.ascontiguousarray(S.reshape(-1, S.shape[-1]))
+    if flat.dtype.kind not in "iuf":
+        raise TypeError(f"co-occurrence counts must be numbers, not {flat.dtype}.")
+    weights, mult = _haralick_weights(levels)
+    # one compiled pass per row: weighted sums in pair order, then the normalisations
+    return _kernels.haralick_rows(flat, weights, mult).reshape((6,) + shape)
+
+
+@functools.lru_cache(maxsize=8)
+def _haralick_weights(levels):
+    """Per folded pair (i <= j): the weights of the sums behind the properties, and 1 or 2
+    (an off-diagonal entry stands for two equal entries of the symmetric matrix).
+
+    Columns: total, (i - j)^2, |i - j|, 1 / (1 + (i - j)^2), (i + j) / 2, (i^2 + j^2) / 2, i j.
+    """
     iu, ju = np.triu_indices(levels)
     i, j = iu.astype(np.float64), ju.astype(np.float64)
     mult = np.where(iu == ju, 1.0, 2.0)
     d = i - j
     weights = mult[:, None] * np.stack(
         [np.ones_like(i), d**2, np.abs(d), 1.0 / (1.0 + d**2), (i + j) / 2, (i**2 + j**2) / 2, i * j], axis=1)
-    # einsum, not BLAS: threaded BLAS costs more than it gains at these sizes
-    sums = np.einsum("nk,kw->nw", flat, weights)
-    norm = np.where(sums[:, 0] == 0, 1.0, sums[:, 0])
-    contrast, dissim, homog, mu, ex2, exy = (sums[:, k] / norm for k in range(1, 7))
-    asm = np.einsum("nk,nk,k->n", flat, flat, mult) / norm**2
-    var = np.maximum(ex2 - mu**2, 0.0)
-    cov = exy - mu**2
-    flat_std = np.sqrt(var) < 1e-15
-    corr = np.where(flat_std, 1.0, cov / np.where(flat_std, 1.0, var))
-    return np.stack([contrast, dissim, homog, asm, np.sqrt(asm), corr]).reshape((6,) + shape)
+    weights.setflags(write=False)
+    mult.setflags(write=False)
+    return weights, mult
 
 
 def glcm_props(P):

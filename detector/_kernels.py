@@ -89,33 +89,60 @@ def cell_weighted(bins, weights, cell_px, ncr, ncc, n_bins):
 
 
 @njit(cache=True, nogil=True)
-def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes):
+def _ordered_counts(q, cell_px, ncr, ncc, dr, dc, n_levels, row_codes, ordered):
+    """Fill ``ordered`` (ncr * ncc, n_levels**2) with the counts of the ordered pair code
+    ``q[p] * n_levels + q[p + (dr, dc)]`` in the cell of p (both pixels in the tile, p in a
+    full cell). The code is made in ``row_codes``' dtype: uint8 when it fits, so a row's
+    codes are made many pixels at a time."""
+    h, w = q.shape
+    nl = row_codes.dtype.type(n_levels)
+    r0, r1 = max(0, -dr), min(ncr * cell_px, h - dr)
+    c0, c1 = max(0, -dc), min(ncc * cell_px, w - dc)
+    ordered[:] = 0
+    for r in range(r0, r1):
+        first = q[r, c0:c1]
+        second = q[r + dr, c0 + dc:c1 + dc]
+        for c in range(c1 - c0):
+            row_codes[c] = first[c] * nl + second[c]
+        row_cell = (r // cell_px) * ncc
+        for j in range(ncc):
+            hist = ordered[row_cell + j]
+            for c in range(max(c0, j * cell_px), min(c1, (j + 1) * cell_px)):
+                hist[row_codes[c - c0]] += 1
+
+
+@njit(cache=True, nogil=True)
+def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes, row_codes):
     """Counts (n_offsets, ncr * ncc, n_codes) of ``code[q[p], q[p + offset]]`` in the cell of p.
 
     A pair counts when both pixels lie in the tile and p lies in a full cell;
-    a ``code`` of ``n_codes`` is not counted (no-data pairs).
-    A row of codes is made first, then added to the cells' histograms.
+    a ``code`` of ``n_codes`` or more is not counted (no-data pairs). The
+    ordered pairs are counted first (:func:`_ordered_counts`), then gathered into
+    ``code``'s bins: integer counts, the same whatever the order.
     """
-    h, w = q.shape
-    n_levels = code.shape[1]
-    flat = code.ravel()
-    out = np.zeros((d_rows.size, ncr * ncc, n_codes + 1), dtype=np.int32)
-    row_codes = np.empty(w, dtype=np.int32)
+    n_levels = code.shape[0]
+    n_cells = ncr * ncc
+    ordered = np.zeros((n_cells, n_levels * n_levels), dtype=np.int32)
+    out = np.zeros((d_rows.size, n_cells, n_codes), dtype=np.int64)
     for k in range(d_rows.size):
-        dr, dc = d_rows[k], d_cols[k]
-        r0, r1 = max(0, -dr), min(ncr * cell_px, h - dr)
-        c0, c1 = max(0, -dc), min(ncc * cell_px, w - dc)
-        for r in range(r0, r1):
-            first = q[r, c0:c1]
-            second = q[r + dr, c0 + dc:c1 + dc]
-            for c in range(c1 - c0):
-                row_codes[c] = flat[np.intp(first[c]) * n_levels + np.intp(second[c])]
-            row_cell = (r // cell_px) * ncc
-            for j in range(ncc):
-                hist = out[k, row_cell + j]
-                for c in range(max(c0, j * cell_px), min(c1, (j + 1) * cell_px)):
-                    hist[row_codes[c - c0]] += 1
-    return out[:, :, :n_codes].astype(np.int64)
+        _ordered_counts(q, cell_px, ncr, ncc, d_rows[k], d_cols[k], n_levels, row_codes, ordered)
+        for i in range(n_cells):
+            hist = ordered[i]
+            counts = out[k, i]
+            for a in range(n_levels):
+                for b in range(n_levels):
+                    t = code[a, b]
+                    if t < n_codes:
+                        counts[t] += hist[a * n_levels + b]
+    return out
+
+
+def _pair_codes(q, code, cell_px, ncr, ncc, d_rows, d_cols, n_codes):
+    """:func:`_pair_counts` with a row-code buffer of the smallest dtype that holds the codes."""
+    n_levels = code.shape[0]
+    dtype = np.uint8 if n_levels * n_levels <= 256 else np.int32
+    row_codes = np.empty(q.shape[1], dtype=dtype)
+    return _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, np.ascontiguousarray(code), n_codes, row_codes)
 
 
 def _marked(q, levels, valid, use_valid):
@@ -136,16 +163,57 @@ def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_
     code = np.full((levels + 1, levels + 1), iu.size, dtype=np.int32)
     code[iu, ju] = np.arange(iu.size)
     code[ju, iu] = np.arange(iu.size)
-    return _pair_counts(_marked(q, levels, valid, use_valid), cell_px, ncr, ncc, d_rows, d_cols, code, iu.size)
+    n = levels + 1 if use_valid else levels
+    return _pair_codes(_marked(q, levels, valid, use_valid), code[:n, :n], cell_px, ncr, ncc, d_rows, d_cols,
+                       iu.size)
 
 
 def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
     """Ordered-pair co-occurrence counts (n_offsets, ncr * ncc, levels, levels) int64 (see above)."""
     code = np.full((levels + 1, levels + 1), levels * levels, dtype=np.int32)
     code[:levels, :levels] = np.arange(levels * levels).reshape(levels, levels)
-    out = _pair_counts(_marked(q, levels, valid, use_valid), cell_px, ncr, ncc, d_rows, d_cols, code,
-                       levels * levels)
+    n = levels + 1 if use_valid else levels
+    out = _pair_codes(_marked(q, levels, valid, use_valid), code[:n, :n], cell_px, ncr, ncc, d_rows, d_cols,
+                      levels * levels)
     return out.reshape(d_rows.size, ncr * ncc, levels, levels)
+
+
+@njit(cache=True, nogil=True)
+def haralick_rows(counts, weights, mult):
+    """Haralick properties (6, n) of folded symmetric counts ``counts`` (n, n_pairs), as
+    :func:`detector._dense.glcm_props_folded` computes them with numpy: each weighted
+    sum adds its terms in pair order from 0.0 (the order ``np.einsum`` takes for these
+    operands), then the same divisions, in float64."""
+    n, n_pairs = counts.shape
+    n_w = weights.shape[1]
+    out = np.empty((6, n))
+    sums = np.empty(n_w)
+    v = np.empty(n_pairs)
+    w_t = np.ascontiguousarray(weights.T)
+    for p in range(n):
+        for k in range(n_pairs):
+            v[k] = counts[p, k]
+        for m in range(n_w):
+            acc = 0.0
+            w_m = w_t[m]
+            for k in range(n_pairs):
+                acc += v[k] * w_m[k]
+            sums[m] = acc
+        sq = 0.0
+        for k in range(n_pairs):
+            sq += v[k] * v[k] * mult[k]
+        norm = 1.0 if sums[0] == 0 else sums[0]
+        mu = sums[4] / norm
+        var = max(sums[5] / norm - mu * mu, 0.0)
+        cov = sums[6] / norm - mu * mu
+        asm = sq / (norm * norm)
+        out[0, p] = sums[1] / norm
+        out[1, p] = sums[2] / norm
+        out[2, p] = sums[3] / norm
+        out[3, p] = asm
+        out[4, p] = np.sqrt(asm)
+        out[5, p] = 1.0 if np.sqrt(var) < 1e-15 else cov / var
+    return out
 
 
 @njit(cache=True, nogil=True)

@@ -73,6 +73,34 @@ def test_cooccurrence_counts_match_skimage():
         np.testing.assert_allclose(props[k], graycoprops(sym, prop).ravel(), rtol=1e-12, atol=1e-14)
 
 
+def test_haralick_kernel_equals_the_numpy_formulas_bit_for_bit():
+    # The compiled loop must give the very numbers of numpy's einsum formulation
+    # (sums in pair order), not merely close ones, so features do not depend on it.
+    rng = np.random.default_rng(7)
+    L = 8
+    S = rng.integers(0, 400, size=(3000, 36)) * rng.integers(0, 2, size=(3000, 36))
+    S[:4] = 0  # empty patches: normalised by 1
+    S[4:8, 1:] = 0  # one grey level only: correlation 1
+    iu, ju = np.triu_indices(L)
+    i, j = iu.astype(float), ju.astype(float)
+    mult = np.where(iu == ju, 1.0, 2.0)
+    d = i - j
+    w = mult[:, None] * np.stack([np.ones_like(i), d**2, np.abs(d), 1 / (1 + d**2), (i + j) / 2,
+                                  (i**2 + j**2) / 2, i * j], axis=1)
+    flat = S.astype(float)
+    sums = np.einsum("nk,kw->nw", flat, w)
+    norm = np.where(sums[:, 0] == 0, 1.0, sums[:, 0])
+    contrast, dissim, homog, mu, ex2, exy = (sums[:, k] / norm for k in range(1, 7))
+    asm = np.einsum("nk,nk,k->n", flat, flat, mult) / norm**2
+    var = np.maximum(ex2 - mu**2, 0.0)
+    flat_std = np.sqrt(var) < 1e-15
+    corr = np.where(flat_std, 1.0, (exy - mu**2) / np.where(flat_std, 1.0, var))
+    expect = np.stack([contrast, dissim, homog, asm, np.sqrt(asm), corr])
+    got = _dense.glcm_props_folded(S.astype(np.int32), L)
+    assert got.tobytes() == expect.tobytes()
+    assert np.all(got[5, 4:8] == 1.0) and np.all(got[0, :4] == 0.0)
+
+
 def test_haralick_worked_example():
     # Haralick, Shanmugam and Dinstein (1973), Fig. 2: 4 x 4 image with grey levels 0-3 and
     # its symmetric distance-1 co-occurrence matrices (also in skimage's graycomatrix docstring).
