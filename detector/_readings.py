@@ -13,7 +13,7 @@ import numpy as np
 from numba import njit
 
 __all__ = ["psum", "quantile", "direction_histogram", "circular_smooth", "direction_modes", "axis_moments", "spot_reading", "describe_component",
-           "FAN_FIELDS"]
+           "component_summary", "FAN_FIELDS", "SUMMARY_FIELDS"]
 
 _DEG = 180.0 / np.pi
 _RAD = np.pi / 180.0
@@ -308,6 +308,49 @@ def axis_moments(xs, ys, w, w32):
     dark_neg = _mean(w32[neg]) if n_neg else np.float32(0.0)
     asym = np.float64((dark_pos - dark_neg) / max(dark_pos + dark_neg, np.float32(1e-6)))
     return max(small, 0.25), max(big, 0.25), skew, widening, asym
+
+
+@njit(cache=True, nogil=True)
+def _std(x):
+    """``x.std()``: numpy's two-pass variance in the array's dtype (float32 stays float32)."""
+    mean = _mean(x)
+    d = x - mean
+    return np.sqrt(_mean(d * d))
+
+
+#: Entries of :func:`component_summary`.
+SUMMARY_FIELDS = ("w_mean", "w_max", "w_std", "ring_dark", "p_none", "p_fan", "p_spot", "p_fan_max", "p_spot_max")
+
+
+@njit(cache=True, nogil=True)
+def component_summary(w32, samples, dark_box, ring):
+    """Darkness and class statistics of one component, as numpy gives them from float32
+    arrays: ``w.mean()``, ``w.max()``, ``w.std()``, ``dark_box[ring].mean()`` (0 for an
+    empty ring), ``np.average(p, weights=w)`` of the none, fan and spot probabilities
+    (``samples`` rows 0-2) and the largest fan and spot probabilities; float64 (9,)."""
+    out = np.empty(len(SUMMARY_FIELDS))
+    out[0] = _mean(w32)
+    out[1] = w32.max()
+    out[2] = _std(w32)
+    n_ring = 0
+    for v in ring.ravel():
+        n_ring += v
+    if n_ring:
+        vals = np.empty(n_ring, dtype=dark_box.dtype)
+        k = 0
+        for r in range(ring.shape[0]):
+            for c in range(ring.shape[1]):
+                if ring[r, c]:
+                    vals[k] = dark_box[r, c]
+                    k += 1
+        out[3] = _mean(vals)
+    else:
+        out[3] = 0.0
+    for j in range(3):
+        out[4 + j] = _average(samples[j], w32)
+    out[7] = samples[1].max()
+    out[8] = samples[2].max()
+    return out
 
 
 @njit(cache=True, nogil=True)

@@ -469,7 +469,6 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             samples = np.ascontiguousarray(every[bounds[i]:bounds[i + 1]].T)
         if axis_maps is None:
             samples = np.concatenate([samples, np.zeros((2, len(xs)), np.float32)])
-        p_none, p_fan, p_spot = samples[:3]
         w64 = w.astype(np.float64)
         minor_var, major_var, skew, widening, asym = _readings.axis_moments(xf, yf, w64, w)
         vx, vy, vent_dark = _vents(smooth[sl], mask_local, ly, lx, params)
@@ -481,21 +480,22 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
         ring = _kernels.city_block_ring(local, np.ascontiguousarray(valid[ring_sl]), 5)
-        ring_dark = float(dark[ring_sl][ring].mean()) if ring.any() else 0.0
+        # w.mean(), w.max(), w.std(), the ring's mean darkness, np.average of the class
+        # probabilities weighted by w and their maxima: one compiled call, numpy's values
+        w_mean, w_max, w_std, ring_dark, avg_none, avg_fan, avg_spot, fan_max, spot_max = \
+            _readings.component_summary(w, samples, np.ascontiguousarray(dark[ring_sl]), ring)
         major, minor = 2.0 * np.sqrt(major_var), 2.0 * np.sqrt(minor_var)
         border = float(min(xs.min(), ys.min(), cols - 1 - xs.max(), rows_px - 1 - ys.max()) <= 1)
         features = np.array([
             np.log(len(xs)), major, minor, major / max(minor, 1e-3), len(xs) / (np.pi * major * minor),
-            float(w.mean()), float(w.max()), float(w.std()), ring_dark,
-            float(np.average(p_none, weights=w)), float(np.average(p_fan, weights=w)),
-            float(np.average(p_spot, weights=w)), float(p_fan.max()), float(p_spot.max()),
+            w_mean, w_max, w_std, ring_dark, avg_none, avg_fan, avg_spot, fan_max, spot_max,
             skew, widening, asym, float(n_vents), float(len(fans)), border,
         ], dtype=np.float32)
         cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xf, yf)
         spot = dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
                     semi_minor_px=semi_minor, axis_deg=axis)
-        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, float(w.max()), float(w.mean()), 0.0,
-                                      float(np.average(p_spot, weights=w)), 0.0], dtype=np.float32)
+        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0],
+                                     dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return out
 

@@ -155,6 +155,25 @@ def test_sum_follows_numpy_pairwise_order(n):
     assert _readings.psum(single) == np.sum(single)
 
 
+@pytest.mark.parametrize("n", [1, 2, 9, 130, 4001])
+def test_component_summary_equals_numpy_float32_statistics_bit_for_bit(n):
+    # numpy's own float32 mean, max, std, boolean-index mean and weighted average
+    # are the reference; the compiled summary must give the same float32 values.
+    rng = np.random.default_rng(n)
+    w = (rng.gamma(2.0, 1.5, n) + 1e-3).astype(np.float32)
+    samples = rng.random((7, n)).astype(np.float32)
+    dark_box = (rng.normal(size=(23, 31)) * 3).astype(np.float32)
+    ring = rng.random((23, 31)) < 0.2
+    got = _readings.component_summary(w, samples, dark_box, ring)
+    expect = [w.mean(), w.max(), w.std(), dark_box[ring].mean(),
+              np.average(samples[0], weights=w), np.average(samples[1], weights=w),
+              np.average(samples[2], weights=w), samples[1].max(), samples[2].max()]
+    assert [float(v) for v in got] == [float(v) for v in expect]
+    assert all(np.float32(v) == v for v in got)  # float32 results, as numpy's
+    empty = _readings.component_summary(w, samples, dark_box, np.zeros_like(ring))
+    assert empty[3] == 0.0
+
+
 def test_direction_histogram_equals_numpy_on_edges_and_bounds():
     rng = np.random.default_rng(5)
     edges = np.linspace(0.0, 360.0, 73)
