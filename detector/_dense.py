@@ -124,7 +124,12 @@ def cell_histogram(bins, cell_px, n_bins, weights=None, mask=None):
 
 
 def cell_sums(a, cell_px, ncr, ncc):
-    """Sum of a map over each full cell, shape (ncr, ncc, ...) float64."""
+    """Sum of a map over each full cell, shape (ncr, ncc, ...) float64.
+
+    2-D float32 maps (all of a tile's) by one compiled pass with numpy's order of additions.
+    """
+    if a.ndim == 2 and a.dtype == np.float32 and ncr > 0 and ncc > 0 and cell_px <= 128:
+        return _kernels.cell_sums_f32(a, cell_px, ncr, ncc)
     a = a[: ncr * cell_px, : ncc * cell_px]
     return a.reshape(ncr, cell_px, ncc, cell_px, *a.shape[2:]).sum(axis=(1, 3), dtype=np.float64)
 

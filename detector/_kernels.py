@@ -179,6 +179,59 @@ def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_va
 
 
 @njit(cache=True, nogil=True)
+def cell_sums_f32(a, cell_px, ncr, ncc):
+    """Sum of a float32 map over each full ``cell_px`` cell, float64 (ncr, ncc), in the order
+    of numpy's ``a.reshape(ncr, cell_px, ncc, cell_px).sum(axis=(1, 3), dtype=np.float64)``:
+    each cell row's ``cell_px`` values by numpy's pairwise block (eight running sums added
+    as a tree), and those added to the cell's sum one row after the other."""
+    out = np.zeros((ncr, ncc))
+    acc = np.empty((ncc, 8))
+    seg = np.empty(cell_px)
+    blocked = cell_px >= 8 and cell_px % 8 == 0 and cell_px <= 128
+    for i in range(ncr):
+        for r in range(cell_px):
+            row = a[i * cell_px + r]
+            if blocked:
+                for j in range(ncc):
+                    base = j * cell_px
+                    for k in range(8):
+                        acc[j, k] = np.float64(row[base + k])
+                for blk in range(8, cell_px, 8):
+                    for j in range(ncc):
+                        base = j * cell_px + blk
+                        for k in range(8):
+                            acc[j, k] += np.float64(row[base + k])
+                for j in range(ncc):
+                    out[i, j] += (((acc[j, 0] + acc[j, 1]) + (acc[j, 2] + acc[j, 3]))
+                                  + ((acc[j, 4] + acc[j, 5]) + (acc[j, 6] + acc[j, 7])))
+            else:
+                for j in range(ncc):
+                    for c in range(cell_px):
+                        seg[c] = np.float64(row[j * cell_px + c])
+                    out[i, j] += _pairwise_block(seg, cell_px)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _pairwise_block(a, n):
+    """numpy's pairwise sum of ``n`` <= 128 values (eight running sums combined as a tree)."""
+    if n < 8:
+        acc = 0.0
+        for i in range(n):
+            acc += a[i]
+        return acc
+    r = a[:8].copy()
+    stop = n - n % 8
+    for i in range(8, stop, 8):
+        for k in range(8):
+            r[k] += a[i + k]
+    res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
+    for i in range(stop, n):
+        res += a[i]
+    return res
+
+
+@njit(cache=True, nogil=True)
 def haralick_rows(counts, weights, mult):
     """Haralick properties (6, n) of folded symmetric counts ``counts`` (n, n_pairs), as
     :func:`detector._dense.glcm_props_folded` computes them with numpy: each weighted

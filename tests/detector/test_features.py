@@ -73,6 +73,19 @@ def test_cooccurrence_counts_match_skimage():
         np.testing.assert_allclose(props[k], graycoprops(sym, prop).ravel(), rtol=1e-12, atol=1e-14)
 
 
+@pytest.mark.parametrize("shape, cell_px", [((664, 864), 16), ((640, 800), 16), ((97, 131), 8), ((50, 61), 4),
+                                            ((120, 90), 12), ((300, 257), 32)])
+def test_cell_sums_equal_numpy_reduction_bit_for_bit(shape, cell_px):
+    # numpy's own reduction (reshape and sum over the two in-cell axes, in float64) is
+    # the reference: the compiled loop must add in its order, to the last bit.
+    rng = np.random.default_rng(shape[0])
+    a = (rng.normal(size=shape) * 10.0 ** rng.uniform(-4, 4, shape)).astype(np.float32)
+    ncr, ncc = shape[0] // cell_px, shape[1] // cell_px
+    expect = a[: ncr * cell_px, : ncc * cell_px].reshape(ncr, cell_px, ncc, cell_px).sum(axis=(1, 3), dtype=np.float64)
+    got = _dense.cell_sums(a, cell_px, ncr, ncc)
+    assert got.dtype == np.float64 and got.tobytes() == expect.tobytes()
+
+
 def test_haralick_kernel_equals_the_numpy_formulas_bit_for_bit():
     # The compiled loop must give the very numbers of numpy's einsum formulation
     # (sums in pair order), not merely close ones, so features do not depend on it.
