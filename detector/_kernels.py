@@ -410,38 +410,60 @@ def _symmetric_pass(image, weights, axis, out):
     """One axis of ``scipy.ndimage.correlate1d(image, weights, axis, mode='reflect')`` for
     symmetric odd-length ``weights``, as scipy computes it: in float64, the centre term
     first, then the pairs from the outermost in, ``+= (left + right) * w``; stored in
-    ``out``'s dtype."""
+    ``out``'s dtype. The loop over outputs is innermost (contiguous); two pairs are
+    added per pass over them, one after the other (the same order, half the passes)."""
     h, w = image.shape
     radius = weights.size // 2
+    acc = np.empty(w)
     if axis == 0:
-        acc = np.empty(w)
         for r in range(h):
+            centre = image[r]
             for c in range(w):
-                acc[c] = np.float64(image[r, c]) * weights[radius]
-            for d in range(radius, 0, -1):
-                up, down = _reflect(r - d, h), _reflect(r + d, h)
-                wd = weights[radius - d]
+                acc[c] = np.float64(centre[c]) * weights[radius]
+            d = radius
+            while d >= 2:
+                u1, d1 = image[_reflect(r - d, h)], image[_reflect(r + d, h)]
+                u2, d2 = image[_reflect(r - d + 1, h)], image[_reflect(r + d - 1, h)]
+                w1, w2 = weights[radius - d], weights[radius - d + 1]
                 for c in range(w):
-                    acc[c] += (np.float64(image[up, c]) + np.float64(image[down, c])) * wd
+                    acc[c] = ((acc[c] + (np.float64(u1[c]) + np.float64(d1[c])) * w1)
+                              + (np.float64(u2[c]) + np.float64(d2[c])) * w2)
+                d -= 2
+            if d == 1:
+                u1, d1 = image[_reflect(r - 1, h)], image[_reflect(r + 1, h)]
+                w1 = weights[radius - 1]
+                for c in range(w):
+                    acc[c] += (np.float64(u1[c]) + np.float64(d1[c])) * w1
+            row = out[r]
             for c in range(w):
-                out[r, c] = acc[c]
+                row[c] = acc[c]
     else:
         line = np.empty(w + 2 * radius)
-        acc = np.empty(w)
         for r in range(h):
-            for k in range(w + 2 * radius):
-                line[k] = image[r, _reflect(k - radius, w)]
+            src = image[r]
+            for k in range(radius):  # mirrored edges
+                line[k] = src[_reflect(k - radius, w)]
+                line[w + radius + k] = src[_reflect(w + k, w)]
+            for c in range(w):
+                line[radius + c] = src[c]
             for c in range(w):
                 acc[c] = line[c + radius] * weights[radius]
-            # each output adds its pairs in the same order; the loop over outputs is innermost
-            for d in range(radius, 0, -1):
-                wd = weights[radius - d]
-                left = line[radius - d:radius - d + w]
-                right = line[radius + d:radius + d + w]
+            d = radius
+            while d >= 2:
+                l1, r1 = line[radius - d:radius - d + w], line[radius + d:radius + d + w]
+                l2, r2 = line[radius - d + 1:radius - d + 1 + w], line[radius + d - 1:radius + d - 1 + w]
+                w1, w2 = weights[radius - d], weights[radius - d + 1]
                 for c in range(w):
-                    acc[c] += (left[c] + right[c]) * wd
+                    acc[c] = (acc[c] + (l1[c] + r1[c]) * w1) + (l2[c] + r2[c]) * w2
+                d -= 2
+            if d == 1:
+                l1, r1 = line[radius - 1:radius - 1 + w], line[radius + 1:radius + 1 + w]
+                w1 = weights[radius - 1]
+                for c in range(w):
+                    acc[c] += (l1[c] + r1[c]) * w1
+            row = out[r]
             for c in range(w):
-                out[r, c] = acc[c]
+                row[c] = acc[c]
     return out
 
 

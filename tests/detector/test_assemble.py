@@ -442,7 +442,7 @@ def test_label_areas_equal_numpy_bincount():
 
 
 @pytest.mark.parametrize("shape", [(664, 864), (30, 20), (5, 70), (3, 3)])
-@pytest.mark.parametrize("sigma", [1.0, 2.5, 3.0])
+@pytest.mark.parametrize("sigma", [0.7, 1.0, 2.5, 3.0])  # radius 3 (odd), 4, 10, 12
 def test_gaussian_equals_scipy_gaussian_filter_to_the_last_bit(shape, sigma):
     from detector import _kernels
 
