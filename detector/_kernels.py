@@ -348,6 +348,49 @@ def box_mean_cols(image, size, out):
 
 
 @njit(cache=True, nogil=True)
+def masked_f32(image, valid):
+    """``np.where(valid, image, 0.0).astype(np.float32)`` of a float32 image."""
+    h, w = image.shape
+    out = np.empty((h, w), dtype=np.float32)
+    for r in range(h):
+        for c in range(w):
+            out[r, c] = image[r, c] if valid[r, c] else np.float32(0.0)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def darkness_residual(num, den, img, valid, every):
+    """The residual below the background and every ``every``-th of its valid values.
+
+    ``resid = np.where(valid, num / np.maximum(den, 1e-6) - img, 0.0)`` in float32, as
+    numpy computes it for float32 maps, and ``resid[valid][::every]`` (row-major order).
+    """
+    h, w = num.shape
+    resid = np.empty((h, w), dtype=np.float32)
+    n_valid = 0
+    for r in range(h):
+        for c in range(w):
+            n_valid += valid[r, c]
+    sample = np.empty((n_valid + every - 1) // every, dtype=np.float32)
+    floor = np.float32(1e-6)
+    k = 0
+    m = 0
+    for r in range(h):
+        for c in range(w):
+            if valid[r, c]:
+                d = den[r, c]
+                v = num[r, c] / (d if d >= floor else floor) - img[r, c]
+                resid[r, c] = v
+                if k % every == 0:
+                    sample[m] = v
+                    m += 1
+                k += 1
+            else:
+                resid[r, c] = np.float32(0.0)
+    return resid, sample
+
+
+@njit(cache=True, nogil=True)
 def _reflect(i, n):
     """Index ``i`` folded into 0 .. n - 1 by mirroring at the edges (d c b a | a b c d)."""
     while i < 0 or i >= n:
