@@ -238,10 +238,11 @@ def glcm_cell_counts(q, cell_px, offsets, levels, valid=None, *, folded=False):
 
     Returns
     -------
-    counts : ndarray of int64
+    counts : ndarray of int32
         ``folded=False``: (n_offsets, n_cells, levels, levels), not symmetrised.
         ``folded=True``: (n_offsets, n_cells, levels (levels + 1) / 2), the count of
         the unordered pair {i, j} (i <= j), i.e. :func:`glcm_fold` with the diagonal halved.
+        A view of cell-major memory: ``np.moveaxis(counts, 0, 1)`` is contiguous.
     """
     q = np.asarray(q)
     if q.size and (q.min() < 0 or q.max() >= levels):
@@ -253,7 +254,7 @@ def glcm_cell_counts(q, cell_px, offsets, levels, valid=None, *, folded=False):
     use = valid is not None
     valid = np.ascontiguousarray(valid, dtype=bool) if use else np.ones((1, 1), dtype=bool)
     kernel = _kernels.glcm_folded_counts if folded else _kernels.glcm_full_counts
-    return kernel(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use)
+    return np.moveaxis(kernel(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use), 1, 0)
 
 
 def unfold_diagonal(F, levels):
@@ -288,7 +289,17 @@ def glcm_props_folded(S, levels):
         raise TypeError(f"co-occurrence counts must be numbers, not {flat.dtype}.")
     weights, mult = _haralick_weights(levels)
     # one compiled pass per row: weighted sums in pair order, then the normalisations
-    return _kernels.haralick_rows(flat, weights, mult).reshape((6,) + shape)
+    return _kernels.haralick_rows(flat, np.ones(flat.shape[1]), weights, mult).reshape((6,) + shape)
+
+
+def glcm_props_unordered(F, levels):
+    """:func:`glcm_props_folded` of :func:`unfold_diagonal` ``(F)``: the properties straight
+    from unordered-pair counts (the diagonal doubled on the way, exactly)."""
+    shape = F.shape[:-1]
+    flat = np.ascontiguousarray(F.reshape(-1, F.shape[-1]))
+    weights, mult = _haralick_weights(levels)
+    iu, ju = np.triu_indices(levels)
+    return _kernels.haralick_rows(flat, np.where(iu == ju, 2.0, 1.0), weights, mult).reshape((6,) + shape)
 
 
 @functools.lru_cache(maxsize=8)

@@ -113,7 +113,8 @@ def _ordered_counts(q, cell_px, ncr, ncc, dr, dc, n_levels, row_codes, ordered):
 
 @njit(cache=True, nogil=True)
 def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes, row_codes):
-    """Counts (n_offsets, ncr * ncc, n_codes) of ``code[q[p], q[p + offset]]`` in the cell of p.
+    """Counts (ncr * ncc, n_offsets, n_codes) int32 of ``code[q[p], q[p + offset]]`` in the cell of p
+    (cell-major, so that a cell's counts of every offset are pooled as one row).
 
     A pair counts when both pixels lie in the tile and p lies in a full cell;
     a ``code`` of ``n_codes`` or more is not counted (no-data pairs). The
@@ -122,18 +123,24 @@ def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes, row_codes)
     """
     n_levels = code.shape[0]
     n_cells = ncr * ncc
+    # the ordered codes that are counted, and the bin each goes to
+    src = np.empty(n_levels * n_levels, dtype=np.int64)
+    dst = np.empty(n_levels * n_levels, dtype=np.int64)
+    n_kept = 0
+    for a in range(n_levels):
+        for b in range(n_levels):
+            if code[a, b] < n_codes:
+                src[n_kept], dst[n_kept] = a * n_levels + b, code[a, b]
+                n_kept += 1
     ordered = np.zeros((n_cells, n_levels * n_levels), dtype=np.int32)
-    out = np.zeros((d_rows.size, n_cells, n_codes), dtype=np.int64)
+    out = np.zeros((n_cells, d_rows.size, n_codes), dtype=np.int32)
     for k in range(d_rows.size):
         _ordered_counts(q, cell_px, ncr, ncc, d_rows[k], d_cols[k], n_levels, row_codes, ordered)
         for i in range(n_cells):
             hist = ordered[i]
-            counts = out[k, i]
-            for a in range(n_levels):
-                for b in range(n_levels):
-                    t = code[a, b]
-                    if t < n_codes:
-                        counts[t] += hist[a * n_levels + b]
+            counts = out[i, k]
+            for m in range(n_kept):
+                counts[dst[m]] += hist[src[m]]
     return out
 
 
@@ -154,7 +161,7 @@ def _marked(q, levels, valid, use_valid):
 
 
 def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
-    """Unordered-pair co-occurrence counts (n_offsets, ncr * ncc, levels (levels + 1) / 2) int64.
+    """Unordered-pair co-occurrence counts (ncr * ncc, n_offsets, levels (levels + 1) / 2) int32.
 
     The pair {lo, hi} (lo <= hi) has the row-major index of the upper triangle;
     pairs with a no-data pixel (``use_valid`` and not ``valid``) are not counted.
@@ -169,13 +176,13 @@ def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_
 
 
 def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
-    """Ordered-pair co-occurrence counts (n_offsets, ncr * ncc, levels, levels) int64 (see above)."""
+    """Ordered-pair co-occurrence counts (ncr * ncc, n_offsets, levels, levels) int32 (see above)."""
     code = np.full((levels + 1, levels + 1), levels * levels, dtype=np.int32)
     code[:levels, :levels] = np.arange(levels * levels).reshape(levels, levels)
     n = levels + 1 if use_valid else levels
     out = _pair_codes(_marked(q, levels, valid, use_valid), code[:n, :n], cell_px, ncr, ncc, d_rows, d_cols,
                       levels * levels)
-    return out.reshape(d_rows.size, ncr * ncc, levels, levels)
+    return out.reshape(ncr * ncc, d_rows.size, levels, levels)
 
 
 @njit(cache=True, nogil=True)
@@ -232,11 +239,11 @@ def _pairwise_block(a, n):
 
 
 @njit(cache=True, nogil=True)
-def haralick_rows(counts, weights, mult):
-    """Haralick properties (6, n) of folded symmetric counts ``counts`` (n, n_pairs), as
-    :func:`detector._dense.glcm_props_folded` computes them with numpy: each weighted
-    sum adds its terms in pair order from 0.0 (the order ``np.einsum`` takes for these
-    operands), then the same divisions, in float64."""
+def haralick_rows(counts, factor, weights, mult):
+    """Haralick properties (6, n) of folded symmetric counts ``counts * factor`` (n, n_pairs;
+    ``factor`` per pair, 1 or 2: exact), as :func:`detector._dense.glcm_props_folded`
+    computes them with numpy: each weighted sum adds its terms in pair order from 0.0
+    (the order ``np.einsum`` takes for these operands), then the same divisions, in float64."""
     n, n_pairs = counts.shape
     n_w = weights.shape[1]
     out = np.empty((6, n))
@@ -245,7 +252,7 @@ def haralick_rows(counts, weights, mult):
     w_t = np.ascontiguousarray(weights.T)
     for p in range(n):
         for k in range(n_pairs):
-            v[k] = counts[p, k]
+            v[k] = np.float64(counts[p, k]) * factor[k]
         for m in range(n_w):
             acc = 0.0
             w_m = w_t[m]

@@ -280,11 +280,12 @@ class _Pooler:
         folded = _dense.glcm_cell_counts(q, spec.cell_px, unique, L,
                                          prep.valid if prep.has_nodata else None, folded=True)
         nf = folded.shape[-1]
-        cells = np.moveaxis(folded.reshape(len(unique), self.ncr, self.ncc, nf), 0, 2)
-        S = _dense.unfold_diagonal(self.pool(cells.reshape(self.ncr, self.ncc, -1)).reshape(-1, len(unique), nf), L)
-        props = _dense.glcm_props_folded(S, L)  # (6, n, n_unique)
+        # cell-major counts: each cell's row holds every offset's pairs (a view, no copy)
+        cells = np.moveaxis(folded, 0, 1).reshape(self.ncr, self.ncc, -1)
+        pooled = self.pool(cells).reshape(-1, len(unique), nf)
+        props = _dense.glcm_props_unordered(pooled, L)  # (6, n, n_unique)
         order = [unique.index(o) for o in offsets]
-        return np.moveaxis(props[:, :, order], 1, 0).reshape(S.shape[0], -1)
+        return np.moveaxis(props[:, :, order], 1, 0).reshape(pooled.shape[0], -1)
 
     def lbp(self):
         spec, prep = self.spec, self.prep

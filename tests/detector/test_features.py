@@ -397,6 +397,9 @@ def test_folded_cooccurrence_counts_equal_symmetrised_matrix():
     full = _dense.glcm_cell_counts(q, 16, offsets, 8)
     folded = _dense.glcm_cell_counts(q, 16, offsets, 8, folded=True)
     np.testing.assert_array_equal(_dense.unfold_diagonal(folded, 8), _dense.glcm_fold(full))
+    # properties straight from the unordered counts: the same numbers as from the symmetric matrix
+    direct = _dense.glcm_props_unordered(folded, 8)
+    assert direct.tobytes() == _dense.glcm_props_folded(_dense.glcm_fold(full), 8).tobytes()
 
 
 def test_structure_tensor_from_central_gradients_matches_skimage():
