@@ -447,12 +447,134 @@ def square_extreme(image, size, maximum):
 
 
 @njit(cache=True, nogil=True)
-def label_areas(labels, n):
-    """Pixels of each label 1 .. n (``np.bincount(labels.ravel(), minlength=n + 1)[1:]``)."""
-    area = np.zeros(n + 1, dtype=np.int64)
-    for v in labels.ravel():
-        area[v] += 1
-    return area[1:]
+def valid_sample(values, valid, every):
+    """``values[valid][::every]``: every ``every``-th valid value in row-major order."""
+    h, w = values.shape
+    n_valid = 0
+    for r in range(h):
+        for c in range(w):
+            n_valid += valid[r, c]
+    out = np.empty((n_valid + every - 1) // every, dtype=values.dtype)
+    k = 0
+    m = 0
+    for r in range(h):
+        for c in range(w):
+            if valid[r, c]:
+                if k % every == 0:
+                    out[m] = values[r, c]
+                    m += 1
+                k += 1
+    return out
+
+
+@njit(cache=True, nogil=True)
+def ratio_above(values, valid, scale, threshold):
+    """``np.where(valid, values / scale, 0.0) > threshold`` with ``scale`` and ``threshold``
+    given in the map's dtype (as numpy casts Python scalars against a float32 map)."""
+    h, w = values.shape
+    out = np.empty((h, w), dtype=np.bool_)
+    off = values.dtype.type(0.0) > threshold
+    for r in range(h):
+        for c in range(w):
+            out[r, c] = (values[r, c] / scale > threshold) if valid[r, c] else off
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _root(parent, i):
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]
+        i = parent[i]
+    return i
+
+
+@njit(cache=True, nogil=True)
+def label_components(mask, seed_map, seed_level):
+    """4-connected components of ``mask`` numbered as ``scipy.ndimage.label`` numbers them
+    (1, 2, ... in the raster order of each component's first pixel), with what the
+    detector needs of each in the same two passes.
+
+    Returns
+    -------
+    labels : int32 (M, N)
+        0 off the mask.
+    area : int64 (n,)
+        Pixels of labels 1 .. n.
+    seeded : bool (n,)
+        The component holds a pixel with ``seed_map >= seed_level``.
+    box : int64 (n, 4)
+        row0, row1, col0, col1 (exclusive ends), as ``ndimage.find_objects``.
+    start, rows, cols : int64 (n + 1,), (n_pixels,), (n_pixels,)
+        Pixels of label ``i + 1`` are ``rows[start[i]:start[i + 1]]``, ``cols[...]``,
+        in row-major order (as ``np.nonzero(labels == i + 1)`` lists them).
+    """
+    h, w = mask.shape
+    labels = np.zeros((h, w), dtype=np.int32)
+    parent = np.empty(h * w // 2 + 2, dtype=np.int32)
+    n_prov = 0
+    for r in range(h):
+        for c in range(w):
+            if not mask[r, c]:
+                continue
+            up = labels[r - 1, c] if r > 0 else 0
+            left = labels[r, c - 1] if c > 0 else 0
+            if up == 0 and left == 0:
+                n_prov += 1
+                parent[n_prov] = n_prov
+                labels[r, c] = n_prov
+            elif up == 0 or left == 0 or up == left:
+                labels[r, c] = up if left == 0 else left
+            else:
+                a, b = _root(parent, up), _root(parent, left)
+                if a < b:
+                    parent[b] = a
+                elif b < a:
+                    parent[a] = b
+                labels[r, c] = min(a, b)
+    # final numbers in the order of the smallest provisional label of each component
+    final = np.zeros(n_prov + 1, dtype=np.int32)
+    n = 0
+    for i in range(1, n_prov + 1):
+        root = _root(parent, i)
+        if root == i:
+            n += 1
+            final[i] = n
+        else:
+            final[i] = final[root]
+    area = np.zeros(n, dtype=np.int64)
+    seeded = np.zeros(n, dtype=np.bool_)
+    box = np.empty((n, 4), dtype=np.int64)
+    box[:, 0], box[:, 2] = h, w
+    box[:, 1], box[:, 3] = 0, 0
+    for r in range(h):
+        for c in range(w):
+            v = labels[r, c]
+            if v == 0:
+                continue
+            k = final[v]
+            labels[r, c] = k
+            k -= 1
+            area[k] += 1
+            if seed_map[r, c] >= seed_level:
+                seeded[k] = True
+            box[k, 0] = min(box[k, 0], r)
+            box[k, 1] = max(box[k, 1], r + 1)
+            box[k, 2] = min(box[k, 2], c)
+            box[k, 3] = max(box[k, 3], c + 1)
+    start = np.zeros(n + 1, dtype=np.int64)
+    for k in range(n):
+        start[k + 1] = start[k] + area[k]
+    fill = start[:n].copy()
+    rows = np.empty(start[n], dtype=np.int64)
+    cols = np.empty(start[n], dtype=np.int64)
+    for r in range(h):
+        for c in range(w):
+            v = labels[r, c]
+            if v:
+                rows[fill[v - 1]] = r
+                cols[fill[v - 1]] = c
+                fill[v - 1] += 1
+    return labels, area, seeded, box, start, rows, cols
 
 
 @njit(cache=True, nogil=True)

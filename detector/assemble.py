@@ -365,6 +365,18 @@ def _spread_of_sample(v):
     return 1.4826 * _median(np.abs(v - _median(v)))
 
 
+def _above_spread(values, valid, threshold):
+    """``_renormalised(values, valid) > threshold`` of a float32 map, by compiled passes."""
+    if values.dtype != np.float32:
+        return _renormalised(values, valid) > threshold
+    valid = np.ascontiguousarray(valid, dtype=bool)
+    mad = _spread_of_sample(_kernels.valid_sample(values, valid, _SPREAD_EVERY))
+    t = np.float32(threshold)
+    if not mad > 0:
+        return np.full(values.shape, np.float32(0.0) > t)
+    return _kernels.ratio_above(values, valid, np.float32(mad), t)
+
+
 def _renormalised(values, valid):
     """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
     mad = _robust_spread(values, valid)
@@ -447,24 +459,24 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     opened = grey_opening_square(dark, params.open_px) if params.open_px > 1 else dark
     # (Gaussian filters equal to scipy.ndimage.gaussian_filter, compiled)
     smooth = np.where(valid, _kernels.gaussian(opened, 1.0), 0.0)
-    grow = _renormalised(_kernels.gaussian(opened, params.grow_smooth_px), valid)
-    labels, n = ndimage.label(grow > params.grow_k)
-    if n == 0:
+    # components grow where the map smoothed by grow_smooth_px, over its robust spread, exceeds grow_k
+    grow_mask = _above_spread(_kernels.gaussian(opened, params.grow_smooth_px), valid, params.grow_k)
+    # numbered as scipy.ndimage.label numbers them; areas, seeds, boxes and pixels in the same passes
+    labels, area, seeded, box, start, pixel_rows, pixel_cols = _kernels.label_components(
+        grow_mask, smooth, smooth.dtype.type(params.seed_k))
+    if area.size == 0:
         return []
     # A component is kept when it is large enough and holds a seed (its peak reaches seed_k).
-    area = _kernels.label_areas(labels, n)
-    seeded = np.zeros(n + 1, dtype=bool)
-    seeded[labels[smooth >= params.seed_k]] = True
-    keep = np.flatnonzero(seeded[1:] & (area >= params.min_area_px)) + 1
-    slices = ndimage.find_objects(labels)
+    keep = np.flatnonzero(seeded & (area >= params.min_area_px)) + 1
     maps = [class_maps, polarity_maps] + ([] if axis_maps is None else [axis_maps])
     joint = PatchField.joined(maps)
     parts = []
     for lab in keep:
-        sl = slices[lab - 1]
+        r0, r1, c0, c1 = (int(v) for v in box[lab - 1])
+        sl = (slice(r0, r1), slice(c0, c1))
         mask_local = labels[sl] == lab
-        ly, lx = np.nonzero(mask_local)
-        parts.append((lab, sl, mask_local, ly, lx, ly + sl[0].start, lx + sl[1].start))
+        ys, xs = pixel_rows[start[lab - 1]:start[lab]], pixel_cols[start[lab - 1]:start[lab]]
+        parts.append((lab, sl, mask_local, ys - r0, xs - c0, ys, xs))
     if joint is not None and parts:
         # the maps at every component pixel in one read (the same values as one read per component)
         every = joint.at(np.concatenate([p[5] for p in parts]), np.concatenate([p[6] for p in parts]))

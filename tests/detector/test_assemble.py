@@ -436,11 +436,51 @@ def test_objects_respect_min_score(two_candidates):
     assert (kept["score"] >= 0.4).all()
 
 
-def test_label_areas_equal_numpy_bincount():
+@pytest.mark.parametrize("seed", range(6))
+def test_components_are_numbered_and_described_as_scipy_does(seed):
+    # scipy.ndimage.label (default 4-connected cross), find_objects and numpy's bincount
+    # and nonzero are the reference for the one compiled labelling pass.
     from detector import _kernels
 
-    labels, n = ndimage.label(np.random.default_rng(8).random((90, 120)) > 0.6)
-    np.testing.assert_array_equal(_kernels.label_areas(labels, n), np.bincount(labels.ravel(), minlength=n + 1)[1:])
+    rng = np.random.default_rng(seed)
+    shape = tuple(int(v) for v in rng.integers(1, 140, 2)) if seed else (664, 864)
+    if seed % 2:
+        mask = rng.random(shape) < rng.uniform(0.3, 0.7)  # many merging runs, U and spiral shapes
+    else:
+        mask = ndimage.binary_dilation(rng.random(shape) < 0.01, iterations=3)
+    level = rng.random(shape).astype(np.float32) * 4
+    ref, n = ndimage.label(mask)
+    labels, area, seeded, box, start, rows, cols = _kernels.label_components(mask, level, np.float32(3.0))
+    np.testing.assert_array_equal(labels, ref)
+    assert labels.dtype == ref.dtype and area.size == n
+    np.testing.assert_array_equal(area, np.bincount(ref.ravel(), minlength=n + 1)[1:])
+    hit = np.zeros(n + 1, dtype=bool)
+    hit[ref[level >= 3.0]] = True
+    np.testing.assert_array_equal(seeded, hit[1:])
+    assert [tuple(b) for b in box] == [(s[0].start, s[0].stop, s[1].start, s[1].stop)
+                                       for s in ndimage.find_objects(ref)]
+    for k in rng.choice(n, size=min(n, 25), replace=False) if n else []:
+        ys, xs = np.nonzero(ref == k + 1)
+        np.testing.assert_array_equal(rows[start[k]:start[k + 1]], ys)
+        np.testing.assert_array_equal(cols[start[k]:start[k + 1]], xs)
+
+
+def test_spiral_component_merges_to_one_label():
+    # a spiral meets itself from below many times: every provisional label merges into one
+    from detector import _kernels
+
+    mask = np.zeros((41, 41), dtype=bool)
+    r0, r1, c0, c1 = 0, 40, 0, 40
+    while r0 <= r1 and c0 <= c1:
+        mask[r0, c0:c1 + 1] = mask[r0:r1 + 1, c1] = mask[r1, c0:c1 + 1] = True
+        mask[r0 + 2:r1 + 1, c0] = True
+        if r0 + 2 <= r1:
+            mask[r0 + 2, c0:c1 - 1] = True
+        r0, r1, c0, c1 = r0 + 4, r1 - 4, c0 + 2, c1 - 4
+    ref, n = ndimage.label(mask)
+    labels, area, *_ = _kernels.label_components(mask, np.zeros(mask.shape, np.float32), np.float32(1.0))
+    np.testing.assert_array_equal(labels, ref)
+    assert area.size == n
 
 
 @pytest.mark.parametrize("shape", [(664, 864), (30, 20), (5, 70), (3, 3)])
