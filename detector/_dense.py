@@ -336,21 +336,31 @@ def lbp_uniform(image, P, R):
     order, so codes are identical. The fractional positions are computed once
     per neighbour and row or column, the codes by :func:`_kernels.lbp_codes`.
     """
-    img = np.asarray(image, dtype=np.float64)
+    return lbp_uniform_scales(image, [(P, R)])[0]
+
+
+def lbp_uniform_scales(image, scales):
+    """:func:`lbp_uniform` at each (P, R) of ``scales``, from one zero-padded copy of the image.
+
+    """
+    img = np.asarray(image)
     h, w = img.shape
-    k = np.arange(P, dtype=np.float64)
-    rp = np.round(-R * np.sin(2 * np.pi * k / P), 5)
-    cp = np.round(R * np.cos(2 * np.pi * k / P), 5)
-    pad = int(np.ceil(R)) + 1
+    pad = max(int(np.ceil(R)) for _, R in scales) + 1
     padded = np.zeros((h + 2 * pad, w + 2 * pad))
-    padded[pad:-pad, pad:-pad] = img
-    # skimage interpolates at (r + rp, c + cp): floor, ceil and the fraction of each
-    r = np.arange(h, dtype=np.float64)[None, :] + rp[:, None]
-    c = np.arange(w, dtype=np.float64)[None, :] + cp[:, None]
-    fr, fc = r - np.floor(r), c - np.floor(c)
-    minr, maxr = np.floor(rp).astype(np.int64), np.ceil(rp).astype(np.int64)
-    minc, maxc = np.floor(cp).astype(np.int64), np.ceil(cp).astype(np.int64)
-    return _kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P)
+    padded[pad:-pad, pad:-pad] = img  # widened to float64 as it is copied in
+    out = []
+    for P, R in scales:
+        k = np.arange(P, dtype=np.float64)
+        rp = np.round(-R * np.sin(2 * np.pi * k / P), 5)
+        cp = np.round(R * np.cos(2 * np.pi * k / P), 5)
+        # skimage interpolates at (r + rp, c + cp): floor, ceil and the fraction of each
+        r = np.arange(h, dtype=np.float64)[None, :] + rp[:, None]
+        c = np.arange(w, dtype=np.float64)[None, :] + cp[:, None]
+        fr, fc = r - np.floor(r), c - np.floor(c)
+        minr, maxr = np.floor(rp).astype(np.int64), np.ceil(rp).astype(np.int64)
+        minc, maxc = np.floor(cp).astype(np.int64), np.ceil(cp).astype(np.int64)
+        out.append(_kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P))
+    return out
 
 
 # -- structure tensor --------------------------------------------------------

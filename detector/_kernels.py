@@ -44,10 +44,10 @@ def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P):
             dr = fr[i, r]
             dc = fc[i]
             for c in range(w):
-                top = (1.0 - dc[c]) * tl[c] + dc[c] * tr[c]
-                bottom = (1.0 - dc[c]) * bl[c] + dc[c] * br[c]
+                top = (1.0 - dc[c]) * np.float64(tl[c]) + dc[c] * np.float64(tr[c])
+                bottom = (1.0 - dc[c]) * np.float64(bl[c]) + dc[c] * np.float64(br[c])
                 v = (1.0 - dr) * top + dr * bottom
-                bit = np.uint8(v - centre[c] >= 0)
+                bit = np.uint8(v - np.float64(centre[c]) >= 0)
                 ones[c] += bit
                 if i:
                     changes[c] += bit ^ prev[c]

@@ -290,8 +290,7 @@ class _Pooler:
     def lbp(self):
         spec, prep = self.spec, self.prep
         parts = []
-        for P, R in spec.lbp:
-            codes = _dense.lbp_uniform(prep.u16, P, R)
+        for (P, R), codes in zip(spec.lbp, _dense.lbp_uniform_scales(prep.u16, spec.lbp)):
             mask = None
             if prep.has_nodata:
                 # pixels whose whole LBP ring is valid
