@@ -681,9 +681,15 @@ def sobel_products(image, g_row, g_col):
     ``2 x + (left + right)``, stored in float32); products in float32.
     """
     h, w = image.shape
-    d_r = np.empty((h, w), dtype=np.float32)
-    d_c = np.empty((h, w), dtype=np.float32)
+    a_rr = np.empty((h, w), dtype=np.float32)
+    a_rc = np.empty((h, w), dtype=np.float32)
+    a_cc = np.empty((h, w), dtype=np.float32)
     gr = np.empty(w, dtype=np.float32)
+    line = np.empty(w + 2, dtype=np.float32)
+    d_r = np.empty(w, dtype=np.float32)
+    mid = np.empty(w, dtype=np.float32)
+    above = np.empty(w, dtype=np.float32)
+    below = np.empty(w, dtype=np.float32)
     for r in range(h):
         # the row derivative of row r, one-sided at the first and last rows
         if r == 0:
@@ -695,28 +701,35 @@ def sobel_products(image, g_row, g_col):
         else:
             for c in range(w):
                 gr[c] = g_row[r, c]
+        # smoothed across by [1, 2, 1] with mirrored ends
+        line[0], line[w + 1] = gr[_reflect(-1, w)], gr[_reflect(w, w)]
         for c in range(w):
-            left = gr[_reflect(c - 1, w)]
-            right = gr[_reflect(c + 1, w)]
-            d_r[r, c] = np.float64(gr[c]) * 2.0 + (np.float64(left) + np.float64(right)) * 1.0
-    for r in range(h):
-        up, down = _reflect(r - 1, h), _reflect(r + 1, h)
+            line[c + 1] = gr[c]
         for c in range(w):
-            d_c[r, c] = (np.float64(_col_diff(image, g_col, r, c)) * 2.0
-                         + (np.float64(_col_diff(image, g_col, up, c)) + np.float64(_col_diff(image, g_col, down, c)))
-                         * 1.0)
-    return d_r * d_r, d_r * d_c, d_c * d_c
+            d_r[c] = np.float64(line[c + 1]) * 2.0 + (np.float64(line[c]) + np.float64(line[c + 2])) * 1.0
+        # the column derivatives of rows r - 1, r, r + 1 (mirrored), smoothed down by [1, 2, 1]
+        _col_diff_row(image, g_col, r, mid)
+        _col_diff_row(image, g_col, _reflect(r - 1, h), above)
+        _col_diff_row(image, g_col, _reflect(r + 1, h), below)
+        rr, rc, cc = a_rr[r], a_rc[r], a_cc[r]
+        for c in range(w):
+            d_c = np.float32(np.float64(mid[c]) * 2.0 + (np.float64(above[c]) + np.float64(below[c])) * 1.0)
+            rr[c] = d_r[c] * d_r[c]
+            rc[c] = d_r[c] * d_c
+            cc[c] = d_c * d_c
+    return a_rr, a_rc, a_cc
 
 
 @njit(cache=True, nogil=True)
-def _col_diff(image, g_col, r, c):
-    """The column derivative at (r, c), one-sided at the first and last columns."""
+def _col_diff_row(image, g_col, r, out):
+    """The column derivative of row ``r`` (``g_col``, one-sided at the first and last
+    columns), into ``out``."""
     w = image.shape[1]
-    if c == 0 and w > 1:
-        return image[r, 1] - image[r, 0]
-    if c == w - 1 and w > 1:
-        return image[r, w - 1] - image[r, w - 2]
-    return g_col[r, c]
+    for c in range(w):
+        out[c] = g_col[r, c]
+    if w > 1:
+        out[0] = image[r, 1] - image[r, 0]
+        out[w - 1] = image[r, w - 1] - image[r, w - 2]
 
 
 @njit(cache=True, nogil=True)
