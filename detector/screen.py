@@ -43,7 +43,9 @@ model once and reads its own windows from the image files, so no pixel array
 travels between processes.
 """
 
+import base64
 import contextlib
+import dataclasses
 import json
 import math
 import os
@@ -115,6 +117,7 @@ _QUICKLOOK_PX = 1000  # a single panel's longer side in output pixels (9 in at 1
 _MAX_PANELS = 12
 _MAX_DRAWN = 3000
 _STRIP_BYTES = 16 * 2**20
+_MIN_SAMPLED_STEP = 4  # quick-look steps from which the workers sample the canvas
 _ROSE_BINS = 36
 
 
@@ -135,6 +138,7 @@ class _TileTask:
     nodata: object
     col0: float
     row0: float
+    canvas_step: int = 0  # every how many px its file is sampled for the quick-look (0: no panel)
 
     tile_id = property(lambda self: self.window.tile_id)
     image = property(lambda self: self.window.image)
@@ -268,7 +272,8 @@ def _plan(inputs, *, tile, overlap, nodata, band):
     dup = ids.duplicated()
     if dup.any():
         raise DetectorError(f"tile_id {ids[dup].iloc[0]!r} occurs in more than one input; tile ids must be unique.")
-    tasks.sort(key=lambda t: t.sort_key)
+    steps = _canvas_steps(images)
+    tasks = sorted((dataclasses.replace(t, canvas_step=steps.get(t.image, 0)) for t in tasks), key=lambda t: t.sort_key)
     return tasks, images
 
 
@@ -298,6 +303,25 @@ def _empty_detections():
     return {c: [] for c in DETECTION_OUTPUT_COLUMNS}
 
 
+def _canvas_block(array, mask, task):
+    """The tile core's pixels on its file's quick-look grid (every ``canvas_step``-th row and
+    column of the file), float32 with NaN on no-data, as a small JSON-ready dict: where the
+    block starts on the grid and its values (base64 of little-endian float32). None when
+    no grid pixel falls in the core. The output then needs no second read of the image."""
+    step = task.canvas_step
+    win = task.window
+    rows, cols = win.core_slices
+    i0, j0 = -(-win.row0 // step), -(-win.col0 // step)  # first grid row and column in the core
+    r_first, c_first = i0 * step - win.row0, j0 * step - win.col0
+    block = array[rows, cols][r_first::step, c_first::step].astype(np.float32)
+    if block.size == 0:
+        return None
+    block[mask[rows, cols][r_first::step, c_first::step]] = np.nan
+    data = base64.b64encode(np.ascontiguousarray(block, dtype="<f4").tobytes()).decode("ascii")
+    return {"row": int(i0), "col": int(j0), "height": int(block.shape[0]), "width": int(block.shape[1]),
+            "values": data}
+
+
 def _screen_tile(index, task, model_dir, min_score=None):
     """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
     from ._allocator import reuse_freed_memory
@@ -308,6 +332,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
     model = cached_model(model_dir)
     src, georef = _cached_source(task.path, task.band, task.nodata)
     array, mask = src.read(task.window)
+    if task.canvas_step:
+        entry_canvas = _canvas_block(array, mask, task)
     core = task.window.core_slices
     dy, dx = core[0].start, core[1].start
     valid_share = float(1.0 - mask[core].mean())
@@ -318,6 +344,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
+    if task.canvas_step:
+        entry["canvas"] = entry_canvas
     if valid_share < MIN_VALID_SHARE:
         row["route"] = "nodata"
         entry.update(tile=row, detections=_empty_detections())
@@ -677,12 +705,51 @@ def _image_size(entry):
     return max(p.col0 + p.width for p in pieces), max(p.row0 + p.height for p in pieces)
 
 
-def _canvas(entry, band, nodata, cap):
+def _panel_cap(n_panels):
+    """Longer side of each quick-look panel's canvas, px, for a run of ``n_panels`` panels."""
+    return _QUICKLOOK_PX if n_panels == 1 else max(600, _QUICKLOOK_PX // min(3, n_panels))
+
+
+def _canvas_step(entry, cap):
+    width, height = _image_size(entry)
+    return max(1, math.ceil(max(width, height) / cap))
+
+
+def _canvas_steps(images):
+    """Each image's quick-look sampling step for the workers: 0 for images beyond the
+    panel limit and for small ones (step below 4, which the outputs read again cheaply),
+    so that a tile's samples stay a sixteenth of its pixels or less."""
+    names = sorted(images)
+    cap = _panel_cap(len(names[:_MAX_PANELS]))
+    steps = {name: _canvas_step(images[name], cap) for name in names[:_MAX_PANELS]}
+    return {name: step if step >= _MIN_SAMPLED_STEP else 0 for name, step in steps.items()}
+
+
+def _canvas(entry, band, nodata, cap, blocks=None):
+    """An image's quick-look canvas (every ``step``-th pixel, NaN on no-data) and its scale.
+
+    ``blocks`` lists ``(path, block)`` of every tile of the image as the workers
+    sampled them (see :func:`_canvas_block`); without it (a journal written by an
+    older version) the image files are read again.
+    """
     pieces = entry["pieces"]
     width, height = _image_size(entry)
-    step = max(1, math.ceil(max(width, height) / cap))
+    step = _canvas_step(entry, cap)
     scale = 1.0 / step
     canvas = np.full((-(-height // step), -(-width // step)), np.nan, np.float32)
+    if blocks is not None:
+        where = {p.path: (-(-p.row0 // step), -(-p.col0 // step)) for p in pieces}
+        for path, block in blocks:
+            if block is None:
+                continue
+            values = np.frombuffer(base64.b64decode(block["values"]), dtype="<f4")
+            values = values.reshape(block["height"], block["width"])
+            r0, c0 = where[path]
+            r0, c0 = r0 + block["row"], c0 + block["col"]
+            h = min(values.shape[0], canvas.shape[0] - r0)
+            w = min(values.shape[1], canvas.shape[1] - c0)
+            canvas[r0 : r0 + h, c0 : c0 + w] = values[:h, :w]
+        return canvas, scale
     for p in pieces:
         array, mask = _decimated(p, band, nodata, step)
         r0, c0 = -(-p.row0 // step), -(-p.col0 // step)
@@ -759,7 +826,7 @@ class _Figures:
     def __init__(self, names, images, *, use_azimuth):
         self.names = list(names)[:_MAX_PANELS]
         n = len(self.names)
-        self.cap = _QUICKLOOK_PX if n == 1 else max(600, _QUICKLOOK_PX // min(3, n))
+        self.cap = _panel_cap(n)
         self.use_azimuth = use_azimuth
         sizes = [_image_size(images[name]) for name in self.names]
         aspect = float(np.median([h / w for w, h in sizes])) if sizes else 1.0
@@ -768,11 +835,11 @@ class _Figures:
         self.quick_axes = dict(zip(self.names, quick_axes, strict=True))
         self.rose_axes = dict(zip(self.names, rose_axes, strict=True))
 
-    def add(self, name, detections, tasks, images, *, band, nodata):
+    def add(self, name, detections, tasks, images, *, band, nodata, blocks=None):
         """Draw one image's panels (a no-op for images beyond the panel limit)."""
         if name in self.quick_axes:
             _quicklook_panel(self.quick_axes[name], name, detections, tasks, images, self.cap, band=band,
-                             nodata=nodata)
+                             nodata=nodata, blocks=blocks)
             _rose_panel(self.rose_axes[name], name, detections, self.use_azimuth)
 
     def save(self, quicklook_path, rose_path):
@@ -793,10 +860,10 @@ class _Figures:
                 fig.savefig(tmp, format="png")
 
 
-def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata):
+def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata, blocks=None):
     from .plots import draw_features
 
-    canvas, scale = _canvas(images[name], band, nodata, cap)
+    canvas, scale = _canvas(images[name], band, nodata, cap, blocks)
     ax.imshow(_gray_rgb(canvas), interpolation="nearest")
     title = name
     if not detections.empty:
@@ -866,10 +933,16 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
         for k, name in enumerate(names):
             indices = groups.get(name, [])
             image_tasks = [tasks[i] for i in indices]
-            tiles, detections = _frames([journal.entry(i, tasks[i]) for i in indices], columns)
+            entries = [journal.entry(i, tasks[i]) for i in indices]
+            # the workers' quick-look samples, when every tile has them (older journals do not)
+            blocks = ([(t.path, e["canvas"]) for t, e in zip(image_tasks, entries, strict=True)]
+                      if all("canvas" in e for e in entries) else None)
+            tiles, detections = _frames(entries, columns)
+            del entries
             tiles.to_csv(tiles_out, index=False, header=k == 0)
             detections.to_csv(detections_out, index=False, header=k == 0)
-            figures.add(name, detections, image_tasks, {name: images[name]}, band=band, nodata=nodata)
+            figures.add(name, detections, image_tasks, {name: images[name]}, band=band, nodata=nodata,
+                        blocks=blocks)
             records.append(_per_image(tiles, detections))
             scored = tiles[tiles["route"] != "nodata"]
             totals["n_tiles"] += len(tiles)

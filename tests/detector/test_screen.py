@@ -550,3 +550,43 @@ def test_output_folder_of_another_run_is_refused(model_dir, png_image, png_run, 
     stranger.mkdir()
     (stranger / "notes.txt").write_text("not a screening run")
     _assert_refused(capsys, ["screen", model_dir, png_image, "--out", stranger], [stranger], stranger)
+
+
+# ----------------------------------------------------------------------------- quick-look canvas
+
+
+@pytest.mark.parametrize("source", ["geotiff_with_nodata", "tile_set"])
+def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_path):
+    # The canvas the outputs draw is every step-th pixel of each file, no-data as NaN,
+    # read again from the files (numpy striding of rasterio's reads is the reference).
+    # The workers' samples of their tile cores must rebuild exactly that canvas.
+    from detector import screen as S
+
+    if source == "tile_set":
+        inputs = [REPO / "demo_tiles"]
+    else:
+        path = tmp_path / "wide.tif"
+        image = _scene((300, 4100), 41, scenario="windy", nodata=False)
+        image[:, :333] = 0
+        image[250:, 2000:2600] = 0
+        write_geotiff(path, image, nodata=0)
+        inputs = [path]
+    tasks, images = S._plan(inputs, tile=(800, 600), overlap=32, nodata=None, band=None)
+    steps = S._canvas_steps(images)
+    assert steps and all(step >= 4 for step in steps.values())
+    cap = S._panel_cap(len(images))
+    for name in list(images)[:3]:
+        blocks = []
+        for task in (t for t in tasks if t.image == name):
+            assert task.canvas_step == steps[name]
+            src, _ = S._cached_source(task.path, task.band, task.nodata)
+            array, mask = src.read(task.window)
+            blocks.append((task.path, S._canvas_block(array, mask, task)))
+        sampled, scale = S._canvas(images[name], None, None, cap, blocks)
+        reread, scale_reread = S._canvas(images[name], None, None, cap)
+        assert scale == scale_reread
+        assert sampled.tobytes() == reread.tobytes()  # NaN where no data, in the same places
+        if source != "tile_set":  # the no-data strip on the left is NaN on the canvas, the rest is not
+            step = steps[name]
+            assert np.isnan(sampled[:, : 333 // step]).all()
+            assert np.isfinite(sampled[:250 // step, -(-333 // step):]).all()
