@@ -9,12 +9,34 @@ The public API:
 - the ``frostvane`` console script: :func:`main`
 """
 
-from .cli import main
-from .evaluate import evaluate_model
-from .report import headline_table, write_report
-from .scoring import match_objects, score_catalogs
-from .synth import render_scene, synthesize_tileset
-from .train import TrainConfig, split_images, train_model
+import importlib
+
+# Submodules load on first use, so that the command line does not import the
+# training stack (scikit-learn, ONNX export) to screen or estimate effort.
+_LAZY = {
+    "main": "cli",
+    "evaluate_model": "evaluate",
+    "headline_table": "report",
+    "write_report": "report",
+    "match_objects": "scoring",
+    "score_catalogs": "scoring",
+    "render_scene": "synth",
+    "synthesize_tileset": "synth",
+    "TrainConfig": "train",
+    "split_images": "train",
+    "train_model": "train",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
+
 
 __all__ = [
     "TrainConfig",
