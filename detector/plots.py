@@ -24,7 +24,7 @@ def _fan_colors(directions, color_by_direction):
     return [tuple(c) for c in cmap((np.asarray(directions, dtype=float) % 360.0) / 360.0)]
 
 
-def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, alpha=0.35):
+def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, alpha=0.35, as_collection=False):
     """Draw fans as sectors and spots as ellipses on an axis in pixel coordinates.
 
     The axis must show the tile with ``imshow`` defaults (origin upper, pixel
@@ -44,13 +44,18 @@ def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, al
         Outline width, points.
     alpha : float, optional
         Fill opacity.
+    as_collection : bool, optional
+        Draw all outlines as one ``PolyCollection`` (the same shapes and colours):
+        for thousands of features, where one artist per feature makes drawing and
+        saving several times slower.
 
     Returns
     -------
-    patches : list of matplotlib.patches.Polygon
-        One per feature, in table order; fan patches carry ``gid`` "fan",
-        spot patches "spot".
+    patches : list of matplotlib.patches.Polygon, or PolyCollection
+        One patch per feature, in table order; fan patches carry ``gid`` "fan",
+        spot patches "spot". With ``as_collection``, the one collection.
     """
+    from matplotlib.colors import to_rgba
     from matplotlib.patches import Polygon
 
     kinds = features_df["kind"].astype(str).to_numpy()
@@ -63,7 +68,7 @@ def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, al
         for c in ("length_px", "spread_deg", "semi_major_px", "semi_minor_px")
     }
     fan_colors = _fan_colors(direction, color_by_direction)
-    patches = []
+    patches, outlines, colors = [], [], []
     for i, kind in enumerate(kinds):
         if kind == "fan":
             xy = sector_polygon(x[i], y[i], direction[i], col["length_px"][i], col["spread_deg"][i])
@@ -73,6 +78,10 @@ def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, al
             color = SPOT_COLOR
         else:
             raise DetectorError(f"feature {features_df.index[i]!r}: kind {kind!r} cannot be drawn.")
+        if as_collection:
+            outlines.append(xy)
+            colors.append(to_rgba(color))
+            continue
         patch = Polygon(
             xy,
             closed=True,
@@ -86,6 +95,14 @@ def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, al
         # data-limit update costs about 1 ms per patch (most of a quick-look's drawing time).
         ax.add_artist(patch)
         patches.append(patch)
+    if as_collection:
+        from matplotlib.collections import PolyCollection
+
+        edge = np.array(colors).reshape(-1, 4)
+        face = edge.copy()
+        face[:, 3] = alpha
+        patches = PolyCollection(outlines, closed=True, facecolors=face, edgecolors=edge, linewidths=linewidth)
+        ax.add_collection(patches, autolim=False)  # the callers fix the limits to the image
     if (kinds == "fan").any():
         ax.plot(x[kinds == "fan"], y[kinds == "fan"], "+", color="white", markersize=5, linewidth=0.8)
     return patches

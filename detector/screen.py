@@ -877,7 +877,7 @@ def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata, 
             x_px=shown["x_px"] * scale, y_px=shown["y_px"] * scale, length_px=shown["length_px"] * scale,
             semi_major_px=shown["semi_major_px"] * scale, semi_minor_px=shown["semi_minor_px"] * scale,
         )
-        draw_features(ax, shown, linewidth=0.6)
+        draw_features(ax, shown, linewidth=0.6, as_collection=True)
         title += f"  ({n_all} detections" + (f", {len(shown)} strongest drawn)" if n_all > len(shown) else ")")
     ax.set_xlim(-0.5, canvas.shape[1] - 0.5)
     ax.set_ylim(canvas.shape[0] - 0.5, -0.5)

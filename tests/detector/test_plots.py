@@ -65,6 +65,17 @@ def test_fans_coloured_by_cyclic_direction():
     assert np.allclose(plain[1].get_edgecolor(), to_rgba(SPOT_COLOR))
 
 
+def test_collection_holds_the_same_outlines_and_colours_as_the_patches():
+    patches = draw_features(_axis()[1], FEATURES, alpha=0.35)
+    _, ax = _axis()
+    coll = draw_features(ax, FEATURES, alpha=0.35, as_collection=True)
+    assert coll in ax.collections and len(coll.get_paths()) == len(patches)
+    for path, patch in zip(coll.get_paths(), patches):
+        assert np.allclose(path.vertices[: len(patch.get_xy()) - 1], patch.get_xy()[:-1])
+    np.testing.assert_allclose(coll.get_facecolor(), [p.get_facecolor() for p in patches])
+    np.testing.assert_allclose(coll.get_edgecolor(), [p.get_edgecolor() for p in patches])
+
+
 def test_features_land_on_their_pixels():
     fig, ax = _axis()
     draw_features(ax, FEATURES.iloc[[0]], alpha=1.0)
