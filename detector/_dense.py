@@ -359,7 +359,9 @@ def lbp_uniform_scales(image, scales):
         fr, fc = r - np.floor(r), c - np.floor(c)
         minr, maxr = np.floor(rp).astype(np.int64), np.ceil(rp).astype(np.int64)
         minc, maxc = np.floor(cp).astype(np.int64), np.ceil(cp).astype(np.int64)
-        out.append(_kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P))
+        # neighbours on the pixel grid (offsets 0 or whole pixels) need no interpolation
+        on_grid = (fr == 0).all(axis=1) & (fc == 0).all(axis=1) & np.isfinite(img).all()
+        out.append(_kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P, on_grid))
     return out
 
 

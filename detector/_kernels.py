@@ -17,7 +17,7 @@ __all__ = ["lbp_codes", "cell_counts", "cell_weighted", "glcm_folded_counts", "g
 
 
 @njit(cache=True, nogil=True)
-def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P):
+def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P, on_grid):
     """Rotation-invariant uniform LBP codes of the (h, w) image inside ``padded``.
 
     ``padded`` is the float64 image with ``pad`` zero rows and columns on every
@@ -26,6 +26,8 @@ def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P):
     its fractional row and column positions at pixel (r, c), as
     scikit-image's bilinear interpolation computes them. A row at a time, one
     neighbour after the other, so the inner loop runs along contiguous columns.
+    A neighbour ``on_grid`` (all its fractions 0) is read as the pixel itself: the
+    interpolation ``(1 - 0) * a + 0 * b`` of finite values gives ``a`` exactly.
     """
     codes = np.empty((h, w), dtype=np.uint8)
     ones = np.empty(w, dtype=np.uint8)
@@ -37,24 +39,41 @@ def lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P):
         changes[:] = 0
         for i in range(P):
             top_row = padded[r + pad + minr[i]]
-            bottom_row = padded[r + pad + maxr[i]]
             a, b = pad + minc[i], pad + maxc[i]
-            tl, tr = top_row[a:a + w], top_row[b:b + w]
-            bl, br = bottom_row[a:a + w], bottom_row[b:b + w]
-            dr = fr[i, r]
-            dc = fc[i]
-            for c in range(w):
-                top = (1.0 - dc[c]) * np.float64(tl[c]) + dc[c] * np.float64(tr[c])
-                bottom = (1.0 - dc[c]) * np.float64(bl[c]) + dc[c] * np.float64(br[c])
-                v = (1.0 - dr) * top + dr * bottom
-                bit = np.uint8(v - np.float64(centre[c]) >= 0)
-                ones[c] += bit
-                if i:
-                    changes[c] += bit ^ prev[c]
-                prev[c] = bit
+            if on_grid[i]:
+                _lbp_bits_on_grid(top_row[a:a + w], centre, ones, changes, prev, i > 0)
+                continue
+            bottom_row = padded[r + pad + maxr[i]]
+            _lbp_bits(top_row[a:a + w], top_row[b:b + w], bottom_row[a:a + w], bottom_row[b:b + w],
+                      fr[i, r], fc[i], centre, ones, changes, prev, i > 0)
         for c in range(w):
             codes[r, c] = ones[c] if changes[c] <= 2 else P + 1
     return codes
+
+
+@njit(cache=True, nogil=True)
+def _lbp_bits(tl, tr, bl, br, dr, dc, centre, ones, changes, prev, count_changes):
+    """One neighbour's bits along a row: skimage's bilinear value against the centre."""
+    for c in range(centre.size):
+        top = (1.0 - dc[c]) * np.float64(tl[c]) + dc[c] * np.float64(tr[c])
+        bottom = (1.0 - dc[c]) * np.float64(bl[c]) + dc[c] * np.float64(br[c])
+        v = (1.0 - dr) * top + dr * bottom
+        bit = np.uint8(v - np.float64(centre[c]) >= 0)
+        ones[c] += bit
+        if count_changes:
+            changes[c] += bit ^ prev[c]
+        prev[c] = bit
+
+
+@njit(cache=True, nogil=True)
+def _lbp_bits_on_grid(values, centre, ones, changes, prev, count_changes):
+    """As :func:`_lbp_bits` for a neighbour on the pixel grid (its value is the pixel's)."""
+    for c in range(centre.size):
+        bit = np.uint8(values[c] - centre[c] >= 0)
+        ones[c] += bit
+        if count_changes:
+            changes[c] += bit ^ prev[c]
+        prev[c] = bit
 
 
 @njit(cache=True, nogil=True)
