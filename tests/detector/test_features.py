@@ -192,7 +192,8 @@ def test_cell_histograms_equal_numpy_bincount():
                                   .reshape(12, 10))
 
 
-@pytest.mark.parametrize("P,R", SPEC.lbp)
+# the spec's scales, one with every neighbour on the pixel grid, and two with none or few
+@pytest.mark.parametrize("P,R", [tuple(s) for s in SPEC.lbp] + [(4, 1), (8, 1.5), (12, 2.5)])
 def test_lbp_codes_match_skimage(P, R):
     tile = _smooth_tile(seed=2)
     # coarse levels create exact ties between interpolated neighbours and the centre
