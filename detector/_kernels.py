@@ -213,29 +213,93 @@ def cell_sums_f32(a, cell_px, ncr, ncc):
     out = np.zeros((ncr, ncc))
     acc = np.empty((ncc, 8))
     seg = np.empty(cell_px)
-    blocked = cell_px >= 8 and cell_px % 8 == 0 and cell_px <= 128
     for i in range(ncr):
         for r in range(cell_px):
-            row = a[i * cell_px + r]
-            if blocked:
-                for j in range(ncc):
-                    base = j * cell_px
-                    for k in range(8):
-                        acc[j, k] = np.float64(row[base + k])
-                for blk in range(8, cell_px, 8):
-                    for j in range(ncc):
-                        base = j * cell_px + blk
-                        for k in range(8):
-                            acc[j, k] += np.float64(row[base + k])
-                for j in range(ncc):
-                    out[i, j] += (((acc[j, 0] + acc[j, 1]) + (acc[j, 2] + acc[j, 3]))
-                                  + ((acc[j, 4] + acc[j, 5]) + (acc[j, 6] + acc[j, 7])))
-            else:
-                for j in range(ncc):
-                    for c in range(cell_px):
-                        seg[c] = np.float64(row[j * cell_px + c])
-                    out[i, j] += _pairwise_block(seg, cell_px)
+            _add_cell_row(a[i * cell_px + r], out[i], cell_px, acc, seg)
     return out
+
+
+@njit(cache=True, nogil=True)
+def _add_cell_row(row, sums, cell_px, acc, seg):
+    """Add one image row's part of each cell to ``sums`` (ncc,), as numpy's reduction does:
+    each cell's ``cell_px`` values of the row by the pairwise block, in float64.
+    ``acc`` (ncc, 8) and ``seg`` (cell_px,) are scratch."""
+    ncc = sums.size
+    if cell_px >= 8 and cell_px % 8 == 0 and cell_px <= 128:
+        for j in range(ncc):
+            base = j * cell_px
+            for k in range(8):
+                acc[j, k] = np.float64(row[base + k])
+        for blk in range(8, cell_px, 8):
+            for j in range(ncc):
+                base = j * cell_px + blk
+                for k in range(8):
+                    acc[j, k] += np.float64(row[base + k])
+        for j in range(ncc):
+            sums[j] += (((acc[j, 0] + acc[j, 1]) + (acc[j, 2] + acc[j, 3]))
+                        + ((acc[j, 4] + acc[j, 5]) + (acc[j, 6] + acc[j, 7])))
+    else:
+        for j in range(ncc):
+            for c in range(cell_px):
+                seg[c] = np.float64(row[j * cell_px + c])
+            sums[j] += _pairwise_block(seg, cell_px)
+
+
+@njit(cache=True, nogil=True)
+def _clip(x, lo, hi):
+    """``np.clip`` of one float: ``min(max(x, lo), hi)`` with numpy's comparisons."""
+    m = x if x > lo else lo
+    return m if m < hi else hi
+
+
+@njit(cache=True, nogil=True)
+def intensity_maps(image, background, inv_scale, z_range, bin_scale, n_bins, dark_max, valid, use_valid,
+                   cell_px, ncr, ncc):
+    """The intensity group's per-pixel maps and cell sums in one pass over a float32 tile,
+    with numpy's float32 arithmetic of :meth:`detector.features._Pooler.intensity`:
+
+    ``z = (image - background) * inv_scale``; the histogram bin
+    ``uint8(clip((z + z_range) * bin_scale, 0, n_bins - 1))``; the darkness
+    ``clip(-z, 0, dark_max)``; z and the darkness zeroed off valid pixels (``* valid``)
+    when ``use_valid``. All scalars are float32.
+
+    Returns
+    -------
+    bins : uint8 (M, N)
+    dark : float32 (M, N)
+    z_cells, zz_cells, dark_cells : float64 (ncr, ncc)
+        Cell sums of z, z * z and the darkness, in numpy's order.
+    """
+    h, w = image.shape
+    bins = np.empty((h, w), dtype=np.uint8)
+    dark = np.empty((h, w), dtype=np.float32)
+    z_cells = np.zeros((ncr, ncc))
+    zz_cells = np.zeros((ncr, ncc))
+    dark_cells = np.zeros((ncr, ncc))
+    z = np.empty(w, dtype=np.float32)
+    zz = np.empty(w, dtype=np.float32)
+    acc = np.empty((ncc, 8))
+    seg = np.empty(cell_px)
+    zero = np.float32(0.0)
+    top_bin = np.float32(n_bins - 1)
+    for r in range(h):
+        for c in range(w):
+            v = (image[r, c] - background) * inv_scale
+            bins[r, c] = np.uint8(_clip((v + z_range) * bin_scale, zero, top_bin))
+            d = _clip(-v, zero, dark_max)
+            if use_valid:
+                m = np.float32(valid[r, c])
+                v = v * m
+                d = d * m
+            z[c] = v
+            zz[c] = v * v
+            dark[r, c] = d
+        if r < ncr * cell_px:
+            i = r // cell_px
+            _add_cell_row(z, z_cells[i], cell_px, acc, seg)
+            _add_cell_row(zz, zz_cells[i], cell_px, acc, seg)
+            _add_cell_row(dark[r], dark_cells[i], cell_px, acc, seg)
+    return bins, dark, z_cells, zz_cells, dark_cells
 
 
 @njit(cache=True, nogil=True)

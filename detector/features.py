@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import _dense
+from . import _dense, _kernels
 from .errors import ImageError
 from .spec import FeatureSpec
 
@@ -302,24 +302,17 @@ class _Pooler:
     def intensity(self):
         spec, prep = self.spec, self.prep
         cp = spec.cell_px
-        z = prep.image - np.float32(prep.background)
-        z *= np.float32(1.0 / prep.scale)
         zr, nb = spec.int_z_range, spec.int_bins
-        zb = z + np.float32(zr)
-        zb *= np.float32(nb / (2 * zr))
-        np.clip(zb, 0, nb - 1, out=zb)
-        hist = self.pool(self.hist(zb.astype(np.uint8), nb, mask=prep.valid if prep.has_nodata else None))
+        # z = (image - background) / scale, its histogram bins, the darkness clip(-z, 0, max) and the
+        # cell sums of z, z^2 and darkness: one compiled pass with numpy's float32 arithmetic
+        bins, dark, z_cells, zz_cells, self.dark_cells = _kernels.intensity_maps(
+            np.ascontiguousarray(prep.image, dtype=np.float32), np.float32(prep.background),
+            np.float32(1.0 / prep.scale), np.float32(zr), np.float32(nb / (2 * zr)), nb,
+            np.float32(spec.dark_weight_max), np.ascontiguousarray(prep.valid), prep.has_nodata,
+            cp, self.ncr, self.ncc)
+        hist = self.pool(self.hist(bins, nb, mask=prep.valid if prep.has_nodata else None))
         hist = hist.astype(np.float64)
-        dark = np.negative(z)
-        np.clip(dark, 0, spec.dark_weight_max, out=dark)
-        if prep.has_nodata:
-            z *= prep.valid
-            dark *= prep.valid
         self.dark = dark
-        z_cells = _dense.cell_sums(z, cp, self.ncr, self.ncc)
-        z *= z
-        zz_cells = _dense.cell_sums(z, cp, self.ncr, self.ncc)
-        self.dark_cells = _dense.cell_sums(dark, cp, self.ncr, self.ncc)
         sums = self.pool(np.stack([z_cells, zz_cells, self.dark_cells, self.count_cells], axis=-1))
         nv = self.n_valid
         mean = _safe_div(sums[:, 0], nv)

@@ -86,6 +86,33 @@ def test_cell_sums_equal_numpy_reduction_bit_for_bit(shape, cell_px):
     assert got.dtype == np.float64 and got.tobytes() == expect.tobytes()
 
 
+@pytest.mark.parametrize("with_nodata", [False, True])
+def test_intensity_maps_equal_the_numpy_formulas_bit_for_bit(with_nodata):
+    # numpy's float32 arithmetic, np.clip and the cell reduction are the reference; the signs of
+    # zeros count too (a negative z times an invalid pixel's 0 is -0.0 in numpy as well).
+    from detector import _kernels
+
+    rng = np.random.default_rng(4)
+    image = rng.random((130, 170)).astype(np.float32)
+    valid = rng.random(image.shape) > (0.2 if with_nodata else -1.0)
+    bg, inv, zr, bs, nb, dmax = np.float32(0.47), np.float32(9.3), np.float32(8.0), np.float32(2.0), 32, np.float32(10.0)
+    z = image - bg
+    z *= inv
+    zb = z + zr
+    zb *= bs
+    np.clip(zb, 0, nb - 1, out=zb)
+    dark = np.negative(z)
+    np.clip(dark, 0, dmax, out=dark)
+    if with_nodata:
+        z *= valid
+        dark *= valid
+    cells = [(a[:128, :160].reshape(8, 16, 10, 16).sum(axis=(1, 3), dtype=np.float64)) for a in (z, z * z, dark)]
+    got = _kernels.intensity_maps(image, bg, inv, zr, bs, nb, dmax, valid, with_nodata, 16, 8, 10)
+    expect = [zb.astype(np.uint8), dark, *cells]
+    for g, e in zip(got, expect, strict=True):
+        assert g.dtype == e.dtype and g.tobytes() == e.tobytes()
+
+
 def test_haralick_kernel_equals_the_numpy_formulas_bit_for_bit():
     # The compiled loop must give the very numbers of numpy's einsum formulation
     # (sums in pair order), not merely close ones, so features do not depend on it.
