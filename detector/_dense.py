@@ -69,7 +69,7 @@ def prepare_tile(tile, spec, nodata_mask=None):
         valid &= finite
     has_nodata = not valid.all()
 
-    hist = np.bincount((u16[valid] if has_nodata else u16).ravel(), minlength=65536)
+    hist = _kernels.u16_histogram(np.ascontiguousarray(u16), np.ascontiguousarray(valid), has_nodata)
     n = int(hist.sum())
     out = Prepared()
     if n == 0:

@@ -77,6 +77,19 @@ def _lbp_bits_on_grid(values, centre, ones, changes, prev, count_changes):
 
 
 @njit(cache=True, nogil=True)
+def u16_histogram(u16, valid, use_valid):
+    """Counts (65536,) int64 of a uint16 image's values, over ``valid`` pixels when
+    ``use_valid`` (``np.bincount(u16[valid], minlength=65536)``, without the int64 copy)."""
+    hist = np.zeros(65536, dtype=np.int64)
+    h, w = u16.shape
+    for r in range(h):
+        for c in range(w):
+            if not use_valid or valid[r, c]:
+                hist[u16[r, c]] += 1
+    return hist
+
+
+@njit(cache=True, nogil=True)
 def cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask):
     """Per-cell histogram (ncr, ncc, n_bins) int64 of small integer ``bins`` over full cells.
 

@@ -179,7 +179,7 @@ def _features_of_prepared(prep, spec):
         return np.zeros((0, spec.n_features), np.float32), _make_grid(shape, spec, np.zeros(0))
     blocks = _Pooler(prep, spec, r, c).run()
     X = np.concatenate([np.asarray(b, dtype=np.float64).reshape(n, -1) for b in blocks], axis=1)
-    X = np.nan_to_num(X, nan=0.0, posinf=0.0, neginf=0.0).astype(np.float32)
+    X = np.nan_to_num(X, copy=False, nan=0.0, posinf=0.0, neginf=0.0).astype(np.float32)
     valid_share = blocks.valid_share
     return X, _make_grid(shape, spec, 1.0 - valid_share)
 

@@ -113,6 +113,17 @@ def test_intensity_maps_equal_the_numpy_formulas_bit_for_bit(with_nodata):
         assert g.dtype == e.dtype and g.tobytes() == e.tobytes()
 
 
+def test_u16_histogram_equals_numpy_bincount():
+    from detector import _kernels
+
+    rng = np.random.default_rng(6)
+    u16 = rng.integers(0, 65536, size=(97, 131)).astype(np.uint16)
+    u16[:5] = 65535
+    valid = rng.random(u16.shape) > 0.3
+    np.testing.assert_array_equal(_kernels.u16_histogram(u16, valid, True), np.bincount(u16[valid], minlength=65536))
+    np.testing.assert_array_equal(_kernels.u16_histogram(u16, valid, False), np.bincount(u16.ravel(), minlength=65536))
+
+
 def test_haralick_kernel_equals_the_numpy_formulas_bit_for_bit():
     # The compiled loop must give the very numbers of numpy's einsum formulation
     # (sums in pair order), not merely close ones, so features do not depend on it.
