@@ -111,11 +111,12 @@ def quantile(values, q):
     """``np.quantile(values, q)`` (method 'linear') of a non-empty 1-D float64 array without NaN."""
     n = values.size
     virtual = (n - 1) * q
-    s = np.sort(values)
     if virtual >= n - 1:
-        return s[n - 1]
+        return values.max()
     lo = int(np.floor(virtual))
-    a, b = s[lo], s[lo + 1]
+    # the two order statistics around the virtual index, by selection (the same values as sorting)
+    part = np.partition(values, lo)
+    a, b = part[lo], part[lo + 1:].min()
     t = virtual - lo
     diff = b - a
     return b - diff * (1 - t) if t >= 0.5 else a + diff * t
