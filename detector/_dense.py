@@ -283,23 +283,25 @@ def glcm_props_folded(S, levels):
     props : ndarray of shape (6, ...)
         contrast, dissimilarity, homogeneity, ASM, energy, correlation.
     """
-    shape = S.shape[:-1]
-    flat = np.ascontiguousarray(S.reshape(-1, S.shape[-1]))
-    if flat.dtype.kind not in "iuf":
-        raise TypeError(f"co-occurrence counts must be numbers, not {flat.dtype}.")
-    weights, mult = _haralick_weights(levels)
-    # one compiled pass per row: weighted sums in pair order, then the normalisations
-    return _kernels.haralick_rows(flat, np.ones(flat.shape[1]), weights, mult).reshape((6,) + shape)
+    return _haralick(S, levels, diagonal_factor=1.0)
 
 
 def glcm_props_unordered(F, levels):
     """:func:`glcm_props_folded` of :func:`unfold_diagonal` ``(F)``: the properties straight
     from unordered-pair counts (the diagonal doubled on the way, exactly)."""
-    shape = F.shape[:-1]
-    flat = np.ascontiguousarray(F.reshape(-1, F.shape[-1]))
+    return _haralick(F, levels, diagonal_factor=2.0)
+
+
+def _haralick(counts, levels, *, diagonal_factor):
+    """Haralick properties (6, ...) of folded counts whose diagonal is scaled by ``diagonal_factor``
+    (exact): one compiled pass per row, weighted sums in pair order, then the normalisations."""
+    shape = counts.shape[:-1]
+    flat = np.ascontiguousarray(counts.reshape(-1, counts.shape[-1]))
+    if flat.dtype.kind not in "iuf":
+        raise TypeError(f"co-occurrence counts must be numbers, not {flat.dtype}.")
     weights, mult = _haralick_weights(levels)
-    iu, ju = np.triu_indices(levels)
-    return _kernels.haralick_rows(flat, np.where(iu == ju, 2.0, 1.0), weights, mult).reshape((6,) + shape)
+    factor = np.where(mult == 1.0, diagonal_factor, 1.0)  # mult is 1 on the diagonal
+    return _kernels.haralick_rows(flat, factor, weights, mult).reshape((6,) + shape)
 
 
 @functools.lru_cache(maxsize=8)
@@ -348,6 +350,7 @@ def lbp_uniform_scales(image, scales):
     pad = max(int(np.ceil(R)) for _, R in scales) + 1
     padded = np.zeros((h + 2 * pad, w + 2 * pad))
     padded[pad:-pad, pad:-pad] = img  # widened to float64 as it is copied in
+    finite = bool(np.isfinite(padded).all())
     out = []
     for P, R in scales:
         k = np.arange(P, dtype=np.float64)
@@ -360,7 +363,7 @@ def lbp_uniform_scales(image, scales):
         minr, maxr = np.floor(rp).astype(np.int64), np.ceil(rp).astype(np.int64)
         minc, maxc = np.floor(cp).astype(np.int64), np.ceil(cp).astype(np.int64)
         # neighbours on the pixel grid (offsets 0 or whole pixels) need no interpolation
-        on_grid = (fr == 0).all(axis=1) & (fc == 0).all(axis=1) & np.isfinite(img).all()
+        on_grid = (fr == 0).all(axis=1) & (fc == 0).all(axis=1) & finite
         out.append(_kernels.lbp_codes(padded, pad, h, w, minr, maxr, minc, maxc, fr, fc, P, on_grid))
     return out
 

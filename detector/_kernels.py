@@ -255,7 +255,7 @@ def _add_cell_row(row, sums, cell_px, acc, seg):
         for j in range(ncc):
             for c in range(cell_px):
                 seg[c] = np.float64(row[j * cell_px + c])
-            sums[j] += _pairwise_block(seg, cell_px)
+            sums[j] += pairwise_block(seg, 0, cell_px)
 
 
 @njit(cache=True, nogil=True)
@@ -316,21 +316,32 @@ def intensity_maps(image, background, inv_scale, z_range, bin_scale, n_bins, dar
 
 
 @njit(cache=True, nogil=True)
-def _pairwise_block(a, n):
-    """numpy's pairwise sum of ``n`` <= 128 values (eight running sums combined as a tree)."""
+def pairwise_block(a, lo, n):
+    """numpy's sum of at most 128 values: 8 accumulators, combined as a tree, in the array's dtype."""
     if n < 8:
-        acc = 0.0
-        for i in range(n):
+        acc = np.zeros(1, dtype=a.dtype)[0]
+        for i in range(lo, lo + n):
             acc += a[i]
         return acc
-    r = a[:8].copy()
+    r0, r1, r2, r3 = a[lo], a[lo + 1], a[lo + 2], a[lo + 3]
+    r4, r5, r6, r7 = a[lo + 4], a[lo + 5], a[lo + 6], a[lo + 7]
+    i = 8
     stop = n - n % 8
-    for i in range(8, stop, 8):
-        for k in range(8):
-            r[k] += a[i + k]
-    res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
-    for i in range(stop, n):
-        res += a[i]
+    while i < stop:
+        j = lo + i
+        r0 += a[j]
+        r1 += a[j + 1]
+        r2 += a[j + 2]
+        r3 += a[j + 3]
+        r4 += a[j + 4]
+        r5 += a[j + 5]
+        r6 += a[j + 6]
+        r7 += a[j + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < n:
+        res += a[lo + i]
+        i += 1
     return res
 
 
@@ -462,35 +473,20 @@ def masked_f32(image, valid):
 
 
 @njit(cache=True, nogil=True)
-def darkness_residual(num, den, img, valid, every):
-    """The residual below the background and every ``every``-th of its valid values.
-
-    ``resid = np.where(valid, num / np.maximum(den, 1e-6) - img, 0.0)`` in float32, as
-    numpy computes it for float32 maps, and ``resid[valid][::every]`` (row-major order).
-    """
+def darkness_residual(num, den, img, valid):
+    """``np.where(valid, num / np.maximum(den, 1e-6) - img, 0.0)`` in float32, as numpy
+    computes it for float32 maps."""
     h, w = num.shape
     resid = np.empty((h, w), dtype=np.float32)
-    n_valid = 0
-    for r in range(h):
-        for c in range(w):
-            n_valid += valid[r, c]
-    sample = np.empty((n_valid + every - 1) // every, dtype=np.float32)
     floor = np.float32(1e-6)
-    k = 0
-    m = 0
     for r in range(h):
         for c in range(w):
             if valid[r, c]:
                 d = den[r, c]
-                v = num[r, c] / (d if d >= floor else floor) - img[r, c]
-                resid[r, c] = v
-                if k % every == 0:
-                    sample[m] = v
-                    m += 1
-                k += 1
+                resid[r, c] = num[r, c] / (d if d >= floor else floor) - img[r, c]
             else:
                 resid[r, c] = np.float32(0.0)
-    return resid, sample
+    return resid
 
 
 @njit(cache=True, nogil=True)
@@ -783,9 +779,9 @@ def sobel_products(image, g_row, g_col):
     gr = np.empty(w, dtype=np.float32)
     line = np.empty(w + 2, dtype=np.float32)
     d_r = np.empty(w, dtype=np.float32)
-    mid = np.empty(w, dtype=np.float32)
-    above = np.empty(w, dtype=np.float32)
-    below = np.empty(w, dtype=np.float32)
+    # the column derivative of rows r - 1, r, r + 1 (mirrored), each made once as r advances
+    ring = np.empty((3, w), dtype=np.float32)
+    held = np.full(3, -1, dtype=np.int64)  # the image row in each slot of the ring
     for r in range(h):
         # the row derivative of row r, one-sided at the first and last rows
         if r == 0:
@@ -804,9 +800,11 @@ def sobel_products(image, g_row, g_col):
         for c in range(w):
             d_r[c] = np.float64(line[c + 1]) * 2.0 + (np.float64(line[c]) + np.float64(line[c + 2])) * 1.0
         # the column derivatives of rows r - 1, r, r + 1 (mirrored), smoothed down by [1, 2, 1]
-        _col_diff_row(image, g_col, r, mid)
-        _col_diff_row(image, g_col, _reflect(r - 1, h), above)
-        _col_diff_row(image, g_col, _reflect(r + 1, h), below)
+        for q in (_reflect(r - 1, h), r, _reflect(r + 1, h)):
+            if held[q % 3] != q:
+                _col_diff_row(image, g_col, q, ring[q % 3])
+                held[q % 3] = q
+        above, mid, below = ring[_reflect(r - 1, h) % 3], ring[r % 3], ring[_reflect(r + 1, h) % 3]
         rr, rc, cc = a_rr[r], a_rc[r], a_cc[r]
         for c in range(w):
             d_c = np.float32(np.float64(mid[c]) * 2.0 + (np.float64(above[c]) + np.float64(below[c])) * 1.0)

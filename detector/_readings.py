@@ -12,6 +12,8 @@ up, as in :mod:`detector.geometry`.
 import numpy as np
 from numba import njit
 
+from ._kernels import pairwise_block as _block
+
 __all__ = ["psum", "quantile", "direction_histogram", "circular_smooth", "direction_modes", "axis_moments", "spot_reading", "describe_component",
            "component_summary", "FAN_FIELDS", "SUMMARY_FIELDS"]
 
@@ -21,36 +23,6 @@ _RAD = np.pi / 180.0
 #: Columns of the fan rows returned by :func:`describe_component`.
 FAN_FIELDS = ("x_px", "y_px", "direction_deg", "length_px", "spread_deg", "concentration", "vent_dark",
               "share", "dark_mean", "vote", "p_fan", "axis_deg")
-
-
-@njit(cache=True, nogil=True)
-def _block(a, lo, n):
-    """numpy's sum of at most 128 values: 8 accumulators, combined as a tree, in the array's dtype."""
-    if n < 8:
-        acc = np.zeros(1, dtype=a.dtype)[0]
-        for i in range(lo, lo + n):
-            acc += a[i]
-        return acc
-    r0, r1, r2, r3 = a[lo], a[lo + 1], a[lo + 2], a[lo + 3]
-    r4, r5, r6, r7 = a[lo + 4], a[lo + 5], a[lo + 6], a[lo + 7]
-    i = 8
-    stop = n - n % 8
-    while i < stop:
-        j = lo + i
-        r0 += a[j]
-        r1 += a[j + 1]
-        r2 += a[j + 2]
-        r3 += a[j + 3]
-        r4 += a[j + 4]
-        r5 += a[j + 5]
-        r6 += a[j + 6]
-        r7 += a[j + 7]
-        i += 8
-    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
-    while i < n:
-        res += a[lo + i]
-        i += 1
-    return res
 
 
 @njit(cache=True, nogil=True)

@@ -189,9 +189,8 @@ def local_darkness(image, valid, *, background_px=51):
         num = _box_mean(num, background_px)
     # Most tiles are wholly valid and of one size: their weights are computed once.
     den = _full_box_weights(valid.shape, background_px) if valid.all() else _box_weights(valid, background_px)
-    # np.where(valid, num / np.maximum(den, 1e-6) - img, 0.0) and its every 4th valid value, in one pass
-    resid, sample = _kernels.darkness_residual(num, den, img, valid, _SPREAD_EVERY)
-    mad = _spread_of_sample(sample)
+    resid = _kernels.darkness_residual(num, den, img, valid)
+    mad = _spread_of_sample(_kernels.valid_sample(resid, valid, _SPREAD_EVERY))
     if mad <= 0:
         return np.zeros(image.shape, dtype=np.float32)
     resid /= np.float32(mad)  # float32 division by the float32 spread, as resid / mad gives
