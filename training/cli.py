@@ -28,6 +28,8 @@ def _add_training_commands(commands):
     synth.add_argument("--images", type=int, default=8)
     synth.add_argument("--tiles-per-image", type=int, default=5)
     synth.add_argument("--seed", type=int, default=0)
+    synth.add_argument("--profile", choices=("nominal", "shifted"), default="nominal",
+                       help="Scene settings: the training distribution, or one shifted outside it.")
     synth.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
     synth.set_defaults(func=_synth)
 
@@ -78,8 +80,8 @@ def _synth(args):
     from .synth import synthesize_tileset
 
     path = synthesize_tileset(args.out, n_images=args.images, tiles_per_image=args.tiles_per_image,
-                              seed=args.seed, force=args.force)
-    print(f"wrote synthetic tile set {path}")
+                              seed=args.seed, force=args.force, settings=args.profile)
+    print(f"wrote synthetic tile set {path} ({args.profile} profile)")
 
 
 def _train(args):

@@ -21,13 +21,15 @@ All names (image ids, regions) are invented. Pixel coordinates and directions
 follow :mod:`detector.geometry`.
 """
 
+import dataclasses
 import shutil
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 from scipy import ndimage
-from scipy.special import expit
+from scipy.spatial import cKDTree
+from scipy.special import expit, ndtri
 
 from detector.contract import (
     CONSENSUS_COLUMNS,
@@ -42,7 +44,7 @@ from detector.errors import DetectorError
 from detector.geometry import direction_deg, unit_vector
 from detector.io import atomic_dir, write_image
 
-__all__ = ["SCENARIOS", "render_scene", "synthesize_tileset", "to_uint8"]
+__all__ = ["SCENARIOS", "SCENE_PROFILES", "SceneSettings", "render_scene", "synthesize_tileset", "to_uint8"]
 
 #: Scene kinds: one prevailing wind, two winds, calm (mostly spots), faint late-season image.
 SCENARIOS = ("windy", "two_winds", "calm", "faint")
@@ -70,10 +72,190 @@ WIND_SCATTER_DEG = 12.0
 _TRUTH_COLUMNS = CONSENSUS_REQUIRED[1:9] + ("contrast", "vent")
 
 
+# ----------------------------------------------------------------------------- settings
+
+_RANGE_FIELDS = {
+    # field: (lowest allowed, highest allowed) for both ends of the range
+    "polygon_cover": (0.0, 1.0),
+    "polygon_cell_px": (8.0, 1000.0),
+    "polygon_trough_px": (1.0, 12.0),
+    "polygon_depth": (0.0, 0.9),
+    "fan_contrast": (0.0, 0.95),
+    "faint_contrast": (0.0, 0.95),
+    "gain": (0.05, 3.0),
+    "level": (0.0, 1.0),
+    "faint_gain": (0.05, 3.0),
+    "faint_level": (0.0, 1.0),
+    "blur_sigma_px": (0.0, 10.0),
+    "noise_dn": (0.0, 50.0),
+    "short_fan_px": (10.0, 220.0),
+    "broad_fan_contrast": (0.0, 0.95),
+    "broad_fan_length_px": (10.0, 220.0),
+    "broad_fan_spread_deg": (2.0, 120.0),
+}
+_SHARE_FIELDS = ("polygon_probability", "araneiform_share", "vent_on_trough_share", "spot_with_fans_share",
+                 "short_fan_share", "broad_fan_share")
+_RATE_FIELDS = ("araneiform_bare_per_mpx", "troughs_per_mpx", "rough_patches_per_mpx", "craters_per_mpx")
+
+
+@dataclasses.dataclass(frozen=True)
+class SceneSettings:
+    """Ranges the scene renderer draws its terrain, deposits and image formation from.
+
+    Every ``(low, high)`` pair is a closed range drawn uniformly once per image
+    (or once per deposit for deposit properties); shares are probabilities and
+    rates are expected counts per megapixel. Two presets live in
+    :data:`SCENE_PROFILES`.
+
+    Parameters
+    ----------
+    polygon_probability : float
+        Share of images with polygonal patterned ground.
+    polygon_cover : (float, float)
+        Share of such an image the polygons cover (a smooth mask).
+    polygon_cell_px : (float, float)
+        Polygon spacing, px: the mean cell area is its square. Drawn
+        log-uniformly per image.
+    polygon_trough_px : (float, float)
+        Width of the troughs outlining the polygons, px.
+    polygon_depth : (float, float)
+        Fractional darkening at a trough's centre.
+    araneiform_share : float
+        Share of vents at the centre of araneiform channels.
+    araneiform_bare_per_mpx, troughs_per_mpx, rough_patches_per_mpx, craters_per_mpx : float
+        Expected numbers per megapixel of araneiform networks without a vent,
+        long troughs, dark rough patches and craters.
+    vent_on_trough_share : float
+        Share of vents moved onto the nearest polygon or long trough (within
+        :data:`_SNAP_RADIUS_PX`), so that their fans start on it.
+    spot_with_fans_share : float
+        Share of fan-making vents that also leave a spot under their fans.
+    fan_contrast, faint_contrast : (float, float)
+        Fractional darkening at the source of fans and spots in ordinary and in
+        faint late-season images.
+    gain, level, faint_gain, faint_level : (float, float)
+        Image contrast (gain about the frost level) and mean level, ordinary and
+        faint images.
+    blur_sigma_px : (float, float)
+        Standard deviation of the Gaussian point spread, px.
+    noise_dn : (float, float)
+        Standard deviation of the additive noise, 8-bit grey levels.
+    short_fan_share : float
+        Share of fans that are short, with lengths in ``short_fan_px``.
+    short_fan_px : (float, float)
+        Lengths of short fans, px.
+    broad_fan_share : float
+        Share of fans that are long, faint and broad.
+    broad_fan_contrast, broad_fan_length_px, broad_fan_spread_deg : (float, float)
+        Source darkening, length (px) and full opening angle (degrees) of those.
+
+    Raises
+    ------
+    DetectorError
+        A range that is not an ordered pair inside its allowed bounds, or a
+        share or rate outside its bounds; the message names the field.
+    """
+
+    polygon_probability: float = 0.5
+    polygon_cover: tuple = (0.2, 0.6)
+    polygon_cell_px: tuple = (30.0, 200.0)
+    polygon_trough_px: tuple = (1.5, 4.0)
+    polygon_depth: tuple = (0.15, 0.3)
+    araneiform_share: float = 0.6
+    araneiform_bare_per_mpx: float = 2.0
+    troughs_per_mpx: float = 1.2
+    rough_patches_per_mpx: float = 2.0
+    craters_per_mpx: float = 1.5
+    vent_on_trough_share: float = 0.25
+    spot_with_fans_share: float = 0.2
+    fan_contrast: tuple = (0.3, 0.65)
+    faint_contrast: tuple = (0.15, 0.32)
+    gain: tuple = (0.8, 1.15)
+    level: tuple = (0.5, 0.62)
+    faint_gain: tuple = (0.55, 0.7)
+    faint_level: tuple = (0.62, 0.72)
+    blur_sigma_px: tuple = (0.6, 1.2)
+    noise_dn: tuple = (0.8, 2.0)
+    short_fan_share: float = 0.12
+    short_fan_px: tuple = (10.0, 20.0)
+    broad_fan_share: float = 0.08
+    broad_fan_contrast: tuple = (0.08, 0.2)
+    broad_fan_length_px: tuple = (80.0, 220.0)
+    broad_fan_spread_deg: tuple = (50.0, 90.0)
+
+    def __post_init__(self):
+        for name, (lowest, highest) in _RANGE_FIELDS.items():
+            value = getattr(self, name)
+            try:
+                low, high = (float(v) for v in value)
+            except (TypeError, ValueError) as err:
+                raise DetectorError(f"SceneSettings.{name} {value!r} is not a (low, high) pair of numbers.") from err
+            if not (lowest <= low <= high <= highest):
+                raise DetectorError(
+                    f"SceneSettings.{name} {value!r} must satisfy {lowest} <= low <= high <= {highest}."
+                )
+            object.__setattr__(self, name, (low, high))
+        for name in _SHARE_FIELDS + _RATE_FIELDS:
+            value = getattr(self, name)
+            highest = 1.0 if name in _SHARE_FIELDS else 100.0
+            if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) or not (
+                0.0 <= value <= highest
+            ):
+                raise DetectorError(f"SceneSettings.{name} must be a number in [0, {highest}]; got {value!r}.")
+            object.__setattr__(self, name, float(value))
+        if self.short_fan_share + self.broad_fan_share > 1.0:
+            raise DetectorError(
+                f"SceneSettings.short_fan_share + broad_fan_share must be <= 1; got "
+                f"{self.short_fan_share} + {self.broad_fan_share}."
+            )
+
+
+#: Named presets. ``"nominal"`` is the training distribution; ``"shifted"`` lies
+#: outside it in deposit contrast, image gain, blur and noise (each range disjoint
+#: from the nominal one) and has more polygonal ground and rough terrain, so a
+#: benchmark on it measures robustness rather than memory.
+SCENE_PROFILES = {
+    "nominal": SceneSettings(),
+    "shifted": SceneSettings(
+        polygon_probability=0.95,
+        polygon_cover=(0.6, 0.95),
+        polygon_depth=(0.2, 0.35),
+        troughs_per_mpx=2.0,
+        rough_patches_per_mpx=3.0,
+        vent_on_trough_share=0.35,
+        fan_contrast=(0.18, 0.28),
+        faint_contrast=(0.09, 0.14),
+        gain=(0.6, 0.78),
+        faint_gain=(0.42, 0.53),
+        blur_sigma_px=(1.4, 2.0),
+        noise_dn=(2.5, 4.0),
+        short_fan_share=0.18,
+        broad_fan_share=0.12,
+        broad_fan_contrast=(0.05, 0.075),
+    ),
+}
+
+#: Farthest a vent is moved to reach a trough, px.
+_SNAP_RADIUS_PX = 60.0
+
+
+def _resolve_settings(settings):
+    """``None`` -> nominal; a profile name -> its preset; a :class:`SceneSettings` as is."""
+    if settings is None:
+        return SCENE_PROFILES["nominal"]
+    if isinstance(settings, SceneSettings):
+        return settings
+    if isinstance(settings, str) and settings in SCENE_PROFILES:
+        return SCENE_PROFILES[settings]
+    raise DetectorError(
+        f"settings {settings!r} is neither a SceneSettings nor a profile name ({', '.join(SCENE_PROFILES)})."
+    )
+
+
 # ----------------------------------------------------------------------------- rendering
 
 
-def render_scene(shape, rng, *, scenario="windy", wind_deg=None, density=1.0, nodata=None):
+def render_scene(shape, rng, *, scenario="windy", wind_deg=None, density=1.0, nodata=None, settings=None):
     """Render one invented orbital image of seasonal frost with fans and spots.
 
     Parameters
@@ -93,6 +275,9 @@ def render_scene(shape, rng, *, scenario="windy", wind_deg=None, density=1.0, no
         Multiplier of the number of vents.
     nodata : bool, optional
         Whether to cut no-data strips at the image edges; random when omitted.
+    settings : SceneSettings or str, optional
+        Ranges to draw terrain, deposits and image formation from, or the name
+        of a preset in :data:`SCENE_PROFILES`; ``None`` means ``"nominal"``.
 
     Returns
     -------
@@ -107,7 +292,9 @@ def render_scene(shape, rng, *, scenario="windy", wind_deg=None, density=1.0, no
         ``contrast`` (apparent fractional darkening at the source) and ``vent``
         (fans from the same vent share this number).
     """
-    image, truth, _ = _render_scene(shape, rng, scenario=scenario, wind_deg=wind_deg, density=density, nodata=nodata)
+    image, truth, _, _ = _render_scene(
+        shape, rng, scenario=scenario, wind_deg=wind_deg, density=density, nodata=nodata, settings=settings
+    )
     return image, truth
 
 
@@ -125,12 +312,16 @@ def to_uint8(image):
     return np.round(np.clip(image, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
-def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, quiet_rows=None):
-    """Render a scene; also return hard-negative positions (K, 2) as (x, y) px.
+def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, settings=None, quiet_rows=None):
+    """Render a scene; also return hard-negative positions (K, 2) as (x, y) px and a dict of layers.
 
     ``quiet_rows`` (start, stop), optional: a band of rows where no vent lies, so
-    that a tile there holds terrain and hard negatives but no deposit.
+    that a tile there holds terrain and hard negatives but no deposit. The
+    layers are ``troughs`` (bool, polygon and long-trough pixels), ``channels``
+    (bool, araneiform pixels) and the drawn ``blur_sigma_px``, ``noise_dn``,
+    ``gain`` and ``level``.
     """
+    settings = _resolve_settings(settings)
     if scenario not in _SCENARIO_PARAMS:
         raise DetectorError(f"scenario {scenario!r} is unknown; expected one of {', '.join(SCENARIOS)}.")
     try:
@@ -151,24 +342,29 @@ def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, quiet_rows
     frost, streaks = _frost(shape, rng)
     relief = np.zeros(shape)
 
+    # Terrain that vents may sit on: polygonal patterned ground and long troughs.
+    polygons = _polygon_ground(shape, rng, settings)
+    troughs = _long_troughs(shape, rng, n=rng.poisson(settings.troughs_per_mpx * area_mpx) + rng.integers(0, 2))
+    on_trough = ((polygons > 0.5) | (troughs > 0.5)) & valid
+
     # Vents cluster in active ground; a smooth field leaves bare stretches between.
     vents = _vents(shape, rng, valid, density=params["density"] * density, area_mpx=area_mpx)
+    vents = _snap_to_troughs(vents, rng, on_trough, share=settings.vent_on_trough_share)
     if quiet_rows is not None:
         vents = vents[(vents[:, 1] < quiet_rows[0]) | (vents[:, 1] >= quiet_rows[1])]
-    truth = _deposits(vents, rng, params, wind_deg)
+    truth = _deposits(vents, rng, params, wind_deg, settings)
 
-    # Araneiform troughs at most vents, plus networks that vented nothing.
-    spider_at = vents[rng.random(len(vents)) < 0.6]
-    n_bare = rng.poisson(0.35 * len(vents) + 2.0 * area_mpx)
+    # Araneiform channels at many vents, plus networks that vented nothing.
+    spider_at = vents[rng.random(len(vents)) < settings.araneiform_share]
+    n_bare = rng.poisson(0.35 * len(vents) + settings.araneiform_bare_per_mpx * area_mpx)
     bare = np.column_stack([rng.uniform(0, cols - 1, n_bare), rng.uniform(0, rows - 1, n_bare)])
     centres = np.vstack([spider_at, bare])
     spider = _araneiform(shape, rng, centres)
-    troughs = _long_troughs(shape, rng, n=rng.poisson(1.2 * area_mpx) + rng.integers(0, 2))
-    relief -= spider + troughs
-    frost *= 1.0 - 0.24 * spider - 0.2 * troughs
+    relief -= spider + troughs + 0.8 * polygons
+    frost *= 1.0 - 0.24 * spider - 0.2 * troughs - polygons
 
-    patches = _rough_patches(shape, rng, frost, n=rng.poisson(2.0 * area_mpx) + 1)
-    craters = _craters(shape, rng, relief, n=rng.poisson(1.5 * area_mpx))
+    patches = _rough_patches(shape, rng, frost, n=rng.poisson(settings.rough_patches_per_mpx * area_mpx) + 1)
+    craters = _craters(shape, rng, relief, n=rng.poisson(settings.craters_per_mpx * area_mpx))
     # Shading of relief by the sun: slopes facing it brighter, the others darker.
     grad_r, grad_c = np.gradient(relief)
     frost -= 0.06 * (grad_c * sun[0] + grad_r * sun[1])
@@ -179,19 +375,131 @@ def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, quiet_rows
     cover = -np.expm1(-tau)
     scene = frost * (1.0 - cover) + dark * cover
 
-    scene = ndimage.gaussian_filter(scene, rng.uniform(0.6, 1.0))
-    if faint:
-        gain, level = rng.uniform(0.55, 0.7), rng.uniform(0.62, 0.72)
-    else:
-        gain, level = rng.uniform(0.8, 1.15), rng.uniform(0.5, 0.62)
-    scene = level + gain * (scene - 0.62)
-    scene += rng.normal(0.0, rng.uniform(0.8, 1.4) / 255.0, shape)
-    scene = np.clip(scene, 1.0 / 255.0, 1.0)
+    scene, camera = _camera(scene, rng, settings, faint=faint)
     scene[~valid] = 0.0
 
-    truth["contrast"] = truth["contrast"] * gain
-    negatives = np.vstack([bare, patches, craters]) if len(patches) + len(craters) + len(bare) else np.zeros((0, 2))
-    return scene.astype(np.float32), truth, negatives
+    truth["contrast"] = truth["contrast"] * camera["gain"]
+    # A few points on polygon and long troughs, where volunteers may put a weak mark.
+    trough_idx = np.flatnonzero(on_trough)
+    n_marks = min(rng.poisson(2.0 * trough_idx.size / 2e4), trough_idx.size)
+    picked = np.sort(rng.choice(trough_idx, n_marks, replace=False)) if n_marks else np.zeros(0, int)
+    on_troughs = np.column_stack([picked % cols, picked // cols]).astype(float)
+    negatives = np.vstack([np.zeros((0, 2)), bare, patches, craters, on_troughs])
+    layers = dict(troughs=on_trough, channels=spider > 0.5, **camera)
+    return scene.astype(np.float32), truth, negatives, layers
+
+
+def _camera(scene, rng, settings, *, faint):
+    """Image formation: Gaussian point spread, gain and level, additive noise, clipped to [1/255, 1].
+
+    Returns the image and the drawn ``blur_sigma_px``, ``noise_dn``, ``gain`` and ``level``.
+    """
+    sigma = rng.uniform(*settings.blur_sigma_px)
+    scene = ndimage.gaussian_filter(scene, sigma)
+    if faint:
+        gain, level = rng.uniform(*settings.faint_gain), rng.uniform(*settings.faint_level)
+    else:
+        gain, level = rng.uniform(*settings.gain), rng.uniform(*settings.level)
+    scene = level + gain * (scene - 0.62)
+    noise = rng.uniform(*settings.noise_dn)
+    scene += rng.normal(0.0, noise / 255.0, scene.shape)
+    scene = np.clip(scene, 1.0 / 255.0, 1.0)
+    return scene, dict(blur_sigma_px=float(sigma), noise_dn=float(noise), gain=float(gain), level=float(level))
+
+
+def _polygon_seeds(shape, rng, cell_px):
+    """Seeds (K, 2) as (x, y) px of a jittered square grid of spacing ``cell_px``, inside the image."""
+    rows, cols = shape
+    gy, gx = np.mgrid[0 : int(np.ceil(rows / cell_px)), 0 : int(np.ceil(cols / cell_px))]
+    jitter = rng.uniform(-0.4, 0.4, (2,) + gx.shape)
+    x = ((gx + 0.5 + jitter[0]) * cell_px).ravel()
+    y = ((gy + 0.5 + jitter[1]) * cell_px).ravel()
+    inside = (x <= cols - 1) & (y <= rows - 1)
+    return np.column_stack([x[inside], y[inside]])
+
+
+def _polygon_troughs(shape, seeds, *, width_px, within=None):
+    """Troughs along the edges of the Voronoi cells of ``seeds``: coverage in [0, 1] per pixel.
+
+    Pixels take the label of their nearest seed (a Euclidean distance transform
+    of the seed raster); only pixels near a label change get their exact
+    distance ``t`` to the bisector of their two nearest seeds, and the coverage
+    ``clip(width / 2 + 1 / 2 - t, 0, 1)`` integrates to ``width_px`` across a
+    trough.
+
+    Parameters
+    ----------
+    shape : tuple of int
+    seeds : ndarray of shape (K, 2)
+        (x, y) px; rounded to pixel centres.
+    width_px : float
+        Trough width, px.
+    within : ndarray of bool, optional
+        Only these pixels may be covered.
+    """
+    rows, cols = shape
+    out = np.zeros(shape)
+    cells = np.unique(np.round(seeds[:, 1]).astype(int).clip(0, rows - 1) * cols
+                      + np.round(seeds[:, 0]).astype(int).clip(0, cols - 1))
+    if cells.size < 2:
+        return out
+    seed_rc = np.column_stack([cells // cols, cells % cols])
+    marker = np.ones(shape, dtype=bool)
+    marker[seed_rc[:, 0], seed_rc[:, 1]] = False
+    ir, ic = ndimage.distance_transform_edt(marker, return_distances=False, return_indices=True)
+    label = (ir * cols + ic).astype(np.int64)
+    edge = np.zeros(shape, dtype=bool)
+    step = label[:, 1:] != label[:, :-1]
+    edge[:, 1:] |= step
+    edge[:, :-1] |= step
+    step = label[1:, :] != label[:-1, :]
+    edge[1:, :] |= step
+    edge[:-1, :] |= step
+    near = ndimage.binary_dilation(edge, np.ones((3, 3), bool), iterations=int(np.ceil(width_px / 2.0 + 1.0)))
+    if within is not None:
+        near &= within
+    pr, pc = np.nonzero(near)
+    if pr.size == 0:
+        return out
+    seed_xy = seed_rc[:, ::-1].astype(float)
+    d, idx = cKDTree(seed_xy).query(np.column_stack([pc, pr]).astype(float), k=2)
+    gap = np.hypot(*(seed_xy[idx[:, 1]] - seed_xy[idx[:, 0]]).T)
+    t = (d[:, 1] ** 2 - d[:, 0] ** 2) / (2.0 * np.maximum(gap, 1e-9))
+    out[pr, pc] = np.clip(width_px / 2.0 + 0.5 - t, 0.0, 1.0)
+    return out
+
+
+def _polygon_ground(shape, rng, settings):
+    """Darkening (0..depth) of polygonal patterned ground over a smooth share of the image, or zeros."""
+    if rng.random() >= settings.polygon_probability:
+        return np.zeros(shape)
+    cover = rng.uniform(*settings.polygon_cover)
+    spacing = np.exp(rng.uniform(*np.log(settings.polygon_cell_px)))
+    width = rng.uniform(*settings.polygon_trough_px)
+    depth = rng.uniform(*settings.polygon_depth)
+    # A smooth unit-variance field above its (1 - cover) quantile covers about that share.
+    field = _smooth_noise(shape, rng, 250.0)
+    mask = expit((field - ndtri(1.0 - np.clip(cover, 0.01, 0.99))) / 0.15)
+    seeds = _polygon_seeds(shape, rng, spacing)
+    trough = _polygon_troughs(shape, seeds, width_px=width, within=mask > 0.02)
+    # Trough floors vary a little in darkness along the network.
+    floor = 1.0 + 0.15 * _smooth_noise(shape, rng, 40.0)
+    return np.clip(depth * trough * mask * floor, 0.0, 0.9)
+
+
+def _snap_to_troughs(vents, rng, on_trough, *, share):
+    """Move a share of the vents onto the nearest trough pixel within :data:`_SNAP_RADIUS_PX`."""
+    if len(vents) == 0 or share <= 0.0 or not on_trough.any():
+        return vents
+    move = rng.random(len(vents)) < share
+    offset = rng.uniform(-0.45, 0.45, (len(vents), 2))
+    dist, (ir, ic) = ndimage.distance_transform_edt(~on_trough, return_indices=True)
+    r = np.round(vents[:, 1]).astype(int)
+    c = np.round(vents[:, 0]).astype(int)
+    move &= dist[r, c] <= _SNAP_RADIUS_PX
+    snapped = np.column_stack([ic[r, c], ir[r, c]]) + offset
+    snapped = np.clip(snapped, 0.0, [on_trough.shape[1] - 1.0, on_trough.shape[0] - 1.0])
+    return np.where(move[:, None], snapped, vents)
 
 
 def _smooth_noise(shape, rng, scale):
@@ -271,8 +579,13 @@ def _vents(shape, rng, valid, *, density, area_mpx):
     return points[keep][:n_target]
 
 
-def _deposits(vents, rng, params, wind_deg):
-    """Truth table of fans and spots emitted by the vents (image px)."""
+def _deposits(vents, rng, params, wind_deg, settings):
+    """Truth table of fans and spots emitted by the vents (image px).
+
+    Spot vents leave one spot; the others one to three fans, and a share of
+    those a spot under them too (same apex and vent number). A share of fans is
+    short and a share long, faint and broad (``settings``).
+    """
     n = len(vents)
     if wind_deg is None:
         wind_deg = rng.uniform(0.0, 360.0)
@@ -300,7 +613,16 @@ def _deposits(vents, rng, params, wind_deg):
     lengths = np.clip(lengths, 10.0, 220.0)
     spread = rng.triangular(10.0, 28.0, 70.0, m)
     faint = params["faint"]
-    fan_contrast = rng.uniform(0.15, 0.32, m) if faint else rng.uniform(0.3, 0.65, m)
+    contrast_range = settings.faint_contrast if faint else settings.fan_contrast
+    fan_contrast = rng.uniform(*contrast_range, m)
+    # Short fans, and long faint broad ones, at their shares.
+    u = rng.random(m)
+    short = u < settings.short_fan_share
+    broad = ~short & (u < settings.short_fan_share + settings.broad_fan_share)
+    lengths = np.where(short, rng.uniform(*settings.short_fan_px, m), lengths)
+    lengths = np.where(broad, rng.uniform(*settings.broad_fan_length_px, m), lengths)
+    spread = np.where(broad, rng.uniform(*settings.broad_fan_spread_deg, m), spread)
+    fan_contrast = np.where(broad, rng.uniform(*settings.broad_fan_contrast, m), fan_contrast)
     fans = pd.DataFrame(
         {
             "kind": "fan",
@@ -315,7 +637,9 @@ def _deposits(vents, rng, params, wind_deg):
             "vent": vent_of_fan,
         }
     )
-    spot_vents = np.flatnonzero(is_spot)
+    # Some fan vents first left a spot, which the fans then grew out of.
+    under_fans = ~is_spot & (rng.random(n) < settings.spot_with_fans_share)
+    spot_vents = np.flatnonzero(is_spot | under_fans)
     k = len(spot_vents)
     small = rng.random(k) < 0.7
     major = np.where(small, np.clip(np.exp(rng.normal(np.log(8.0), 0.35, k)), 5.0, 15.0), rng.uniform(15.0, 40.0, k))
@@ -329,7 +653,7 @@ def _deposits(vents, rng, params, wind_deg):
             "spread_deg": np.nan,
             "semi_major_px": major,
             "semi_minor_px": major * rng.uniform(0.6, 0.98, k),
-            "contrast": rng.uniform(0.15, 0.32, k) if faint else rng.uniform(0.3, 0.65, k),
+            "contrast": rng.uniform(*contrast_range, k),
             "vent": spot_vents,
         }
     )
@@ -669,7 +993,7 @@ def _image_layout(index, rng):
     return meta
 
 
-def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape):
+def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=None):
     """Render one image and cut it into tiles.
 
     Returns
@@ -686,9 +1010,9 @@ def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape):
         k = int(meta["quiet_fraction"] * tiles_per_image)
         # The margin keeps fans from vents outside the band from reaching into its tile.
         quiet_rows = (k * height - _QUIET_MARGIN_PX, (k + 1) * height + _QUIET_MARGIN_PX)
-    image, truth, negatives = _render_scene(
+    image, truth, negatives, _ = _render_scene(
         shape, np.random.default_rng(scene_ss), scenario=meta["scenario"], wind_deg=None, density=1.0, nodata=None,
-        quiet_rows=quiet_rows,
+        settings=settings, quiet_rows=quiet_rows,
     )
     pixels = to_uint8(image)
     tile_ids = [f"{meta['image_id']}_T{k:02d}" for k in range(tiles_per_image)]
@@ -738,7 +1062,7 @@ def _check_int(name, value, minimum):
     return int(value)
 
 
-def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600, 800), force=False):
+def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600, 800), force=False, settings=None):
     """Write an invented tile set of synthetic frost scenes with truth and crowd consensus.
 
     Each image is one invented orbital image (ids ``SYN_0001_A``...), rendered
@@ -763,6 +1087,10 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
         Tile shape (rows, cols), px.
     force : bool, optional
         Replace a non-empty ``out``.
+    settings : SceneSettings or str, optional
+        Ranges every image draws from, or a preset name in
+        :data:`SCENE_PROFILES`; ``None`` means ``"nominal"``. The files do not
+        record it: the caller knows which profile it asked for.
 
     Returns
     -------
@@ -777,6 +1105,7 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
     n_images = _check_int("n_images", n_images, 1)
     tiles_per_image = _check_int("tiles_per_image", tiles_per_image, 1)
     seed = _check_int("seed", seed, 0)
+    settings = _resolve_settings(settings)
     try:
         tile_shape = tuple(int(v) for v in tile_shape)
     except (TypeError, ValueError) as err:
@@ -791,7 +1120,7 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
         raise DetectorError(f"output folder {str(out)!r} is not empty; use force=True (--force) to replace it.")
 
     parts = [
-        _synthesize_image(i, ss, tiles_per_image, tile_shape)
+        _synthesize_image(i, ss, tiles_per_image, tile_shape, settings)
         for i, ss in enumerate(np.random.SeedSequence(seed).spawn(n_images))
     ]
     tiles_table = pd.concat([p[1] for p in parts], ignore_index=True)
