@@ -11,6 +11,7 @@ draws the tiles with the most errors, consensus beside detections.
 Pure functions over DataFrames; nothing here reads a model.
 """
 
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -32,6 +33,7 @@ __all__ = [
     "footprint_overlaps",
     "worst_tiles",
     "plot_error_tiles",
+    "write_error_tables",
 ]
 
 #: Outcomes of a consensus feature, in order of precedence.
@@ -402,7 +404,8 @@ def error_breakdown(
             raise DetectorError(f"{name} index is not unique; reset it first.")
         bad = ~df["kind"].isin(KINDS)
         if bad.any():
-            raise DetectorError(f"{name} row {df.index[bad][0]!r}: kind {df['kind'][bad].iloc[0]!r} is not fan or spot.")
+            raise DetectorError(f"{name} row {df.index[bad][0]!r}: kind {df['kind'][bad].iloc[0]!r} "
+                                "is not fan or spot.")
         unknown = ~df["tile_id"].isin(tiles["tile_id"])
         if unknown.any():
             raise DetectorError(f"{name} row {df.index[unknown][0]!r}: tile_id {df['tile_id'][unknown].iloc[0]!r} "
@@ -450,8 +453,8 @@ def error_breakdown(
     err = by_cons["direction_error_deg"].reindex(cons.index).to_numpy(float)
     cons["direction_error_deg"] = np.where(is_matched, err, np.nan)
     fan_match = is_matched & (cons["kind"] == "fan").to_numpy()
-    quality = np.select([np.isnan(err), err > flip_deg, err > direction_off_deg], ["unknown", "flipped", "direction_off"],
-                        default="ok")
+    quality = np.select([np.isnan(err), err > flip_deg, err > direction_off_deg],
+                        ["unknown", "flipped", "direction_off"], default="ok")
     cons["direction_quality"] = pd.Series(np.where(fan_match, quality, None), index=cons.index, dtype=object)
     cons["det_index"] = _labels(np.where(is_matched, by_cons["det_index"].reindex(cons.index),
                                          cons_first["det_index"].reindex(cons.index)), detections.index)
@@ -545,7 +548,6 @@ def worst_tiles(breakdown, *, n_tiles=6):
     t = pd.concat([lost.rename("n_lost"), false.rename("n_false")], axis=1).fillna(0).astype(int)
     t["n_errors"] = t["n_lost"] + t["n_false"]
     t = t.rename_axis("tile_id").reset_index()
-    t["tile_id"] = t["tile_id"].astype(str)
     t = t[t["n_errors"] > 0].sort_values(["n_errors", "tile_id"], ascending=[False, True], kind="stable")
     return t.head(int(n_tiles)).reset_index(drop=True)
 
@@ -554,6 +556,11 @@ def worst_tiles(breakdown, *, n_tiles=6):
 CONSENSUS_COLORS = {"fan": "tab:orange", "spot": "tab:cyan"}
 OUTCOME_COLORS = {"true": "tab:green", "duplicate": "tab:purple", "on_other_kind": "tab:pink",
                   "misplaced": "gold", "background": "tab:red"}
+
+
+def _safe_name(tile_id):
+    """A tile_id usable in a file name: characters other than letters, digits, '.', '_' and '-' become '_'."""
+    return re.sub(r"[^A-Za-z0-9._-]", "_", str(tile_id))
 
 
 def _recolour(patches, colors, alpha):
@@ -574,7 +581,8 @@ def plot_error_tiles(breakdown, read_tile, out_dir, *, tile_ids=None, n_tiles=6,
     read_tile : callable
         ``read_tile(tile_id)`` returning the tile image (2-D array), e.g. ``TileSet.read_tile``.
     out_dir : path-like
-        Folder of the figures, named ``worst_<tile_id>.png``; written atomically.
+        Folder of the figures, named ``worst_<tile_id>.png`` (characters other
+        than letters, digits, '.', '_' and '-' replaced by '_'); written atomically.
     tile_ids : sequence of str, optional
         Tiles to draw; default the :func:`worst_tiles`.
     n_tiles : int, optional
@@ -626,8 +634,34 @@ def plot_error_tiles(breakdown, read_tile, out_dir, *, tile_ids=None, n_tiles=6,
                                 for k, c in CONSENSUS_COLORS.items()], loc="upper right", fontsize=7)
         axes[1].legend(handles=[Patch(facecolor=c, edgecolor=c, alpha=0.7, label=o) for o, c in OUTCOME_COLORS.items()],
                        loc="upper right", fontsize=7)
-        path = out_dir / f"worst_{tile_id}.png"
+        path = out_dir / f"worst_{_safe_name(tile_id)}.png"
         with atomic_path(path) as tmp:
             fig.savefig(tmp, format="png", dpi=dpi)
         written.append(path)
+    return written
+
+
+def write_error_tables(breakdown, out_dir, *, float_format="%.3f"):
+    """Write ``errors_consensus.csv`` and ``errors_detections.csv`` atomically.
+
+    Each row is one consensus feature (first column ``cons_index``, the row of
+    the scored consensus table) or one detection (``det_index``), with its
+    contract columns and its outcome columns (see :class:`ErrorBreakdown`).
+
+    Returns
+    -------
+    dict of str -> Path
+        ``consensus`` and ``detections``.
+    """
+    from detector.io import atomic_path
+
+    out_dir = Path(out_dir)
+    written = {}
+    for name, frame, index_name in (("consensus", breakdown.consensus, "cons_index"),
+                                    ("detections", breakdown.detections, "det_index")):
+        table = frame.rename_axis(index_name).reset_index()
+        path = out_dir / f"errors_{name}.csv"
+        with atomic_path(path) as tmp:
+            table.to_csv(tmp, index=False, float_format=float_format)
+        written[name] = path
     return written

@@ -152,7 +152,8 @@ def _random_scene(seed):
             if rng.random() < 0.8:
                 jitter = rng.normal(0, 10, 2)
                 if rng.random() < 0.75:
-                    det.append(_fan(t, x + jitter[0], y + jitter[1], d=d + rng.normal(0, 60), length=rng.uniform(10, 80)))
+                    det.append(_fan(t, x + jitter[0], y + jitter[1], d=(d + rng.normal(0, 60)) % 360,
+                                    length=rng.uniform(10, 80)))
                 else:
                     det.append(_spot(t, x + jitter[0], y + jitter[1], semi=rng.uniform(3, 15)))
     return pd.DataFrame(cons), pd.DataFrame(det), _tiles("a", "b", "c", "d")
