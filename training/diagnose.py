@@ -67,10 +67,8 @@ def _footprint_pixels(frame, rows, cols):
     pix, owner = [], []
     for i, kind in enumerate(kinds):
         x, y = g["x_px"][i], g["y_px"][i]
-        parts = []
         r, c = int(np.floor(y + 0.5)), int(np.floor(x + 0.5))
-        if 0 <= r < rows and 0 <= c < cols:
-            parts.append(np.array([r * cols + c], dtype=np.int64))
+        anchor = 0 <= r < rows and 0 <= c < cols
         d = g["direction_deg"][i]
         if kind == "fan":
             length, spread = g["length_px"][i], g["spread_deg"][i]
@@ -84,12 +82,18 @@ def _footprint_pixels(frame, rows, cols):
             mask_of = (lambda dx, dy: _ellipse_mask(dx, dy, d, a, b)) if ok else None
         if win is not None:
             (rs, cs), dx, dy = win
-            rr, cc = np.nonzero(mask_of(dx, dy))
-            parts.append((rr + rs.start).astype(np.int64) * cols + (cc + cs.start))
-        if parts:
-            p = np.unique(np.concatenate(parts))
-            pix.append(p)
-            owner.append(np.full(p.size, i, dtype=np.int64))
+            mask = mask_of(dx, dy)
+            ar, ac = r - rs.start, c - cs.start
+            if anchor and 0 <= ar < mask.shape[0] and 0 <= ac < mask.shape[1]:
+                mask[ar, ac] = True
+            rr, cc = np.nonzero(mask)
+            p = (rr + rs.start).astype(np.int64) * cols + (cc + cs.start)
+        elif anchor:
+            p = np.array([r * cols + c], dtype=np.int64)
+        else:
+            continue
+        pix.append(p)
+        owner.append(np.full(p.size, i, dtype=np.int64))
     if not pix:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     return np.concatenate(pix), np.concatenate(owner)

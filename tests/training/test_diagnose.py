@@ -87,6 +87,13 @@ def test_detection_far_from_the_apex_but_on_the_sector_is_source_misplaced():
     assert b.consensus["overlap_px"].iloc[0] > 0
 
 
+def test_a_detection_smaller_than_a_pixel_keeps_its_apex_pixel():
+    # A 0.4-px fan covers no pixel centre but its apex pixel, 40 px down the consensus fan's axis.
+    b = _run([_fan("t", 50, 100, length=80.0, spread=40.0)], [_fan("t", 90.2, 100.1, length=0.4)], _tiles("t"))
+    assert _outcomes(b) == (["source_misplaced"], ["misplaced"])
+    assert b.detections["overlap_px"].tolist() == [1]
+
+
 def test_one_wide_detection_over_two_fans_of_one_vent_merges_them():
     # Two 20-deg fans at 80 and 100 deg from one vent; one 60-deg detection at 80 deg covers both.
     cons = [_fan("t", 50, 100, d=80.0, length=60.0, spread=20.0), _fan("t", 50, 100, d=100.0, length=60.0, spread=20.0)]
