@@ -34,6 +34,8 @@ __all__ = [
     "worst_tiles",
     "plot_error_tiles",
     "write_error_tables",
+    "write_error_analysis",
+    "diagnose_catalogs",
 ]
 
 #: Outcomes of a consensus feature, in order of precedence.
@@ -669,3 +671,84 @@ def write_error_tables(breakdown, out_dir, *, float_format="%.3f"):
             table.to_csv(tmp, index=False, float_format=float_format)
         written[name] = path
     return written
+
+
+def write_error_analysis(breakdown, read_tile, out_dir, *, n_worst=6):
+    """Write the outcome tables and the worst-tile figures of a breakdown; return its JSON-ready summary.
+
+    Parameters
+    ----------
+    breakdown : ErrorBreakdown
+    read_tile : callable
+        ``read_tile(tile_id)`` returning the tile image.
+    out_dir : path-like
+        Folder that gets ``errors_consensus.csv``, ``errors_detections.csv``
+        and ``worst_tiles/worst_<tile_id>.png``.
+    n_worst : int, optional
+        Number of worst tiles drawn (see :func:`worst_tiles`).
+
+    Returns
+    -------
+    summary : dict
+        :meth:`ErrorBreakdown.to_dict` plus ``worst_tiles``: records of
+        tile_id, n_lost, n_false and figure (path relative to ``out_dir``).
+    """
+    out_dir = Path(out_dir)
+    write_error_tables(breakdown, out_dir)
+    worst = worst_tiles(breakdown, n_tiles=n_worst)
+    figures = plot_error_tiles(breakdown, read_tile, out_dir / "worst_tiles", tile_ids=worst["tile_id"].tolist())
+    summary = breakdown.to_dict()
+    summary["worst_tiles"] = [
+        {"tile_id": str(t), "n_lost": int(lost), "n_false": int(false), "figure": f"worst_tiles/{fig.name}"}
+        for t, lost, false, fig in zip(worst["tile_id"], worst["n_lost"], worst["n_false"], figures)
+    ]
+    return summary
+
+
+def diagnose_catalogs(detections_csv, tileset_dir, out_dir, *, min_votes=None, n_worst=6, force=False, **settings):
+    """Error analysis of a detection catalog against a tile set's consensus, without a model.
+
+    Writes into ``out_dir`` (atomically, as one folder): ``errors_consensus.csv``,
+    ``errors_detections.csv``, ``error_breakdown.json`` (the summary of
+    :meth:`ErrorBreakdown.to_dict` with the worst tiles) and
+    ``worst_tiles/worst_<tile_id>.png``.
+
+    Parameters
+    ----------
+    detections_csv : path-like
+        Detections with the contract columns (e.g. a ``detections.csv`` of
+        ``frostvane evaluate``); rows of tiles outside the tile set are an error.
+    tileset_dir : path-like
+        Labelled tile set (tiles.csv, consensus.csv, images).
+    out_dir : path-like
+        Output folder; must be new or empty unless ``force``.
+    min_votes : int, optional
+        Consensus features with fewer votes are dropped; default the contract's.
+    n_worst : int, optional
+        Number of worst tiles drawn.
+    force : bool, optional
+        Replace a non-empty ``out_dir``.
+    **settings
+        Keyword settings of :func:`error_breakdown`.
+
+    Returns
+    -------
+    ErrorBreakdown
+    """
+    from detector.contract import DEFAULT_MIN_VOTES
+    from detector.io import atomic_dir, write_json
+    from detector.tileset import load_tileset
+
+    from .report import _clean
+
+    out_dir = Path(out_dir)
+    if out_dir.exists() and any(out_dir.iterdir()) and not force:
+        raise DetectorError(f"output folder {str(out_dir)!r} is not empty; choose another or pass force.")
+    tileset = load_tileset(tileset_dir, min_votes=DEFAULT_MIN_VOTES if min_votes is None else min_votes)
+    detections = pd.read_csv(detections_csv, dtype={"tile_id": str, "kind": str}).reset_index(drop=True)
+    consensus = tileset.consensus.reset_index(drop=True)
+    breakdown = error_breakdown(detections, consensus, tileset.tiles, **settings)
+    with atomic_dir(out_dir, replace=True) as tmp:
+        summary = write_error_analysis(breakdown, tileset.read_tile, tmp, n_worst=n_worst)
+        write_json(tmp / "error_breakdown.json", _clean(summary))
+    return breakdown

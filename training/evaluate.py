@@ -18,7 +18,7 @@ from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_score
 from detector._allocator import reuse_freed_memory
 
-from .diagnose import error_breakdown, plot_error_tiles, worst_tiles, write_error_tables
+from .diagnose import error_breakdown, write_error_analysis
 from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
 
 __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_card", "evaluate_model",
@@ -346,22 +346,9 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         consensus = tileset.consensus.reset_index(drop=True)
         pairs = match_objects(detections, consensus)
         fans = matched_fans(detections, consensus, pairs, tiles)
-        errors = _error_analysis(detections, consensus, tiles, pairs, tileset.read_tile, tmp, n_worst=n_worst)
+        breakdown = error_breakdown(detections, consensus, tiles, pairs=pairs)
+        errors = write_error_analysis(breakdown, tileset.read_tile, tmp, n_worst=n_worst)
         write_report(scores, tmp, ceiling=ceiling, pr_curves=pr_curves, reliability=reliability,
                      fan_directions=fans, error_breakdown=errors, title="frostvane evaluation")
     log(headline_table(scores, ceiling))
     return {"scores": scores, "ceiling": ceiling, "error_breakdown": errors}
-
-
-def _error_analysis(detections, consensus, tiles, pairs, read_tile, out_dir, *, n_worst=6):
-    """Error breakdown of an evaluation: the two outcome tables, the worst-tile figures, the JSON-ready summary."""
-    breakdown = error_breakdown(detections, consensus, tiles, pairs=pairs)
-    write_error_tables(breakdown, out_dir)
-    worst = worst_tiles(breakdown, n_tiles=n_worst)
-    figures = plot_error_tiles(breakdown, read_tile, Path(out_dir) / "worst_tiles", tile_ids=worst["tile_id"].tolist())
-    errors = breakdown.to_dict()
-    errors["worst_tiles"] = [
-        {"tile_id": str(t), "n_lost": int(lost), "n_false": int(false), "figure": f"worst_tiles/{fig.name}"}
-        for t, lost, false, fig in zip(worst["tile_id"], worst["n_lost"], worst["n_false"], figures)
-    ]
-    return errors

@@ -264,3 +264,20 @@ def test_public_api_listed():
 
     assert "error_breakdown" in diagnose.__all__
     assert training.error_breakdown is error_breakdown
+
+
+def test_diagnose_catalogs_without_a_model(tiny_tileset, tmp_path):
+    # The tile set's noise-free truth scored as detections: every output is written and self-consistent.
+    from training.diagnose import diagnose_catalogs
+
+    out = tmp_path / "diag"
+    b = diagnose_catalogs(tiny_tileset / "truth.csv", tiny_tileset, out)
+    cons = pd.read_csv(out / "errors_consensus.csv")
+    det = pd.read_csv(out / "errors_detections.csv")
+    assert len(cons) == len(b.consensus) and len(det) == len(b.detections)
+    assert cons["cons_index"].tolist() == list(range(len(cons)))
+    summary = json.loads((out / "error_breakdown.json").read_text())
+    assert sorted(p.name for p in (out / "worst_tiles").glob("*.png")) == sorted(
+        w["figure"].split("/")[-1] for w in summary["worst_tiles"])
+    with pytest.raises(DetectorError, match="not empty"):
+        diagnose_catalogs(tiny_tileset / "truth.csv", tiny_tileset, out)
