@@ -6,6 +6,8 @@ The public API:
 - :func:`evaluate_model` (``frostvane evaluate``), :func:`score_catalogs`, :func:`match_objects`
 - :func:`synthesize_tileset`, :func:`render_scene` (invented demo scenes)
 - :func:`write_report`, :func:`headline_table`
+- :func:`error_breakdown`, :func:`plot_error_tiles`, :func:`diagnose_catalogs`: where features are lost and
+  where false detections come from
 - the ``frostvane`` console script: :func:`main`
 """
 
@@ -15,10 +17,13 @@ import importlib
 # training stack (scikit-learn, ONNX export) to screen or estimate effort.
 _LAZY = {
     "main": "cli",
+    "diagnose_catalogs": "diagnose",
+    "error_breakdown": "diagnose",
     "evaluate_model": "evaluate",
     "headline_table": "report",
     "write_report": "report",
     "match_objects": "scoring",
+    "plot_error_tiles": "diagnose",
     "score_catalogs": "scoring",
     "render_scene": "synth",
     "synthesize_tileset": "synth",
@@ -40,10 +45,13 @@ def __dir__():
 
 __all__ = [
     "TrainConfig",
+    "diagnose_catalogs",
+    "error_breakdown",
     "evaluate_model",
     "headline_table",
     "main",
     "match_objects",
+    "plot_error_tiles",
     "render_scene",
     "score_catalogs",
     "split_images",

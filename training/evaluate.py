@@ -18,6 +18,7 @@ from detector.tileset import load_tileset
 from detector.unfamiliar import unfamiliarity_score
 from detector._allocator import reuse_freed_memory
 
+from .diagnose import error_breakdown, write_error_analysis
 from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
 
 __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_card", "evaluate_model",
@@ -265,7 +266,7 @@ def write_detections_csv(detections, path):
 
 
 def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print,
-                   workers=1):
+                   workers=1, n_worst=6):
     """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
 
     Parameters
@@ -280,11 +281,21 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         card's held-out metrics use the same operating point.
     images : sequence of str, optional
         Score only these images of the tile set (e.g. the model's held-out images).
+    n_worst : int, optional
+        Number of tiles with the most errors drawn into ``worst_tiles/``.
+
+    Besides ``report.json``, ``report.md``, ``detections.csv`` and the plots,
+    the folder gets the error analysis of :func:`training.diagnose.error_breakdown`:
+    ``errors_consensus.csv`` and ``errors_detections.csv`` (one outcome per
+    feature), the "Where features are lost" section of report.md (its numbers
+    under ``error_breakdown`` in report.json) and ``worst_tiles/worst_<tile_id>.png``
+    (consensus beside detections coloured by outcome).
 
     Returns
     -------
     report : dict
-        Everything written to ``report.json``.
+        ``scores`` and ``ceiling`` as written to ``report.json``, and
+        ``error_breakdown`` (its JSON-ready summary).
     """
     from .report import headline_table, write_report
 
@@ -332,9 +343,12 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         p = run["patch_proba"]
         reliability = {"deposit (fan or spot)": ((y > 0).astype(int), 1.0 - p[:, 0]),
                        "fan": ((y == 1).astype(int), p[:, 1]), "spot": ((y == 2).astype(int), p[:, 2])}
-        pairs = match_objects(detections, tileset.consensus.reset_index(drop=True))
-        fans = matched_fans(detections, tileset.consensus.reset_index(drop=True), pairs, tiles)
+        consensus = tileset.consensus.reset_index(drop=True)
+        pairs = match_objects(detections, consensus)
+        fans = matched_fans(detections, consensus, pairs, tiles)
+        breakdown = error_breakdown(detections, consensus, tiles, pairs=pairs)
+        errors = write_error_analysis(breakdown, tileset.read_tile, tmp, n_worst=n_worst)
         write_report(scores, tmp, ceiling=ceiling, pr_curves=pr_curves, reliability=reliability,
-                     fan_directions=fans, title="frostvane evaluation")
+                     fan_directions=fans, error_breakdown=errors, title="frostvane evaluation")
     log(headline_table(scores, ceiling))
-    return {"scores": scores, "ceiling": ceiling}
+    return {"scores": scores, "ceiling": ceiling, "error_breakdown": errors}

@@ -8,6 +8,8 @@ import numpy as np
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
+from .diagnose import CONSENSUS_OUTCOMES, DETECTION_OUTCOMES, DIRECTION_QUALITIES
+
 __all__ = ["TARGETS", "write_report", "headline_table", "evaluate_targets", "reliability_bins"]
 
 #: Acceptance targets: (key, label, path into the scores dict, comparison, threshold, unit).
@@ -161,6 +163,92 @@ def _breakdown_tables(scores):
             )
         parts.append("\n".join(lines))
     return "\n\n".join(parts)
+
+
+_OUTCOME_LABELS = {"consensus": CONSENSUS_OUTCOMES, "detections": DETECTION_OUTCOMES,
+                   "matched_fans": DIRECTION_QUALITIES}
+_SIDE_NAMES = {"consensus": "Consensus", "detections": "Detected", "matched_fans": "Matched"}
+
+
+def _pct(value):
+    return "n/a" if value is None else f"{100 * value:.1f} %"
+
+
+def _error_shares_table(headline):
+    """Markdown tables of the headline outcome shares, one per side."""
+    parts = []
+    for side in ("consensus", "detections"):
+        outcomes = _OUTCOME_LABELS[side]
+        lines = [f"| {_SIDE_NAMES[side]} | n | " + " | ".join(outcomes) + " |",
+                 "| --- | --- | " + " | ".join("---" for _ in outcomes) + " |"]
+        for kind, entry in (headline.get(side) or {}).items():
+            shares = " | ".join(_pct(entry.get(o)) for o in outcomes)
+            lines.append(f"| {kind}s | {entry.get('n', 0)} | {shares} |")
+        parts.append("\n".join(lines))
+    mf = headline.get("matched_fans") or {}
+    settings = headline.get("settings") or {}
+    outcomes = _OUTCOME_LABELS["matched_fans"]
+    parts.append("\n".join([
+        "| Matched fans | n | " + " | ".join(outcomes) + " |",
+        "| --- | --- | " + " | ".join("---" for _ in outcomes) + " |",
+        f"| direction | {mf.get('n', 0)} | " + " | ".join(_pct(mf.get(o)) for o in outcomes) + " |",
+    ]))
+    if settings:
+        parts.append(f"Direction off: angular error above {settings.get('direction_off_deg')} deg; flipped: above "
+                     f"{settings.get('flip_deg')} deg.")
+    return "\n\n".join(parts)
+
+
+def _error_group_table(records, group_key, title, *, side="consensus", kinds=("fan", "spot")):
+    """Markdown table of outcome shares per group and kind from tidy tally records."""
+    outcomes = _OUTCOME_LABELS[side]
+    rows = {}
+    for r in records:
+        if r.get("side") != side or r.get("kind") not in kinds:
+            continue
+        entry = rows.setdefault((r[group_key], r["kind"]), {"n": 0})
+        entry[r["outcome"]] = r["share"]
+        entry["n"] += int(r["n"])
+    if not rows:
+        return ""
+    lines = [f"### {title}", "", f"| {group_key} | kind | n | " + " | ".join(outcomes) + " |",
+             "| --- | --- | --- | " + " | ".join("---" for _ in outcomes) + " |"]
+    for (group, kind), entry in rows.items():
+        shares = " | ".join(_pct(entry.get(o)) for o in outcomes)
+        lines.append(f"| {group} | {kind} | {entry['n']} | {shares} |")
+    return "\n".join(lines)
+
+
+def _error_section(errors):
+    """The "Where features are lost" section of report.md."""
+    md = ["## Where features are lost", "",
+          "Each consensus feature and each detection has exactly one outcome (see errors_consensus.csv and "
+          "errors_detections.csv). Consensus, first that applies: matched; as_other_kind (a free detection of the "
+          "other kind touches it); source_misplaced (a free detection of its kind touches it, apex outside the match "
+          "radius); merged (touched only by a detection matched to another feature); missed. Detections: true; "
+          "duplicate (on a feature of its kind matched by another); on_other_kind; misplaced (on a free feature of "
+          "its kind, too far to match); background. Touch: footprints share pixels or the detection lies within "
+          "the match radius.", "",
+          _error_shares_table(errors.get("headline") or {}), ""]
+    for table in (
+        _error_group_table(errors.get("by_length") or [], "length_bin", "Consensus fans by length (px)",
+                           kinds=("fan",)),
+        _error_group_table(errors.get("by_votes") or [], "votes_bin", "Consensus features by votes"),
+        _error_group_table(errors.get("by_image") or [], "image_id", "Consensus features by image"),
+        _error_group_table(errors.get("by_image") or [], "image_id", "Detections by image", side="detections"),
+        _error_group_table(errors.get("by_image") or [], "image_id", "Direction of matched fans by image",
+                           side="matched_fans", kinds=("fan",)),
+    ):
+        if table:
+            md += [table, ""]
+    worst = errors.get("worst_tiles") or []
+    if worst:
+        md += ["### Worst tiles (most consensus features lost plus false detections)", "",
+               "| Tile | Lost | False | Figure |", "| --- | --- | --- | --- |"]
+        md += [f"| {w['tile_id']} | {w['n_lost']} | {w['n_false']} | ![{w['tile_id']}]({w['figure']}) |"
+               for w in worst]
+        md.append("")
+    return md
 
 
 def reliability_bins(y_true, proba, *, n_bins=10):
@@ -325,6 +413,7 @@ def write_report(
     reliability=None,
     per_image_directions=None,
     fan_directions=None,
+    error_breakdown=None,
     title="frostvane evaluation",
     n_bins=10,
 ):
@@ -349,6 +438,11 @@ def write_report(
     fan_directions : DataFrame, optional
         Matched fans with consensus_deg, predicted_deg and error_deg (see
         :func:`training.scoring.matched_fans`), for the error histogram and scatter.
+    error_breakdown : dict, optional
+        :meth:`training.diagnose.ErrorBreakdown.to_dict`, optionally with
+        ``worst_tiles`` (records of tile_id, n_lost, n_false and figure, a
+        path relative to ``out_dir``): stored in report.json under
+        ``error_breakdown`` and shown as the "Where features are lost" section.
     title : str, optional
     n_bins : int, optional
         Bins of the reliability diagram.
@@ -391,7 +485,7 @@ def write_report(
         plots.append(("Reliability diagram", "reliability.png"))
 
     payload = _clean({"title": title, "scores": scores, "ceiling": ceiling, "targets": evaluate_targets(scores),
-                      "reliability": rel_bins})
+                      "reliability": rel_bins, "error_breakdown": error_breakdown})
     written["json"] = out_dir / "report.json"
     write_json(written["json"], payload)
 
@@ -415,6 +509,8 @@ def write_report(
         _breakdown_tables(scores),
         "",
     ]
+    if error_breakdown is not None:
+        md += _error_section(error_breakdown)
     if plots:
         md += ["## Plots", ""] + [f"![{name}]({fname})" for name, fname in plots] + [""]
     written["md"] = out_dir / "report.md"

@@ -42,3 +42,27 @@ def test_truth_ceiling_present(report, tiny_tileset):
 def test_bad_min_score(tiny_model, tiny_tileset, tmp_path):
     with pytest.raises(DetectorError, match="min-score"):
         evaluate_model(tiny_model[0], tiny_tileset, tmp_path / "r", min_score=1.5, log=lambda s: None)
+
+
+def test_error_analysis_files(report, tiny_tileset):
+    out, result = report
+    cons = pd.read_csv(out / "errors_consensus.csv")
+    det = pd.read_csv(out / "errors_detections.csv")
+    # One row per scored feature, each with one outcome.
+    assert len(det) == len(pd.read_csv(out / "detections.csv"))
+    assert cons["outcome"].isin(["matched", "as_other_kind", "source_misplaced", "merged", "missed"]).all()
+    assert det["outcome"].isin(["true", "duplicate", "on_other_kind", "misplaced", "background"]).all()
+    assert (cons["outcome"] == "matched").sum() == (det["outcome"] == "true").sum()
+    payload = json.loads((out / "report.json").read_text())
+    errors = payload["error_breakdown"]
+    assert errors["headline"]["consensus"]["fan"]["n"] == int((cons["kind"] == "fan").sum())
+    n_matched = payload["scores"]["objects"]["fan"]["n_matched"] + payload["scores"]["objects"]["spot"]["n_matched"]
+    assert (cons["outcome"] == "matched").sum() == n_matched
+    assert "## Where features are lost" in (out / "report.md").read_text()
+    # One figure per listed worst tile, at most six, named after the tile.
+    figures = sorted(p.name for p in (out / "worst_tiles").glob("worst_*.png"))
+    assert figures == sorted(f"worst_{w['tile_id']}.png" for w in errors["worst_tiles"])
+    n_with_errors = len(set(cons.loc[cons["outcome"] != "matched", "tile_id"])
+                        | set(det.loc[det["outcome"] != "true", "tile_id"]))
+    assert len(figures) == min(6, n_with_errors)
+    assert result["error_breakdown"]["worst_tiles"] == errors["worst_tiles"]
