@@ -1,13 +1,26 @@
 """Invented synthetic orbital scenes of the seasonal CO2 ice cap, with truth and crowd consensus.
 
 A scene is one single-band image of frost with multi-scale albedo texture and
-gentle illumination gradients, araneiform terrain (thin dark branching troughs
-radiating from centres) acting as vents, hard negatives that are *not* deposits
-(dark rough patches, long dark troughs, rim-shaded craters) and the deposits
-themselves: fans blown downwind from a vent, several of which often share a vent
-and point different ways, and roundish to mildly elliptical spots. The image is
-blurred, noisy, given its own contrast and may carry no-data (value 0) strips at
-its edges.
+gentle illumination gradients, on which lie terrain and deposits:
+
+* polygonal patterned ground: a network of narrow dark troughs outlining
+  polygons (the edges of a jittered Voronoi tessellation) over a smooth share
+  of the image;
+* araneiform terrain (thin dark branching channels radiating from centres),
+  at many vents and also where nothing vented;
+* other hard negatives that are *not* deposits: long dark troughs, dark rough
+  patches and rim-shaded craters;
+* the deposits: fans blown downwind from a vent, several of which often share
+  a vent and point different ways, and roundish to mildly elliptical spots.
+  Some vents sit on a polygon or long trough, so their fans start on it; some
+  fan vents leave a spot under their fans; a share of fans is short and a
+  share long, faint and broad.
+
+The image is blurred, given its own contrast, made noisy and may carry no-data
+(value 0) strips at its edges. The ranges all of this is drawn from are a
+:class:`SceneSettings`; :data:`SCENE_PROFILES` holds the ``"nominal"`` preset
+(the training distribution) and a ``"shifted"`` one whose deposit contrast,
+image gain, blur and noise lie outside it.
 
 :func:`synthesize_tileset` cuts such images into tiles and writes a tile set
 (``tiles.csv``, ``consensus.csv``, ``truth.csv`` and 8-bit PNG tiles) in which
@@ -15,7 +28,7 @@ its edges.
 ``consensus.csv`` simulates what a crowd of volunteers would have reported:
 jittered positions, directions and lengths, faint and small deposits missed
 more often, wide fans sometimes reported as spots and a few weak false marks on
-hard negatives.
+hard negatives (including points on the polygon and long troughs).
 
 All names (image ids, regions) are invented. Pixel coordinates and directions
 follow :mod:`detector.geometry`.
@@ -343,9 +356,9 @@ def _render_scene(shape, rng, *, scenario, wind_deg, density, nodata, settings=N
     relief = np.zeros(shape)
 
     # Terrain that vents may sit on: polygonal patterned ground and long troughs.
-    polygons = _polygon_ground(shape, rng, settings)
+    polygons, polygon_troughs = _polygon_ground(shape, rng, settings)
     troughs = _long_troughs(shape, rng, n=rng.poisson(settings.troughs_per_mpx * area_mpx) + rng.integers(0, 2))
-    on_trough = ((polygons > 0.5) | (troughs > 0.5)) & valid
+    on_trough = (polygon_troughs | (troughs > 0.5)) & valid
 
     # Vents cluster in active ground; a smooth field leaves bare stretches between.
     vents = _vents(shape, rng, valid, density=params["density"] * density, area_mpx=area_mpx)
@@ -470,9 +483,13 @@ def _polygon_troughs(shape, seeds, *, width_px, within=None):
 
 
 def _polygon_ground(shape, rng, settings):
-    """Darkening (0..depth) of polygonal patterned ground over a smooth share of the image, or zeros."""
+    """Polygonal patterned ground over a smooth share of the image (or none, at the settings' odds).
+
+    Returns the fractional darkening (0 .. about the drawn depth) and the trough
+    pixels (bool: at least half covered by a trough, inside the cover).
+    """
     if rng.random() >= settings.polygon_probability:
-        return np.zeros(shape)
+        return np.zeros(shape), np.zeros(shape, dtype=bool)
     cover = rng.uniform(*settings.polygon_cover)
     spacing = np.exp(rng.uniform(*np.log(settings.polygon_cell_px)))
     width = rng.uniform(*settings.polygon_trough_px)
@@ -484,7 +501,7 @@ def _polygon_ground(shape, rng, settings):
     trough = _polygon_troughs(shape, seeds, width_px=width, within=mask > 0.02)
     # Trough floors vary a little in darkness along the network.
     floor = 1.0 + 0.15 * _smooth_noise(shape, rng, 40.0)
-    return np.clip(depth * trough * mask * floor, 0.0, 0.9)
+    return np.clip(depth * trough * mask * floor, 0.0, 0.9), (trough >= 0.5) & (mask > 0.5)
 
 
 def _snap_to_troughs(vents, rng, on_trough, *, share):

@@ -4,12 +4,16 @@ import hashlib
 import io
 from pathlib import Path
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 import pytest
 from scipy import ndimage
 from scipy.spatial import cKDTree
-from scipy.stats import circmean, circstd
+from scipy.optimize import curve_fit
+from scipy.special import ndtr
+from scipy.stats import circmean, circstd, norm
 
 from detector.contract import (
     CONSENSUS_COLUMNS,
@@ -26,7 +30,14 @@ from detector.io import read_image, write_image
 from training.synth import (
     SCENE_PROFILES,
     WIND_SCATTER_DEG,
+    SceneSettings,
     _IMAGE_SCENARIOS,
+    _SCENARIO_PARAMS,
+    _camera,
+    _deposits,
+    _polygon_seeds,
+    _polygon_troughs,
+    _render_scene,
     _synthesize_image,
     render_scene,
     synthesize_tileset,
@@ -358,3 +369,208 @@ def test_bad_arguments_raise_one_clear_error(tmp_path, kwargs, message):
     with pytest.raises(DetectorError, match=message):
         synthesize_tileset(tmp_path / "x", **kwargs)
     assert not (tmp_path / "x").exists()
+
+
+# ----------------------------------------------------------------------------- settings and new terrain
+
+NOMINAL, SHIFTED = SCENE_PROFILES["nominal"], SCENE_PROFILES["shifted"]
+
+
+@pytest.mark.parametrize(
+    "field", ["fan_contrast", "faint_contrast", "broad_fan_contrast", "gain", "faint_gain", "blur_sigma_px", "noise_dn"]
+)
+def test_shifted_ranges_lie_outside_nominal(field):
+    (lo_n, hi_n), (lo_s, hi_s) = getattr(NOMINAL, field), getattr(SHIFTED, field)
+    assert hi_s < lo_n or lo_s > hi_n, field
+    if field in ("fan_contrast", "faint_contrast", "broad_fan_contrast"):
+        assert hi_s < lo_n  # shifted deposits are fainter
+    # Terrain mix: the shifted profile has more polygonal ground.
+    assert SHIFTED.polygon_probability > NOMINAL.polygon_probability
+    assert SHIFTED.polygon_cover[0] > NOMINAL.polygon_cover[0]
+
+
+def test_settings_validate_and_name_the_bad_value():
+    with pytest.raises(DetectorError, match="blur_sigma_px"):
+        SceneSettings(blur_sigma_px=(2.0, 1.0))
+    with pytest.raises(DetectorError, match="short_fan_share"):
+        SceneSettings(short_fan_share=1.5)
+    with pytest.raises(DetectorError, match="'stormy'"):
+        render_scene((64, 64), np.random.default_rng(0), settings="stormy")
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        NOMINAL.noise_dn = (0.0, 1.0)
+
+
+@pytest.mark.parametrize("spacing", [40.0, 110.0])
+def test_polygon_cells_match_the_requested_spacing(spacing):
+    shape = (600, 800)
+    seeds = _polygon_seeds(shape, np.random.default_rng(1), spacing)
+    # Geometry: n seeds tiling the image give Voronoi cells of mean area (image area) / n;
+    # a jittered grid of spacing s has about one seed per s^2.
+    area = shape[0] * shape[1]
+    assert area / len(seeds) == pytest.approx(spacing**2, rel=0.12)
+    trough = _polygon_troughs(shape, seeds, width_px=2.5)
+    # Closed troughs: every cell is its own component of the non-trough pixels (scipy.ndimage.label).
+    labels, n = ndimage.label(trough < 0.5)
+    assert n == pytest.approx(len(seeds), rel=0.05)
+    sizes = np.bincount(labels.ravel())[1:]
+    # Cell areas: their mean plus the trough share matches area / n (trough area ~ width x edge length).
+    assert (sizes.sum() + (trough >= 0.5).sum()) / n == pytest.approx(area / len(seeds), rel=0.06)
+    # Cells vary in size (jittered seeds) but none is a sliver or a merged pair.
+    interior = sizes[sizes > 0.2 * spacing**2]
+    assert 0.1 < interior.std() / interior.mean() < 0.5
+    assert sizes.max() < 2.5 * spacing**2
+
+
+@pytest.mark.parametrize("width", [1.5, 2.5, 4.0])
+def test_polygon_trough_width_matches_request(width):
+    # Two seeds: the single edge is their perpendicular bisector (geometry).
+    shape = (120, 200)
+    straight = _polygon_troughs(shape, np.array([[40.0, 60.0], [160.0, 60.0]]), width_px=width)
+    profile = straight[60]
+    # Integrated darkness across the trough = its width; it is centred on x = 100.
+    assert profile.sum() == pytest.approx(width, abs=0.02)
+    assert np.average(np.arange(200), weights=profile) == pytest.approx(100.0, abs=0.05)
+    # A slanted edge: a row crosses it over width / cos(angle between the row and the edge normal).
+    seeds = np.array([[40.0, 30.0], [160.0, 90.0]])
+    slanted = _polygon_troughs(shape, seeds, width_px=width)
+    normal = (seeds[1] - seeds[0]) / np.hypot(*(seeds[1] - seeds[0]))
+    across = slanted[40:80].sum(axis=1)
+    assert np.median(across) == pytest.approx(width / normal[0], rel=0.05)
+
+
+def _trough_scene(share, seed=5):
+    settings = dataclasses.replace(
+        NOMINAL, polygon_probability=1.0, polygon_cover=(0.95, 0.95), polygon_cell_px=(50.0, 60.0),
+        vent_on_trough_share=share,
+    )
+    return _render_scene((900, 800), np.random.default_rng(seed), scenario="windy", wind_deg=None, density=1.0,
+                         nodata=False, settings=settings)
+
+
+def test_fans_placed_on_troughs_start_on_a_trough_pixel():
+    distances = {}
+    for share in (1.0, 0.0):
+        _, truth, _, layers = _trough_scene(share)
+        fans = truth[truth["kind"] == "fan"]
+        assert len(fans) > 20
+        # Distance from each apex to the nearest trough pixel (scipy.ndimage.distance_transform_edt).
+        to_trough = ndimage.distance_transform_edt(~layers["troughs"])
+        r, c = np.round(fans["y_px"]).astype(int), np.round(fans["x_px"]).astype(int)
+        distances[share] = to_trough[r, c]
+    assert (distances[1.0] <= 1.0).mean() > 0.95
+    # Control: vents left where they fell mostly lie inside cells, away from the troughs.
+    assert (distances[0.0] <= 1.0).mean() < 0.5
+
+
+def _many_deposits(settings, n=3000, scenario="windy", seed=8):
+    rng = np.random.default_rng(seed)
+    vents = rng.uniform(0.0, 1000.0, (n, 2))
+    return _deposits(vents, rng, _SCENARIO_PARAMS[scenario], 90.0, settings)
+
+
+def test_spots_under_fans_share_the_apex():
+    settings = dataclasses.replace(NOMINAL, spot_with_fans_share=0.4)
+    truth = _many_deposits(settings)
+    kinds = truth.groupby("vent")["kind"].agg(set)
+    fan_vents = kinds[kinds.apply(lambda k: "fan" in k)]
+    both = fan_vents[fan_vents.apply(lambda k: "spot" in k)].index
+    # Binomial share: 0.4 +/- 4 standard errors.
+    assert len(both) / len(fan_vents) == pytest.approx(0.4, abs=4 * np.sqrt(0.24 / len(fan_vents)))
+    # The spot and the fans of such a vent have the same apex exactly.
+    sub = truth[truth["vent"].isin(both)]
+    assert (sub.groupby("vent")[["x_px", "y_px"]].nunique() == 1).all().all()
+    # Without the setting, fan vents carry no spot.
+    none = _many_deposits(dataclasses.replace(NOMINAL, spot_with_fans_share=0.0))
+    assert (none.groupby("vent")["kind"].nunique() == 1).all()
+
+
+def test_short_and_faint_broad_fans_occur_at_their_shares():
+    settings = NOMINAL
+    fans = _many_deposits(settings).query("kind == 'fan'")
+    m = len(fans)
+    # In a windy image the other fans are lognormal about 48 px (sigma 0.55), so a few are short too:
+    # P(L < 20) from scipy.stats.norm.
+    rest = 1.0 - settings.short_fan_share - settings.broad_fan_share
+    expected_short = settings.short_fan_share + rest * norm.cdf((np.log(20.0) - np.log(48.0)) / 0.55)
+    tolerance = 4 * np.sqrt(expected_short * (1 - expected_short) / m)
+    assert (fans["length_px"] < 20).mean() == pytest.approx(expected_short, abs=tolerance)
+    assert fans["length_px"].min() >= 10.0
+    # Broad faint fans are the only ones below the ordinary contrast range.
+    broad = fans[fans["contrast"] < settings.fan_contrast[0]]
+    share = settings.broad_fan_share
+    assert len(broad) / m == pytest.approx(share, abs=4 * np.sqrt(share * (1 - share) / m))
+    assert broad["contrast"].between(*settings.broad_fan_contrast).all()
+    assert broad["length_px"].between(*settings.broad_fan_length_px).all()
+    assert broad["spread_deg"].between(*settings.broad_fan_spread_deg).all()
+    assert broad["length_px"].mean() > 2 * fans["length_px"].median()
+
+
+def _immerkaer_sigma(image):
+    """Noise standard deviation by J. Immerkaer's fast estimator (1996; kernel and constant from memory)."""
+    kernel = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], dtype=float)
+    response = ndimage.convolve(image.astype(float), kernel)[1:-1, 1:-1]
+    return np.sqrt(np.pi / 2.0) * np.abs(response).mean() / 6.0
+
+
+def test_shifted_images_have_noise_outside_the_nominal_range():
+    # The estimator recovers white Gaussian noise of known sigma (numpy generator as reference).
+    white = np.random.default_rng(0).normal(0.0, 3.0, (300, 400))
+    assert _immerkaer_sigma(white) == pytest.approx(3.0, rel=0.03)
+    for name, settings in SCENE_PROFILES.items():
+        for seed in range(3):
+            image, _, _, layers = _render_scene((300, 400), np.random.default_rng(seed), scenario="windy",
+                                                wind_deg=None, density=1.0, nodata=False, settings=settings)
+            noise = 255.0 * _immerkaer_sigma(image)
+            assert noise == pytest.approx(layers["noise_dn"], rel=0.08), (name, seed)
+            if name == "shifted":
+                assert noise > NOMINAL.noise_dn[1] * 1.1, seed
+            else:
+                assert noise < SHIFTED.noise_dn[0] * 0.9, seed
+
+
+def _edge_sigma(profile):
+    """Gaussian blur of a step edge: least-squares fit of a blurred step, level + height * Phi((x - x0) / sigma).
+
+    scipy.optimize.curve_fit with scipy.special.ndtr (the normal distribution function) as the edge model.
+    """
+    x = np.arange(profile.size, dtype=float)
+    model = lambda x, level, height, x0, sigma: level + height * ndtr((x - x0) / sigma)  # noqa: E731
+    start = (profile[:5].mean(), np.ptp(profile), profile.size / 2.0, 1.0)
+    (_, _, _, sigma), _ = curve_fit(model, x, profile, p0=start)
+    return abs(sigma)
+
+
+def test_shifted_images_have_blur_outside_the_nominal_range():
+    step = np.where(np.arange(120)[None, :] >= 60, 0.75, 0.45) * np.ones((400, 1))
+    # The measure returns the sigma of a scipy.ndimage Gaussian filter (the method's reference).
+    assert _edge_sigma(ndimage.gaussian_filter1d(step[0], 1.7)) == pytest.approx(1.7, abs=0.03)
+    measured = {}
+    for name, settings in SCENE_PROFILES.items():
+        # A step edge sent through the image formation; rows averaged against the noise.
+        measured[name] = [
+            _edge_sigma(_camera(step.copy(), np.random.default_rng(seed), settings, faint=False)[0].mean(axis=0))
+            for seed in range(6)
+        ]
+    assert max(measured["nominal"]) < NOMINAL.blur_sigma_px[1] + 0.05
+    assert min(measured["nominal"]) > NOMINAL.blur_sigma_px[0] - 0.05
+    assert min(measured["shifted"]) > NOMINAL.blur_sigma_px[1] + 0.15
+    assert max(measured["shifted"]) < SHIFTED.blur_sigma_px[1] + 0.05
+
+
+def test_shifted_tileset_is_deterministic_and_differs_from_nominal(tmp_path):
+    args = dict(n_images=2, tiles_per_image=2, seed=5, tile_shape=(160, 200))
+    a = _digest(synthesize_tileset(tmp_path / "a", settings="shifted", **args))
+    b = _digest(synthesize_tileset(tmp_path / "b", settings=SHIFTED, **args))
+    c = _digest(synthesize_tileset(tmp_path / "c", **args))
+    assert a == b
+    assert a[TILES_FILE] == c[TILES_FILE]  # same ids and metadata: the profile is not in the contract
+    assert all(a[k] != c[k] for k in a if k.startswith("images"))
+
+
+def test_cli_profile_option_writes_the_shifted_set(tmp_path):
+    from training.cli import main
+
+    assert main(["synth", str(tmp_path / "cli"), "--images", "1", "--tiles-per-image", "1", "--seed", "3",
+                 "--profile", "shifted"]) == 0
+    direct = synthesize_tileset(tmp_path / "direct", n_images=1, tiles_per_image=1, seed=3, settings="shifted")
+    assert _digest(tmp_path / "cli") == _digest(direct)
