@@ -68,6 +68,28 @@ def _add_training_commands(commands):
     effort.add_argument("--seed", type=int, default=0)
     effort.set_defaults(func=_effort)
 
+    bench = commands.add_parser("benchmark", help="Build the fixed benchmark, or score a model on it.")
+    bench_commands = bench.add_subparsers(dest="benchmark_command", required=True)
+    build = bench_commands.add_parser("build", help="Render the benchmark's train, held-out, shifted and negative sets.")
+    build.add_argument("out", type=Path)
+    build.add_argument("--seed", type=int, default=7)
+    build.add_argument("--train-images", type=int, default=60)
+    build.add_argument("--heldout-images", type=int, default=40)
+    build.add_argument("--shifted-images", type=int, default=20)
+    build.add_argument("--tiles-per-image", type=int, default=4)
+    build.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
+    build.set_defaults(func=_benchmark_build)
+    run = bench_commands.add_parser("run", help="Score a model on a benchmark; print and write the table.")
+    run.add_argument("model_dir", type=Path)
+    run.add_argument("bench", type=Path)
+    run.add_argument("--out", type=Path, required=True)
+    run.add_argument("--min-score", type=float, default=None)
+    run.add_argument("--workers", type=int, default=2)
+    run.add_argument("--compare", nargs=2, action="append", metavar=("LABEL", "BENCHMARK_JSON"), default=[],
+                     help="Set the model columns of an earlier benchmark.json beside this run's.")
+    run.add_argument("--force", action="store_true")
+    run.set_defaults(func=_benchmark_run)
+
     demo = commands.add_parser("demo", help="Run the whole job on the shipped demo tiles and model.")
     demo.add_argument("--out", type=Path, default=Path("out/demo"))
     demo.add_argument("--tiles", type=Path, default=DEFAULT_DEMO_TILES)
@@ -106,6 +128,21 @@ def _effort(args):
     from .effort import effort_command
 
     effort_command(args)
+
+
+def _benchmark_build(args):
+    from .benchmark import BenchmarkLayout, build_benchmark
+
+    layout = BenchmarkLayout(seed=args.seed, train_images=args.train_images, heldout_images=args.heldout_images,
+                             shifted_images=args.shifted_images, tiles_per_image=args.tiles_per_image)
+    build_benchmark(args.out, layout, force=args.force)
+
+
+def _benchmark_run(args):
+    from .benchmark import run_benchmark
+
+    run_benchmark(args.model_dir, args.bench, args.out, workers=args.workers, min_score=args.min_score,
+                  compare=[tuple(pair) for pair in args.compare], force=args.force)
 
 
 def _demo(args):

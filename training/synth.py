@@ -992,14 +992,14 @@ def _false_marks(negatives, classifications, tile_shape, rng):
 # ----------------------------------------------------------------------------- tile sets
 
 
-def _image_layout(index, rng):
+def _image_layout(index, rng, prefix="SYN"):
     """Scenario, id and acquisition metadata of the ``index``-th (0-based) image."""
     scenario = _IMAGE_SCENARIOS[index % len(_IMAGE_SCENARIOS)]
     region = int(rng.integers(0, len(_REGIONS)))
     faint = _SCENARIO_PARAMS[scenario]["faint"]
     meta = {
         "scenario": scenario,
-        "image_id": f"SYN_{index + 1:04d}_{'ABCD'[region]}",
+        "image_id": f"{prefix}_{index + 1:04d}_{'ABCD'[region]}",
         "region": _REGIONS[region],
         "solar_longitude_deg": round(float(rng.uniform(232.0, 250.0) if faint else rng.uniform(180.0, 232.0)), 1),
         "metres_per_px": round(float(rng.uniform(0.25, 0.5)), 3),
@@ -1010,7 +1010,7 @@ def _image_layout(index, rng):
     return meta
 
 
-def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=None):
+def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=None, prefix="SYN"):
     """Render one image and cut it into tiles.
 
     Returns
@@ -1019,7 +1019,7 @@ def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=Non
     tiles_table, truth_table, consensus_table : DataFrame
     """
     meta_ss, scene_ss, crowd_ss = seed_seq.spawn(3)
-    meta = _image_layout(index, np.random.default_rng(meta_ss))
+    meta = _image_layout(index, np.random.default_rng(meta_ss), prefix)
     height, width = tile_shape
     shape = (height * tiles_per_image, width)
     quiet_rows = None
@@ -1079,7 +1079,8 @@ def _check_int(name, value, minimum):
     return int(value)
 
 
-def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600, 800), force=False, settings=None):
+def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600, 800), force=False, settings=None,
+                       image_prefix="SYN"):
     """Write an invented tile set of synthetic frost scenes with truth and crowd consensus.
 
     Each image is one invented orbital image (ids ``SYN_0001_A``...), rendered
@@ -1108,6 +1109,9 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
         Ranges every image draws from, or a preset name in
         :data:`SCENE_PROFILES`; ``None`` means ``"nominal"``. The files do not
         record it: the caller knows which profile it asked for.
+    image_prefix : str, optional
+        First part of every image id (``<prefix>_0001_A``...), so that tile sets
+        rendered for different purposes never share an image id.
 
     Returns
     -------
@@ -1119,6 +1123,8 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
     DetectorError
         Bad arguments, or ``out`` is not empty and ``force`` is false.
     """
+    if not isinstance(image_prefix, str) or not image_prefix.replace("_", "").isalnum():
+        raise DetectorError(f"image_prefix must be letters, digits or underscores; got {image_prefix!r}.")
     n_images = _check_int("n_images", n_images, 1)
     tiles_per_image = _check_int("tiles_per_image", tiles_per_image, 1)
     seed = _check_int("seed", seed, 0)
@@ -1137,7 +1143,7 @@ def synthesize_tileset(out, *, n_images, tiles_per_image, seed, tile_shape=(600,
         raise DetectorError(f"output folder {str(out)!r} is not empty; use force=True (--force) to replace it.")
 
     parts = [
-        _synthesize_image(i, ss, tiles_per_image, tile_shape, settings)
+        _synthesize_image(i, ss, tiles_per_image, tile_shape, settings, image_prefix)
         for i, ss in enumerate(np.random.SeedSequence(seed).spawn(n_images))
     ]
     tiles_table = pd.concat([p[1] for p in parts], ignore_index=True)
