@@ -28,9 +28,14 @@ from scipy import ndimage
 
 from . import _kernels, _readings
 from .contract import DETECTION_COLUMNS
+from .geometry import direction_deg, unit_vector
 
 __all__ = [
     "AssemblyParams",
+    "HYP_MODES",
+    "HYP_VENTS",
+    "HYP_AXIS_FORWARD",
+    "HYP_AXIS_REVERSE",
     "Candidate",
     "OBJECT_COLUMNS",
     "OBJECT_FEATURE_NAMES",
@@ -78,6 +83,16 @@ _READING_FEATURES = (
     "read_polarity_vote",
     "read_p_fan",
     "read_concentration",
+    # which interpretation of the component the reading belongs to (one-hot; all 0 for the spot)
+    "read_from_modes",
+    "read_from_vents",
+    "read_from_axis",
+    "read_n_siblings",
+    # the dark mass along the reading's direction: a fan widens and fades away from its source
+    "read_widening",
+    "read_fading",
+    "read_apex_dark",
+    "read_axis_agreement",
 )
 #: Features of one reading of a candidate, read by the object classifier, in order.
 OBJECT_FEATURE_NAMES = _COMPONENT_FEATURES + _READING_FEATURES
@@ -96,6 +111,11 @@ class AssemblyParams:
         (channel networks, troughs) before components are formed, px.
     seed_k : float, default=3.0
         Darkness (robust z-score below the local background) a component must reach.
+    broad_seed_k : float, default=4.0
+        A component is also seeded where the map smoothed by ``grow_smooth_px``
+        and renormalised by its own robust spread reaches this: faint, broad
+        deposits in noisy or blurred images rarely reach ``seed_k`` at any single
+        pixel, but their smoothed darkness stands well above its spread (0: off).
     grow_k : float, default=1.5
         Darkness down to which a component grows from its seeds (hysteresis),
         measured on the map smoothed by ``grow_smooth_px`` and renormalised by
@@ -121,6 +141,7 @@ class AssemblyParams:
     background_px: int = 51
     open_px: int = 5
     seed_k: float = 3.0
+    broad_seed_k: float = 4.0
     grow_k: float = 1.5
     grow_smooth_px: float = 2.5
     min_area_px: int = 15
@@ -416,17 +437,155 @@ def _vents(smooth_local, mask_local, ly, lx, params):
     return vx.astype(np.int64), vy.astype(np.int64), peak_map[vy, vx].astype(np.float64)
 
 
-def _fan_reading(row, pixels, has_axis):
-    """A fan reading (contract fields, ``_pixels`` and ``_features``) from a row of
-    :func:`detector._readings.describe_component`."""
-    f = dict(zip(_readings.FAN_FIELDS, (float(v) for v in row)))
-    reading = dict(kind="fan", x_px=f["x_px"], y_px=f["y_px"], direction_deg=f["direction_deg"],
-                   length_px=f["length_px"], spread_deg=f["spread_deg"], _pixels=pixels,
-                   direction_confidence=0.5 * (1.0 + f["vote"]),
-                   axis_deg=f["axis_deg"] if has_axis else f["direction_deg"] % 180.0)
-    reading["_features"] = np.array([1.0, f["length_px"], f["spread_deg"], f["share"], f["vent_dark"],
-                                     f["dark_mean"], f["vote"], f["p_fan"], f["concentration"]], dtype=np.float32)
+#: Interpretations of one component, each a set of fan readings (the spot reading is the last one):
+#: the direction modes of its vents (several fans may share a vent), each vent as one fan, and the
+#: whole component as one fan along its principal axis, running either way.
+HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE = 0, 1, 2, 3
+_HYPOTHESES = (HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE)
+
+
+def _quantile(values, q):
+    """The ``q`` quantile of a 1-D array by the nearest lower rank (one partition)."""
+    k = int(q * (values.size - 1))
+    return float(np.partition(values, k)[k])
+
+
+def _fan_geometry(xs, ys, w, start_x, start_y, direction):
+    """Apex, length, spread and concentration of a fan of pixels (xs, ys) running ``direction`` from a start.
+
+    The apex is pulled back from the start to where the pixels begin along the
+    direction (the first percentile), so a start inside the fan (a darkness
+    peak moved into the fan by smoothing) still gives the source; the length
+    reaches the 97th percentile of the pixels' distances from it, and the spread
+    is the opening of a sector of that radius and the pixels' area (L^2 theta / 2).
+    """
+    u_col, u_row = unit_vector(direction)
+    t = (xs - start_x) * u_col + (ys - start_y) * u_row
+    back = min(_quantile(t, 0.01), 0.0)
+    fx, fy = start_x + back * u_col, start_y + back * u_row
+    dx, dy = xs - fx, ys - fy
+    r = np.hypot(dx, dy)
+    length = max(_quantile(r, 0.97), 3.0)
+    spread = float(np.clip(np.degrees(2.0 * xs.size / length**2), 5.0, 180.0))
+    far = r > max(3.0, 0.25 * float(r.max()))
+    if far.sum() >= 3:
+        phi = np.radians(direction_deg(dx[far], dy[far]))
+        wr = w[far] * r[far]
+        concentration = float(np.hypot((wr * np.sin(phi)).sum(), (wr * np.cos(phi)).sum()) / max(wr.sum(), 1e-9))
+    else:
+        concentration = 1.0
+    return fx, fy, length, spread, concentration
+
+
+def _mass_profile(xs, ys, w, fx, fy, direction, length):
+    """How the dark mass runs along a fan reading: widening, fading and darkness at the apex.
+
+    Returns
+    -------
+    widening : float
+        (far width - near width) / (sum), widths the RMS lateral offsets of the
+        pixels in the far and near thirds of the length; > 0 when the mass
+        widens away from the apex, as a fan does.
+    fading : float
+        (near darkness - far darkness) / (sum); > 0 when the mass is darkest near the apex.
+    apex_dark : float
+        Mean darkness within a sixth of the length (at least 4 px) of the apex over
+        the reading's mean darkness.
+    """
+    u_col, u_row = unit_vector(direction)
+    dx, dy = xs - fx, ys - fy
+    t = dx * u_col + dy * u_row
+    s = -dx * u_row + dy * u_col
+    near, far = t <= length / 3.0, t >= 2.0 * length / 3.0
+
+    def rms(v):
+        return float(np.sqrt(np.mean(v * v))) if v.size else 0.0
+
+    wn, wf = rms(s[near]), rms(s[far])
+    dn = float(w[near].mean()) if near.any() else 0.0
+    df = float(w[far].mean()) if far.any() else 0.0
+    close = np.hypot(dx, dy) <= max(length / 6.0, 4.0)
+    mean_dark = max(float(w.mean()), 1e-6)
+    apex_dark = float(w[close].mean()) / mean_dark if close.any() else 0.0
+    return (wf - wn) / max(wf + wn, 1e-6), (dn - df) / max(dn + df, 1e-6), apex_dark
+
+
+def _reading_context(samples, w32):
+    """Per-component sums the reading features share: the fan mass of the component."""
+    return max(float(np.average(samples[1], weights=w32)), 1e-6)
+
+
+def _describe_fan(hyp, xs, ys, w, samples, mine, fx, fy, direction, length, spread, concentration, vent_dark,
+                  fan_mass, has_axis, n_total):
+    """A fan reading (contract fields, ``_pixels``, ``_hyp`` and ``_features``) of the pixels ``mine``."""
+    pxs, pys, pw = xs[mine], ys[mine], w[mine]
+    d_col, d_row = unit_vector(direction)
+    ws = samples[:, mine]
+    weights = np.maximum(pw, 1e-9)
+    mean = ws @ weights / weights.sum()
+    vote = float(np.clip((mean[3] * d_col + mean[4] * d_row) / fan_mass, -1.0, 1.0))
+    doubled = np.radians(2.0 * direction)
+    norm = max(float(np.hypot(mean[5], mean[6])), 1e-6)
+    axis_agreement = float((mean[5] * np.cos(doubled) + mean[6] * np.sin(doubled)) / norm) if has_axis else 0.0
+    axis = float((0.5 * np.degrees(np.arctan2(mean[6], mean[5]))) % 180.0) if has_axis else direction % 180.0
+    widening, fading, apex_dark = _mass_profile(pxs, pys, pw, fx, fy, direction, length)
+    share = mine.sum() / max(n_total, 1)
+    reading = dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=float(direction % 360.0),
+                   length_px=float(length), spread_deg=float(spread), _pixels=mine, _hyp=hyp,
+                   direction_confidence=0.5 * (1.0 + vote), axis_deg=axis)
+    reading["_base"] = [1.0, length, spread, share, vent_dark, float(pw.mean()), vote, float(mean[1]),
+                        concentration]
+    reading["_shape"] = [widening, fading, apex_dark, axis_agreement]
     return reading
+
+
+def _alternative_fans(xs, ys, w, samples, vents_x, vents_y, vent_dark, smooth_at, fan_mass, has_axis,
+                      min_vent_px, split):
+    """Fan readings of the component under the vent and axis interpretations (see :data:`HYP_VENTS`)."""
+    n = xs.size
+    out = []
+    if split:
+        d2 = (xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2
+        vent_of = np.argmin(d2, axis=1)
+        for k in range(vents_x.size):
+            mine = vent_of == k
+            if mine.sum() < min_vent_px:
+                continue
+            dx, dy = xs[mine] - vents_x[k], ys[mine] - vents_y[k]
+            r = np.hypot(dx, dy)
+            far = r > max(3.0, 0.25 * float(r.max()))
+            if far.sum() < 3:
+                continue
+            phi = np.radians(direction_deg(dx[far], dy[far]))
+            wr = w[mine][far] * r[far]
+            direction = float(np.degrees(np.arctan2((wr * np.sin(phi)).sum(), (wr * np.cos(phi)).sum())) % 360.0)
+            geo = _fan_geometry(xs[mine], ys[mine], w[mine], vents_x[k], vents_y[k], direction)
+            out.append(_describe_fan(HYP_VENTS, xs, ys, w, samples, mine, geo[0], geo[1], direction, *geo[2:],
+                                     float(vent_dark[k]), fan_mass, has_axis, n))
+    if n >= 3:
+        cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
+        cov = np.cov(np.vstack([xs - cx, ys - cy]), aweights=w)
+        _, vecs = np.linalg.eigh(cov)
+        forward = float(direction_deg(vecs[0, 1], vecs[1, 1]))
+        everything = np.ones(n, dtype=bool)
+        for hyp, direction in ((HYP_AXIS_FORWARD, forward), (HYP_AXIS_REVERSE, (forward + 180.0) % 360.0)):
+            geo = _fan_geometry(xs, ys, w, cx, cy, direction)
+            apex_dark = float(smooth_at(geo[0], geo[1]))
+            out.append(_describe_fan(hyp, xs, ys, w, samples, everything, geo[0], geo[1], direction, *geo[2:],
+                                     apex_dark, fan_mass, has_axis, n))
+    return out
+
+
+def _finish_readings(fans):
+    """Feature vectors of a component's fan readings, once every reading is known."""
+    count = {h: sum(1 for f in fans if f["_hyp"] == h) for h in _HYPOTHESES}
+    for f in fans:
+        hyp = f["_hyp"]
+        onehot = [float(hyp == HYP_MODES), float(hyp == HYP_VENTS),
+                  float(hyp in (HYP_AXIS_FORWARD, HYP_AXIS_REVERSE))]
+        f["_features"] = np.array(f.pop("_base") + onehot + [float(count[hyp])] + f.pop("_shape"),
+                                  dtype=np.float32)
+    return fans
 
 
 def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyParams(), axis_maps=None):
@@ -459,10 +618,16 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     # (Gaussian filters equal to scipy.ndimage.gaussian_filter, compiled)
     smooth = np.where(valid, _kernels.gaussian(opened, 1.0), 0.0)
     # components grow where the map smoothed by grow_smooth_px, over its robust spread, exceeds grow_k
-    grow_mask = _above_spread(_kernels.gaussian(opened, params.grow_smooth_px), valid, params.grow_k)
+    grown = _kernels.gaussian(opened, params.grow_smooth_px)
+    grow_mask = _above_spread(grown, valid, params.grow_k)
+    level = smooth
+    if params.broad_seed_k > 0:
+        # seeds from the smoothed map too, rescaled so that broad_seed_k there counts as seed_k
+        broad = _renormalised(grown, valid) * np.float32(params.seed_k / params.broad_seed_k)
+        level = np.maximum(smooth, broad.astype(smooth.dtype))
     # numbered as scipy.ndimage.label numbers them; areas, seeds, boxes and pixels in the same passes
     labels, area, seeded, box, start, pixel_rows, pixel_cols = _kernels.label_components(
-        grow_mask, smooth, smooth.dtype.type(params.seed_k))
+        grow_mask, level, level.dtype.type(params.seed_k))
     if area.size == 0:
         return []
     # A component is kept when it is large enough and holds a seed (its peak reaches seed_k).
@@ -497,7 +662,25 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             xf, yf, lx.astype(np.int64), ly.astype(np.int64), w64, w, samples, vx, vy, vent_dark,
             max(3, params.min_area_px // 2), params.split_min_separation_deg, params.split_min_share,
             _MODE_SMOOTHING)
-        fans = [_fan_reading(row, owner == j, axis_maps is not None) for j, row in enumerate(rows)]
+        has_axis = axis_maps is not None
+        fan_mass = _reading_context(samples, w)
+        fans = []
+        for j, row in enumerate(rows):
+            f = dict(zip(_readings.FAN_FIELDS, (float(v) for v in row)))
+            fans.append(_describe_fan(HYP_MODES, xf, yf, w64, samples, owner == j, f["x_px"], f["y_px"],
+                                      f["direction_deg"], f["length_px"], f["spread_deg"], f["concentration"],
+                                      f["vent_dark"], fan_mass, has_axis, len(xs)))
+        local_smooth = smooth[sl]
+
+        def smooth_at(x, y, _r0=sl[0].start, _c0=sl[1].start, _s=local_smooth):
+            r = min(max(int(round(y)) - _r0, 0), _s.shape[0] - 1)
+            c = min(max(int(round(x)) - _c0, 0), _s.shape[1] - 1)
+            return _s[r, c]
+
+        fans += _alternative_fans(xf, yf, w64, samples, (vx + sl[1].start).astype(float),
+                                  (vy + sl[0].start).astype(float), vent_dark, smooth_at, fan_mass, has_axis,
+                                  max(3, params.min_area_px // 2), split=len(rows) > n_vents)
+        fans = _finish_readings(fans)
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
         ring = _kernels.city_block_ring(local, np.ascontiguousarray(valid[ring_sl]), 5)
@@ -515,8 +698,8 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xf, yf)
         spot = dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
                     semi_minor_px=semi_minor, axis_deg=axis)
-        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0],
-                                     dtype=np.float32)
+        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0]
+                                     + [0.0] * (len(_READING_FEATURES) - 9), dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return out
 
@@ -594,9 +777,15 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
         pos += len(c.fans) + 1
         best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
         fan_fraction = best_fan / max(best_fan + spot_score, 1e-9)
-        if best_fan >= spot_score:
-            for f, score in zip(c.fans, fan_scores):
-                if score >= params.min_score:
+        # One interpretation per component: the one whose kept readings add most score above the threshold.
+        hyps = np.array([f.get("_hyp", HYP_MODES) for f in c.fans], dtype=int)
+        gain = np.maximum(fan_scores - params.min_score, 0.0)
+        utility = {h: float(gain[hyps == h].sum()) for h in np.unique(hyps)}
+        best_hyp = max(utility, key=lambda h: (utility[h], -h)) if utility else None
+        spot_gain = max(spot_score - params.min_score, 0.0)
+        if best_hyp is not None and utility[best_hyp] > 0 and utility[best_hyp] >= spot_gain:
+            for f, score, hyp in zip(c.fans, fan_scores, hyps):
+                if hyp == best_hyp and score >= params.min_score:
                     mine = f["_pixels"]
                     rows.append({**_public(f), "score": float(score), "fan_fraction": fan_fraction,
                                  "tile_id": tile_id})

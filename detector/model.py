@@ -248,6 +248,16 @@ def load_model(folder):
             f"model {str(folder)!r} lists features that differ from this code's "
             f"(missing {missing!r}, unknown {extra!r}): re-export the model with this version of the code."
         )
+    from .assemble import OBJECT_FEATURE_NAMES
+
+    objects = card.get("object_features")
+    if (folder / OBJECTS_ONNX).is_file() and tuple(objects or ()) != OBJECT_FEATURE_NAMES:
+        missing = sorted(set(OBJECT_FEATURE_NAMES) - set(objects or ()))[:5]
+        extra = sorted(set(objects or ()) - set(OBJECT_FEATURE_NAMES))[:5]
+        raise SpecError(
+            f"model {str(folder)!r} scores candidate readings on features that differ from this code's "
+            f"(missing {missing!r}, unknown {extra!r}): re-export the model with this version of the code."
+        )
     index = {name: i for i, name in enumerate(spec.feature_names)}
     try:
         orientation_index = np.array([index[n] for n in card["orientation_features"]], dtype=np.intp)
