@@ -9,6 +9,7 @@ is scored.
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 from joblib import Parallel, delayed
 from tqdm.auto import tqdm
 
@@ -17,9 +18,10 @@ from detector.detect import tile_candidates, tile_maps
 from detector.features import extract_features
 from detector._allocator import reuse_freed_memory
 
-from .scoring import match_objects
+from .dataset import augmented_tile
+from .scoring import candidate_pairs
 
-__all__ = ["CandidateSet", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
+__all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "CONFIDENCE_FEATURES"]
 
 
@@ -56,25 +58,66 @@ class CandidateSet:
                    np.concatenate([p.image_id for p in parts]), np.concatenate([p.error_deg for p in parts]))
 
 
+#: A fan reading teaches "right" only when it also points the consensus fan's way within this angle,
+#: so that of a fan's two readings along one axis the one running from the source is learnt.
+LABEL_MAX_DIRECTION_DEG = 90.0
+
+
 def label_readings(candidates, consensus, tile_id):
     """Label one tile's readings against its consensus features with the evaluation's matching.
+
+    The readings of a component come in interpretations (its vents' direction
+    modes, one fan per vent, one fan along its axis either way, a spot), of
+    which detection keeps one. A reading is right when it is matched in the
+    evaluation's greedy one-to-one matching of its own interpretation's readings
+    to the tile's consensus: so two readings that split one consensus fan are
+    not both right, while each interpretation that would score if chosen is.
+    A fan reading must also point within :data:`LABEL_MAX_DIRECTION_DEG` of its
+    consensus fan, so that of the two readings along one axis the one running
+    from the source is learnt.
 
     Returns
     -------
     label : ndarray of int, one per reading in the order of :func:`detector.assemble.reading_matrix`
     error_deg : ndarray of float
-        Direction error of each matched fan reading (NaN for the others).
+        Direction error of each right fan reading against its consensus fan (NaN for the others).
     """
     readings = candidate_rows(candidates, tile_id)
     label = np.zeros(len(readings), dtype=np.int64)
     error = np.full(len(readings), np.nan)
     if len(readings) == 0 or consensus.empty:
         return label, error
-    pairs = match_objects(readings, consensus.reset_index(drop=True))
-    idx = pairs["det_index"].to_numpy(int)
-    label[idx] = 1
-    fan = (pairs["kind"] == "fan").to_numpy()
-    error[idx[fan]] = pairs["direction_error_deg"].to_numpy(float)[fan]
+    # each reading's component and interpretation, in the order of reading_matrix (the spot reading last: -1)
+    owner = np.array([i for i, c in enumerate(candidates) for _ in range(len(c.fans) + 1)], dtype=np.int64)
+    hyp = np.array([h for c in candidates for h in [f.get("_hyp", 0) for f in c.fans] + [-1]], dtype=np.int64)
+    group = owner * 16 + hyp + 1
+    consensus = consensus.reset_index(drop=True)
+    parts = []
+    for kind in ("fan", "spot"):
+        det = readings[readings["kind"] == kind]
+        cons = consensus[consensus["kind"] == kind]
+        if det.empty or cons.empty:
+            continue
+        pairs = candidate_pairs(det, cons, kind)
+        if kind == "fan":
+            pairs = pairs[pairs["direction_error_deg"] <= LABEL_MAX_DIRECTION_DEG]
+        parts.append(pairs.assign(is_fan=kind == "fan"))
+    if not parts:
+        return label, error
+    pairs = pd.concat(parts, ignore_index=True)
+    pairs["group"] = group[pairs["det_index"].to_numpy(int)]
+    pairs["rank"] = np.round(pairs["distance_px"] / 4.0)
+    pairs = pairs.sort_values(["group", "rank", "direction_error_deg", "distance_px"], kind="stable")
+    taken = set()
+    for g, d, c, e, is_fan in zip(pairs["group"].to_numpy(), pairs["det_index"].to_numpy(int),
+                                  pairs["cons_index"].to_numpy(int), pairs["direction_error_deg"].to_numpy(float),
+                                  pairs["is_fan"].to_numpy(bool)):
+        if label[d] or (g, c) in taken:
+            continue
+        label[d] = 1
+        taken.add((g, c))
+        if is_fan:
+            error[d] = e
     return label, error
 
 
@@ -107,13 +150,13 @@ def rotate_features(features, shape, quarter_turns):
     return out
 
 
-def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0):
+def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0, degrade=False):
     reuse_freed_memory()
     tile = tileset.read_tile(tile_id)
     consensus = tileset.features_of(tile_id)
     if rotation % 4:
         consensus = rotate_features(consensus, tile.shape, rotation)
-        tile = np.ascontiguousarray(np.rot90(tile, -rotation))
+        tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value)
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
@@ -123,7 +166,7 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
-                  rotations=(0,), jobs=None, desc="candidates"):
+                  rotations=(0,), jobs=None, desc="candidates", degrade=False):
     """Labelled candidate readings of some tiles under given patch and polarity predictors.
 
     ``rotations`` (quarter turns clockwise) augments the readings: each tile is
@@ -137,7 +180,7 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     image = tileset.tiles.set_index("tile_id")["image_id"]
     jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
-        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r)
+        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r, degrade)
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )
     return CandidateSet.concat(

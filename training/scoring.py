@@ -20,6 +20,7 @@ from detector.geometry import angular_difference, axial_difference
 
 __all__ = [
     "match_objects",
+    "candidate_pairs",
     "object_metrics",
     "patch_metrics",
     "dice",
@@ -49,8 +50,15 @@ def _require(df, columns, name):
         raise DetectorError(f"{name} lacks column(s) {', '.join(missing)}.")
 
 
-def _candidate_pairs(det, cons, kind, *, fan_min_px, fan_length_frac, spot_min_px):
-    """All detection-consensus pairs of one tile and kind within the match radius."""
+def candidate_pairs(det, cons, kind, *, fan_min_px=12.0, fan_length_frac=0.3, spot_min_px=10.0):
+    """All detection-consensus pairs of one tile and kind within the match radius of :func:`match_objects`.
+
+    Returns
+    -------
+    pairs : DataFrame
+        det_index, cons_index (index labels), distance_px, direction_error_deg
+        (angular for fans, axial for spots).
+    """
     dx = det["x_px"].to_numpy(float)[:, None] - cons["x_px"].to_numpy(float)[None, :]
     dy = det["y_px"].to_numpy(float)[:, None] - cons["y_px"].to_numpy(float)[None, :]
     dist = np.hypot(dx, dy)
@@ -120,7 +128,7 @@ def match_objects(
         det = det_groups.get((tile_id, kind))
         if det is None or kind not in ("fan", "spot"):
             continue
-        cand = _candidate_pairs(
+        cand = candidate_pairs(
             det, cons, kind, fan_min_px=fan_min_px, fan_length_frac=fan_length_frac, spot_min_px=spot_min_px
         )
         if len(cand):
