@@ -12,7 +12,8 @@ from detector.spec import patch_axis_deg
 from detector.labels import rasterise_features
 from detector._allocator import reuse_freed_memory
 
-__all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs"]
+__all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs",
+           "degrade_tile", "augmented_tile", "DEGRADE_RANGES"]
 
 
 @dataclass
@@ -65,7 +66,67 @@ def rotate_labels(masks, quarter_turns):
     return np.ascontiguousarray(fan), np.ascontiguousarray(spot), np.ascontiguousarray(direction)
 
 
-def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
+#: Photometric augmentation of the turned copies of a training tile: extra Gaussian blur (px), added
+#: Gaussian noise (8-bit grey levels) and contrast gain about the tile's median. Ranges of a camera and
+#: season other than the catalog's, so the models do not learn one image quality; drawn per copy.
+DEGRADE_RANGES = {"blur_px": (0.0, 1.5), "noise_dn": (0.0, 3.0), "gain": (0.6, 1.0)}
+
+
+def degrade_tile(tile, rng, *, nodata_value=0, ranges=None):
+    """A copy of a tile as another camera or a later season would show it: blurred, noisier, flatter.
+
+    Parameters
+    ----------
+    tile : ndarray of shape (M, N), uint8 or uint16
+    rng : numpy.random.Generator
+    nodata_value : int or None, default=0
+        Pixels of this value stay no-data and do not enter the blur.
+    ranges : dict, optional
+        ``blur_px``, ``noise_dn``, ``gain`` ranges; default :data:`DEGRADE_RANGES`.
+
+    Returns
+    -------
+    ndarray of the tile's shape and dtype
+        Valid pixels stay >= 1 (never no-data).
+    """
+    from scipy import ndimage
+
+    ranges = DEGRADE_RANGES if ranges is None else ranges
+    tile = np.asarray(tile)
+    top = float(np.iinfo(tile.dtype).max)
+    dn = top / 255.0  # one 8-bit grey level in the tile's units
+    valid = tile != nodata_value if nodata_value is not None else np.ones(tile.shape, bool)
+    image = tile.astype(np.float32)
+    sigma = rng.uniform(*ranges["blur_px"])
+    if sigma > 0.05:
+        weight = ndimage.gaussian_filter(valid.astype(np.float32), sigma)
+        blurred = ndimage.gaussian_filter(np.where(valid, image, 0.0).astype(np.float32), sigma)
+        image = np.divide(blurred, weight, out=image.copy(), where=weight > 1e-3)
+    gain = rng.uniform(*ranges["gain"])
+    centre = float(np.median(image[valid])) if valid.any() else 0.0
+    image = centre + gain * (image - centre)
+    image += rng.normal(0.0, rng.uniform(*ranges["noise_dn"]) * dn, tile.shape).astype(np.float32)
+    out = np.clip(np.round(image), 1.0, top).astype(tile.dtype)
+    out[~valid] = tile[~valid]
+    return out
+
+
+def augmented_tile(tile, tile_id, rotation, *, degrade=True, nodata_value=0):
+    """The tile as a training job sees it: turned by ``rotation`` quarter turns clockwise and, for
+    turned copies when ``degrade``, passed through :func:`degrade_tile` with a seed of its own
+    (the same tile and turn always give the same copy)."""
+    import zlib
+
+    if rotation % 4 == 0:
+        return tile
+    turned = np.ascontiguousarray(np.rot90(tile, -rotation))
+    if not degrade:
+        return turned
+    rng = np.random.default_rng(zlib.crc32(f"{tile_id}/{rotation % 4}".encode()))
+    return degrade_tile(turned, rng, nodata_value=nodata_value)
+
+
+def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15, degrade=False):
     """Features and patch targets of one tile of a tile set.
 
     Parameters
@@ -77,6 +138,8 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
         Quarter turns clockwise (rotation augmentation).
     tau : float, default=0.15
         Coverage a patch needs to count as fan or spot.
+    degrade : bool, default=False
+        Also degrade turned copies (:func:`augmented_tile`).
 
     Returns
     -------
@@ -84,8 +147,7 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15):
     """
     tile = tileset.read_tile(tile_id)
     masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
-    if rotation % 4:
-        tile = np.ascontiguousarray(np.rot90(tile, -rotation))
+    tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value)
     fan, spot, direction = rotate_labels(masks, rotation % 4)
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
@@ -180,7 +242,7 @@ def rotation_jobs(tile_ids, rotations, *, per_tile=None, seed=0):
 
 def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0, neg_ratio=3.0,
                     hard_share=0.5, max_patches=None, workers=1, sample=True, desc="features", jobs=None,
-                    keep_tiles=True):
+                    keep_tiles=True, degrade=False):
     """Extract, label and sample the patches of some tiles.
 
     Parameters
@@ -206,6 +268,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         With ``sample=False``, also return every tile's full TileFeatures.
     jobs : list of (tile_id, quarter_turns), optional
         Explicit extraction jobs (see :func:`rotation_jobs`); overrides ``tile_ids`` x ``rotations``.
+    degrade : bool, default=False
+        Degrade the turned copies photometrically (:func:`degrade_tile`).
 
     Returns
     -------
@@ -221,7 +285,7 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
     # Sampling happens inside the worker so that only kept patches travel back: memory
     # grows with the kept patches, not with the catalog.
     results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
-        delayed(_extract_one)(tileset, tid, spec, r, tau, s, sample, neg_ratio, hard_share)
+        delayed(_extract_one)(tileset, tid, spec, r, tau, s, sample, neg_ratio, hard_share, degrade)
         for (tid, r), s in iterator
     )
     patches = _concat(results)
@@ -233,9 +297,9 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
     return patches, ([tf for tf, _, _ in results] if not sample and keep_tiles else []), summaries
 
 
-def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share):
+def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share, degrade=False):
     reuse_freed_memory()
-    tf = tile_features(tileset, tile_id, spec, rotation=rotation, tau=tau)
+    tf = tile_features(tileset, tile_id, spec, rotation=rotation, tau=tau, degrade=degrade)
     if sample:
         idx, weight = _sample_tile(tf, np.random.default_rng(seed_seq), neg_ratio=neg_ratio, hard_share=hard_share)
         return _slim(tf, idx), np.arange(len(idx)), weight

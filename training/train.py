@@ -74,6 +74,10 @@ class TrainConfig:
         (drawn evenly over the two folds); a few thousand readings suffice, and
         reading candidates costs a second feature extraction.
     neg_ratio : float, default=3.0
+    degrade : bool, default=True
+        Photometric augmentation: the turned copies of fitting tiles are also
+        blurred, made noisier and flatter (:data:`training.dataset.DEGRADE_RANGES`),
+        for the patch, orientation and object models alike.
     max_iter : int, default=300
     learning_rate : float, default=0.1
     max_leaf_nodes : int, default=31
@@ -92,6 +96,7 @@ class TrainConfig:
     all_rotations_below: int = 200
     max_candidate_tiles: int = 300
     neg_ratio: float = 3.0
+    degrade: bool = True
     max_iter: int = 300
     learning_rate: float = 0.1
     max_leaf_nodes: int = 31
@@ -386,7 +391,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
                                               seed=config.seed, neg_ratio=config.neg_ratio,
                                               max_patches=config.max_patches, workers=config.workers,
-                                              desc="fit features")
+                                              desc="fit features", degrade=config.degrade)
     missing = [name for c, name in enumerate(CLASS_NAMES) if not np.any(train.cls == c)]
     if missing:
         raise TileSetError(
@@ -562,7 +567,8 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
             keep = np.sort(rng.choice(len(jobs), size=cap, replace=False))
             jobs = [jobs[i] for i in keep]
         parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
-                                   workers=config.workers, jobs=jobs, desc="out-of-fold candidates"))
+                                   workers=config.workers, jobs=jobs, desc="out-of-fold candidates",
+                                   degrade=config.degrade))
     return CandidateSet.concat(parts)
 
 
