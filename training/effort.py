@@ -1001,6 +1001,8 @@ def _plot_learning_curve(curve, path):
             names = " and ".join(curve["targets"][m]["target"] for m in metrics
                                  if curve["targets"][m]["target_error"] == value)
             ax.axhline(value, color="black", ls="--", lw=1, label=f"target: {names}")
+        # a panel with no finite measurement (no matched fan in a tiny run) still needs x limits to log-scale
+        ax.set_xlim(grid[0], grid[-1])
         ax.set_xscale("log")
         ax.set_xlabel("consensus tiles used for training")
         ax.set_ylabel(ylabel)
