@@ -68,7 +68,7 @@ class BenchmarkLayout:
     tiles_per_image : int, default=4
     """
 
-    def __init__(self, *, seed=7, train_images=60, heldout_images=40, shifted_images=20, tiles_per_image=4):
+    def __init__(self, *, seed=7, train_images=120, heldout_images=40, shifted_images=20, tiles_per_image=4):
         for name, value, low in (("seed", seed, 0), ("train_images", train_images, 3),
                                  ("heldout_images", heldout_images, 1), ("shifted_images", shifted_images, 1),
                                  ("tiles_per_image", tiles_per_image, 1)):
@@ -383,6 +383,7 @@ def run_benchmark(model_dir, bench, out, *, workers=2, min_score=None, compare=N
     from detector.model import load_model
 
     from .evaluate import write_detections_csv
+    from .report import _clean
 
     bench = Path(bench)
     out = Path(out)
@@ -426,20 +427,6 @@ def run_benchmark(model_dir, bench, out, *, workers=2, min_score=None, compare=N
     log(table)
     log(lost)
     return results
-
-
-def _clean(obj):
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, (np.floating, float)):
-        return None if not np.isfinite(obj) else float(obj)
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    return obj
 
 
 #: Rows of the benchmark table: label, keys into a set's method figures, format, target.

@@ -73,7 +73,7 @@ def _add_training_commands(commands):
     build = bench_commands.add_parser("build", help="Render the benchmark's train, held-out, shifted and negative sets.")
     build.add_argument("out", type=Path)
     build.add_argument("--seed", type=int, default=7)
-    build.add_argument("--train-images", type=int, default=60)
+    build.add_argument("--train-images", type=int, default=120)
     build.add_argument("--heldout-images", type=int, default=40)
     build.add_argument("--shifted-images", type=int, default=20)
     build.add_argument("--tiles-per-image", type=int, default=4)
