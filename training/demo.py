@@ -3,6 +3,7 @@
 import time
 from pathlib import Path
 
+from detector.errors import DetectorError
 from detector.tileset import format_summary, load_tileset, summarize_tileset
 
 __all__ = ["run_demo"]
@@ -13,6 +14,25 @@ DEMO_ORIGIN_M = (-260_000.0, 310_000.0)
 
 def _section(title):
     print(f"\n== {title} ==")
+
+
+#: The benchmark results shipped beside a model (written by ``make models``).
+BENCHMARK_FILE = "benchmark.json"
+
+
+def _print_benchmark_headline(model_dir):
+    """The model's benchmark table (held-out, shifted, negatives), when it ships one."""
+    import json
+
+    from .benchmark import benchmark_table
+
+    path = Path(model_dir) / BENCHMARK_FILE
+    if not path.is_file():
+        print(f"(no {BENCHMARK_FILE} beside the model: 'make benchmark' measures it)")
+        return
+    results = json.loads(path.read_text())
+    print(f"benchmark of this model (frostvane benchmark run; {path}):")
+    print(benchmark_table(results))
 
 
 def run_demo(out, *, tiles, model, retrain=False):
@@ -59,17 +79,23 @@ def run_demo(out, *, tiles, model, retrain=False):
     else:
         _section(f"2. use the shipped model {model_dir}")
     card = load_model(model_dir).card
-    holdout = card["training"]["images"]["holdout"]
-    print(f"held-out images (never seen in fitting or calibration): {', '.join(holdout)}")
+    seen = set(card["training"]["images"]["fit"]) | set(card["training"]["images"]["calibration"])
+    unseen = [i for i in tileset.image_ids if i not in seen]
+    if not unseen:
+        raise DetectorError(f"every image of {str(tiles)!r} was used to fit or calibrate {str(model_dir)!r}; "
+                            f"the demo needs unseen images to evaluate on.")
+    print(f"images the model never saw in fitting or calibration: {', '.join(unseen)}")
+    _print_benchmark_headline(model_dir)
 
-    _section("3. evaluate on the held-out images")
-    evaluate_model(model_dir, tiles, out / "report", images=holdout, force=True)
-    print(f"report: {out / 'report' / 'report.md'} (plots beside it)")
+    _section("3. evaluate on the unseen demo images")
+    evaluate_model(model_dir, tiles, out / "report", images=unseen, force=True)
+    print(f"report: {out / 'report' / 'report.md'} (plots beside it; where features are lost: "
+          f"{out / 'report' / 'worst_tiles'})")
 
     _section("4. screen a whole demo image (a georeferenced GeoTIFF mosaic of its tiles)")
     from detector.screen import screen
 
-    image_id = holdout[0]
+    image_id = unseen[0]
     mpp = float(tileset.tiles.loc[tileset.tiles["image_id"] == image_id, "metres_per_px"].iloc[0])
     mpp = mpp if mpp == mpp else 0.5
     transform = Affine(mpp, 0.0, DEMO_ORIGIN_M[0], 0.0, -mpp, DEMO_ORIGIN_M[1])
