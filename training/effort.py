@@ -1009,7 +1009,9 @@ def _plot_learning_curve(curve, path):
         ax.set_ylim(bottom=0)
         ax.grid(True, which="both", alpha=0.3)
         ax.legend(fontsize=7)
-    fig.suptitle(f"Learning curve (held out: {', '.join(curve['holdout_images'])})", fontsize=10)
+    held = curve["holdout_images"]
+    named = ", ".join(held) if len(held) <= 4 else f"{len(held)} images, {', '.join(held[:3])}, ..."
+    fig.suptitle(f"Learning curve (held out: {named})", fontsize=10)
     fig.tight_layout()
     with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=110, format="png")
