@@ -704,12 +704,16 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     return out
 
 
+_FEATURE_DECIMALS = 4
+
+
 def reading_matrix(candidates):
     """Feature rows of every reading (each fan reading, then the spot reading, per candidate).
 
     Returns
     -------
     F : ndarray of shape (n_readings, len(OBJECT_FEATURE_NAMES)), float32
+        Rounded to 4 decimals.
     owner : ndarray of shape (n_readings,), int
         Index of the candidate each reading belongs to.
     which : ndarray of shape (n_readings,), int
@@ -725,6 +729,9 @@ def reading_matrix(candidates):
         owner.append(i)
         which.append(-1)
     F = np.array(rows, dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
+    # On a grid of 1e-4, two different values are many float32 steps apart, so a boosted tree's split
+    # between them (a float64 midpoint) still separates them once ONNX rounds it to float32.
+    F = np.round(F, _FEATURE_DECIMALS)
     return F, np.array(owner, dtype=int), np.array(which, dtype=int)
 
 

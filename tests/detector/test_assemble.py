@@ -409,7 +409,7 @@ def test_candidate_rows_follow_reading_matrix_order(two_candidates):
         assert rows.loc[i, "kind"] == reading["kind"]
         assert rows.loc[i, "x_px"] == pytest.approx(reading["x_px"])
         assert rows.loc[i, "direction_deg"] == pytest.approx(reading["direction_deg"])
-        np.testing.assert_array_equal(F[i, -len(reading["_features"]):], reading["_features"])
+        np.testing.assert_array_equal(F[i, -len(reading["_features"]):], np.round(reading["_features"], 4))
     assert (rows["tile_id"] == "t1").all()
 
 
