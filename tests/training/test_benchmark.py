@@ -172,3 +172,20 @@ def test_table_sets_compared_runs_beside_the_model():
     assert "before (in-dist)" in header and "threshold (shifted)" in header
     assert "0.30 (0.60 / 0.40)" in table and "0.50 (0.60 / 0.40)" in table
     assert "2.0 %" in table
+
+
+@pytest.mark.parametrize("name", NEGATIVE_TEXTURES)
+def test_shipped_model_leaves_real_textures_to_people_or_quiet(name):
+    # Real deposit-free textures (scikit-image's sample images, an outside dataset): the shipped model
+    # either flags the tile unfamiliar (so screening leaves it to people) or detects nothing on it.
+    from pathlib import Path
+
+    from detector.detect import detect_tile
+    from detector.model import load_model
+    from detector.unfamiliar import unfamiliarity_score
+
+    model = load_model(Path(__file__).resolve().parents[2] / "models" / "demo")
+    tile = np.maximum(getattr(skimage.data, name)(), 1).astype(np.uint8)
+    result = detect_tile(model, tile)
+    flagged = unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0] > 1.0
+    assert flagged or len(result.detections) == 0
