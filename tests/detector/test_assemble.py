@@ -615,3 +615,24 @@ def test_reading_features_have_the_named_length():
     hyp_cols = [OBJECT_FEATURE_NAMES.index(n) for n in ("read_from_modes", "read_from_vents", "read_from_axis")]
     # every fan reading belongs to exactly one interpretation; the spot reading to none
     np.testing.assert_array_equal(F[:, hyp_cols].sum(axis=1), (which >= 0).astype(np.float32))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
+    # A 60 px fan of 50 deg darkening blurred frost by about three times its pixel noise: no single pixel
+    # reaches seed_k, but its smoothed darkness stands far above the smoothed map's spread.
+    shape = (300, 300)
+    row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, spread_deg=50.0)
+    cover = rasterise_features(pd.DataFrame([row]), shape).fan_cover
+    rng = np.random.default_rng(seed)
+    image = ndimage.gaussian_filter(0.6 + 0.02 * rng.standard_normal(shape) - 0.016 * cover, 1.0)
+    valid = np.ones(shape, bool)
+    dark = local_darkness(image.astype(np.float32), valid)
+    class_maps, polarity_maps = _uniform_maps(shape)
+
+    def covered(params):
+        found = find_candidates(dark, valid, class_maps, polarity_maps, params=params)
+        return max((cover[c.ys, c.xs].sum() for c in found), default=0)
+
+    assert covered(AssemblyParams(broad_seed_k=0.0)) == 0
+    assert covered(AssemblyParams()) > 0.6 * cover.sum()
