@@ -21,7 +21,7 @@ _DEG = 180.0 / np.pi
 _RAD = np.pi / 180.0
 
 #: Columns of the fan rows returned by :func:`describe_component`.
-FAN_FIELDS = ("x_px", "y_px", "direction_deg", "length_px", "spread_deg", "concentration", "vent_dark",
+FAN_FIELDS = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "concentration", "vent_dark",
               "share", "dark_mean", "vote", "p_fan", "axis_deg")
 
 

@@ -76,7 +76,7 @@ _COMPONENT_FEATURES = (
 _READING_FEATURES = (
     "read_is_fan",
     "read_length_px",
-    "read_spread_deg",
+    "read_opening_deg",
     "read_share",
     "read_vent_dark",
     "read_dark_mean",
@@ -531,7 +531,7 @@ def _describe_fan(hyp, xs, ys, w, samples, mine, fx, fy, direction, length, spre
     widening, fading, apex_dark = _mass_profile(pxs, pys, pw, fx, fy, direction, length)
     share = mine.sum() / max(n_total, 1)
     reading = dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=float(direction % 360.0),
-                   length_px=float(length), spread_deg=float(spread), _pixels=mine, _hyp=hyp,
+                   length_px=float(length), opening_deg=float(spread), _pixels=mine, _hyp=hyp,
                    direction_confidence=0.5 * (1.0 + vote), axis_deg=axis)
     reading["_base"] = [1.0, length, spread, share, vent_dark, float(pw.mean()), vote, float(mean[1]),
                         concentration]
@@ -668,7 +668,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         for j, row in enumerate(rows):
             f = dict(zip(_readings.FAN_FIELDS, (float(v) for v in row)))
             fans.append(_describe_fan(HYP_MODES, xf, yf, w64, samples, owner == j, f["x_px"], f["y_px"],
-                                      f["direction_deg"], f["length_px"], f["spread_deg"], f["concentration"],
+                                      f["direction_deg"], f["length_px"], f["opening_deg"], f["concentration"],
                                       f["vent_dark"], fan_mass, has_axis, len(xs)))
         local_smooth = smooth[sl]
 
@@ -767,7 +767,7 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
     -------
     objects : DataFrame
         Columns :data:`OBJECT_COLUMNS`; geometry in tile px, directions in
-        degrees clockwise from image up; ``votes`` is empty; ``fan_fraction`` is
+        degrees clockwise from image up; ``votes`` is empty; ``fan_vote_share`` is
         the best fan reading's share of the fan and spot scores.
     pixels : list of (ys, xs) int arrays
         The pixels of each object, in the same order.
@@ -783,7 +783,7 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
                 f["direction_confidence"] = float(conf)
         pos += len(c.fans) + 1
         best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
-        fan_fraction = best_fan / max(best_fan + spot_score, 1e-9)
+        fan_vote_share = best_fan / max(best_fan + spot_score, 1e-9)
         # One interpretation per component: the one whose kept readings add most score above the threshold.
         hyps = np.array([f.get("_hyp", HYP_MODES) for f in c.fans], dtype=int)
         gain = np.maximum(fan_scores - params.min_score, 0.0)
@@ -794,12 +794,12 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
             for f, score, hyp in zip(c.fans, fan_scores, hyps):
                 if hyp == best_hyp and score >= params.min_score:
                     mine = f["_pixels"]
-                    rows.append({**_public(f), "score": float(score), "fan_fraction": fan_fraction,
+                    rows.append({**_public(f), "score": float(score), "fan_vote_share": fan_vote_share,
                                  "tile_id": tile_id})
                     pixels.append((c.ys[mine], c.xs[mine]))
         elif spot_score >= params.min_score:
             rows.append({**_public(c.spot), "direction_confidence": np.nan, "score": spot_score,
-                         "fan_fraction": fan_fraction, "tile_id": tile_id})
+                         "fan_vote_share": fan_vote_share, "tile_id": tile_id})
             pixels.append((c.ys, c.xs))
     frame = pd.DataFrame(rows, columns=OBJECT_COLUMNS)
     frame["votes"] = np.nan

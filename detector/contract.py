@@ -28,17 +28,17 @@ CONSENSUS_REQUIRED = (
     "y_px",
     "direction_deg",
     "length_px",
-    "spread_deg",
+    "opening_deg",
     "semi_major_px",
     "semi_minor_px",
     "votes",
 )
-CONSENSUS_OPTIONAL = ("fan_fraction",)
+CONSENSUS_OPTIONAL = ("fan_vote_share",)
 CONSENSUS_COLUMNS = CONSENSUS_REQUIRED + CONSENSUS_OPTIONAL
 
 #: Geometry columns that must be filled, per kind; the others of a row stay empty.
 KIND_FIELDS = {
-    "fan": ("x_px", "y_px", "direction_deg", "length_px", "spread_deg"),
+    "fan": ("x_px", "y_px", "direction_deg", "length_px", "opening_deg"),
     "spot": ("x_px", "y_px", "direction_deg", "semi_major_px", "semi_minor_px"),
 }
 

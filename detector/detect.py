@@ -119,7 +119,7 @@ def tile_direction_stats(direction_deg, weights):
 
     Returns
     -------
-    mean_deg, spread_deg : float
+    mean_deg, scatter_deg : float
         :func:`detector.circstats.robust_circular_mean` and
         :func:`detector.circstats.circular_std` (weighted), degrees; NaN
         without fans or weight.

@@ -66,7 +66,7 @@ class PatchTargets:
     ----------
     label : ndarray of int8, shape (n_patches,)
         0 none, 1 fan, 2 spot.
-    fan_fraction, spot_fraction : ndarray of float64
+    fan_cover_share, spot_cover_share : ndarray of float64
         Share of the window's pixels covered by fans / spots.
     fan_direction_deg : ndarray of float64
         Circular mean fan direction (degrees clockwise from image up) over the
@@ -74,8 +74,8 @@ class PatchTargets:
     """
 
     label: np.ndarray
-    fan_fraction: np.ndarray
-    spot_fraction: np.ndarray
+    fan_cover_share: np.ndarray
+    spot_cover_share: np.ndarray
     fan_direction_deg: np.ndarray
 
 
@@ -463,8 +463,8 @@ def patch_targets(grid, fan_cover, spot_cover, fan_direction, *, tau=0.15):
     Returns
     -------
     PatchTargets
-        ``label`` is 1 (fan) when ``fan_fraction >= tau``, 2 (spot) when
-        ``spot_fraction >= tau``; when both hold the larger share wins and an
+        ``label`` is 1 (fan) when ``fan_cover_share >= tau``, 2 (spot) when
+        ``spot_cover_share >= tau``; when both hold the larger share wins and an
         exact tie goes to fan (the rarer class, and the one with a direction).
         ``fan_direction_deg`` is the circular mean of the direction over the
         window's fan pixels (each pixel weighs its coverage, 1).

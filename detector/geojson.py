@@ -42,7 +42,7 @@ from .labels import ellipse_polygon, sector_polygon
 __all__ = ["detections_to_geojson", "write_geojson", "write_geojson_chunks", "ring_signed_area"]
 
 _BASE_COLUMNS = ("kind", "x_px", "y_px", "direction_deg")
-_KIND_COLUMNS = {"fan": ("length_px", "spread_deg"), "spot": ("semi_major_px", "semi_minor_px")}
+_KIND_COLUMNS = {"fan": ("length_px", "opening_deg"), "spot": ("semi_major_px", "semi_minor_px")}
 _GEOMETRY = _BASE_COLUMNS[1:] + _KIND_COLUMNS["fan"] + _KIND_COLUMNS["spot"]
 
 
@@ -119,7 +119,7 @@ def detections_to_geojson(detections_df, *, georef=None, n_arc=32, n_ellipse=48)
     detections_df : DataFrame
         One row per detection with ``kind``, ``x_px``, ``y_px`` (image px of
         the fan apex / spot centre), ``direction_deg`` (degrees clockwise from
-        image up), ``length_px`` and ``spread_deg`` (full opening, degrees) for
+        image up), ``length_px`` and ``opening_deg`` (full opening, degrees) for
         fans, ``semi_major_px`` and ``semi_minor_px`` for spots; any further
         columns (``tile_id``, ``score``, ...) are copied to the properties.
     georef : detector.geo.Georeferencer, optional
@@ -139,7 +139,7 @@ def detections_to_geojson(detections_df, *, georef=None, n_arc=32, n_ellipse=48)
     num = {c: pd.to_numeric(df[c], errors="coerce").to_numpy(dtype=float) for c in _GEOMETRY if c in df.columns}
     rings = [
         sector_polygon(num["x_px"][i], num["y_px"][i], num["direction_deg"][i], num["length_px"][i],
-                       num["spread_deg"][i], n=n_arc)
+                       num["opening_deg"][i], n=n_arc)
         if kinds[i] == "fan"
         else ellipse_polygon(num["x_px"][i], num["y_px"][i], num["direction_deg"][i], num["semi_major_px"][i],
                              num["semi_minor_px"][i], n=n_ellipse)

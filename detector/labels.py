@@ -1,7 +1,7 @@
 """Rasterise consensus features into per-pixel label masks, and their outlines as polygons.
 
 A fan is a circular sector with its apex at ``(x_px, y_px)``, radius
-``length_px`` and full opening ``spread_deg`` centred on ``direction_deg``. A
+``length_px`` and full opening ``opening_deg`` centred on ``direction_deg``. A
 spot is an ellipse centred on ``(x_px, y_px)`` with its semi-major axis
 ``semi_major_px`` along ``direction_deg``. Coordinates are px with the origin at
 the centre of the top-left pixel, x to the right and y down; directions are
@@ -161,7 +161,7 @@ def rasterise_features(features_df, shape):
     for i, kind in enumerate(kinds):
         x, y, direction = g["x_px"][i], g["y_px"][i], g["direction_deg"][i]
         if kind == "fan":
-            length, spread = g["length_px"][i], g["spread_deg"][i]
+            length, spread = g["length_px"][i], g["opening_deg"][i]
             win = _window(x, y, length, rows, cols)
             if win is None:
                 continue
@@ -193,7 +193,7 @@ def rasterise_features(features_df, shape):
     return LabelMasks(label=label, fan_cover=fan_cover, spot_cover=spot_cover, fan_direction=fan_direction)
 
 
-def sector_polygon(x, y, direction_deg, length_px, spread_deg, *, n=32):
+def sector_polygon(x, y, direction_deg, length_px, opening_deg, *, n=32):
     """Outline of a fan: apex followed by ``n`` points along its arc.
 
     Parameters
@@ -204,7 +204,7 @@ def sector_polygon(x, y, direction_deg, length_px, spread_deg, *, n=32):
         Axis of the sector, degrees clockwise from image up.
     length_px : float
         Radius, px.
-    spread_deg : float
+    opening_deg : float
         Full opening angle, degrees.
     n : int, optional
         Vertices on the arc (>= 2).
@@ -217,7 +217,7 @@ def sector_polygon(x, y, direction_deg, length_px, spread_deg, *, n=32):
     """
     if n < 2:
         raise SpecError(f"n {n!r} must be at least 2 arc vertices.")
-    angles = direction_deg + np.linspace(-spread_deg / 2.0, spread_deg / 2.0, int(n))
+    angles = direction_deg + np.linspace(-opening_deg / 2.0, opening_deg / 2.0, int(n))
     d_col, d_row = unit_vector(angles)
     arc = np.column_stack([x + length_px * d_col, y + length_px * d_row])
     return np.vstack([[x, y], arc])

@@ -65,13 +65,13 @@ def draw_features(ax, features_df, *, color_by_direction=True, linewidth=1.2, al
     direction = features_df["direction_deg"].to_numpy(dtype=float)
     col = {
         c: features_df[c].to_numpy(dtype=float) if c in features_df.columns else np.full(n, np.nan)
-        for c in ("length_px", "spread_deg", "semi_major_px", "semi_minor_px")
+        for c in ("length_px", "opening_deg", "semi_major_px", "semi_minor_px")
     }
     fan_colors = _fan_colors(direction, color_by_direction)
     patches, outlines, colors = [], [], []
     for i, kind in enumerate(kinds):
         if kind == "fan":
-            xy = sector_polygon(x[i], y[i], direction[i], col["length_px"][i], col["spread_deg"][i])
+            xy = sector_polygon(x[i], y[i], direction[i], col["length_px"][i], col["opening_deg"][i])
             color = fan_colors[i]
         elif kind == "spot":
             xy = ellipse_polygon(x[i], y[i], direction[i], col["semi_major_px"][i], col["semi_minor_px"][i])

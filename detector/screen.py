@@ -91,7 +91,7 @@ TILE_COLUMNS = (
     "spot_cover",
     "n_fans",
     "mean_direction_deg",
-    "direction_spread_deg",
+    "direction_scatter_deg",
     "unfamiliarity",
     "route",
     "n_spots",
@@ -340,7 +340,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
     row = {
         "tile_id": task.tile_id, "image": task.image, "col0": task.col0, "row0": task.row0,
         "width": task.width, "height": task.height, "p_deposit": np.nan, "fan_cover": np.nan,
-        "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_spread_deg": np.nan,
+        "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
@@ -410,7 +410,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         n_fans=int(is_fan.sum()),
         n_spots=int((~is_fan).sum()),
         mean_direction_deg=mean_dir,
-        direction_spread_deg=spread,
+        direction_scatter_deg=spread,
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
     )
     entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
@@ -993,7 +993,7 @@ class ScreenSummary:
     workers : int
     per_image : DataFrame
         ``image``, ``tiles``, ``fans``, ``spots``, ``covered_percent``,
-        ``dominant_direction_deg``, ``direction_spread_deg`` and, when
+        ``dominant_direction_deg``, ``direction_scatter_deg`` and, when
         georeferenced, ``dominant_azimuth_deg``.
     """
 
@@ -1027,7 +1027,7 @@ class ScreenSummary:
         lines.append(f"{'image':<{width}}  tiles   fans  spots  cover%  dominant direction (spread)")
         for rec in self.per_image.head(max_images).itertuples(index=False):
             if np.isfinite(rec.dominant_direction_deg):
-                d = f"{rec.dominant_direction_deg:6.1f} deg from up ({rec.direction_spread_deg:.0f})"
+                d = f"{rec.dominant_direction_deg:6.1f} deg from up ({rec.direction_scatter_deg:.0f})"
                 az = getattr(rec, "dominant_azimuth_deg", np.nan)
                 if np.isfinite(az):
                     d += f", azimuth {az:.1f} deg"
@@ -1055,7 +1055,7 @@ def _per_image(tiles, detections):
             "image": str(name), "tiles": len(group), "fans": len(fans),
             "spots": int(((detections["image"] == name) & (detections["kind"] == "spot")).sum()),
             "covered_percent": 100.0 * cover / area if area else 0.0,
-            "dominant_direction_deg": mean, "direction_spread_deg": spread,
+            "dominant_direction_deg": mean, "direction_scatter_deg": spread,
         }
         if georef:
             rec["dominant_azimuth_deg"], _ = tile_direction_stats(fans["azimuth_deg"].to_numpy(dtype=float), w)

@@ -38,7 +38,7 @@ _IMAGE_SUFFIXES = (".png", ".tif", ".tiff")
 _TILES_NUMERIC = ("solar_longitude_deg", "classifications", "col0", "row0", "metres_per_px")
 _TILES_TEXT = ("region",)
 _SIZE_COLUMNS = ("width", "height")
-_GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "spread_deg", "semi_major_px", "semi_minor_px")
+_GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "semi_major_px", "semi_minor_px")
 _CONSENSUS_NUMERIC = _GEOMETRY + ("votes",) + CONSENSUS_OPTIONAL
 
 
@@ -59,7 +59,7 @@ class TileSet:
         One row per consensus feature with at least ``min_votes`` votes:
         ``tile_id``, ``kind`` (str), geometry columns (float, px or degrees
         clockwise from image up, NaN where unused), ``votes`` (int) and
-        ``fan_fraction`` (float, NaN when absent).
+        ``fan_vote_share`` (float, NaN when absent).
     n_dropped_weak : int
         Features dropped because ``votes < min_votes``.
     min_votes : int
@@ -335,8 +335,8 @@ def _check_consensus(consensus, tiles, problems):
 
     v = out["direction_deg"]
     _check(problems, name, v, (v < 0) | (v >= 360), "direction_deg", "is outside [0, 360)")
-    v = out["spread_deg"]
-    _check(problems, name, v, (v <= 0) | (v > 180), "spread_deg", "is outside (0, 180]")
+    v = out["opening_deg"]
+    _check(problems, name, v, (v <= 0) | (v > 180), "opening_deg", "is outside (0, 180]")
     for column in ("length_px", "semi_major_px", "semi_minor_px"):
         v = out[column]
         _check(problems, name, v, v <= 0, column, "is not positive")
@@ -349,8 +349,8 @@ def _check_consensus(consensus, tiles, problems):
     v = out["votes"]
     _check(problems, name, v, v < 1, "votes", "is below 1")
     _check(problems, name, v, (v >= 1) & ~_whole(v), "votes", "is not a whole number")
-    v = out["fan_fraction"]
-    _check(problems, name, v, (v < 0) | (v > 1), "fan_fraction", "is outside [0, 1]")
+    v = out["fan_vote_share"]
+    _check(problems, name, v, (v < 0) | (v > 1), "fan_vote_share", "is outside [0, 1]")
 
     if tiles is not None:
         first = tiles.drop_duplicates("tile_id").set_index("tile_id")

@@ -223,7 +223,7 @@ def _read_region(xs, ys, dark, min_fan_length_px, max_fan_roundness):
     u = evecs[:, 1]
     along = (xs - cx) * u[0] + (ys - cy) * u[1]
     row = dict.fromkeys(CONSENSUS_COLUMNS, np.nan)
-    row.update(votes=np.nan, fan_fraction=np.nan, score=1.0, direction_confidence=np.nan)
+    row.update(votes=np.nan, fan_vote_share=np.nan, score=1.0, direction_confidence=np.nan)
     if major >= min_fan_length_px and minor < max_fan_roundness * major:
         # Fans are darkest at their source: the darker half of the major axis holds the apex.
         ahead, behind = dark[along > 0], dark[along < 0]
@@ -232,7 +232,7 @@ def _read_region(xs, ys, dark, min_fan_length_px, max_fan_roundness):
         apex_x, apex_y = cx + sign * extent * u[0], cy + sign * extent * u[1]
         length = along.max() - along.min()
         row.update(kind="fan", x_px=apex_x, y_px=apex_y, direction_deg=float(direction_deg(-sign * u[0], -sign * u[1])),
-                   length_px=max(length, 1.0), spread_deg=float(np.degrees(2.0 * np.arctan2(minor / 2.0, max(length, 1.0)))))
+                   length_px=max(length, 1.0), opening_deg=float(np.degrees(2.0 * np.arctan2(minor / 2.0, max(length, 1.0)))))
     else:
         row.update(kind="spot", x_px=cx, y_px=cy, direction_deg=float(direction_deg(u[0], u[1]) % 180.0),
                    semi_major_px=max(major / 2.0, 1.0), semi_minor_px=max(minor / 2.0, 0.5))

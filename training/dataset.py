@@ -29,7 +29,7 @@ class TileFeatures:
     grid : PatchGrid
     cls : ndarray of shape (n_patches,), int8
         0 none, 1 fan, 2 spot.
-    fan_fraction, spot_fraction : ndarray of shape (n_patches,)
+    fan_cover_share, spot_cover_share : ndarray of shape (n_patches,)
     fan_direction_deg : ndarray of shape (n_patches,)
         Coverage-weighted circular mean consensus fan direction (NaN off fans).
     axis_deg : ndarray of shape (n_patches,)
@@ -46,8 +46,8 @@ class TileFeatures:
     X: np.ndarray
     grid: object
     cls: np.ndarray
-    fan_fraction: np.ndarray
-    spot_fraction: np.ndarray
+    fan_cover_share: np.ndarray
+    spot_cover_share: np.ndarray
     fan_direction_deg: np.ndarray
     axis_deg: np.ndarray
     patch_darkness: np.ndarray
@@ -160,8 +160,8 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15, degrade=False
         X=X,
         grid=grid,
         cls=np.asarray(targets.label, dtype=np.int8),
-        fan_fraction=np.asarray(targets.fan_fraction, dtype=np.float32),
-        spot_fraction=np.asarray(targets.spot_fraction, dtype=np.float32),
+        fan_cover_share=np.asarray(targets.fan_cover_share, dtype=np.float32),
+        spot_cover_share=np.asarray(targets.spot_cover_share, dtype=np.float32),
         fan_direction_deg=np.asarray(targets.fan_direction_deg, dtype=np.float32),
         axis_deg=np.asarray(patch_axis_deg(X, spec), dtype=np.float32),
         patch_darkness=X[:, spec.feature_names.index("int_dark")].astype(np.float32),
@@ -177,7 +177,7 @@ class PatchSet:
     ----------
     X : ndarray of shape (n, n_features), float32
     cls : ndarray of shape (n,), int8
-    fan_direction_deg, axis_deg, fan_fraction : ndarray of shape (n,)
+    fan_direction_deg, axis_deg, fan_cover_share : ndarray of shape (n,)
     image_id, tile_id : ndarray of shape (n,), object
     weight : ndarray of shape (n,)
         Inverse sampling rate of each patch, so weighted statistics match the full tile set.
@@ -187,7 +187,7 @@ class PatchSet:
     cls: np.ndarray
     fan_direction_deg: np.ndarray
     axis_deg: np.ndarray
-    fan_fraction: np.ndarray
+    fan_cover_share: np.ndarray
     image_id: np.ndarray
     tile_id: np.ndarray
     weight: np.ndarray
@@ -205,7 +205,7 @@ def _sample_tile(tf, rng, *, neg_ratio, hard_share):
         return np.concatenate([pos, neg]), np.ones(len(pos) + len(neg))
     # Hard negatives first: background touching deposits, then the darkest background
     # (channel networks, dark terrain); the rest drawn at random.
-    touching = (tf.fan_fraction[neg] + tf.spot_fraction[neg]) > 0
+    touching = (tf.fan_cover_share[neg] + tf.spot_cover_share[neg]) > 0
     order = np.lexsort((-tf.patch_darkness[neg], ~touching))
     n_hard = int(hard_share * n_keep)
     hard = neg[order[:n_hard]]
@@ -309,8 +309,8 @@ def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ra
 
 def _slim(tf, idx):
     """A TileFeatures holding only the sampled patches (grid dropped)."""
-    return TileFeatures(tf.tile_id, tf.image_id, tf.rotation, tf.X[idx], None, tf.cls[idx], tf.fan_fraction[idx],
-                        tf.spot_fraction[idx], tf.fan_direction_deg[idx], tf.axis_deg[idx], tf.patch_darkness[idx],
+    return TileFeatures(tf.tile_id, tf.image_id, tf.rotation, tf.X[idx], None, tf.cls[idx], tf.fan_cover_share[idx],
+                        tf.spot_cover_share[idx], tf.fan_direction_deg[idx], tf.axis_deg[idx], tf.patch_darkness[idx],
                         tf.summary)
 
 
@@ -325,7 +325,7 @@ def _concat(parts):
         cls=np.concatenate([tf.cls[idx] for tf, idx, _ in parts]),
         fan_direction_deg=np.concatenate([tf.fan_direction_deg[idx] for tf, idx, _ in parts]),
         axis_deg=np.concatenate([tf.axis_deg[idx] for tf, idx, _ in parts]),
-        fan_fraction=np.concatenate([tf.fan_fraction[idx] for tf, idx, _ in parts]),
+        fan_cover_share=np.concatenate([tf.fan_cover_share[idx] for tf, idx, _ in parts]),
         image_id=np.concatenate([np.full(len(idx), tf.image_id, dtype=object) for tf, idx, _ in parts]),
         tile_id=np.concatenate([np.full(len(idx), tf.tile_id, dtype=object) for tf, idx, _ in parts]),
         weight=np.concatenate([w for _, _, w in parts]),
@@ -348,5 +348,5 @@ def _cap(cls, max_patches, rng):
 
 
 def _take(p, idx):
-    return PatchSet(p.X[idx], p.cls[idx], p.fan_direction_deg[idx], p.axis_deg[idx], p.fan_fraction[idx],
+    return PatchSet(p.X[idx], p.cls[idx], p.fan_direction_deg[idx], p.axis_deg[idx], p.fan_cover_share[idx],
                     p.image_id[idx], p.tile_id[idx], p.weight[idx])

@@ -45,7 +45,7 @@ DETECTION_OUTCOMES = ("true", "duplicate", "on_other_kind", "misplaced", "backgr
 #: Direction quality of a matched consensus fan.
 DIRECTION_QUALITIES = ("ok", "direction_off", "flipped", "unknown")
 
-_GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "spread_deg", "semi_major_px", "semi_minor_px")
+_GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "semi_major_px", "semi_minor_px")
 _EDGE_COLUMNS = ["tile_id", "det_index", "cons_index", "overlap_px", "distance_px", "within_radius"]
 
 
@@ -73,7 +73,7 @@ def _footprint_pixels(frame, rows, cols):
         anchor = 0 <= r < rows and 0 <= c < cols
         d = g["direction_deg"][i]
         if kind == "fan":
-            length, spread = g["length_px"][i], g["spread_deg"][i]
+            length, spread = g["length_px"][i], g["opening_deg"][i]
             ok = np.isfinite([d, length, spread]).all() and length > 0
             win = _window(x, y, length, rows, cols) if ok else None
             mask_of = (lambda dx, dy: _sector_mask(dx, dy, d, length, spread)) if ok else None
@@ -124,7 +124,7 @@ def footprint_overlaps(detections, consensus, shapes, *, fan_min_px=12.0, fan_le
     ----------
     detections, consensus : DataFrame
         Contract tables with tile_id, kind and the geometry columns (x_px,
-        y_px, direction_deg, length_px, spread_deg, semi_major_px,
+        y_px, direction_deg, length_px, opening_deg, semi_major_px,
         semi_minor_px); unique indexes.
     shapes : mapping
         tile_id -> (rows, cols) px.
@@ -375,7 +375,7 @@ def error_breakdown(
     detections : DataFrame
         Detection contract rows: tile_id, kind and the geometry columns of
         the consensus contract (x_px, y_px, direction_deg, length_px,
-        spread_deg, semi_major_px, semi_minor_px). Unique index.
+        opening_deg, semi_major_px, semi_minor_px). Unique index.
     consensus : DataFrame
         Consensus contract rows (the same columns, and votes for the votes
         breakdown). Unique index.

@@ -190,7 +190,7 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
 
 
 #: Reading features the direction confidence is fitted on.
-CONFIDENCE_FEATURES = ("read_length_px", "read_spread_deg", "read_share", "read_vent_dark", "read_dark_mean",
+CONFIDENCE_FEATURES = ("read_length_px", "read_opening_deg", "read_share", "read_vent_dark", "read_dark_mean",
                        "read_polarity_vote", "read_p_fan", "read_concentration", "obj_n_fans")
 
 

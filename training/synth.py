@@ -104,7 +104,7 @@ _RANGE_FIELDS = {
     "short_fan_px": (10.0, 220.0),
     "broad_fan_contrast": (0.0, 0.95),
     "broad_fan_length_px": (10.0, 220.0),
-    "broad_fan_spread_deg": (2.0, 120.0),
+    "broad_fan_opening_deg": (2.0, 120.0),
 }
 _SHARE_FIELDS = ("polygon_probability", "araneiform_share", "vent_on_trough_share", "spot_with_fans_share",
                  "short_fan_share", "broad_fan_share")
@@ -159,7 +159,7 @@ class SceneSettings:
         Lengths of short fans, px.
     broad_fan_share : float
         Share of fans that are long, faint and broad.
-    broad_fan_contrast, broad_fan_length_px, broad_fan_spread_deg : (float, float)
+    broad_fan_contrast, broad_fan_length_px, broad_fan_opening_deg : (float, float)
         Source darkening, length (px) and full opening angle (degrees) of those.
 
     Raises
@@ -194,7 +194,7 @@ class SceneSettings:
     broad_fan_share: float = 0.08
     broad_fan_contrast: tuple = (0.08, 0.2)
     broad_fan_length_px: tuple = (80.0, 220.0)
-    broad_fan_spread_deg: tuple = (50.0, 90.0)
+    broad_fan_opening_deg: tuple = (50.0, 90.0)
 
     def __post_init__(self):
         for name, (lowest, highest) in _RANGE_FIELDS.items():
@@ -301,7 +301,7 @@ def render_scene(shape, rng, *, scenario="windy", wind_deg=None, density=1.0, no
         One row per rendered deposit in image pixel coordinates: ``kind``,
         ``x_px``, ``y_px`` (fan apex or spot centre), ``direction_deg``
         (fan: source to far end; spot: long axis mod 180), ``length_px``,
-        ``spread_deg`` (fans), ``semi_major_px``, ``semi_minor_px`` (spots),
+        ``opening_deg`` (fans), ``semi_major_px``, ``semi_minor_px`` (spots),
         ``contrast`` (apparent fractional darkening at the source) and ``vent``
         (fans from the same vent share this number).
     """
@@ -638,7 +638,7 @@ def _deposits(vents, rng, params, wind_deg, settings):
     broad = ~short & (u < settings.short_fan_share + settings.broad_fan_share)
     lengths = np.where(short, rng.uniform(*settings.short_fan_px, m), lengths)
     lengths = np.where(broad, rng.uniform(*settings.broad_fan_length_px, m), lengths)
-    spread = np.where(broad, rng.uniform(*settings.broad_fan_spread_deg, m), spread)
+    spread = np.where(broad, rng.uniform(*settings.broad_fan_opening_deg, m), spread)
     fan_contrast = np.where(broad, rng.uniform(*settings.broad_fan_contrast, m), fan_contrast)
     fans = pd.DataFrame(
         {
@@ -647,7 +647,7 @@ def _deposits(vents, rng, params, wind_deg, settings):
             "y_px": vents[vent_of_fan, 1],
             "direction_deg": direction,
             "length_px": lengths,
-            "spread_deg": spread,
+            "opening_deg": spread,
             "semi_major_px": np.nan,
             "semi_minor_px": np.nan,
             "contrast": fan_contrast,
@@ -667,7 +667,7 @@ def _deposits(vents, rng, params, wind_deg, settings):
             "y_px": vents[spot_vents, 1],
             "direction_deg": rng.uniform(0.0, 180.0, k),
             "length_px": np.nan,
-            "spread_deg": np.nan,
+            "opening_deg": np.nan,
             "semi_major_px": major,
             "semi_minor_px": major * rng.uniform(0.6, 0.98, k),
             "contrast": rng.uniform(*contrast_range, k),
@@ -692,7 +692,7 @@ def _draw_deposits(tau, truth, streaks):
     for i, kind in enumerate(cols["kind"]):
         x0, y0, theta, c0 = cols["x_px"][i], cols["y_px"][i], cols["direction_deg"][i], cols["contrast"][i]
         if kind == "fan":
-            length, half = cols["length_px"][i], np.radians(cols["spread_deg"][i] / 2.0)
+            length, half = cols["length_px"][i], np.radians(cols["opening_deg"][i] / 2.0)
             rs, cs = _bbox(shape, x0, y0, length / np.cos(half) + 6.0)
         else:
             major, minor = cols["semi_major_px"][i], cols["semi_minor_px"][i]
@@ -867,7 +867,7 @@ def _crowd(truth, negatives, classifications, tile_shape, rng):
     x, y = truth["x_px"].to_numpy(), truth["y_px"].to_numpy()
     theta = truth["direction_deg"].to_numpy()
     length = truth["length_px"].to_numpy()
-    spread = truth["spread_deg"].to_numpy()
+    spread = truth["opening_deg"].to_numpy()
     major, minor = truth["semi_major_px"].to_numpy(), truth["semi_minor_px"].to_numpy()
     n_cls = classifications[truth["tile"].to_numpy()]
     m = len(truth)
@@ -893,8 +893,8 @@ def _crowd(truth, negatives, classifications, tile_shape, rng):
     )
     fan_votes = rng.binomial(votes, q_fan)
     with np.errstate(invalid="ignore", divide="ignore"):
-        fan_fraction = fan_votes / votes
-    as_fan = fan_fraction >= 0.5
+        fan_vote_share = fan_votes / votes
+    as_fan = fan_vote_share >= 0.5
     safe_votes = np.maximum(votes, 1)
 
     sd_pos = 0.8 + 4.0 / np.sqrt(safe_votes)
@@ -945,11 +945,11 @@ def _crowd(truth, negatives, classifications, tile_shape, rng):
             "y_px": np.where(as_fan, ay, cy),
             "direction_deg": np.where(as_fan, rep_dir % 360.0, axis),
             "length_px": np.where(as_fan, rep_len, np.nan),
-            "spread_deg": np.where(as_fan, rep_spread, np.nan),
+            "opening_deg": np.where(as_fan, rep_spread, np.nan),
             "semi_major_px": np.where(as_fan, np.nan, np.maximum(a, 1.0)),
             "semi_minor_px": np.where(as_fan, np.nan, np.maximum(b, 0.5)),
             "votes": votes,
-            "fan_fraction": np.nan_to_num(fan_fraction),
+            "fan_vote_share": np.nan_to_num(fan_vote_share),
         }
     ).loc[keep]
     return pd.concat([rows, _false_marks(negatives, classifications, tile_shape, rng)], ignore_index=True)
@@ -980,11 +980,11 @@ def _false_marks(negatives, classifications, tile_shape, rng):
             "y_px": y,
             "direction_deg": np.where(as_fan, heading, heading % 180.0),
             "length_px": np.where(as_fan, np.maximum(np.minimum(2.0 * size, room), 1.0), np.nan),
-            "spread_deg": np.where(as_fan, rng.uniform(15.0, 45.0, k), np.nan),
+            "opening_deg": np.where(as_fan, rng.uniform(15.0, 45.0, k), np.nan),
             "semi_major_px": np.where(as_fan, np.nan, size),
             "semi_minor_px": np.where(as_fan, np.nan, size * rng.uniform(0.6, 1.0, k)),
             "votes": votes.astype(int),
-            "fan_fraction": fan_votes / np.maximum(votes, 1),
+            "fan_vote_share": fan_votes / np.maximum(votes, 1),
         }
     )
 
@@ -1054,7 +1054,7 @@ def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=Non
     # Volunteers cannot mark what lies in no-data.
     neg = neg.loc[pixels[np.round(neg["y_px"] + neg["tile"] * height).astype(int), np.round(neg["x_px"]).astype(int)] > 0]
     consensus = _crowd(tiled, neg.reset_index(drop=True), classifications, tile_shape, crowd_rng)
-    truth_table = tiled.assign(votes=classifications[tiled["tile"].to_numpy()], fan_fraction=(tiled["kind"] == "fan").astype(float))
+    truth_table = tiled.assign(votes=classifications[tiled["tile"].to_numpy()], fan_vote_share=(tiled["kind"] == "fan").astype(float))
     ids = np.array(tile_ids, dtype=object)
     truth_table = _finish_table(truth_table.assign(tile_id=ids[truth_table["tile"].to_numpy()]))
     consensus_table = _finish_table(consensus.assign(tile_id=ids[consensus["tile"].to_numpy()]))
@@ -1065,7 +1065,7 @@ def _synthesize_image(index, seed_seq, tiles_per_image, tile_shape, settings=Non
 def _finish_table(table):
     """Contract columns, rounded to 3 decimals, angles re-wrapped, rows in a stable order."""
     table = table.loc[:, list(CONSENSUS_COLUMNS)].copy()
-    floats = ["x_px", "y_px", "direction_deg", "length_px", "spread_deg", "semi_major_px", "semi_minor_px", "fan_fraction"]
+    floats = ["x_px", "y_px", "direction_deg", "length_px", "opening_deg", "semi_major_px", "semi_minor_px", "fan_vote_share"]
     table[floats] = table[floats].astype(float).round(3)
     period = np.where(table["kind"] == "fan", 360.0, 180.0)
     table["direction_deg"] = (table["direction_deg"] % period).round(3) % period

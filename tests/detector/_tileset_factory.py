@@ -14,7 +14,7 @@ TILES = [
 ]
 
 CONSENSUS = [
-    # tile_id, kind, x, y, direction, length, spread, a, b, votes, fan_fraction
+    # tile_id, kind, x, y, direction, length, spread, a, b, votes, fan_vote_share
     ("t_a1", "fan", 20.0, 30.0, 90.0, 40.0, 40.0, None, None, 5, 0.9),
     ("t_a1", "spot", 60.0, 20.0, 30.0, None, None, 8.0, 5.0, 4, 0.1),
     ("t_a1", "fan", 10.0, 10.0, 180.0, 20.0, 30.0, None, None, 2, None),
@@ -23,8 +23,8 @@ CONSENSUS = [
     ("t_b2", "spot", 30.0, 20.0, 100.0, None, None, 10.0, 4.0, 7, 0.0),
 ]
 CONSENSUS_HEADER = [
-    "tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "spread_deg",
-    "semi_major_px", "semi_minor_px", "votes", "fan_fraction",
+    "tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
+    "semi_major_px", "semi_minor_px", "votes", "fan_vote_share",
 ]
 
 

@@ -50,7 +50,7 @@ def _fan_scene(directions, *, length=70.0, spread=40.0, seed=0, depth=0.35):
     r = np.hypot(xx - APEX[0], yy - APEX[1])
     tau = np.zeros(SHAPE)
     for d in directions:
-        row = dict(kind="fan", x_px=APEX[0], y_px=APEX[1], direction_deg=float(d), length_px=length, spread_deg=spread)
+        row = dict(kind="fan", x_px=APEX[0], y_px=APEX[1], direction_deg=float(d), length_px=length, opening_deg=spread)
         cover = rasterise_features(pd.DataFrame([row]), SHAPE).fan_cover
         tau = np.maximum(tau, depth * cover * np.exp(-1.6 * r / length))
     return image - tau
@@ -428,7 +428,7 @@ def test_objects_pick_fans_when_fan_readings_score_higher(two_candidates):
     n_fans = sum(_modes_fans(c) for c in two_candidates)
     assert (objects["kind"] == "fan").sum() == n_fans and len(pixels) == len(objects)
     assert np.allclose(objects["score"], 0.9)
-    assert np.allclose(objects["fan_fraction"], 0.9 / 1.2)
+    assert np.allclose(objects["fan_vote_share"], 0.9 / 1.2)
 
 
 def test_objects_keep_one_interpretation_per_component(two_candidates):
@@ -592,7 +592,7 @@ def test_short_thin_wedge_has_an_axis_reading_from_its_apex(direction):
 
 
 def test_mass_profile_of_a_sector_darkest_at_its_apex():
-    row = dict(kind="fan", x_px=60.0, y_px=60.0, direction_deg=135.0, length_px=50.0, spread_deg=40.0)
+    row = dict(kind="fan", x_px=60.0, y_px=60.0, direction_deg=135.0, length_px=50.0, opening_deg=40.0)
     cover = rasterise_features(pd.DataFrame([row]), (140, 140)).fan_cover
     ys, xs = np.nonzero(cover)
     w = np.exp(-np.hypot(xs - 60.0, ys - 60.0) / 25.0)
@@ -622,7 +622,7 @@ def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
     # A 60 px fan of 50 deg darkening blurred frost by about three times its pixel noise: no single pixel
     # reaches seed_k, but its smoothed darkness stands far above the smoothed map's spread.
     shape = (300, 300)
-    row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, spread_deg=50.0)
+    row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, opening_deg=50.0)
     cover = rasterise_features(pd.DataFrame([row]), shape).fan_cover
     rng = np.random.default_rng(seed)
     image = ndimage.gaussian_filter(0.6 + 0.02 * rng.standard_normal(shape) - 0.016 * cover, 1.0)

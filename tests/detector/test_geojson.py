@@ -22,11 +22,11 @@ def _detections():
             "y_px": [200.0, 250.0, 120.0],
             "direction_deg": [30.0, 100.0, 270.0],
             "length_px": [40.0, nan, 25.0],
-            "spread_deg": [35.0, nan, 90.0],
+            "opening_deg": [35.0, nan, 90.0],
             "semi_major_px": [nan, 12.0, nan],
             "semi_minor_px": [nan, 7.0, nan],
             "votes": [5, 4, 3],
-            "fan_fraction": [0.8, 0.1, 1.0],
+            "fan_vote_share": [0.8, 0.1, 1.0],
             "score": [0.91, 0.55, 0.7],
             "direction_confidence": [0.6, nan, 0.9],
         }
@@ -82,7 +82,7 @@ def test_fan_polygon_area_matches_sector_area():
     # n arc vertices has exactly (n - 1) r^2 sin(theta / (n - 1)) / 2.
     r, spread, n = 50.0, 60.0, 257
     df = pd.DataFrame({"kind": ["fan"], "x_px": [0.0], "y_px": [0.0], "direction_deg": [123.0],
-                       "length_px": [r], "spread_deg": [spread]})
+                       "length_px": [r], "opening_deg": [spread]})
     ring = np.array(detections_to_geojson(df, n_arc=n)["features"][0]["geometry"]["coordinates"][0])
     theta = np.radians(spread)
     area = ring_signed_area(ring)

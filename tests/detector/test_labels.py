@@ -27,7 +27,7 @@ CX, CY = 160.3, 149.6
 
 
 def _fan(x, y, direction, length, spread, **extra):
-    return dict(kind="fan", x_px=x, y_px=y, direction_deg=direction, length_px=length, spread_deg=spread, **extra)
+    return dict(kind="fan", x_px=x, y_px=y, direction_deg=direction, length_px=length, opening_deg=spread, **extra)
 
 
 def _spot(x, y, direction, a, b):

@@ -17,9 +17,9 @@ from tests.detector._tileset_factory import write_tileset
 
 FEATURES = pd.DataFrame(
     [
-        dict(kind="fan", x_px=20.0, y_px=30.0, direction_deg=90.0, length_px=40.0, spread_deg=40.0),
+        dict(kind="fan", x_px=20.0, y_px=30.0, direction_deg=90.0, length_px=40.0, opening_deg=40.0),
         dict(kind="spot", x_px=70.0, y_px=15.0, direction_deg=30.0, semi_major_px=8.0, semi_minor_px=5.0),
-        dict(kind="fan", x_px=60.0, y_px=55.0, direction_deg=300.0, length_px=25.0, spread_deg=60.0),
+        dict(kind="fan", x_px=60.0, y_px=55.0, direction_deg=300.0, length_px=25.0, opening_deg=60.0),
     ]
 )
 

@@ -47,10 +47,10 @@ def test_window_cores_cover_the_image_exactly_once(width, height, tile, overlap)
 
 
 def test_tile_ids_and_edge_tiles():
-    windows = plan_windows(2000, 1300, tile=(800, 600), overlap=32, image="ESP_0001")
-    assert windows[0] == TileWindow("ESP_0001_r00000_c00000", "ESP_0001", 0, 0, 800, 600, 0, 0, 832, 632)
+    windows = plan_windows(2000, 1300, tile=(800, 600), overlap=32, image="SCN_0001")
+    assert windows[0] == TileWindow("SCN_0001_r00000_c00000", "SCN_0001", 0, 0, 800, 600, 0, 0, 832, 632)
     last = windows[-1]
-    assert last.tile_id == "ESP_0001_r01200_c01600"
+    assert last.tile_id == "SCN_0001_r01200_c01600"
     assert (last.width, last.height) == (400, 100)
     assert (last.read_col0, last.read_row0, last.read_width, last.read_height) == (1568, 1168, 432, 132)
 

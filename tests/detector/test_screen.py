@@ -253,7 +253,7 @@ def test_tile_direction_statistics_match_scipy(png_run):
     weights = own["score"] * own["direction_confidence"] * own["length_px"]
     mean, spread = tile_direction_stats(own["direction_deg"].to_numpy(), weights.to_numpy())
     assert tiles.loc[tile_id, "mean_direction_deg"] == pytest.approx(mean)
-    assert tiles.loc[tile_id, "direction_spread_deg"] == pytest.approx(spread)
+    assert tiles.loc[tile_id, "direction_scatter_deg"] == pytest.approx(spread)
     # Equal weights: the spread is scipy's circular standard deviation.
     _, std = tile_direction_stats(own["direction_deg"].to_numpy(), np.ones(len(own)))
     assert std == pytest.approx(np.degrees(circstd(np.radians(own["direction_deg"]))), abs=1e-6)

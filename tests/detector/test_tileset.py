@@ -35,17 +35,17 @@ def test_parses_with_typed_columns(tileset_dir):
 
     c = ts.consensus
     assert list(c.columns)[:10] == [
-        "tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "spread_deg",
+        "tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
         "semi_major_px", "semi_minor_px", "votes",
     ]
     assert pd.api.types.is_string_dtype(c["tile_id"]) and pd.api.types.is_string_dtype(c["kind"])
     assert c["votes"].dtype == np.int64
-    for column in ("x_px", "direction_deg", "length_px", "semi_minor_px", "fan_fraction"):
+    for column in ("x_px", "direction_deg", "length_px", "semi_minor_px", "fan_vote_share"):
         assert c[column].dtype == np.float64
     # Unused geometry of each kind is NaN; used geometry is filled.
     fans, spots = c[c["kind"] == "fan"], c[c["kind"] == "spot"]
     assert fans["semi_major_px"].isna().all() and fans["length_px"].notna().all()
-    assert spots["spread_deg"].isna().all() and spots["semi_minor_px"].notna().all()
+    assert spots["opening_deg"].isna().all() and spots["semi_minor_px"].notna().all()
     # The votes=2 fan is below the default threshold of 3.
     assert len(c) == len(CONSENSUS) - 1 and ts.n_dropped_weak == 1 and ts.min_votes == 3
 
@@ -94,18 +94,18 @@ def test_minimal_columns_only(tmp_path):
     root = write_tileset(tmp_path / "ts")
     tiles = pd.read_csv(root / "tiles.csv", dtype=str)[["tile_id", "image_id", "path"]]
     tiles.to_csv(root / "tiles.csv", index=False)
-    cons = pd.read_csv(root / "consensus.csv", dtype=str).drop(columns="fan_fraction")
+    cons = pd.read_csv(root / "consensus.csv", dtype=str).drop(columns="fan_vote_share")
     cons.to_csv(root / "consensus.csv", index=False)
     ts = load_tileset(root)
     assert ts.tiles["solar_longitude_deg"].isna().all() and ts.tiles["metres_per_px"].isna().all()
     assert (ts.tiles["region"] == "").all()
-    assert ts.consensus["fan_fraction"].isna().all()
+    assert ts.consensus["fan_vote_share"].isna().all()
     assert ts.tiles["width"].dtype == np.int64
 
 
 def test_header_only_consensus_means_all_tiles_empty(tileset_dir):
     (tileset_dir / "consensus.csv").write_text(
-        "tile_id,kind,x_px,y_px,direction_deg,length_px,spread_deg,semi_major_px,semi_minor_px,votes\n"
+        "tile_id,kind,x_px,y_px,direction_deg,length_px,opening_deg,semi_major_px,semi_minor_px,votes\n"
     )
     ts = load_tileset(tileset_dir)
     s = summarize_tileset(ts)
@@ -118,7 +118,7 @@ def test_points_on_the_tile_edge_are_inside(tileset_dir):
     set_cell(tileset_dir, "consensus.csv", 1, "x_px", "-0.5")
     set_cell(tileset_dir, "consensus.csv", 2, "x_px", "95.5")
     set_cell(tileset_dir, "consensus.csv", 2, "y_px", "63.5")
-    set_cell(tileset_dir, "consensus.csv", 1, "spread_deg", "180")
+    set_cell(tileset_dir, "consensus.csv", 1, "opening_deg", "180")
     set_cell(tileset_dir, "tiles.csv", 1, "solar_longitude_deg", "360")
     ts = load_tileset(tileset_dir)
     assert ts.consensus.loc[0, "x_px"] == -0.5 and ts.consensus.loc[1, "y_px"] == 63.5
@@ -209,7 +209,7 @@ BROKEN = [
     ("unknown tile", _cell("consensus.csv", 2, "tile_id", "ghost"), "consensus.csv", 2, "'ghost'"),
     ("unknown kind", _cell("consensus.csv", 1, "kind", "jet"), "consensus.csv", 1, "'jet'"),
     ("fan without length", _cell("consensus.csv", 1, "length_px", ""), "consensus.csv", 1, "length_px is empty"),
-    ("fan spread NaN", _cell("consensus.csv", 4, "spread_deg", "NaN"), "consensus.csv", 4, "spread_deg is empty"),
+    ("fan spread NaN", _cell("consensus.csv", 4, "opening_deg", "NaN"), "consensus.csv", 4, "opening_deg is empty"),
     ("spot without semi-minor", _cell("consensus.csv", 2, "semi_minor_px", ""), "consensus.csv", 2, "semi_minor_px"),
     ("spot without x", _cell("consensus.csv", 5, "x_px", ""), "consensus.csv", 5, "x_px is empty"),
     ("votes empty", _cell("consensus.csv", 6, "votes", ""), "consensus.csv", 6, "votes is empty"),
@@ -222,8 +222,8 @@ BROKEN = [
     ("direction 400", _cell("consensus.csv", 2, "direction_deg", "400"), "consensus.csv", 2, "400.0"),
     ("direction negative", _cell("consensus.csv", 4, "direction_deg", "-1"), "consensus.csv", 4, "-1.0"),
     ("solar longitude", _cell("tiles.csv", 3, "solar_longitude_deg", "360.5"), "tiles.csv", 3, "360.5"),
-    ("spread zero", _cell("consensus.csv", 1, "spread_deg", "0"), "consensus.csv", 1, "0.0"),
-    ("spread 181", _cell("consensus.csv", 4, "spread_deg", "181"), "consensus.csv", 4, "181.0"),
+    ("spread zero", _cell("consensus.csv", 1, "opening_deg", "0"), "consensus.csv", 1, "0.0"),
+    ("spread 181", _cell("consensus.csv", 4, "opening_deg", "181"), "consensus.csv", 4, "181.0"),
     ("length zero", _cell("consensus.csv", 1, "length_px", "0"), "consensus.csv", 1, "length_px 0.0"),
     ("length negative", _cell("consensus.csv", 4, "length_px", "-3"), "consensus.csv", 4, "length_px -3.0"),
     ("semi-major zero", _cell("consensus.csv", 2, "semi_major_px", "0"), "consensus.csv", 2, "semi_major_px 0.0"),
@@ -231,8 +231,8 @@ BROKEN = [
     ("minor exceeds major", _cell("consensus.csv", 2, "semi_minor_px", "9"), "consensus.csv", 2, "9.0"),
     ("votes zero", _cell("consensus.csv", 1, "votes", "0"), "consensus.csv", 1, "votes 0.0"),
     ("votes fractional", _cell("consensus.csv", 1, "votes", "4.5"), "consensus.csv", 1, "votes 4.5"),
-    ("fan fraction high", _cell("consensus.csv", 1, "fan_fraction", "1.2"), "consensus.csv", 1, "1.2"),
-    ("fan fraction low", _cell("consensus.csv", 2, "fan_fraction", "-0.1"), "consensus.csv", 2, "-0.1"),
+    ("fan vote share high", _cell("consensus.csv", 1, "fan_vote_share", "1.2"), "consensus.csv", 1, "1.2"),
+    ("fan vote share low", _cell("consensus.csv", 2, "fan_vote_share", "-0.1"), "consensus.csv", 2, "-0.1"),
     ("text direction", _cell("consensus.csv", 1, "direction_deg", "north"), "consensus.csv", 1, "'north'"),
     ("text votes", _cell("consensus.csv", 2, "votes", "many"), "consensus.csv", 2, "'many'"),
     ("text solar longitude", _cell("tiles.csv", 1, "solar_longitude_deg", "abc"), "tiles.csv", 1, "'abc'"),

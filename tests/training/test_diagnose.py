@@ -28,12 +28,12 @@ from training.scoring import match_objects
 
 def _fan(tile, x, y, d=90.0, length=40.0, spread=30.0, votes=5):
     return dict(tile_id=tile, kind="fan", x_px=float(x), y_px=float(y), direction_deg=d, length_px=length,
-                spread_deg=spread, semi_major_px=np.nan, semi_minor_px=np.nan, votes=votes)
+                opening_deg=spread, semi_major_px=np.nan, semi_minor_px=np.nan, votes=votes)
 
 
 def _spot(tile, x, y, semi=6.0, votes=5):
     return dict(tile_id=tile, kind="spot", x_px=float(x), y_px=float(y), direction_deg=0.0, length_px=np.nan,
-                spread_deg=np.nan, semi_major_px=semi, semi_minor_px=semi * 0.7, votes=votes)
+                opening_deg=np.nan, semi_major_px=semi, semi_minor_px=semi * 0.7, votes=votes)
 
 
 def _tiles(*ids, size=200):

@@ -343,7 +343,7 @@ def folders(tmp_path):
     tiles = _screen()
     tiles[["tile_id", "image", "p_deposit", "unfamiliarity", "route"]].assign(
         col0=0, row0=0, width=800, height=600, fan_cover=0.1, spot_cover=0.0, n_fans=1,
-        mean_direction_deg=90.0, direction_spread_deg=10.0).to_csv(screen / "tiles.csv", index=False)
+        mean_direction_deg=90.0, direction_scatter_deg=10.0).to_csv(screen / "tiles.csv", index=False)
     pd.DataFrame({"tile_id": ["s0", "s1", "s3"], "kind": ["fan", "fan", "spot"], "score": [0.95, 0.9, 0.5],
                   "direction_confidence": [0.9, 0.9, np.nan]}).to_csv(screen / "detections.csv", index=False)
     return model, screen
@@ -440,7 +440,7 @@ def _tiny_tileset(root, n_images=8):
             write_image(root / f"{tile_id}.png", np.full((32, 32), 100, np.uint8))
             rows.append({"tile_id": tile_id, "image_id": f"IMG_{i:02d}", "path": f"{tile_id}.png"})
     pd.DataFrame(rows).to_csv(root / "tiles.csv", index=False)
-    pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "spread_deg",
+    pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
                           "semi_major_px", "semi_minor_px", "votes"]).to_csv(root / "consensus.csv", index=False)
     return root
 

@@ -11,7 +11,7 @@ from training.scoring import match_objects
 
 def _fan(hyp, x, y, direction, length=40.0):
     return {"kind": "fan", "x_px": x, "y_px": y, "direction_deg": direction, "length_px": length,
-            "spread_deg": 30.0, "axis_deg": direction % 180.0, "direction_confidence": 0.5, "_hyp": hyp,
+            "opening_deg": 30.0, "axis_deg": direction % 180.0, "direction_confidence": 0.5, "_hyp": hyp,
             "_pixels": np.ones(3, bool), "_features": np.zeros(3, np.float32)}
 
 
@@ -27,7 +27,7 @@ def _candidate(fans, spot):
 
 CONSENSUS = pd.DataFrame([
     {"tile_id": "t", "kind": "fan", "x_px": 100.0, "y_px": 100.0, "direction_deg": 90.0, "length_px": 40.0,
-     "spread_deg": 30.0, "semi_major_px": np.nan, "semi_minor_px": np.nan, "votes": 10},
+     "opening_deg": 30.0, "semi_major_px": np.nan, "semi_minor_px": np.nan, "votes": 10},
 ])
 
 

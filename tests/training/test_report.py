@@ -26,7 +26,7 @@ def _catalogs(seed=0):
                               height=100))
             for k in range(4):
                 d = (wind + rng.normal(0, 20)) % 360
-                base = dict(tile_id=tid, kind="fan", x_px=20 + 40 * k, y_px=50, length_px=40.0, spread_deg=20.0,
+                base = dict(tile_id=tid, kind="fan", x_px=20 + 40 * k, y_px=50, length_px=40.0, opening_deg=20.0,
                             semi_major_px=np.nan, semi_minor_px=np.nan, votes=6)
                 cons.append({**base, "direction_deg": d})
                 det.append({**base, "direction_deg": (d + rng.normal(0, 8)) % 360, "score": 0.9,

@@ -13,12 +13,12 @@ from tests.training._boxes import box_rasteriser
 
 
 def _fan(tile, x, y, d, length=40.0, **extra):
-    return dict(tile_id=tile, kind="fan", x_px=x, y_px=y, direction_deg=d, length_px=length, spread_deg=20.0,
+    return dict(tile_id=tile, kind="fan", x_px=x, y_px=y, direction_deg=d, length_px=length, opening_deg=20.0,
                 semi_major_px=np.nan, semi_minor_px=np.nan, votes=5, **extra)
 
 
 def _spot(tile, x, y, a=0.0, semi=6.0, **extra):
-    return dict(tile_id=tile, kind="spot", x_px=x, y_px=y, direction_deg=a, length_px=np.nan, spread_deg=np.nan,
+    return dict(tile_id=tile, kind="spot", x_px=x, y_px=y, direction_deg=a, length_px=np.nan, opening_deg=np.nan,
                 semi_major_px=semi, semi_minor_px=semi * 0.7, votes=5, **extra)
 
 

@@ -47,7 +47,7 @@ from training.synth import (
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
 DEMO_ARGS = dict(n_images=8, tiles_per_image=5, seed=2026)
 TILE_SHAPE = (600, 800)
-GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "spread_deg", "semi_major_px", "semi_minor_px")
+GEOMETRY = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "semi_major_px", "semi_minor_px")
 
 
 def _digest(folder):
@@ -129,7 +129,7 @@ def test_demo_set_respects_the_contract(demo):
         assert table["x_px"].between(0.0, TILE_SHAPE[1] - 1.0).all(), name
         assert table["y_px"].between(0.0, TILE_SHAPE[0] - 1.0).all(), name
         assert pd.api.types.is_integer_dtype(table["votes"]) and (table["votes"] >= 1).all(), name
-        assert table["fan_fraction"].between(0.0, 1.0).all(), name
+        assert table["fan_vote_share"].between(0.0, 1.0).all(), name
         for kind, fields in KIND_FIELDS.items():
             rows = table[table["kind"] == kind]
             empty = [c for c in GEOMETRY if c not in fields]
@@ -138,7 +138,7 @@ def test_demo_set_respects_the_contract(demo):
         fans, spots = table[table["kind"] == "fan"], table[table["kind"] == "spot"]
         assert ((fans["direction_deg"] >= 0) & (fans["direction_deg"] < 360)).all(), name
         assert ((spots["direction_deg"] >= 0) & (spots["direction_deg"] < 180)).all(), name
-        assert ((fans["spread_deg"] > 0) & (fans["spread_deg"] <= 180)).all(), name
+        assert ((fans["opening_deg"] > 0) & (fans["opening_deg"] <= 180)).all(), name
         assert (fans["length_px"] > 0).all(), name
         assert (spots["semi_minor_px"] <= spots["semi_major_px"]).all() and (spots["semi_minor_px"] > 0).all(), name
     # Consensus fans end inside their tile too: the far end lies within the tile.
@@ -163,8 +163,8 @@ def test_demo_set_has_the_advertised_variety(demo):
     assert fans["length_px"].between(20, 120).mean() > 0.65
     assert fans["length_px"].between(10, 220).all()
     assert (fans["length_px"] < 20).mean() >= nominal.short_fan_share
-    assert fans["spread_deg"].between(10, 90).all()
-    assert (fans["spread_deg"] > 70).any()
+    assert fans["opening_deg"].between(10, 90).all()
+    assert (fans["opening_deg"] > 70).any()
     # Spots: many small (5-15 px), some up to 40 px, mildly elliptical.
     assert spots["semi_major_px"].between(5, 15).mean() > 0.6
     assert spots["semi_major_px"].max() > 30 and spots["semi_major_px"].max() <= 40
@@ -177,7 +177,7 @@ def test_demo_set_has_the_advertised_variety(demo):
     assert 10 <= (consensus["votes"] < 3).sum() and consensus["votes"].max() <= 30
     assert consensus["votes"].between(3, 30).mean() > 0.8
     # Some wide fans reported as spots: spot rows with a sizeable minority calling them fans.
-    assert ((consensus["kind"] == "spot") & (consensus["fan_fraction"] >= 0.2)).sum() >= 5
+    assert ((consensus["kind"] == "spot") & (consensus["fan_vote_share"] >= 0.2)).sum() >= 5
     # Some tiles have no deposits at all; calm images are mostly spots.
     assert (~tiles["tile_id"].isin(truth["tile_id"])).sum() >= 1
     image_of = truth["tile_id"].str.rsplit("_", n=1).str[0]
@@ -501,7 +501,7 @@ def test_short_and_faint_broad_fans_occur_at_their_shares():
     assert len(broad) / m == pytest.approx(share, abs=4 * np.sqrt(share * (1 - share) / m))
     assert broad["contrast"].between(*settings.broad_fan_contrast).all()
     assert broad["length_px"].between(*settings.broad_fan_length_px).all()
-    assert broad["spread_deg"].between(*settings.broad_fan_spread_deg).all()
+    assert broad["opening_deg"].between(*settings.broad_fan_opening_deg).all()
     assert broad["length_px"].mean() > 2 * fans["length_px"].median()
 
 
