@@ -5,7 +5,7 @@ it into one line on stderr and exit code 2. Classes also inherit from builtins
 so that callers may catch ``ValueError`` or ``OSError`` as usual.
 """
 
-__all__ = ["DetectorError", "TileSetError", "SpecError", "ImageError", "ModelError"]
+__all__ = ["DetectorError", "TileSetError", "SpecError", "ImageError", "ModelError", "CatalogError"]
 
 
 class DetectorError(Exception):
@@ -38,3 +38,7 @@ class ImageError(DetectorError, OSError):
 
 class ModelError(DetectorError, ValueError):
     """A model folder is missing a file, was tampered with, or cannot be used."""
+
+
+class CatalogError(DetectorError, ValueError):
+    """A fan catalog (detections, a screening folder) or a table read beside it breaks its format."""

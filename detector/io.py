@@ -11,7 +11,7 @@ import numpy as np
 
 from .errors import ImageError
 
-__all__ = ["read_image", "write_image", "write_json", "atomic_path", "atomic_dir"]
+__all__ = ["read_image", "image_size", "write_image", "write_json", "atomic_path", "atomic_dir"]
 
 
 def read_image(path, *, band=None):
@@ -70,6 +70,32 @@ def read_image(path, *, band=None):
     if image.dtype == np.int32 or image.dtype == np.int64:
         image = image.astype(np.uint16)
     return image
+
+
+def image_size(path):
+    """Width and height of a PNG or TIFF image in px, from its header (the pixels are not decoded).
+
+    Raises
+    ------
+    ImageError
+        The file is missing or not a readable image.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise ImageError(f"image {str(path)!r} does not exist.")
+    try:
+        if path.suffix.lower() in (".tif", ".tiff"):
+            import tifffile
+
+            with tifffile.TiffFile(path) as handle:
+                shape = handle.pages[0].shape
+            return int(shape[1]), int(shape[0])
+        from PIL import Image
+
+        with Image.open(path) as handle:
+            return int(handle.width), int(handle.height)
+    except Exception as err:  # any decoder failure is a corrupt image to the user
+        raise ImageError(f"image {str(path)!r} cannot be read: {err}.") from err
 
 
 def write_image(path, image):

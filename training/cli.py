@@ -12,6 +12,13 @@ from detector.cli import add_detector_commands
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
 
+from .winds import FRAMES as WIND_FRAMES
+from .winds import RESAMPLE_UNITS as WIND_RESAMPLE_UNITS
+from .winds import WEIGHTINGS as WIND_WEIGHTINGS
+from .winds import WindSettings
+
+WIND_DEFAULTS = WindSettings()
+
 __all__ = ["main"]
 
 DEFAULT_MODEL = Path(__file__).resolve().parent.parent / "models" / "demo"
@@ -90,6 +97,44 @@ def _add_training_commands(commands):
     run.add_argument("--force", action="store_true")
     run.set_defaults(func=_benchmark_run)
 
+    winds = commands.add_parser(
+        "winds", help="Surface winds by region and solar-longitude bin from fan catalogs; write tables, GIS and plots.")
+    winds.add_argument("--crowd", type=Path, default=None, metavar="TILESET",
+                       help="Tile set whose consensus.csv is the crowd catalog (its tiles.csv also places the machine's).")
+    winds.add_argument("--machine", type=Path, nargs="+", default=[], metavar="PATH",
+                       help="Screening folder(s), or one evaluation's detections.csv (or its folder).")
+    winds.add_argument("--tiles", type=Path, default=None, metavar="TILESET",
+                       help="Tile set giving regions, solar longitudes and tile sizes of the machine catalog "
+                            "(default: --crowd).")
+    winds.add_argument("--images", type=Path, default=None, metavar="CSV",
+                       help="Image table: image_id, solar_longitude_deg[, region, metres_per_px, lon_deg, lat_deg].")
+    winds.add_argument("--model-winds", type=Path, default=None, metavar="CSV",
+                       help="Modelled winds to compare with (format in README, 'Winds by region and season').")
+    winds.add_argument("--out", type=Path, required=True)
+    winds.add_argument("--ls-bin", type=float, default=WIND_DEFAULTS.ls_bin_deg,
+                       help="Solar-longitude bin width, deg (default %(default)s).")
+    winds.add_argument("--weighting", choices=WIND_WEIGHTINGS, default=WIND_DEFAULTS.weighting)
+    winds.add_argument("--resample", choices=WIND_RESAMPLE_UNITS, default=WIND_DEFAULTS.resample,
+                       help="Bootstrap unit (default: tiles, the independent unit).")
+    winds.add_argument("--bootstrap", type=int, default=WIND_DEFAULTS.n_boot, help="Bootstrap replicates.")
+    winds.add_argument("--bootstrap-modes", type=int, default=WIND_DEFAULTS.n_boot_modes,
+                       help="Bootstrap replicates of the one- and two-wind fits.")
+    winds.add_argument("--frame", choices=WIND_FRAMES, default=WIND_DEFAULTS.frame,
+                       help="Directions as azimuths from north (where every fan has one) or from image up.")
+    winds.add_argument("--north-up", action="store_true",
+                       help="The images are map-projected north-up: image up is north (needed to compare "
+                            "image directions with model winds).")
+    winds.add_argument("--min-fans", type=int, default=WIND_DEFAULTS.min_fans,
+                       help="Fewest fans of each catalog for a bin to enter the machine-crowd comparison.")
+    winds.add_argument("--model-ls-tolerance", type=float, default=None,
+                       help="Largest Ls difference of a model row from a bin's centre, deg (default: half a bin).")
+    winds.add_argument("--model-max-km", type=float, default=WIND_DEFAULTS.model_max_km,
+                       help="Largest distance of a lon/lat model row from a bin's centroid, km.")
+    winds.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES)
+    winds.add_argument("--seed", type=int, default=0)
+    winds.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
+    winds.set_defaults(func=_winds)
+
     demo = commands.add_parser("demo", help="Run the whole job on the shipped demo tiles and model.")
     demo.add_argument("--out", type=Path, default=Path("out/demo"))
     demo.add_argument("--tiles", type=Path, default=DEFAULT_DEMO_TILES)
@@ -143,6 +188,12 @@ def _benchmark_run(args):
 
     run_benchmark(args.model_dir, args.bench, args.out, workers=args.workers, min_score=args.min_score,
                   compare=[tuple(pair) for pair in args.compare], force=args.force)
+
+
+def _winds(args):
+    from .winds import winds_command
+
+    winds_command(args)
 
 
 def _demo(args):
