@@ -35,8 +35,40 @@ def _print_benchmark_headline(model_dir):
     print(benchmark_table(results))
 
 
+#: An invented table of modelled near-surface winds for the demo regions (wind_from_deg: where the
+#: wind comes from, degrees clockwise from north), in the format ``frostvane winds --model-winds`` reads.
+DEMO_MODEL_WINDS = """region,solar_longitude_deg,wind_from_deg,speed_m_s,height_m
+Region Alpha,205,330,6.5,10
+Region Alpha,235,300,5.0,10
+Region Beta,185,60,7.0,10
+Region Beta,225,240,4.5,10
+Region Gamma,225,95,6.0,10
+Region Delta,185,15,8.0,10
+Region Delta,225,115,5.5,10
+"""
+
+
+def _demo_winds(tiles, screen_dir, out):
+    """``frostvane winds`` on the demo consensus, the demo screening and an invented model table."""
+    from detector.io import atomic_path
+
+    from .winds import WindSettings, analyse_winds, format_headline, write_winds
+
+    model_csv = out / "model_winds.csv"
+    with atomic_path(model_csv) as tmp:
+        tmp.write_text(DEMO_MODEL_WINDS, encoding="utf-8")
+    # The demo tiles are invented and taken as north-up, so that their image directions can
+    # be set against the (equally invented) model azimuths.
+    settings = WindSettings(north_up=True, n_boot=500, n_boot_modes=100)
+    analysis = analyse_winds(crowd=tiles, machine=[screen_dir], model_winds=model_csv, settings=settings)
+    write_winds(analysis, out / "winds", force=True)
+    print(format_headline(analysis))
+    print(f"wind tables, GIS layers and plots: {out / 'winds'} (roses_crowd.png, roses_machine.png, "
+          f"direction_vs_ls.png, cover_length_vs_ls.png, machine_vs_crowd.png, model_match.png)")
+
+
 def run_demo(out, *, tiles, model, retrain=False):
-    """Validate, evaluate, screen and estimate effort on the demo tiles.
+    """Validate, evaluate, screen, estimate effort and read the winds on the demo tiles.
 
     Parameters
     ----------
@@ -115,7 +147,11 @@ def run_demo(out, *, tiles, model, retrain=False):
 
     run_effort(model_dir, screen_dir)
 
+    _section("6. surface winds by region and season: the crowd's consensus and the screened image")
+    _demo_winds(tiles, screen_dir, out)
+
     _section("done")
     print(f"everything is in {out}/: consensus_overlay.png, report/ (report.md, *.png), "
-          f"screen/ (tiles.csv, detections.csv, detections.geojson, quicklook.png, rose.png, effort.json, routes.csv)")
+          f"screen/ (tiles.csv, detections.csv, detections.geojson, quicklook.png, rose.png, effort.json, routes.csv), "
+          f"winds/ (bins.csv, images.csv, agreement_*.csv, model_match.csv, winds.json, bins.geojson, *.png)")
     print(f"demo took {time.perf_counter() - started:.0f} s")
