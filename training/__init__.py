@@ -6,6 +6,8 @@ The public API:
 - :func:`evaluate_model` (``frostvane evaluate``), :func:`score_catalogs`, :func:`match_objects`
 - :func:`synthesize_tileset`, :func:`render_scene` (invented demo scenes)
 - :func:`write_report`, :func:`headline_table`
+- :func:`analyse_winds`, :func:`write_winds`, :class:`WindSettings` (``frostvane winds``): surface winds by
+  region and season from fan catalogs
 - :func:`error_breakdown`, :func:`plot_error_tiles`, :func:`diagnose_catalogs`: where features are lost and
   where false detections come from
 - the ``frostvane`` console script: :func:`main`
@@ -17,6 +19,9 @@ import importlib
 # training stack (scikit-learn, ONNX export) to screen or estimate effort.
 _LAZY = {
     "main": "cli",
+    "analyse_winds": "winds",
+    "write_winds": "winds",
+    "WindSettings": "winds",
     "diagnose_catalogs": "diagnose",
     "error_breakdown": "diagnose",
     "evaluate_model": "evaluate",
@@ -45,6 +50,8 @@ def __dir__():
 
 __all__ = [
     "TrainConfig",
+    "WindSettings",
+    "analyse_winds",
     "diagnose_catalogs",
     "error_breakdown",
     "evaluate_model",
@@ -58,4 +65,5 @@ __all__ = [
     "synthesize_tileset",
     "train_model",
     "write_report",
+    "write_winds",
 ]

@@ -42,9 +42,9 @@ Region Alpha,205,330,6.5,10
 Region Alpha,235,300,5.0,10
 Region Beta,185,60,7.0,10
 Region Beta,225,240,4.5,10
-Region Gamma,225,95,6.0,10
+Region Gamma,225,110,6.0,10
 Region Delta,185,15,8.0,10
-Region Delta,225,115,5.5,10
+Region Delta,225,140,5.5,10
 """
 
 

@@ -127,7 +127,7 @@ def plot_direction_vs_ls(analysis, path):
         ax.set_title(region, fontsize=9)
         ax.legend(fontsize=6, loc="best")
     axes[-1, 0].set_xlabel("solar longitude Ls, deg (bin centre)")
-    fig.suptitle(f"mean fan direction against season ({analysis.frame_label}); bars: "
+    fig.suptitle(f"mean fan direction against season\n({analysis.frame_label}); bars: "
                  f"{int(analysis.settings.level * 100)} % bootstrap intervals", fontsize=8)
     fig.tight_layout()
     return _save(fig, path)
