@@ -33,6 +33,8 @@ def add_detector_commands(commands):
     screen.add_argument("--scheduler", default=None, help="Address of a running Dask distributed scheduler.")
     screen.add_argument("--nodata", type=float, default=None)
     screen.add_argument("--band", type=int, default=None, help="1-based band of a multi-band image.")
+    screen.add_argument("--any-body", action="store_true",
+                        help="Screen a raster whose CRS is not on Mars (refused otherwise).")
     screen.set_defaults(func=_screen)
 
 

@@ -16,6 +16,13 @@ body's ellipsoid, so it works for any CRS and any (flipped, rotated) transform.
 
 Mars coordinate reference systems are built on the IAU 2015 Mars sphere of
 radius 3 396 190 m (ocentric latitude, east-positive longitude).
+
+Longitude and latitude written for GIS (``lon_deg``, ``lat_deg``, the GeoJSON
+coordinates) are *planetocentric*: latitude is the angle at the body's centre
+(the same on every Mars sphere or ellipsoid, and equal to the latitude on the
+IAU 2015 Mars sphere), longitude is east-positive in [-180, 180)
+(:meth:`Georeferencer.pixel_to_planetocentric`). A raster whose CRS is not on
+Mars is refused unless asked for (:func:`check_mars_crs`).
 """
 
 import numpy as np
@@ -37,7 +44,15 @@ __all__ = [
     "wind_from_deg",
     "length_m",
     "metres_per_px",
+    "is_mars_crs",
+    "check_mars_crs",
+    "polygon_ground_area_m2",
 ]
+
+#: Semi-major axes, m, that count as Mars: every Mars reference body in use lies within
+#: 3 370-3 410 km (IAU 2000 / 2015 sphere and ellipsoid 3 396 190 m, older ones 3 393 400 and
+#: 3 397 000 m; from memory), and no other body of the solar system comes near it.
+MARS_RADIUS_RANGE_M = (3.37e6, 3.41e6)
 
 #: Radius of the IAU 2015 Mars sphere, m.
 MARS_RADIUS_M = 3396190.0
@@ -78,6 +93,77 @@ def _as_crs(crs):
         return pyproj.CRS.from_user_input(crs)
     except pyproj.exceptions.CRSError as err:
         raise DetectorError(f"CRS {str(crs)[:80]!r} is not understood: {err}.") from err
+
+
+def is_mars_crs(crs):
+    """Whether a CRS is defined on a Mars sphere or ellipsoid.
+
+    Parameters
+    ----------
+    crs : pyproj.CRS, rasterio.crs.CRS or str
+
+    Returns
+    -------
+    mars : bool
+        True when the CRS's ellipsoid has a semi-major axis within
+        :data:`MARS_RADIUS_RANGE_M`.
+    """
+    ellipsoid = _as_crs(crs).ellipsoid
+    if ellipsoid is None:
+        return False
+    lo, hi = MARS_RADIUS_RANGE_M
+    return bool(lo <= ellipsoid.semi_major_metre <= hi)
+
+
+def check_mars_crs(crs, source, *, any_body=False):
+    """Refuse a CRS that is not on Mars, unless ``any_body``.
+
+    Parameters
+    ----------
+    crs : pyproj.CRS, rasterio.crs.CRS or str
+    source : str
+        What the CRS belongs to (a file name), for the message.
+    any_body : bool, default=False
+        Accept a CRS of any body (e.g. an Earth CRS in a test product).
+
+    Raises
+    ------
+    DetectorError
+        The CRS's ellipsoid is not a Mars one.
+    """
+    if any_body or is_mars_crs(crs):
+        return
+    parsed = _as_crs(crs)
+    ellipsoid = parsed.ellipsoid
+    radius = f"{ellipsoid.semi_major_metre:.0f} m" if ellipsoid is not None else "none"
+    raise DetectorError(
+        f"image {str(source)!r} has CRS {parsed.name!r} whose reference body (semi-major axis {radius}) "
+        f"is not Mars; reproject it to a Mars CRS, or pass --any-body to screen it anyway."
+    )
+
+
+def polygon_ground_area_m2(lon_deg, lat_deg, crs):
+    """Geodesic area on a CRS's body of a polygon given by its vertices.
+
+    Parameters
+    ----------
+    lon_deg, lat_deg : ndarray of shape (n,)
+        Vertices in the longitude / latitude of ``crs``'s own geodetic CRS
+        (as :meth:`Georeferencer.pixel_to_lonlat` returns them), degrees.
+    crs : pyproj.CRS
+
+    Returns
+    -------
+    area : float
+        m^2, positive whatever the ring's orientation.
+
+    References
+    ----------
+    Karney, C. F. F. (2013). Algorithms for geodesics. Journal of Geodesy 87, 43-55
+    (the method of :meth:`pyproj.Geod.polygon_area_perimeter`).
+    """
+    area, _ = _as_crs(crs).get_geod().polygon_area_perimeter(np.asarray(lon_deg, float), np.asarray(lat_deg, float))
+    return abs(float(area))
 
 
 def _as_affine(transform):
@@ -183,6 +269,16 @@ class Georeferencer:
         if geodetic is None:
             raise DetectorError(f"CRS {self.crs.name!r} has no geodetic CRS; longitudes cannot be computed.")
         self._to_lonlat = pyproj.Transformer.from_crs(self.crs, geodetic, always_xy=True)
+        # Geodetic CRSs may count longitude westward (IAU ographic Mars CRSs do) and give
+        # geodetic (ographic) latitude; these turn them into planetocentric, east-positive values.
+        axes = geodetic.axis_info
+        lon_axis = next((a for a in axes if "longitude" in a.name.lower()), None)
+        lat_axis = next((a for a in axes if "latitude" in a.name.lower()), None)
+        self._lon_sign = -1.0 if lon_axis is not None and lon_axis.direction.lower() == "west" else 1.0
+        ellipsoid = geodetic.ellipsoid
+        ocentric = lat_axis is not None and "planetocentric" in lat_axis.name.lower()
+        ratio = 1.0 if ellipsoid is None else ellipsoid.semi_minor_metre / ellipsoid.semi_major_metre
+        self._ocentric_factor = 1.0 if ocentric else ratio**2
         self._from_lonlat = pyproj.Transformer.from_crs(geodetic, self.crs, always_xy=True)
         self._geod = self.crs.get_geod()
 
@@ -224,6 +320,29 @@ class Georeferencer:
     def map_to_lonlat(self, x, y):
         """Longitude and latitude (degrees, east-positive) of map coordinates."""
         lon, lat = self._to_lonlat.transform(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
+        return _out(lon), _out(lat)
+
+    def pixel_to_planetocentric(self, col, row):
+        """Planetocentric longitude and latitude of pixel centres, degrees.
+
+        Parameters
+        ----------
+        col, row : float or ndarray
+            Pixel coordinates, px.
+
+        Returns
+        -------
+        lon, lat : float or ndarray
+            Longitude east-positive in [-180, 180); latitude the angle at the
+            body's centre, so ``tan(lat) = (b / a)**2 tan(geodetic lat)`` on an
+            ellipsoid of semi-axes a, b (equal to the geodetic latitude on a
+            sphere such as the IAU 2015 Mars sphere).
+        """
+        lon, lat = self.pixel_to_lonlat(col, row)
+        lon = (self._lon_sign * np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0
+        lat = np.asarray(lat, dtype=float)
+        if self._ocentric_factor != 1.0:
+            lat = np.degrees(np.arctan(self._ocentric_factor * np.tan(np.radians(lat))))
         return _out(lon), _out(lat)
 
     def lonlat_to_map(self, lon, lat):

@@ -13,17 +13,27 @@ The screening folder
 ``tiles.csv``
     One row per tile (see :data:`TILE_COLUMNS`); ``route`` is empty for scored
     tiles (``frostvane effort`` fills it) and ``"nodata"`` for tiles whose
-    core is less than half valid, which are not scored.
+    core is less than half valid, which are not scored. ``area_m2`` is the
+    ground area of the tile's core and ``covered_m2`` that of its fan and
+    spot cover, m^2 (NaN when the scale is unknown).
 ``detections.csv``
     :data:`detector.contract.DETECTION_COLUMNS` in tile px, plus ``image``,
     ``col0`` and ``row0`` (image px of the tile's top-left pixel: image px =
-    tile px + offset) and, for georeferenced rasters, ``lon_deg``,
-    ``lat_deg``, ``azimuth_deg`` (degrees clockwise from north at the apex /
-    centre; mod 180 for spots), ``wind_from_deg`` (fans) and ``length_m``
-    (fans).
+    tile px + offset), ``area_m2`` (ground area of the outline, m^2; NaN when
+    the scale is unknown) and, for georeferenced rasters, ``lon_deg``,
+    ``lat_deg`` (planetocentric, east-positive, [-180, 180)), ``azimuth_deg``
+    (degrees clockwise from north at the apex / centre; mod 180 for spots),
+    ``wind_from_deg`` (fans) and ``length_m`` (fans).
+``detections.gpkg``
+    GeoPackage with a ``detections`` layer (fan sectors, spot ellipses, every
+    column of detections.csv) and a ``tiles`` layer (tile-core footprints with
+    every column of tiles.csv and ``covered_fraction``), in the raster's own
+    CRS; images without a CRS in :data:`detector.gpkg.PIXEL_CRS_WKT`. See
+    :class:`_GeoContext` for runs mixing CRSs.
 ``detections.geojson``
-    :func:`detector.geojson.detections_to_geojson`: map coordinates when every
-    input is georeferenced in one CRS, otherwise image px.
+    Only when some input is georeferenced: its detections in planetocentric
+    longitude / latitude (:data:`GEOJSON_COORDINATES`,
+    :func:`detector.geojson.detections_to_geojson`).
 ``quicklook.png``, ``rose.png``
     A downsampled view of every image with its detections, and the fan
     direction distribution of every image (weighted by length).
@@ -96,13 +106,21 @@ TILE_COLUMNS = (
     "route",
     "n_spots",
     "valid_fraction",
+    "area_m2",
+    "covered_m2",
 )
 
 #: Columns added to ``detections.csv`` for georeferenced rasters.
 GEO_COLUMNS = ("lon_deg", "lat_deg", "azimuth_deg", "wind_from_deg", "length_m")
 
 #: Columns of ``detections.csv`` (the geographic ones only when some input is georeferenced).
-DETECTION_OUTPUT_COLUMNS = DETECTION_COLUMNS + ("image", "col0", "row0")
+DETECTION_OUTPUT_COLUMNS = DETECTION_COLUMNS + ("image", "col0", "row0", "area_m2")
+
+#: How detections.geojson gives positions (see detector.geojson).
+GEOJSON_COORDINATES = (
+    "RFC 7946 [longitude, latitude] in degrees: planetocentric latitude (= latitude on the IAU 2015 Mars "
+    "sphere, radius 3396190 m), longitude east-positive in [-180, 180]"
+)
 
 #: A tile whose core has a smaller share of valid pixels is routed "nodata" and not scored.
 MIN_VALID_SHARE = 0.5
@@ -112,7 +130,9 @@ DEPOSIT_THRESHOLD = 0.5
 
 _JOURNAL = ".partial"
 _RUN_FILE = "run.json"
-_OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook.png", "rose.png")
+_OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.gpkg", "detections.geojson", "quicklook.png", "rose.png")
+_GPKG = "detections.gpkg"
+_GEOJSON = "detections.geojson"
 _QUICKLOOK_PX = 1000  # a single panel's longer side in output pixels (9 in at 110 dpi): more is resampled away
 _MAX_PANELS = 12
 _MAX_DRAWN = 3000
@@ -139,6 +159,7 @@ class _TileTask:
     col0: float
     row0: float
     canvas_step: int = 0  # every how many px its file is sampled for the quick-look (0: no panel)
+    metres_per_px: float = math.nan  # ground sampling distance of a tile without georeferencing (tiles.csv)
 
     tile_id = property(lambda self: self.window.tile_id)
     image = property(lambda self: self.window.image)
@@ -170,10 +191,20 @@ def _open(path, band, nodata):
     return open_raster(path, band=band, nodata=nodata)
 
 
-def _plan_raster(path, *, tile, overlap, nodata, band):
+def _georeferencer(src, any_body):
+    """The source's georeferencer (None without a CRS); a CRS not on Mars is refused unless ``any_body``."""
+    if not src.is_georeferenced:
+        return None
+    from .geo import check_mars_crs
+
+    check_mars_crs(src.crs, src.path, any_body=any_body)
+    return src.georeferencer()
+
+
+def _plan_raster(path, *, tile, overlap, nodata, band, any_body=False):
     with _open(path, band, nodata) as src:
         windows = plan_windows(src.width, src.height, tile=tile, overlap=overlap, image=src.name)
-        georef = src.georeferencer() if src.is_georeferenced else None
+        georef = _georeferencer(src, any_body)
         size = (src.width, src.height)
         used_nodata = src.nodata
     tasks = [
@@ -209,14 +240,16 @@ def _read_tile_table(root):
     return tiles
 
 
-def _plan_tileset(root, *, nodata, band):
+def _plan_tileset(root, *, nodata, band, any_body=False):
     tiles = _read_tile_table(root)
+    scale = (pd.to_numeric(tiles["metres_per_px"], errors="coerce") if "metres_per_px" in tiles
+             else pd.Series(np.nan, index=tiles.index)).to_numpy(dtype=float)
     col0 = (pd.to_numeric(tiles["col0"], errors="coerce") if "col0" in tiles else pd.Series(np.nan, index=tiles.index))
     row0 = (pd.to_numeric(tiles["row0"], errors="coerce") if "row0" in tiles else pd.Series(np.nan, index=tiles.index))
     tasks, images = [], {}
-    for i, (tile_id, image, rel, c, r) in enumerate(
+    for i, (tile_id, image, rel, c, r, mpp) in enumerate(
         zip(tiles["tile_id"].astype(str), tiles["image_id"].astype(str), tiles["path"].astype(str),
-            col0.to_numpy(dtype=float), row0.to_numpy(dtype=float), strict=True)
+            col0.to_numpy(dtype=float), row0.to_numpy(dtype=float), scale, strict=True)
     ):
         path = root / rel
         if not path.is_file():
@@ -224,10 +257,10 @@ def _plan_tileset(root, *, nodata, band):
         # The header alone: size, band count and georeferencing, without decoding pixels.
         with _open(path, band, nodata) as src:
             w, h = src.width, src.height
-            georef = src.georeferencer() if src.is_georeferenced else None
+            georef = _georeferencer(src, any_body)
             used_nodata = src.nodata
         window = TileWindow(tile_id, image, 0, 0, w, h, 0, 0, w, h)  # the whole file is the tile
-        tasks.append(_TileTask(window, str(path), band, nodata, float(c), float(r)))
+        tasks.append(_TileTask(window, str(path), band, nodata, float(c), float(r), metres_per_px=float(mpp)))
         entry = images.setdefault(image, dict(pieces=[], georefs={}, nodata=used_nodata))
         entry["georefs"][str(path)] = georef
         entry["pieces"].append((float(c), float(r), str(path), w, h))
@@ -243,7 +276,7 @@ def _plan_tileset(root, *, nodata, band):
     return tasks, images
 
 
-def _plan(inputs, *, tile, overlap, nodata, band):
+def _plan(inputs, *, tile, overlap, nodata, band, any_body=False):
     if isinstance(inputs, (str, os.PathLike)):
         inputs = [inputs]
     inputs = [Path(p) for p in inputs]
@@ -254,9 +287,10 @@ def _plan(inputs, *, tile, overlap, nodata, band):
         if path.is_dir():
             if not (path / TILES_FILE).is_file():
                 raise DetectorError(f"input folder {str(path)!r} has no {TILES_FILE}; it is not a tile set.")
-            new_tasks, new_images = _plan_tileset(path, nodata=nodata, band=band)
+            new_tasks, new_images = _plan_tileset(path, nodata=nodata, band=band, any_body=any_body)
         elif path.exists():
-            new_tasks, new_images = _plan_raster(path, tile=tile, overlap=overlap, nodata=nodata, band=band)
+            new_tasks, new_images = _plan_raster(path, tile=tile, overlap=overlap, nodata=nodata, band=band,
+                                                 any_body=any_body)
         else:
             raise ImageError(f"input {str(path)!r} does not exist.")
         for image, entry in new_images.items():
@@ -342,6 +376,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "width": task.width, "height": task.height, "p_deposit": np.nan, "fan_cover": np.nan,
         "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
+        "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan,
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
     if task.canvas_step:
@@ -376,7 +411,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         fx = det["x_px"].to_numpy() + task.file_col0
         fy = det["y_px"].to_numpy() + task.file_row0
         direction = det["direction_deg"].to_numpy(dtype=float)
-        lon, lat = georef.pixel_to_lonlat(fx, fy)
+        lon, lat = georef.pixel_to_planetocentric(fx, fy)
         azimuth = np.atleast_1d(np.asarray(georef.grid_to_azimuth(direction, fx, fy), dtype=float))
         azimuth = np.where(is_fan, azimuth, azimuth % 180.0)
         lengths = det["length_px"].to_numpy(dtype=float)
@@ -390,6 +425,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         det["azimuth_deg"] = azimuth
         det["wind_from_deg"] = np.where(is_fan, (azimuth + 180.0) % 360.0, np.nan)
         det["length_m"] = np.where(is_fan, metres, np.nan)
+    det["area_m2"] = _detection_areas_m2(det, task, georef)
 
     valid_patch = np.asarray(result.grid.valid, dtype=bool)
     px = np.asarray(result.grid.x_px, dtype=float) - dx
@@ -413,8 +449,54 @@ def _screen_tile(index, task, model_dir, min_score=None):
         direction_scatter_deg=spread,
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
     )
+    row["covered_m2"] = (row["fan_cover"] + row["spot_cover"]) * row["area_m2"]
     entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
     return index, entry
+
+
+def _core_area_m2(task, georef):
+    """Ground area of a tile's core, m^2: geodesic on the CRS's body, or from tiles.csv's
+    metres_per_px; NaN when the scale is unknown."""
+    win = task.window
+    if georef is None:
+        return float(win.width * win.height * task.metres_per_px**2)
+    from .geo import polygon_ground_area_m2
+
+    corners = _core_corners(win)
+    # Pixel centres are at integer px, corners half a pixel out.
+    lon, lat = georef.pixel_to_lonlat(corners[:, 0], corners[:, 1])
+    return polygon_ground_area_m2(lon, lat, georef.crs)
+
+
+def _core_corners(win, per_side=8):
+    """Outline of a tile core in its file's px (centre convention), ``per_side`` points per side."""
+    t = np.linspace(0.0, 1.0, per_side, endpoint=False)
+    c0, r0 = win.col0 - 0.5, win.row0 - 0.5
+    c1, r1 = c0 + win.width, r0 + win.height
+    cols = np.concatenate([c0 + (c1 - c0) * t, np.full_like(t, c1), c1 - (c1 - c0) * t, np.full_like(t, c0)])
+    rows = np.concatenate([np.full_like(t, r0), r0 + (r1 - r0) * t, np.full_like(t, r1), r1 - (r1 - r0) * t])
+    return np.column_stack([cols, rows])
+
+
+def _detection_areas_m2(det, task, georef):
+    """Ground area of each detection's outline (the polygon written to the GIS files), m^2."""
+    if det.empty:
+        return np.zeros(0)
+    from .geojson import detection_rings, ring_signed_area
+
+    rings, _ = detection_rings(det)
+    if georef is None:
+        px = np.array([abs(ring_signed_area(r)) for r in rings])
+        return px * task.metres_per_px**2
+    from .geo import polygon_ground_area_m2
+
+    sizes = [len(r) for r in rings]
+    allv = np.vstack(rings) + (task.file_col0, task.file_row0)
+    lon, lat = georef.pixel_to_lonlat(allv[:, 0], allv[:, 1])
+    cuts = np.cumsum(sizes)[:-1]
+    return np.array([polygon_ground_area_m2(lo, la, georef.crs)
+                     for lo, la in zip(np.split(np.atleast_1d(lon), cuts), np.split(np.atleast_1d(lat), cuts),
+                                       strict=True)])
 
 
 # ----------------------------------------------------------------------------- journal
@@ -624,10 +706,15 @@ def _image_offsets(detections, tasks):
 
 @dataclass(frozen=True)
 class _GeoContext:
-    """Run-wide georeferencing: every file's georeferencer, and whether the GeoJSON is in map coordinates."""
+    """Run-wide georeferencing: every file's georeferencer and its GeoPackage layer pair.
+
+    Files that share a CRS share a pair of layers (``detections`` and
+    ``tiles``, numbered ``_2``, ``_3``, ... when the run holds several CRSs);
+    files without a CRS share the pair in image pixels.
+    """
 
     georefs: dict
-    use_map: bool
+    layers: dict  # file path -> (layer suffix, CRS WKT or None)
 
     @property
     def any_georeferenced(self):
@@ -638,43 +725,115 @@ class _GeoContext:
         georefs = {}
         for entry in images.values():
             georefs.update(entry["georefs"])
-        crs_wkts = {None if g is None else g.crs.to_wkt() for g in georefs.values()}
-        # Map coordinates only when every file shares one CRS; otherwise image px for all.
-        return cls(georefs, None not in crs_wkts and len(crs_wkts) == 1)
+        keys = []
+        for g in georefs.values():
+            key = None if g is None else g.crs.to_wkt()
+            if key not in keys:
+                keys.append(key)
+        suffix = {key: "" if len(keys) == 1 else f"_{k + 1}" for k, key in enumerate(keys)}
+        layers = {path: (suffix[None if g is None else g.crs.to_wkt()], None if g is None else g.crs.to_wkt())
+                  for path, g in georefs.items()}
+        return cls(georefs, layers)
+
+    def describe(self):
+        """One line per GeoPackage layer pair: what its coordinates are."""
+        out = {}
+        for path, (suffix, wkt) in self.layers.items():
+            g = self.georefs[path]
+            out.setdefault(suffix, "image pixels (x = column, y = -row), no CRS" if g is None
+                           else f"map coordinates of {g.crs.name!r}")
+        return {f"detections{k}, tiles{k}": v for k, v in out.items()}
 
 
 def _geojson_chunks(detections, tasks, geo, *, chunk=2000):
-    """FeatureCollections of consecutive chunks of the detections (at least one, maybe empty)."""
-    if len(detections) <= chunk:
-        yield _geojson(detections, tasks, geo)
+    """FeatureCollections of consecutive chunks of the georeferenced detections (maybe empty)."""
+    if detections.empty:
         return
+    paths, _, _ = _image_offsets(detections, tasks)
+    georeferenced = np.array([geo.georefs[p] is not None for p in paths], dtype=bool)
+    detections = detections.loc[georeferenced]
     for start in range(0, len(detections), chunk):
         yield _geojson(detections.iloc[start:start + chunk], tasks, geo)
 
 
 def _geojson(detections, tasks, geo):
+    """Planetocentric lon/lat FeatureCollection of georeferenced detections (see detector.geojson)."""
     from .geojson import detections_to_geojson
 
-    georefs, use_map = geo.georefs, geo.use_map
-    if detections.empty:
-        first = next(iter(georefs.values()), None)
-        return detections_to_geojson(detections.iloc[0:0], georef=first if use_map else None)
     paths, ox, oy = _image_offsets(detections, tasks)
     df = detections.copy()
-    if not use_map:
-        # Image px: tile px plus the tile's offset in its image (the file offset when the image offset is unknown).
-        df["x_px"] = df["x_px"] + np.where(df["col0"].isna(), ox, df["col0"].astype(float).fillna(0))
-        df["y_px"] = df["y_px"] + np.where(df["row0"].isna(), oy, df["row0"].astype(float).fillna(0))
-        return detections_to_geojson(df)
     df["x_px"] = df["x_px"] + ox
     df["y_px"] = df["y_px"] + oy
-    features, collection = [], None
+    features = []
     for path in pd.unique(paths):
-        sel = paths == path
-        collection = detections_to_geojson(df.loc[sel], georef=georefs[path])
-        features.extend(collection["features"])
-    collection["features"] = features
-    return collection
+        features.extend(detections_to_geojson(df.loc[paths == path], georef=geo.georefs[path])["features"])
+    return {"type": "FeatureCollection", "features": features}
+
+
+def _pixel_crs_xy(cols, rows):
+    """Image px (centre convention) to the GeoPackage's pixel CRS: x = column, y = -row, corners at integers."""
+    return np.column_stack([np.asarray(cols, dtype=float) + 0.5, -(np.asarray(rows, dtype=float) + 0.5)])
+
+
+_TEXT_COLUMNS = ("tile_id", "image", "route", "kind")
+
+
+def _layer_fields(frame):
+    """GeoPackage attribute columns of a frame: text as str, everything else float (NaN = null)."""
+    return {c: frame[c].astype(str).to_numpy(dtype=object) if c in _TEXT_COLUMNS
+            else pd.to_numeric(frame[c], errors="coerce").to_numpy(dtype=float) for c in frame.columns}
+
+
+def _write_gpkg_chunk(path, name, tiles, detections, tasks, images, geo, created):
+    """Append one image's detections and tile footprints to the GeoPackage's layers.
+
+    ``created`` is the set of layers already in the file (updated here).
+    """
+    from .geojson import detection_rings
+    from .gpkg import PIXEL_CRS_WKT, write_polygon_layer
+
+    pieces = {p.path: p for p in images[name]["pieces"]}
+    by_tile = {t.tile_id: t for t in tasks}
+
+    def layer_xy(file_path, cols, rows):
+        # cols, rows: px of the file; to the layer's coordinates
+        georef = geo.georefs[file_path]
+        if georef is None:
+            piece = pieces[file_path]
+            return _pixel_crs_xy(np.asarray(cols) + piece.col0, np.asarray(rows) + piece.row0)
+        return np.column_stack([np.atleast_1d(v) for v in georef.pixel_to_map(cols, rows)])
+
+    def write(layer, wkt, rings, fields, what):
+        write_polygon_layer(path, layer, rings, fields, crs_wkt=wkt or PIXEL_CRS_WKT,
+                            description=f"frostvane {what}" + ("" if wkt else
+                                                               "; image pixels, x = column, y = -row, no CRS"),
+                            append=layer in created)
+        created.add(layer)
+
+    tile_paths = np.array([by_tile[t].path for t in tiles["tile_id"]], dtype=object)
+    det_paths, ox, oy = _image_offsets(detections, tasks) if len(detections) else (np.array([], dtype=object),) * 3
+    suffixes = {geo.layers[p] for p in pd.unique(tile_paths)}
+    for suffix, wkt in sorted(suffixes, key=lambda k: k[0]):
+        files = [p for p in pd.unique(tile_paths) if geo.layers[p] == (suffix, wkt)]
+        # tile footprints
+        sel = np.isin(tile_paths, files)
+        part = tiles.loc[sel]
+        rings = []
+        for tile_id, file_path in zip(part["tile_id"], tile_paths[sel], strict=True):
+            corners = _core_corners(by_tile[tile_id].window)
+            rings.append(layer_xy(file_path, corners[:, 0], corners[:, 1]))
+        fields = _layer_fields(part)
+        fields["covered_fraction"] = (part["fan_cover"] + part["spot_cover"]).to_numpy(dtype=float)
+        write(f"tiles{suffix}", wkt, rings, fields, "tile footprints (cores) with p_deposit, route and cover")
+        # detections
+        sel = np.isin(det_paths, files)
+        part = detections.loc[sel]
+        file_x = part["x_px"].to_numpy(dtype=float) + np.asarray(ox[sel], dtype=float)
+        file_y = part["y_px"].to_numpy(dtype=float) + np.asarray(oy[sel], dtype=float)
+        outlines, _ = detection_rings(part.assign(x_px=file_x, y_px=file_y))
+        rings = [layer_xy(fp, r[:, 0], r[:, 1]) for fp, r in zip(det_paths[sel], outlines, strict=True)]
+        fields = _layer_fields(part)
+        write(f"detections{suffix}", wkt, rings, fields, "detections (fan sectors, spot ellipses)")
 
 
 # ----------------------------------------------------------------------------- figures
@@ -954,14 +1113,26 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
             totals["area"] += float((scored["width"] * scored["height"]).sum())
             totals["covered"] += float(
                 ((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
-            yield from _geojson_chunks(detections, image_tasks, geo)
+            _write_gpkg_chunk(stage / _GPKG, name, tiles, detections, image_tasks, images, geo, layers)
+            if geo.any_georeferenced:
+                yield from _geojson_chunks(detections, image_tasks, geo)
 
     # The stage folder is moved in only when everything is written, so plain files suffice here.
+    layers = set()
     with open(stage / "tiles.csv", "w", encoding="utf-8", newline="") as tiles_out, \
             open(stage / "detections.csv", "w", encoding="utf-8", newline="") as detections_out:
-        write_geojson_chunks(stage / "detections.geojson", image_chunks(tiles_out, detections_out))
+        if geo.any_georeferenced:
+            write_geojson_chunks(stage / _GEOJSON, image_chunks(tiles_out, detections_out))
+        else:
+            # Without any CRS there is no longitude or latitude to write: no GeoJSON (see detector.geojson).
+            for _ in image_chunks(tiles_out, detections_out):
+                pass
     figures.save(stage / "quicklook.png", stage / "rose.png")
-    return totals, pd.concat(records, ignore_index=True)
+    written = [f for f in _OUTPUT_FILES if (stage / f).exists()]
+    coordinates = {_GPKG: geo.describe()}
+    if geo.any_georeferenced:
+        coordinates[_GEOJSON] = GEOJSON_COORDINATES
+    return totals, pd.concat(records, ignore_index=True), {"outputs": written, "coordinates": coordinates}
 
 
 # ----------------------------------------------------------------------------- summary
@@ -1067,7 +1238,7 @@ def _per_image(tiles, detections):
 
 
 def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, scheduler=None, nodata=None,
-           band=None, min_score=None, progress=True):
+           band=None, min_score=None, progress=True, any_body=False):
     """Screen images or tile sets with a model and write the screening folder.
 
     Parameters
@@ -1096,6 +1267,9 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         Smallest detection score kept; default the model card's.
     progress : bool, optional
         Show a tqdm progress bar over tiles.
+    any_body : bool, default=False
+        Accept rasters whose CRS is not on Mars (otherwise refused, see
+        :func:`detector.geo.check_mars_crs`).
 
     Returns
     -------
@@ -1112,7 +1286,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     workers = _check_workers(workers)
     model_dir = Path(model_dir)
     cached_model(model_dir)  # a missing or tampered model fails here, before anything is written
-    tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
+    tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body)
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
     params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
     out = Path(out)
@@ -1139,7 +1313,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     t_tiles = time.perf_counter() - t_tiles
 
     with _staged(out) as stage:
-        totals, per_image = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
+        totals, per_image, written = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
 
     seconds = time.perf_counter() - t_start
     area, covered = totals.pop("area"), totals.pop("covered")
@@ -1168,7 +1342,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
                    "mpx_per_s": summary.mpx_per_s, "tiles_resumed": n_resumed, "tiles_computed": len(todo)},
         "counts": {k: getattr(summary, k)
                    for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles")},
-        "outputs": list(_OUTPUT_FILES),
+        **written,
     }
     write_json(out / _RUN_FILE, _finite(record), end="\n")
     return summary
@@ -1204,6 +1378,6 @@ def screen_command(args):
     """``frostvane screen``: run :func:`screen` with the parsed arguments and print the summary."""
     summary = screen(
         args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap, workers=args.workers,
-        scheduler=args.scheduler, nodata=args.nodata, band=args.band,
+        scheduler=args.scheduler, nodata=args.nodata, band=args.band, any_body=args.any_body,
     )
     print(summary.format())

@@ -140,7 +140,7 @@ def run_demo(out, *, tiles, model, retrain=False):
         shutil.rmtree(screen_dir)
     summary = screen(model_dir, [mosaic], screen_dir)
     print(summary.format())
-    print(f"screening outputs: {screen_dir} (quicklook.png, rose.png, tiles.csv, detections.csv, detections.geojson)")
+    print(f"screening outputs: {screen_dir} (quicklook.png, rose.png, tiles.csv, detections.csv, detections.gpkg)")
 
     _section("5. remaining volunteer effort")
     from .effort import run_effort
@@ -152,6 +152,6 @@ def run_demo(out, *, tiles, model, retrain=False):
 
     _section("done")
     print(f"everything is in {out}/: consensus_overlay.png, report/ (report.md, *.png), "
-          f"screen/ (tiles.csv, detections.csv, detections.geojson, quicklook.png, rose.png, effort.json, routes.csv), "
+          f"screen/ (tiles.csv, detections.csv, detections.gpkg, quicklook.png, rose.png, effort.json, routes.csv), "
           f"winds/ (bins.csv, images.csv, agreement_*.csv, model_match.csv, winds.json, bins.geojson, *.png)")
     print(f"demo took {time.perf_counter() - started:.0f} s")

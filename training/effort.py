@@ -666,9 +666,14 @@ def run_effort(model_dir, screen_dir, *, out=None, classifications_per_tile=30, 
     updated["route"] = routed["route"].to_numpy()
     with atomic_path(Path(screen_dir) / "tiles.csv") as tmp:
         updated.to_csv(tmp, index=False)
+    gpkg = Path(screen_dir) / "detections.gpkg"
+    if gpkg.is_file():
+        from detector.gpkg import update_tile_routes
+
+        update_tile_routes(gpkg, dict(zip(routed["tile_id"].astype(str), routed["route"].astype(str), strict=True)))
     log(effort_summary(effort))
     log(f"wrote {out / 'effort.json'} and {out / 'routes.csv'}; updated the route column of "
-        f"{Path(screen_dir) / 'tiles.csv'}")
+        f"{Path(screen_dir) / 'tiles.csv'}" + (f" and the tiles layer of {gpkg}" if gpkg.is_file() else ""))
     return effort
 
 

@@ -5,11 +5,12 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
+import pyproj
 from affine import Affine
 
 from detector.errors import DetectorError
 from detector.geo import MARS_SOUTH_POLAR_STEREO, Georeferencer
-from detector.geojson import detections_to_geojson, ring_signed_area, write_geojson
+from detector.geojson import detections_to_geojson, ring_signed_area, split_lonlat_ring, write_geojson
 
 
 def _detections():
@@ -59,7 +60,8 @@ def _check_structure(fc):
 def test_pixel_geojson_structure_and_properties():
     fc = detections_to_geojson(_detections())
     _check_structure(fc)
-    assert fc["coordinates"] == "image_px" and "crs" not in fc
+    # RFC 7946 section 4: no "crs" member; and no foreign top-level member either.
+    assert set(fc) == {"type", "features"}
     fan, spot, _ = fc["features"]
     assert fan["properties"]["tile_id"] == "A_r00000_c00000"
     assert fan["properties"]["votes"] == 5 and isinstance(fan["properties"]["votes"], int)
@@ -102,13 +104,15 @@ def test_georeferenced_geojson(tmp_path):
     df = _detections()
     fc = detections_to_geojson(df, georef=georef)
     _check_structure(fc)
-    assert fc["coordinates"] == "map"
-    assert "Mars" in fc["crs"]["properties"]["name"]
-    assert "3396190" in fc["crs"]["properties"]["wkt"]
+    assert set(fc) == {"type", "features"}
     fan = fc["features"][0]
-    # The apex vertex is the pixel centre in map coordinates: transform * (col + 0.5, row + 0.5).
-    apex = [20_000.0 + 0.5 * 100.5, 40_000.0 - 0.5 * 200.5]
-    assert np.min(np.hypot(*(np.array(fan["geometry"]["coordinates"][0]) - apex).T)) < 1e-9
+    # The apex vertex is the pixel centre, transform * (col + 0.5, row + 0.5), as lon/lat: PROJ's own
+    # inverse south polar stereographic into the IAU 2015 Mars sphere (IAU_2015:49900, lat, lon order).
+    apex = (20_000.0 + 0.5 * 100.5, 40_000.0 - 0.5 * 200.5)
+    lat_ref, lon_ref = pyproj.Transformer.from_crs(MARS_SOUTH_POLAR_STEREO, "IAU_2015:49900").transform(*apex)
+    ring = np.array(fan["geometry"]["coordinates"][0])
+    assert np.min(np.hypot(ring[:, 0] - lon_ref, ring[:, 1] - lat_ref)) < 1e-9
+    assert (np.abs(ring[:, 0]) <= 180).all() and (ring[:, 1] < -80).all()
     props = fan["properties"]
     lon, lat = georef.pixel_to_lonlat(100.0, 200.0)
     assert props["lon_deg"] == pytest.approx(lon) and props["lat_deg"] == pytest.approx(lat)
@@ -151,10 +155,30 @@ def test_chunked_writing_equals_one_collection(tmp_path):
     from detector.geojson import write_geojson, write_geojson_chunks
 
     def collection(k0, k1):
-        return {"type": "FeatureCollection", "coordinates": "image_px",
+        return {"type": "FeatureCollection",
                 "features": [{"type": "Feature", "properties": {"i": i},
                               "geometry": {"type": "Point", "coordinates": [float(i), 0.5]}} for i in range(k0, k1)]}
 
     write_geojson(tmp_path / "whole.geojson", collection(0, 7))
     write_geojson_chunks(tmp_path / "chunks.geojson", iter([collection(0, 3), collection(3, 3), collection(3, 7)]))
     assert json.loads((tmp_path / "chunks.geojson").read_text()) == json.loads((tmp_path / "whole.geojson").read_text())
+
+
+def test_ring_across_the_antimeridian_is_cut_into_two():
+    # RFC 7946 section 3.1.9: a geometry crossing the antimeridian is cut there.
+    pieces = split_lonlat_ring(np.array([170.0, -170.0, -170.0, 170.0]), np.array([0.0, 0.0, 10.0, 10.0]))
+    assert len(pieces) == 2
+    assert sorted(abs(ring_signed_area(p)) for p in pieces) == pytest.approx([100.0, 100.0])
+    assert all((np.abs(p[:, 0]) <= 180.0).all() for p in pieces)
+    # A ring that does not cross stays whole and untouched.
+    (whole,) = split_lonlat_ring(np.array([10.0, 20.0, 20.0]), np.array([0.0, 0.0, 5.0]))
+    np.testing.assert_allclose(whole, [[10, 0], [20, 0], [20, 5]])
+
+
+def test_ring_around_the_south_pole_is_closed_through_it():
+    # A circle of latitude -89 around the pole: in lon/lat the cap is the band [-180, 180] x [-90, -89].
+    lon = np.arange(0.0, 360.0, 10.0)
+    pieces = split_lonlat_ring(lon, np.full(lon.shape, -89.0))
+    area = sum(abs(ring_signed_area(p)) for p in pieces)
+    assert area == pytest.approx(360.0)
+    assert min(p[:, 1].min() for p in pieces) == -90.0

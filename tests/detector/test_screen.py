@@ -26,7 +26,8 @@ from training.cli import main as cli_main
 
 REPO = Path(__file__).resolve().parents[2]
 DEMO_MODEL = REPO / "models" / "demo"
-OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.geojson", "quicklook.png", "rose.png")
+# A run of images without a CRS writes no GeoJSON (see test_png_run_writes_a_pixel_geopackage_and_no_geojson).
+OUTPUT_FILES = ("tiles.csv", "detections.csv", "detections.gpkg", "quicklook.png", "rose.png")
 TILE = (200, 150)
 
 
@@ -136,8 +137,18 @@ def _cli(*argv):
 
 
 def _same_outputs(a, b):
+    import pyogrio.raw
+
     for name in ("tiles.csv", "detections.csv", "detections.geojson"):
-        assert (a / name).read_bytes() == (b / name).read_bytes(), name
+        if (a / name).exists() or (b / name).exists():
+            assert (a / name).read_bytes() == (b / name).read_bytes(), name
+    # A GeoPackage records when it was written, so its layers are compared, not its bytes.
+    for layer in ("tiles", "detections"):
+        meta_a, _, geom_a, data_a = pyogrio.raw.read(a / "detections.gpkg", layer=layer)
+        meta_b, _, geom_b, data_b = pyogrio.raw.read(b / "detections.gpkg", layer=layer)
+        assert list(meta_a["fields"]) == list(meta_b["fields"]) and list(geom_a) == list(geom_b), layer
+        for x, y in zip(data_a, data_b, strict=True):
+            np.testing.assert_array_equal(x, y)
 
 
 # ----------------------------------------------------------------------------- tile sets
@@ -166,8 +177,9 @@ def test_tileset_input_keeps_tile_ids(model_dir, tmp_path):
     per_tile = detections.groupby("tile_id").size()
     assert (per_tile.reindex(tiles["tile_id"], fill_value=0).to_numpy()
             == (tiles["n_fans"] + tiles["n_spots"]).to_numpy()).all()
-    collection = json.loads((out / "detections.geojson").read_text())
-    assert len(collection["features"]) == len(detections)
+    import pyogrio
+
+    assert pyogrio.read_info(out / "detections.gpkg", layer="detections")["features"] == len(detections)
     assert summary.n_fans + summary.n_spots == len(detections)
     assert summary.per_image["image"].tolist() == sorted(listed["image_id"].unique())
 
@@ -187,7 +199,9 @@ def test_first_image_without_detections_still_heads_the_outputs(model_dir, tmp_p
     assert list(detections.columns[:3]) == ["tile_id", "kind", "x_px"]
     tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
     assert tiles["tile_id"].tolist() == ["A_T0", "B_T0"]
-    assert len(json.loads((out / "detections.geojson").read_text())["features"]) == len(detections)
+    import pyogrio
+
+    assert pyogrio.read_info(out / "detections.gpkg", layer="detections")["features"] == len(detections)
     assert summary.per_image.set_index("image").loc["A_flat", "fans"] == 0
 
 
@@ -228,7 +242,7 @@ def test_outputs_have_the_documented_columns(png_run):
     assert tuple(tiles.columns) == TILE_COLUMNS
     assert set(tiles["route"]) <= {"", "nodata"}
     det = pd.read_csv(out / "detections.csv")
-    assert tuple(det.columns) == DETECTION_COLUMNS + ("image", "col0", "row0")
+    assert tuple(det.columns) == DETECTION_COLUMNS + ("image", "col0", "row0", "area_m2")
     assert set(det["kind"]) <= {"fan", "spot"}
     # Direction convention: degrees clockwise from up in [0, 360).
     assert ((det["direction_deg"] >= 0) & (det["direction_deg"] < 360)).all()
@@ -264,25 +278,28 @@ def test_tile_direction_statistics_match_scipy(png_run):
     assert m == pytest.approx(np.degrees(circmean(np.radians(clean))) % 360.0, abs=1e-6)
 
 
-def test_geojson_is_valid_rfc7946_polygons(png_run):
+def test_png_run_writes_a_pixel_geopackage_and_no_geojson(png_run):
+    import pyogrio
+
     out, _ = png_run
-    collection = json.loads((out / "detections.geojson").read_text())
+    # No CRS, so no longitude or latitude: a GeoJSON would be read as WGS 84 degrees (RFC 7946 section 4).
+    assert not (out / "detections.geojson").exists()
     det = pd.read_csv(out / "detections.csv")
-    assert collection["type"] == "FeatureCollection"
-    assert collection["coordinates"] == "image_px"
-    assert len(collection["features"]) == len(det)
-    for feature, (x, y, col0, row0) in zip(
-        collection["features"], det[["x_px", "y_px", "col0", "row0"]].itertuples(index=False), strict=True
-    ):
-        assert feature["type"] == "Feature" and feature["geometry"]["type"] == "Polygon"
-        ring = np.asarray(feature["geometry"]["coordinates"][0])
-        # RFC 7946 section 3.1.6: closed linear ring of >= 4 positions, exterior counter-clockwise.
-        assert len(ring) >= 4 and np.array_equal(ring[0], ring[-1])
-        area = 0.5 * np.sum(ring[:-1, 0] * ring[1:, 1] - ring[1:, 0] * ring[:-1, 1])
-        assert area > 0
-        # Image px: the apex / centre is inside the ring's bounding box.
-        assert ring[:, 0].min() - 1e-6 <= x + col0 <= ring[:, 0].max() + 1e-6
-        assert ring[:, 1].min() - 1e-6 <= y + row0 <= ring[:, 1].max() + 1e-6
+    tiles = pd.read_csv(out / "tiles.csv")
+    info = pyogrio.read_info(out / "detections.gpkg", layer="detections")
+    assert info["features"] == len(det)
+    assert "image pixels" in info["crs"] and "y = -row" in info["crs"]
+    # GDAL's own bounds of the tile cores: x = column, y = -row, pixel corners at whole numbers.
+    _, bounds = pyogrio.read_bounds(out / "detections.gpkg", layer="tiles")
+    assert bounds[0].min() == 0 and bounds[2].max() == 500 and bounds[1].min() == -380 and bounds[3].max() == 0
+    _, dbounds = pyogrio.read_bounds(out / "detections.gpkg", layer="detections")
+    x = (det["x_px"] + det["col0"]).to_numpy() + 0.5
+    y = -((det["y_px"] + det["row0"]).to_numpy() + 0.5)
+    assert ((dbounds[0] - 1e-6 <= x) & (x <= dbounds[2] + 1e-6)).all()
+    assert ((dbounds[1] - 1e-6 <= y) & (y <= dbounds[3] + 1e-6)).all()
+    assert len(tiles) == pyogrio.read_info(out / "detections.gpkg", layer="tiles")["features"]
+    # No scale is known for a plain PNG: areas are NaN, not invented.
+    assert det["area_m2"].isna().all() and tiles["area_m2"].isna().all()
 
 
 # ----------------------------------------------------------------------------- georeferencing
@@ -324,9 +341,8 @@ def test_georeferenced_geotiff_gets_lonlat_and_azimuth(model_dir, tmp_path):
     np.testing.assert_allclose(det.loc[fans, "wind_from_deg"], (det.loc[fans, "azimuth_deg"] + 180.0) % 360.0)
     np.testing.assert_allclose(det.loc[fans, "length_m"], det.loc[fans, "length_px"] * res)
     collection = json.loads((out / "detections.geojson").read_text())
-    assert collection["coordinates"] == "map"
     ring = np.asarray(collection["features"][0]["geometry"]["coordinates"][0])
-    assert (np.abs(ring[:, 0] - x0 - 2500) < 3000).all()  # map metres, not px
+    assert (np.abs(ring[:, 0] - 90.0) < 1.0).all() and (ring[:, 1] < -84).all()  # lon/lat, not metres
 
 
 def test_nodata_tiles_are_routed_and_not_scored(model_dir, tmp_path):

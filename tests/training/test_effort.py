@@ -481,3 +481,20 @@ def test_learning_curve_orchestration_recovers_law(tmp_path, monkeypatch):
     # 80 n^-0.6 + 3 = 10 -> n = (80 / 7)^(1 / 0.6) = 58.0.
     assert curve["targets"]["fan_direction_median_deg"]["n_tiles_needed"] in (58, 59)
     assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
+
+
+def test_run_effort_updates_the_geopackage_tile_routes(folders):
+    from detector.gpkg import PIXEL_CRS_WKT, read_layer, write_polygon_layer
+
+    model, screen = folders
+    tiles = pd.read_csv(screen / "tiles.csv", dtype={"route": str}, keep_default_na=False)
+    rings = [np.array([[i, 0.0], [i + 1.0, 0.0], [i + 1.0, -1.0]]) for i in range(len(tiles))]
+    write_polygon_layer(screen / "detections.gpkg", "tiles", rings,
+                        {"tile_id": tiles["tile_id"].to_numpy(dtype=object), "route": tiles["route"].to_numpy(dtype=object),
+                         "p_deposit": pd.to_numeric(tiles["p_deposit"]).to_numpy(dtype=float)},
+                        crs_wkt=PIXEL_CRS_WKT)
+    run_effort(model, screen, n_boot=100, log=lambda *_: None)
+    routed = pd.read_csv(screen / "tiles.csv", keep_default_na=False)
+    _, back, fields = read_layer(screen / "detections.gpkg", "tiles")
+    assert list(fields["route"]) == routed["route"].tolist() and set(fields["route"]) - {""}
+    np.testing.assert_allclose(back[2][:3], rings[2])
