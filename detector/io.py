@@ -11,7 +11,14 @@ import numpy as np
 
 from .errors import ImageError
 
-__all__ = ["read_image", "image_size", "write_image", "write_json", "atomic_path", "atomic_dir"]
+__all__ = ["read_image", "image_size", "write_image", "write_json", "atomic_path", "atomic_dir", "current_umask"]
+
+
+def current_umask():
+    """The process's file-creation mask (read without changing it for good)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def read_image(path, *, band=None):
@@ -124,6 +131,8 @@ def atomic_path(path):
     """Yield a temporary file name beside ``path``; rename it to ``path`` on success.
 
     On any exception the temporary file is removed, so no half-written output is left.
+    The file gets the permissions a plain ``open`` would give it (0666 less the
+    umask), not the private 0600 of a temporary file.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -131,6 +140,8 @@ def atomic_path(path):
     os.close(fd)
     try:
         yield Path(tmp)
+        if os.path.exists(tmp):
+            os.chmod(tmp, 0o666 & ~current_umask())
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
@@ -156,6 +167,7 @@ def atomic_dir(path, *, replace=False):
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
     try:
+        os.chmod(tmp, 0o777 & ~current_umask())  # as mkdir would make it, not mkdtemp's private 0700
         yield tmp
         old = None
         if path.exists():
