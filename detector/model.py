@@ -190,7 +190,7 @@ def load_model(folder):
     Parameters
     ----------
     folder : path-like
-        Folder with ``model.json``, ``detector.onnx`` and ``orientation.onnx``.
+        Folder with ``model.json``, ``detector.onnx``, ``orientation.onnx`` and ``objects.onnx``.
 
     Returns
     -------
@@ -199,7 +199,8 @@ def load_model(folder):
     Raises
     ------
     ModelError
-        A file is missing, a hash differs from the one in the card, or the card is malformed.
+        A file is missing, a hash differs from the one in the card, or the card breaks its
+        schema (:func:`detector.card.check_card`: types, lengths and ranges of every field read).
     SpecError
         The model was made with another feature version or parameters than this code computes.
     """
@@ -211,19 +212,24 @@ def load_model(folder):
         card = json.loads(card_path.read_text())
     except (OSError, ValueError) as err:
         raise ModelError(f"{str(card_path)!r} is not valid JSON: {err}.") from err
+    if not isinstance(card, dict):
+        raise ModelError(f"{str(card_path)!r} holds a JSON {type(card).__name__}, not an object.")
     version = card.get("format_version")
     if version != MODEL_FORMAT_VERSION:
         raise ModelError(
             f"{str(card_path)!r} has format_version {version!r}; this frostvane reads "
             f"{MODEL_FORMAT_VERSION}: re-export the model with this version of the code."
         )
-    for key in ("feature_spec", "files", "calibration", "orientation_features", "odd_features"):
-        if key not in card:
-            raise ModelError(f"{str(card_path)!r} lacks the field {key!r}.")
+    import dataclasses
+
+    from .assemble import OBJECT_FEATURE_NAMES, AssemblyParams
+    from .card import check_card
+
+    check_card(card, repr(str(card_path)), onnx_files=ONNX_FILES, class_names=CLASS_NAMES,
+               object_feature_names=OBJECT_FEATURE_NAMES,
+               assembly_fields={f.name: f.type for f in dataclasses.fields(AssemblyParams)})
     for name in ONNX_FILES:
         path = folder / name
-        if name == OBJECTS_ONNX and name not in card["files"] and not path.exists():
-            continue  # only while training builds the folder
         if not path.is_file():
             raise ModelError(f"model folder {str(folder)!r} lacks {name!r}.")
         recorded = card["files"].get(name)
@@ -248,10 +254,8 @@ def load_model(folder):
             f"model {str(folder)!r} lists features that differ from this code's "
             f"(missing {missing!r}, unknown {extra!r}): re-export the model with this version of the code."
         )
-    from .assemble import OBJECT_FEATURE_NAMES
-
     objects = card.get("object_features")
-    if (folder / OBJECTS_ONNX).is_file() and tuple(objects or ()) != OBJECT_FEATURE_NAMES:
+    if tuple(objects or ()) != OBJECT_FEATURE_NAMES:
         missing = sorted(set(OBJECT_FEATURE_NAMES) - set(objects or ()))[:5]
         extra = sorted(set(objects or ()) - set(OBJECT_FEATURE_NAMES))[:5]
         raise SpecError(
@@ -276,7 +280,7 @@ def load_model(folder):
         odd_mask=odd_mask,
         _detector=_session(folder / DETECTOR_ONNX),
         _orientation=_session(folder / ORIENTATION_ONNX),
-        _objects=_session(folder / OBJECTS_ONNX) if (folder / OBJECTS_ONNX).is_file() else None,
+        _objects=_session(folder / OBJECTS_ONNX),
     )
 
 

@@ -2,6 +2,7 @@
 
 import json
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -131,3 +132,50 @@ def test_calibration_identity():
 def test_calibration_rejects_bad_temperature():
     with pytest.raises(SpecError, match="temperature"):
         Calibration(temperature=0.0)
+
+
+def _drop_objects(card, folder):
+    del card["files"]["objects.onnx"]
+    (folder / "objects.onnx").unlink()
+
+
+@pytest.mark.parametrize(
+    "edit, field",
+    [
+        (lambda c, f: c["assembly"].update(min_score=float("nan")), "assembly.min_score"),
+        (lambda c, f: c["assembly"].update(min_score=-5), "assembly.min_score"),
+        (lambda c, f: c["assembly"].update(min_score="0.3"), "assembly.min_score"),
+        (lambda c, f: c["assembly"].update(min_area_px=2.5), "assembly.min_area_px"),
+        (lambda c, f: c["calibration"].update(bias=[0.0, 0.1]), "calibration.bias"),
+        (lambda c, f: c["calibration"].update(temperature=None), "calibration.temperature"),
+        (lambda c, f: c.update(class_names=["none", "spot", "fan"]), "class_names"),
+        (lambda c, f: c.update(orientation_features="hog_b0_c0_o0"), "orientation_features"),
+        (lambda c, f: c.update(direction_confidence={**c["direction_confidence"], "coef": [1.0]}),
+         "direction_confidence.coef"),
+        (lambda c, f: c.update(unfamiliarity={**c["unfamiliarity"], "threshold": 0.0}), "unfamiliarity.threshold"),
+        (lambda c, f: c.update(unfamiliarity={**c["unfamiliarity"], "variances": [1.0]}), "unfamiliarity.variances"),
+        (lambda c, f: c["files"].update({"detector.onnx": 12}), "files.detector.onnx"),
+        (_drop_objects, "files.objects.onnx"),
+    ],
+)
+def test_card_breaking_its_schema_is_refused_naming_the_field(model_copy, edit, field):
+    card = json.loads((model_copy / MODEL_CARD).read_text())
+    # A tiny model may lack these optional fits; the shipped model's are well-formed ones to break.
+    shipped = json.loads((Path(__file__).resolve().parents[2] / "models" / "demo" / MODEL_CARD).read_text())
+    for key in ("unfamiliarity", "direction_confidence"):
+        card[key] = card.get(key) or shipped[key]
+    edit(card, model_copy)
+    (model_copy / MODEL_CARD).write_text(json.dumps(card))  # json writes NaN as the bare token NaN
+    with pytest.raises(ModelError, match=field.replace(".", r"\.")):
+        load_model(model_copy)
+
+
+def test_card_that_is_not_an_object_is_refused(model_copy, capsys):
+    from training.cli import main
+
+    (model_copy / MODEL_CARD).write_text("[1, 2]")
+    with pytest.raises(ModelError, match="not an object"):
+        load_model(model_copy)
+    assert main(["screen", str(model_copy), str(model_copy / "none.png"), "--out", str(model_copy / "o")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "model.json" in err and "Traceback" not in err

@@ -46,8 +46,9 @@ def _build_small_model(folder, seed=0):
 
     from detector.assemble import AssemblyParams
     from detector.features import extract_features
-    from detector.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, ORIENTATION_ONNX,
-                                sha256_file)
+    from detector.assemble import OBJECT_FEATURE_NAMES
+    from detector.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, OBJECTS_ONNX,
+                                ORIENTATION_ONNX, sha256_file)
     from detector.spec import POLARITY_ODD_FEATURES, FeatureSpec
     from training.export import to_onnx_bytes
     from training.synth import render_scene, to_uint8
@@ -70,9 +71,14 @@ def _build_small_model(folder, seed=0):
         orientation = HistGradientBoostingClassifier(max_iter=5, random_state=0).fit(
             X[:, index], np.arange(len(X)) % 2
         )
+        # The object classifier only has to exist: it scores readings by their patch probability.
+        F = rng.random((200, len(OBJECT_FEATURE_NAMES)))
+        objects = HistGradientBoostingClassifier(max_iter=5, random_state=0).fit(
+            F, (F[:, OBJECT_FEATURE_NAMES.index("read_p_fan")] > 0.5).astype(int))
     folder.mkdir(parents=True, exist_ok=True)
     (folder / DETECTOR_ONNX).write_bytes(to_onnx_bytes(detector, X.shape[1]))
     (folder / ORIENTATION_ONNX).write_bytes(to_onnx_bytes(orientation, len(index)))
+    (folder / OBJECTS_ONNX).write_bytes(to_onnx_bytes(objects, F.shape[1]))
     card = {
         "format_version": MODEL_FORMAT_VERSION,
         "class_names": list(CLASS_NAMES),
@@ -82,7 +88,8 @@ def _build_small_model(folder, seed=0):
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": 1.0, "bias": [0.0, 0.0, 0.0]},
         "assembly": asdict(AssemblyParams()),
-        "files": {n: sha256_file(folder / n) for n in (DETECTOR_ONNX, ORIENTATION_ONNX)},
+        "files": {n: sha256_file(folder / n) for n in (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX)},
+        "object_features": list(OBJECT_FEATURE_NAMES),
         "unfamiliarity": None,
     }
     (folder / MODEL_CARD).write_text(json.dumps(card))
