@@ -32,7 +32,9 @@ from .io import read_image
 __all__ = ["TileSet", "load_tileset", "summarize_tileset", "format_summary", "MIN_TILE_SIDE"]
 
 #: Smallest accepted tile side, px: below it no patch descriptor fits.
-MIN_TILE_SIDE = 32
+#: Smallest tile side, px: one patch of the default feature spec (64 px); a narrower tile holds
+#: no patch, so nothing in it could be found.
+MIN_TILE_SIDE = 64
 
 _IMAGE_SUFFIXES = (".png", ".tif", ".tiff")
 _TILES_NUMERIC = ("solar_longitude_deg", "classifications", "col0", "row0", "metres_per_px")
@@ -209,6 +211,32 @@ def _whole(values):
     return values.isna() | (values == np.round(values))
 
 
+def path_problem(root, rel):
+    """Why a tile path may not be used (None when it may): it must stay inside the tile-set folder.
+
+    Parameters
+    ----------
+    root : Path
+        The tile-set folder.
+    rel : str
+        The ``path`` of a tiles.csv row.
+
+    Returns
+    -------
+    problem : str or None
+        E.g. ``"is absolute; paths are relative to the tile-set folder"``.
+    """
+    if rel == "":
+        return None
+    if Path(rel).is_absolute() or rel.startswith(("\\", "/")) or (len(rel) > 1 and rel[1] == ":"):
+        return "is absolute; paths are relative to the tile-set folder"
+    base = Path(root).resolve()
+    target = (base / rel).resolve()
+    if target != base and base not in target.parents:
+        return "leaves the tile-set folder; tile images must lie inside it"
+    return None
+
+
 def _check_tiles(root, tiles, problems, check_images):
     """Validate tiles.csv rows and images; return the typed table."""
     name = TILES_FILE
@@ -223,6 +251,11 @@ def _check_tiles(root, tiles, problems, check_images):
     first_row = out.reset_index().groupby("tile_id")["index"].min()
     for row, tile_id in zip(dup.index[dup], out["tile_id"][dup]):
         problems.add(name, row, f"{name} row {row}: tile_id {tile_id!r} duplicates row {first_row[tile_id]}.")
+
+    for row, rel in zip(out.index, out["path"]):
+        problem = path_problem(root, rel)
+        if problem:
+            problems.add(name, row, f"{name} row {row}: path {rel!r} {problem}.")
 
     num = {column: _numbers(tiles, name, column, problems) for column in _TILES_NUMERIC + _SIZE_COLUMNS}
     v = num["solar_longitude_deg"]
@@ -260,7 +293,7 @@ def _check_images(root, tiles, stated_width, stated_height, problems):
     # One image per tile row: reading is I/O-bound and each file must be decoded
     # anyway to prove it is not corrupt.
     for row, rel in zip(tiles.index, tiles["path"]):
-        if rel == "":
+        if rel == "" or path_problem(root, rel):
             continue
         path = root / rel
         if path.suffix.lower() not in _IMAGE_SUFFIXES:

@@ -10,7 +10,7 @@ TILES = [
     ("t_a1", "IMG_A", "a1.png", 64, 96, np.uint8),
     ("t_a2", "IMG_A", "a2.png", 64, 96, np.uint8),
     ("t_b1", "IMG_B", "b1.tif", 72, 80, np.uint16),
-    ("t_b2", "IMG_B", "sub/b2.png", 48, 64, np.uint8),
+    ("t_b2", "IMG_B", "sub/b2.png", 64, 64, np.uint8),
 ]
 
 CONSENSUS = [

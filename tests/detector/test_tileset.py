@@ -216,7 +216,7 @@ BROKEN = [
     ("fan with spot axis", _cell("consensus.csv", 1, "semi_major_px", "5"), "consensus.csv", 1, "'5'"),
     ("x right of tile", _cell("consensus.csv", 1, "x_px", "95.6"), "consensus.csv", 1, "95.6"),
     ("x left of tile", _cell("consensus.csv", 4, "x_px", "-0.6"), "consensus.csv", 4, "-0.6"),
-    ("y below tile", _cell("consensus.csv", 6, "y_px", "47.75"), "consensus.csv", 6, "47.75"),
+    ("y below tile", _cell("consensus.csv", 6, "y_px", "63.75"), "consensus.csv", 6, "63.75"),
     ("y above tile", _cell("consensus.csv", 2, "y_px", "-3"), "consensus.csv", 2, "-3.0"),
     ("direction 360", _cell("consensus.csv", 1, "direction_deg", "360"), "consensus.csv", 1, "360.0"),
     ("direction 400", _cell("consensus.csv", 2, "direction_deg", "400"), "consensus.csv", 2, "400.0"),
@@ -291,3 +291,15 @@ def test_every_problem_is_reported_at_once(tileset_dir):
         next(p for p in problems if p.startswith(t)) for t in expected
     ]
     assert str(info.value).count("\n") == len(problems) - 1
+
+
+@pytest.mark.parametrize("where", ["absolute", "parent"])
+def test_tile_path_leaving_the_folder_is_refused(tileset_dir, tmp_path, where):
+    outside = tmp_path / "outside.png"
+    shutil.copy(tileset_dir / "a1.png", outside)
+    rel = str(outside) if where == "absolute" else "../outside.png"
+    set_cell(tileset_dir, "tiles.csv", 1, "path", rel)
+    with pytest.raises(TileSetError) as info:
+        load_tileset(tileset_dir)
+    words = "is absolute" if where == "absolute" else "leaves the tile-set folder"
+    assert any(rel in p and words in p and "row 1" in p for p in info.value.problems)
