@@ -31,7 +31,10 @@ def add_detector_commands(commands):
     screen.add_argument("--overlap", type=int, default=32, help="Margin read around each tile, px.")
     screen.add_argument("--workers", type=int, default=1)
     screen.add_argument("--scheduler", default=None, help="Address of a running Dask distributed scheduler.")
-    screen.add_argument("--nodata", type=float, default=None)
+    screen.add_argument("--nodata", default=None, metavar="VALUE",
+                        help="Pixel value marking no data: a number, or 'none' when no value does (NaN pixels "
+                        "of float images always do). Default: the raster's own no-data value, else 0, the fill "
+                        "of map-projected products; say 'none' for products whose darkest pixels are clipped to 0.")
     screen.add_argument("--band", type=int, default=None, help="1-based band of a multi-band image.")
     screen.add_argument("--any-body", action="store_true",
                         help="Screen a raster whose CRS is not on Mars (refused otherwise).")

@@ -11,7 +11,17 @@ import numpy as np
 
 from .errors import ImageError
 
-__all__ = ["read_image", "image_size", "write_image", "write_json", "atomic_path", "atomic_dir", "current_umask"]
+__all__ = [
+    "MAX_TILE_PIXELS",
+    "read_image",
+    "image_size",
+    "supported_pixels",
+    "write_image",
+    "write_json",
+    "atomic_path",
+    "atomic_dir",
+    "current_umask",
+]
 
 
 def current_umask():
@@ -21,13 +31,71 @@ def current_umask():
     return mask
 
 
+#: Largest tile image read whole, px: a tile-set tile is a few Mpx; a file that would decode
+#: to more is refused from its header, before any pixel is decoded (a decompression bomb).
+MAX_TILE_PIXELS = 50_000_000
+
+
+def supported_pixels(array, source, *, valid=None):
+    """The pixels of an image in a supported type, converted exactly, or an error.
+
+    Supported: uint8 and uint16 as they are; other integer types when every
+    value lies in [0, 65535] (converted to uint16, exactly); float in [0, 1]
+    (reflectance-like; NaN is no-data). Anything else would need a stretch
+    that only the user can choose, so it is refused.
+
+    Parameters
+    ----------
+    array : ndarray of shape (M, N)
+    source : str
+        The file (and window) the pixels come from, for the message.
+    valid : ndarray of bool of shape (M, N), optional
+        Only these pixels must be in range (no-data may hold any value, e.g.
+        -32768); the others become 0 when the type is converted.
+
+    Returns
+    -------
+    array : ndarray of shape (M, N), dtype uint8, uint16 or float
+
+    Raises
+    ------
+    ImageError
+        Booleans, integers outside [0, 65535], floats outside [0, 1], complex numbers.
+    """
+    array = np.asarray(array)
+    kind = array.dtype.kind
+    if array.dtype in (np.uint8, np.uint16):
+        return array
+    values = array if valid is None else array[np.asarray(valid, dtype=bool)]
+    if kind in "iu":
+        lo, hi = (int(values.min()), int(values.max())) if values.size else (0, 0)
+        if lo < 0 or hi > 65535:
+            raise ImageError(
+                f"image {source} has {array.dtype} pixels in [{lo}, {hi}]; frostvane reads 8- or 16-bit "
+                f"grey levels (0-65535): rescale it to uint8 or uint16 first."
+            )
+        return (array if valid is None else np.where(valid, array, 0)).astype(np.uint16)
+    if kind == "f":
+        finite = values[np.isfinite(values)]
+        if finite.size and (finite.min() < 0 or finite.max() > 1):
+            raise ImageError(
+                f"image {source} has {array.dtype} pixels in [{finite.min():g}, {finite.max():g}]; float images "
+                f"must be scaled to [0, 1] (or stored as uint8 / uint16)."
+            )
+        return array
+    what = "1-bit (black and white)" if kind == "b" else str(array.dtype)
+    raise ImageError(f"image {source} has {what} pixels; expected 8- or 16-bit grey levels or float in [0, 1].")
+
+
 def read_image(path, *, band=None):
-    """Read a single-band PNG or TIFF tile as a 2-D array of its own dtype.
+    """Read a single-band PNG or TIFF tile as a 2-D array of a supported type.
 
     Parameters
     ----------
     path : path-like
-        PNG or TIFF file, 8- or 16-bit, one band.
+        PNG or TIFF file, one band: 8- or 16-bit grey levels, other integer
+        types with values in [0, 65535] (converted to uint16 exactly), or float
+        in [0, 1] (see :func:`supported_pixels`).
     band : int, optional
         1-based band to take from a multi-band image; without it a multi-band
         image is an error.
@@ -39,7 +107,8 @@ def read_image(path, *, band=None):
     Raises
     ------
     ImageError
-        The file is missing, unreadable or not single-band.
+        The file is missing, unreadable, not single-band, a palette or 1-bit
+        image, larger than :data:`MAX_TILE_PIXELS`, or of an unsupported pixel type.
     """
     path = Path(path)
     if not path.is_file():
@@ -48,18 +117,28 @@ def read_image(path, *, band=None):
         if path.suffix.lower() in (".tif", ".tiff"):
             import tifffile
 
-            image = tifffile.imread(path)
+            with tifffile.TiffFile(path) as tif:
+                page = tif.pages[0]
+                _check_size(path, page.shape)
+                if page.photometric == tifffile.PHOTOMETRIC.PALETTE:
+                    _refuse_palette(path)
+                image = page.asarray()
         else:
             from PIL import Image
 
             with Image.open(path) as handle:
+                _check_size(path, handle.size[::-1])
+                if handle.mode in ("P", "PA"):
+                    _refuse_palette(path)
                 handle.load()
                 if handle.mode in ("I;16", "I;16B", "I;16L"):
                     image = np.array(handle, dtype=np.uint16)
                 else:
                     image = np.asarray(handle)
+    except ImageError:
+        raise
     except Exception as err:  # any decoder failure is a corrupt image to the user
-        raise ImageError(f"image {str(path)!r} cannot be read: {err}.") from err
+        raise ImageError(f"image {str(path)!r} cannot be read: {str(err).rstrip('.')}.") from err
     image = np.asarray(image)
     if image.ndim == 3:
         # Channels last (PIL) or first (tifffile, planar): the smaller axis is the band axis.
@@ -74,9 +153,23 @@ def read_image(path, *, band=None):
         image = np.take(image, band - 1, axis=axis)
     if image.ndim != 2 or image.size == 0:
         raise ImageError(f"image {str(path)!r} has shape {image.shape}; expected a single-band (M, N) image.")
-    if image.dtype == np.int32 or image.dtype == np.int64:
-        image = image.astype(np.uint16)
-    return image
+    return supported_pixels(image, repr(str(path)))
+
+
+def _check_size(path, shape):
+    pixels = int(np.prod([int(v) for v in shape[:2]]))
+    if pixels > MAX_TILE_PIXELS:
+        raise ImageError(
+            f"image {str(path)!r} is {shape[1]} x {shape[0]} px ({pixels / 1e6:.0f} Mpx); a tile may have at most "
+            f"{MAX_TILE_PIXELS / 1e6:.0f} Mpx: screen it as a whole image (frostvane screen cuts it into tiles)."
+        )
+
+
+def _refuse_palette(path):
+    raise ImageError(
+        f"image {str(path)!r} is a palette (indexed colour) image; its values are colour indices, not "
+        f"brightness: convert it to 8-bit grey first."
+    )
 
 
 def image_size(path):

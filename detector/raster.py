@@ -29,6 +29,8 @@ __all__ = [
     "write_geotiff",
     "write_by_windows",
     "mosaic_tiles",
+    "nodata_value",
+    "check_complete",
 ]
 
 #: GDAL block cache while reading or writing, MB: bounded so memory does not follow image size.
@@ -84,7 +86,7 @@ def _positive_int(value, name):
     return int(value)
 
 
-def plan_windows(width, height, *, tile=(800, 600), overlap=32, image="image"):
+def plan_windows(width, height, *, tile=(800, 600), overlap=32, image="image", min_read=0):
     """Cut an image into a regular grid of tiles.
 
     Parameters
@@ -101,6 +103,10 @@ def plan_windows(width, height, *, tile=(800, 600), overlap=32, image="image"):
         edge are still seen whole from one side; clipped to the image.
     image : str, optional
         Image name used in the tile ids.
+    min_read : int, optional
+        Smallest read window side, px: a thin last row or column of cores is
+        read with more of the image inward, so that it holds at least one
+        patch (when the image is that large).
 
     Returns
     -------
@@ -118,15 +124,24 @@ def plan_windows(width, height, *, tile=(800, 600), overlap=32, image="image"):
     if isinstance(overlap, bool) or not isinstance(overlap, (int, np.integer)) or overlap < 0:
         raise SpecError(f"overlap {overlap!r} must be a whole number of px >= 0.")
     overlap = int(overlap)
+    min_read = int(min_read)
+
+    def grown(lo, hi, size):
+        # Grow [lo, hi) to min_read px inside [0, size), inward first.
+        if hi - lo >= min_read:
+            return lo, hi
+        lo = max(0, hi - min_read)
+        return lo, min(size, lo + min_read)
+
     cols = range(0, width, tile_w)
     rows = range(0, height, tile_h)
     windows = []
     for row0 in rows:
         h = min(tile_h, height - row0)
-        r0, r1 = max(0, row0 - overlap), min(height, row0 + h + overlap)
+        r0, r1 = grown(max(0, row0 - overlap), min(height, row0 + h + overlap), height)
         for col0 in cols:
             w = min(tile_w, width - col0)
-            c0, c1 = max(0, col0 - overlap), min(width, col0 + w + overlap)
+            c0, c1 = grown(max(0, col0 - overlap), min(width, col0 + w + overlap), width)
             windows.append(
                 TileWindow(f"{image}_r{row0:05d}_c{col0:05d}", str(image), col0, row0, w, h, c0, r0, c1 - c0, r1 - r0)
             )
@@ -181,7 +196,7 @@ class RasterSource:
                 try:
                     self._dataset = self._stack.enter_context(rasterio.open(self.path))
                 except rasterio.errors.RasterioError as err:
-                    raise ImageError(f"image {str(self.path)!r} cannot be read: {err}.") from err
+                    raise ImageError(f"image {str(self.path)!r} cannot be read: {str(err).rstrip('.')}.") from err
                 ds = self._dataset
                 self.count = ds.count
                 if band is None:
@@ -195,13 +210,28 @@ class RasterSource:
                 self.band = int(band)
                 self.width, self.height = ds.width, ds.height
                 self.dtype = np.dtype(ds.dtypes[self.band - 1])
+                self._check_pixel_type(ds)
                 self.crs = ds.crs
                 self.transform = ds.transform
-                own = ds.nodatavals[self.band - 1]
-                self.nodata = float(nodata if nodata is not None else own if own is not None else 0)
+                self.nodata = nodata_value(nodata, ds.nodatavals[self.band - 1])
         except BaseException:
             self._stack.close()
             raise
+
+    def _check_pixel_type(self, ds):
+        """Refuse what cannot be brightness: palette indices, 1-bit masks, complex numbers."""
+        from rasterio.enums import ColorInterp
+
+        where = repr(str(self.path))
+        if ds.colorinterp[self.band - 1] == ColorInterp.palette:
+            raise ImageError(
+                f"image {where} is a palette (indexed colour) image; its values are colour indices, not "
+                f"brightness: convert it to 8-bit grey first."
+            )
+        if ds.tags(self.band, "IMAGE_STRUCTURE").get("NBITS") == "1":
+            raise ImageError(f"image {where} has 1-bit (black and white) pixels; expected grey levels.")
+        if self.dtype.kind not in "uif":
+            raise ImageError(f"image {where} has {self.dtype} pixels; expected 8- or 16-bit grey levels or float.")
 
     # -- context manager -----------------------------------------------------
 
@@ -281,14 +311,93 @@ class RasterSource:
             try:
                 array = self._dataset.read(self.band, window=Window(c0, r0, w, h))
             except rasterio.errors.RasterioError as err:
-                raise ImageError(f"image {str(self.path)!r} cannot be read at window {(c0, r0, w, h)}: {err}.") from err
+                raise ImageError(f"image {str(self.path)!r} cannot be read at window {(c0, r0, w, h)}: {str(err).rstrip('.')}.") from err
         if np.issubdtype(array.dtype, np.floating):
             mask = ~np.isfinite(array)
             if np.isfinite(self.nodata):
                 mask |= array == self.nodata
         else:
             mask = array == self.nodata
+        from .io import supported_pixels
+
+        array = supported_pixels(array, f"{str(self.path)!r} (window {c0}, {r0}, {w} x {h} px)", valid=~mask)
         return array, mask
+
+
+def check_complete(path):
+    """Refuse a PNG whose data stops early or fails its checksums.
+
+    GDAL's PNG driver returns the missing rows of a truncated file as zeros
+    without an error, which would be screened as no-data; Pillow's ``verify``
+    reads every chunk and checks its CRC (PNG specification, section 5.3)
+    without decoding pixels. Other formats report such damage when read.
+
+    Raises
+    ------
+    ImageError
+    """
+    path = Path(path)
+    if path.suffix.lower() != ".png":
+        return
+    from PIL import Image
+
+    limit = Image.MAX_IMAGE_PIXELS
+    try:
+        # verify() decodes nothing, so Pillow's decompression-bomb limit (meant for decoding) is
+        # lifted; screening reads large images by windows.
+        Image.MAX_IMAGE_PIXELS = None
+        with Image.open(path) as handle:
+            handle.verify()
+    except Exception as err:  # any decoder failure is a corrupt image to the user
+        raise ImageError(f"image {str(path)!r} is damaged or truncated: {str(err).rstrip('.')}.") from err
+    finally:
+        Image.MAX_IMAGE_PIXELS = limit
+
+
+def nodata_value(nodata, own=None):
+    """The pixel value that marks no data, as a float (NaN: no value does).
+
+    Parameters
+    ----------
+    nodata : float, str or None
+        A number; ``"none"`` or ``"nan"`` (or NaN) for no value (every pixel
+        is data; NaN pixels of a float image are always no-data); None for the
+        raster's own no-data value, else 0.
+    own : float or None, optional
+        The raster's declared no-data value.
+
+    Returns
+    -------
+    value : float
+
+    Raises
+    ------
+    SpecError
+        ``nodata`` is neither a number nor one of the words above.
+
+    Notes
+    -----
+    The default 0 is the fill of map-projected orbital products outside their
+    footprint. Products whose darkest pixels are clipped to 0 (the cores of
+    dark fans in some 8-bit products) must say ``"none"`` (or their real fill
+    value), or those pixels are dropped as no-data.
+    """
+    if nodata is None:
+        return float(own) if own is not None else 0.0
+    if isinstance(nodata, str):
+        word = nodata.strip().lower()
+        if word in ("none", "nan"):
+            return float("nan")
+        try:
+            nodata = float(word)
+        except ValueError:
+            raise SpecError(f"nodata {nodata!r} is not a number, 'none' or 'nan'.") from None
+    if isinstance(nodata, bool) or not isinstance(nodata, (int, float, np.integer, np.floating)):
+        raise SpecError(f"nodata {nodata!r} is not a number, 'none' or 'nan'.")
+    value = float(nodata)
+    if np.isinf(value):
+        raise SpecError(f"nodata {nodata!r} must be a finite number, 'none' or 'nan'.")
+    return value
 
 
 def open_raster(path, *, band=None, nodata=None, cache_mb=DEFAULT_CACHE_MB):
@@ -300,9 +409,10 @@ def open_raster(path, *, band=None, nodata=None, cache_mb=DEFAULT_CACHE_MB):
         Any raster GDAL reads.
     band : int, optional
         1-based band; required when the image has more than one.
-    nodata : float, optional
-        Nodata value to use instead of the raster's own. Without either, 0
-        (the fill of map-projected orbital images outside their footprint).
+    nodata : float or str, optional
+        No-data value to use instead of the raster's own; ``"none"`` for no
+        value. Without either, 0 (the fill of map-projected orbital images
+        outside their footprint); see :func:`nodata_value`.
     cache_mb : int, optional
         GDAL block cache, MB.
 
@@ -332,7 +442,7 @@ def _rasterio_crs(crs):
             return CRS.from_wkt(crs.to_wkt())
         return CRS.from_user_input(crs)
     except Exception as err:  # rasterio raises several CRS error types
-        raise DetectorError(f"CRS {str(crs)[:80]!r} cannot be written to a GeoTIFF: {err}.") from err
+        raise DetectorError(f"CRS {str(crs)[:80]!r} cannot be written to a GeoTIFF: {str(err).rstrip('.')}.") from err
 
 
 def _profile(width, height, dtype, *, crs, transform, nodata, tiled, blocksize, compress):
@@ -532,4 +642,4 @@ def _image_size(path):
         with Image.open(path) as handle:
             return handle.size
     except Exception as err:  # any decoder failure is a corrupt image to the user
-        raise ImageError(f"image {str(path)!r} cannot be read: {err}.") from err
+        raise ImageError(f"image {str(path)!r} cannot be read: {str(err).rstrip('.')}.") from err

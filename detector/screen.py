@@ -74,7 +74,7 @@ from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUI
 from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson_chunks
 from .io import atomic_path, write_json
-from .raster import TileWindow, open_raster, plan_windows
+from .raster import TileWindow, check_complete, open_raster, plan_windows
 
 __all__ = [
     "TILE_COLUMNS",
@@ -201,9 +201,22 @@ def _georeferencer(src, any_body):
     return src.georeferencer()
 
 
-def _plan_raster(path, *, tile, overlap, nodata, band, any_body=False):
+def _check_size(path, width, height, min_side, where=""):
+    """Refuse an image with no room for one patch: it would be scored as empty."""
+    if min(width, height) < min_side:
+        raise ImageError(
+            f"{where}image {str(path)!r} is {width} x {height} px (width x height); the model reads "
+            f"{min_side} x {min_side} px patches, so nothing in it could be found: each side must be at least "
+            f"{min_side} px."
+        )
+
+
+def _plan_raster(path, *, tile, overlap, nodata, band, any_body=False, min_side=64):
+    check_complete(path)
     with _open(path, band, nodata) as src:
-        windows = plan_windows(src.width, src.height, tile=tile, overlap=overlap, image=src.name)
+        _check_size(path, src.width, src.height, min_side)
+        windows = plan_windows(src.width, src.height, tile=tile, overlap=overlap, image=src.name,
+                               min_read=min_side)
         georef = _georeferencer(src, any_body)
         size = (src.width, src.height)
         used_nodata = src.nodata
@@ -240,7 +253,7 @@ def _read_tile_table(root):
     return tiles
 
 
-def _plan_tileset(root, *, nodata, band, any_body=False):
+def _plan_tileset(root, *, nodata, band, any_body=False, min_side=64):
     tiles = _read_tile_table(root)
     scale = (pd.to_numeric(tiles["metres_per_px"], errors="coerce") if "metres_per_px" in tiles
              else pd.Series(np.nan, index=tiles.index)).to_numpy(dtype=float)
@@ -251,12 +264,19 @@ def _plan_tileset(root, *, nodata, band, any_body=False):
         zip(tiles["tile_id"].astype(str), tiles["image_id"].astype(str), tiles["path"].astype(str),
             col0.to_numpy(dtype=float), row0.to_numpy(dtype=float), scale, strict=True)
     ):
+        from .tileset import path_problem
+
+        problem = path_problem(root, rel)
+        if problem:
+            raise TileSetError(f"{str(root / TILES_FILE)!r} row {i + 1}: path {rel!r} {problem}.")
         path = root / rel
         if not path.is_file():
             raise ImageError(f"{TILES_FILE} row {i + 1}: image {str(path)!r} does not exist.")
+        check_complete(path)
         # The header alone: size, band count and georeferencing, without decoding pixels.
         with _open(path, band, nodata) as src:
             w, h = src.width, src.height
+            _check_size(path, w, h, min_side, where=f"{TILES_FILE} row {i + 1}: ")
             georef = _georeferencer(src, any_body)
             used_nodata = src.nodata
         window = TileWindow(tile_id, image, 0, 0, w, h, 0, 0, w, h)  # the whole file is the tile
@@ -276,7 +296,7 @@ def _plan_tileset(root, *, nodata, band, any_body=False):
     return tasks, images
 
 
-def _plan(inputs, *, tile, overlap, nodata, band, any_body=False):
+def _plan(inputs, *, tile, overlap, nodata, band, any_body=False, min_side=64):
     if isinstance(inputs, (str, os.PathLike)):
         inputs = [inputs]
     inputs = [Path(p) for p in inputs]
@@ -287,10 +307,11 @@ def _plan(inputs, *, tile, overlap, nodata, band, any_body=False):
         if path.is_dir():
             if not (path / TILES_FILE).is_file():
                 raise DetectorError(f"input folder {str(path)!r} has no {TILES_FILE}; it is not a tile set.")
-            new_tasks, new_images = _plan_tileset(path, nodata=nodata, band=band, any_body=any_body)
+            new_tasks, new_images = _plan_tileset(path, nodata=nodata, band=band, any_body=any_body,
+                                                  min_side=min_side)
         elif path.exists():
             new_tasks, new_images = _plan_raster(path, tile=tile, overlap=overlap, nodata=nodata, band=band,
-                                                 any_body=any_body)
+                                                 any_body=any_body, min_side=min_side)
         else:
             raise ImageError(f"input {str(path)!r} does not exist.")
         for image, entry in new_images.items():
@@ -320,7 +341,8 @@ _MAX_OPEN = 8
 
 
 def _cached_source(path, band, nodata):
-    key = (path, band, nodata)
+    st = os.stat(path)
+    key = (path, band, nodata, st.st_mtime_ns, st.st_size)  # a replaced file is opened again
     if key in _SOURCES:
         _SOURCES.move_to_end(key)
         return _SOURCES[key]
@@ -623,9 +645,19 @@ def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
         "input_stamps": [_stamp(p) for p in inputs],
         "tile": [int(tile[0]), int(tile[1])],
         "overlap": int(overlap),
-        "nodata": None if nodata is None else float(nodata),
+        "nodata": _nodata_record(nodata),
         "band": None if band is None else int(band),
     }
+
+
+def _nodata_record(nodata):
+    """The no-data choice as JSON can hold it: null (the raster's own, else 0), "none", or a number."""
+    from .raster import nodata_value
+
+    if nodata is None:
+        return None
+    value = nodata_value(nodata)
+    return "none" if math.isnan(value) else value
 
 
 def _stamp(path):
@@ -634,6 +666,21 @@ def _stamp(path):
     target = path / TILES_FILE if path.is_dir() else path
     st = target.stat()
     return [int(st.st_size), int(st.st_mtime_ns)]
+
+
+def _mark_failed(out, record, err):
+    """Set run.json's status to "failed" with the reason (best effort: the disk may be full)."""
+    with contextlib.suppress(OSError, ValueError, TypeError):
+        write_json(Path(out) / _RUN_FILE, _finite({**record, "status": "failed", "error": str(err)[:500]}), end="\n")
+
+
+def _sweep_stale_outputs(out):
+    """Remove hidden output stages a killed run left in ``out`` (they are never moved in)."""
+    import shutil
+
+    for stale in Path(out).glob(".outputs.*"):
+        if stale.is_dir():
+            shutil.rmtree(stale, ignore_errors=True)
 
 
 def _claim(out, params):
@@ -647,8 +694,23 @@ def _claim(out, params):
             previous = json.loads(run_file.read_text(encoding="utf-8"))
         except (OSError, ValueError) as err:
             raise DetectorError(f"{str(run_file)!r} is not a readable run record: {err}.") from err
+        if not isinstance(previous, dict) or not isinstance(previous.get("parameters", {}), dict):
+            raise DetectorError(
+                f"{str(run_file)!r} is not a run record (a JSON object with 'parameters'); "
+                f"choose another --out or delete the folder."
+            )
+        _sweep_stale_outputs(out)
         old = previous.get("parameters", {})
         differ = [k for k in params if k != "model_dir" and old.get(k) != params[k]]
+        if differ and previous.get("status") == "failed":
+            # A run that failed (bad input, full disk) is not resumed with other inputs: start afresh.
+            import shutil
+
+            shutil.rmtree(out / _JOURNAL, ignore_errors=True)
+            record = {"status": "running", "parameters": params, "version": _version(),
+                      "started": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+            write_json(run_file, record, end="\n")
+            return record
         if differ:
             what = ", ".join(f"{k} {old.get(k)!r} -> {params[k]!r}" for k in differ)
             raise DetectorError(
@@ -1259,8 +1321,10 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     scheduler : str, optional
         Address of a running Dask distributed scheduler (e.g.
         ``"tcp://10.0.0.5:8786"``); overrides ``workers``.
-    nodata : float, optional
-        Value of no-data pixels; default the raster's own, else 0.
+    nodata : float or str, optional
+        Value of no-data pixels; ``"none"`` (or NaN) when no value is (NaN
+        pixels of float images always are); default the raster's own, else 0
+        (see :func:`detector.raster.nodata_value`).
     band : int, optional
         1-based band; required for multi-band images.
     min_score : float, optional
@@ -1284,36 +1348,47 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     """
     t_start = time.perf_counter()
     workers = _check_workers(workers)
+    if nodata is not None:
+        from .raster import nodata_value
+
+        nodata = nodata_value(nodata)
+        nodata = "none" if math.isnan(nodata) else nodata  # NaN is no key for the per-process raster cache
     model_dir = Path(model_dir)
-    cached_model(model_dir)  # a missing or tampered model fails here, before anything is written
-    tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body)
+    patch_px = cached_model(model_dir).feature_spec.patch_px  # a bad model fails here, before any write
+    tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body,
+                          min_side=patch_px)
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
     params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
     out = Path(out)
     record = _claim(out, params)
-    journal = _Journal(out)
-    journal.sweep()
-    finished = journal.finished(tasks)
-    n_resumed = len(finished)
-    todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
-    model_arg = str(model_dir.resolve())
-    if scheduler:
-        results = _run_dask(todo, model_arg, min_score, scheduler)
-    elif workers > 1 and len(todo) > 1:
-        results = _run_loky(todo, model_arg, min_score, workers)
-    else:
-        results = _run_serial(todo, model_arg, min_score)
-    pixels = 0
-    t_tiles = time.perf_counter()
-    with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
-        for index, entry in results:
-            journal.write(index, entry)  # the entry is not kept: the outputs read the journal
-            pixels += entry["pixels"]
-            bar.update(1)
-    t_tiles = time.perf_counter() - t_tiles
+    try:
+        journal = _Journal(out)
+        journal.sweep()
+        finished = journal.finished(tasks)
+        n_resumed = len(finished)
+        todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
+        model_arg = str(model_dir.resolve())
+        if scheduler:
+            results = _run_dask(todo, model_arg, min_score, scheduler)
+        elif workers > 1 and len(todo) > 1:
+            results = _run_loky(todo, model_arg, min_score, workers)
+        else:
+            results = _run_serial(todo, model_arg, min_score)
+        pixels = 0
+        t_tiles = time.perf_counter()
+        with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
+            for index, entry in results:
+                journal.write(index, entry)  # the entry is not kept: the outputs read the journal
+                pixels += entry["pixels"]
+                bar.update(1)
+        t_tiles = time.perf_counter() - t_tiles
 
-    with _staged(out) as stage:
-        totals, per_image, written = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
+        with _staged(out) as stage:
+            totals, per_image, written = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
+    except (DetectorError, OSError) as err:
+        # Recorded so that a corrected rerun into this folder is not taken for another live run.
+        _mark_failed(out, record, err)
+        raise
 
     seconds = time.perf_counter() - t_start
     area, covered = totals.pop("area"), totals.pop("covered")
@@ -1329,7 +1404,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         **totals,
     )
     record = {
-        **record,
+        **{k: v for k, v in record.items() if k != "error"},
         "status": "complete",
         "parameters": params,
         "version": _version(),

@@ -245,6 +245,11 @@ def main(argv=None):
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 1
+    except OSError as err:
+        # The machine said no (read-only folder, full disk, ...): one line, as for bad input.
+        where = f" {str(err.filename)!r}" if err.filename else ""
+        print(f"frostvane: error: cannot read or write{where}: {err.strerror or err}.", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print("frostvane: interrupted; finished work is kept and a rerun continues from it.", file=sys.stderr)
         return 130

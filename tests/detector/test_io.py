@@ -1,6 +1,7 @@
 """Tests of detector.io: atomic writes leave nothing behind and honour the umask."""
 
 import os
+import re
 import stat
 
 import pytest
@@ -37,3 +38,77 @@ def test_a_failed_write_leaves_nothing(tmp_path):
         tmp.write_text("half")
         raise RuntimeError("stop")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_image_over_the_size_limit_is_refused_from_its_header(tmp_path, monkeypatch):
+    import warnings
+
+    import numpy as np
+    import tifffile
+    from PIL import Image
+
+    import detector.io as io_module
+    from detector.errors import ImageError
+    from detector.io import read_image
+
+    png, tif = tmp_path / "big.png", tmp_path / "big.tif"
+    Image.fromarray(np.zeros((120, 100), np.uint8)).save(png)
+    tifffile.imwrite(tif, np.zeros((120, 100), np.uint8), compression="zlib")
+    monkeypatch.setattr(io_module, "MAX_TILE_PIXELS", 10_000)
+    # Our limit lies below Pillow's decompression-bomb warning (about 89 Mpx), so Pillow never
+    # prints its raw warning first: the limit is ours, scaled down here.
+    assert io_module.MAX_TILE_PIXELS < Image.MAX_IMAGE_PIXELS and 50_000_000 < Image.MAX_IMAGE_PIXELS
+    for path in (png, tif):
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            with pytest.raises(ImageError, match=rf"{path.name}' is 100 x 120 px .*at most 0 Mpx"):
+                read_image(path)
+
+
+@pytest.mark.parametrize(("array", "expected"), [
+    ("int16_in_range", "uint16"),
+    ("int32_in_range", "uint16"),
+    ("float_01", "float32"),
+    ("int32_too_big", "pixels in [0, 70000]"),
+    ("int16_negative", "pixels in [-5, 9]"),
+    ("float_255", "float images must be scaled to [0, 1]"),
+    ("bool", "1-bit"),
+])
+def test_pixel_types_supported_exactly_or_refused(tmp_path, array, expected):
+    import numpy as np
+    import tifffile
+
+    from detector.errors import ImageError
+    from detector.io import read_image
+
+    values = {
+        "int16_in_range": np.arange(64 * 64, dtype=np.int16).reshape(64, 64) % 300,
+        "int32_in_range": np.arange(64 * 64, dtype=np.int32).reshape(64, 64) * 16,
+        "float_01": np.linspace(0, 1, 64 * 64, dtype=np.float32).reshape(64, 64),
+        "int32_too_big": np.linspace(0, 70000, 64 * 64).astype(np.int32).reshape(64, 64),
+        "int16_negative": np.linspace(-5, 9, 64 * 64).astype(np.int16).reshape(64, 64),
+        "float_255": np.linspace(0, 255, 64 * 64, dtype=np.float32).reshape(64, 64),
+        "bool": (np.arange(64 * 64).reshape(64, 64) % 2).astype(bool),
+    }[array]
+    path = tmp_path / f"{array}.tif"
+    tifffile.imwrite(path, values)
+    if expected in ("uint16", "float32"):
+        image = read_image(path)
+        assert image.dtype == expected
+        np.testing.assert_array_equal(image, values)  # exact: the same numbers
+    else:
+        with pytest.raises(ImageError, match=rf"{array}\.tif.*{re.escape(expected)}"):
+            read_image(path)
+
+
+def test_palette_image_is_refused(tmp_path):
+    import numpy as np
+    from PIL import Image
+
+    from detector.errors import ImageError
+    from detector.io import read_image
+
+    path = tmp_path / "indexed.png"
+    Image.fromarray(np.zeros((64, 64), np.uint8)).convert("P").save(path)
+    with pytest.raises(ImageError, match="indexed.png' is a palette"):
+        read_image(path)

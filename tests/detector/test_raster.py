@@ -135,7 +135,7 @@ def test_nodata_mask(tmp_path):
         _, mask = src.read((40, 30, 5, 3))
         assert mask.all()
     # A float image marks non-finite pixels too, whatever its nodata value.
-    floats = image.astype(np.float32)
+    floats = image.astype(np.float32) / image.max()  # float images are read as [0, 1]
     floats[50, 50] = np.nan
     write_geotiff(tmp_path / "float.tif", floats, nodata=-9999.0)
     with open_raster(tmp_path / "float.tif") as src:

@@ -615,3 +615,152 @@ def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_p
             step = steps[name]
             assert np.isnan(sampled[:, : 333 // step]).all()
             assert np.isfinite(sampled[:250 // step, -(-333 // step):]).all()
+
+
+# ----------------------------------------------------------------------------- bad input, each refused by name
+
+
+def _bad_inputs(tmp_path):
+    """Files that must never be screened silently: (label, path, what the message must say)."""
+    from PIL import Image as PILImage
+
+    image = _scene((300, 400), 5, scenario="windy", nodata=False)
+    made = {}
+    good = tmp_path / "good.png"
+    write_image(good, image)
+    data = good.read_bytes()
+    (tmp_path / "truncated.png").write_bytes(data[: len(data) // 2])
+    made["truncated png"] = (tmp_path / "truncated.png", "truncated")
+    PILImage.fromarray(image).convert("P").save(tmp_path / "palette.png")
+    made["palette png"] = (tmp_path / "palette.png", "palette")
+    PILImage.fromarray(image).convert("1").save(tmp_path / "onebit.png")
+    made["1-bit png"] = (tmp_path / "onebit.png", "1-bit")
+    write_image(tmp_path / "tiny.png", image[:10, :10])
+    made["10 x 10 image"] = (tmp_path / "tiny.png", "10 x 10 px")
+    write_image(tmp_path / "strip.png", image[:40])
+    made["40 px strip"] = (tmp_path / "strip.png", "400 x 40 px")
+    return made
+
+
+@pytest.mark.parametrize("case", ["truncated png", "palette png", "1-bit png", "10 x 10 image", "40 px strip"])
+def test_bad_image_is_refused_before_anything_is_written(model_dir, tmp_path, capsys, case):
+    path, words = _bad_inputs(tmp_path)[case]
+    out = tmp_path / "out"
+    err = _assert_refused(capsys, ["screen", model_dir, path, "--out", out], [path.name, words], out)
+    assert "Traceback" not in err
+    assert not out.exists()
+
+
+@pytest.mark.parametrize(("dtype", "scale", "accepted"), [
+    (np.int32, 1, True),      # values 0-255: converted to uint16 exactly
+    (np.int16, 1, True),
+    (np.int32, 400, False),   # values up to 81600: no exact 16-bit reading
+    (np.float32, 1, False),   # float 0-255: floats must be in [0, 1]
+    (np.float32, 1 / 255, True),
+])
+def test_pixel_types_are_converted_exactly_or_refused(model_dir, tmp_path, capsys, dtype, scale, accepted):
+    import tifffile
+
+    image = _scene((300, 400), 5, scenario="windy", nodata=False)
+    path = tmp_path / "typed.tif"
+    tifffile.imwrite(path, (image.astype(np.float64) * scale).astype(dtype))
+    out = tmp_path / "out"
+    code = cli_main(["screen", str(model_dir), str(path), "--out", str(out)])
+    err = capsys.readouterr().err
+    if accepted:
+        reference = tmp_path / "reference"
+        # Integers keep their values (a 16-bit image); floats in [0, 1] map onto the 16-bit grid as
+        # uint8 * 257 does.
+        same = image.astype(np.uint16) if np.dtype(dtype).kind == "i" else image
+        screen(model_dir, [_as_png(tmp_path, same)], reference, progress=False)
+        assert code == 0
+        # An exact conversion screens the same pixels: the same detections as the original.
+        np.testing.assert_allclose(pd.read_csv(out / "detections.csv")[["x_px", "y_px", "score"]],
+                                   pd.read_csv(reference / "detections.csv")[["x_px", "y_px", "score"]], atol=1e-6)
+    else:
+        assert code == 2 and err.count("\n") == 1 and "typed.tif" in err and "pixels in [" in err
+        assert not any((out / name).exists() for name in OUTPUT_FILES)
+        assert json.loads((out / "run.json").read_text())["status"] == "failed"
+
+
+def _as_png(folder, image):
+    path = folder / "typed.png"
+    write_image(path, image)
+    return path
+
+
+def test_nodata_choices(model_dir, tmp_path, capsys):
+    image = _scene((300, 400), 5, scenario="windy", nodata=False)
+    image[:, :200] = 0  # a clipped dark half, or fill: the user says which
+    path = tmp_path / "zeros.png"
+    write_image(path, image)
+    tiles = {}
+    for choice in ("0", "none", "nan"):
+        out = tmp_path / f"out_{choice}"
+        assert cli_main(["screen", str(model_dir), str(path), "--out", str(out), "--tile", "200x150"]
+                        + ([] if choice == "0" else ["--nodata", choice])) == 0
+        tiles[choice] = pd.read_csv(out / "tiles.csv", keep_default_na=False)
+        recorded = json.loads((out / "run.json").read_text())["parameters"]["nodata"]
+        assert recorded == (None if choice == "0" else "none")
+    # Default: 0 is the fill of map-projected products, so the left tiles are no-data.
+    assert (tiles["0"].loc[tiles["0"]["col0"] < 200, "route"] == "nodata").all()
+    # 'none' (or 'nan'): every pixel is data.
+    for choice in ("none", "nan"):
+        assert (tiles[choice]["valid_fraction"] == 1.0).all() and (tiles[choice]["route"] != "nodata").all()
+    assert cli_main(["screen", str(model_dir), str(path), "--out", str(tmp_path / "bad"), "--nodata", "abc"]) == 2
+    assert "nodata 'abc'" in capsys.readouterr().err and not (tmp_path / "bad").exists()
+
+
+def test_run_record_that_is_not_an_object_is_refused(model_dir, png_image, tmp_path, capsys):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "run.json").write_text("[1, 2]")
+    err = _assert_refused(capsys, ["screen", model_dir, png_image, "--out", out], ["run.json", "not a run record"], out)
+    assert (out / "run.json").read_text() == "[1, 2]" and "Traceback" not in err
+
+
+@pytest.mark.parametrize("error", [PermissionError(13, "Permission denied"), OSError(28, "No space left on device")])
+def test_unwritable_output_gives_one_line_and_a_rerun_succeeds(model_dir, png_image, tmp_path, capsys, monkeypatch,
+                                                               error):
+    import detector.screen as screen_module
+
+    def refuse(*args, **kwargs):
+        error.filename = str(tmp_path / "out" / "tiles.csv")
+        raise error
+
+    monkeypatch.setattr(screen_module, "_write_outputs", refuse)
+    out = tmp_path / "out"
+    code = cli_main(["screen", str(model_dir), str(png_image), "--out", str(out), "--tile", "200x150"])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and error.strerror in err and "tiles.csv" in err
+    assert not any((out / name).exists() for name in OUTPUT_FILES)
+    assert not list(out.glob(".outputs.*"))
+    assert json.loads((out / "run.json").read_text())["status"] == "failed"
+    monkeypatch.undo()
+    assert cli_main(["screen", str(model_dir), str(png_image), "--out", str(out), "--tile", "200x150"]) == 0
+    assert json.loads((out / "run.json").read_text())["status"] == "complete"
+
+
+def test_failed_run_does_not_block_a_corrected_rerun(model_dir, tmp_path, capsys):
+    import tifffile
+
+    image = _scene((300, 400), 5, scenario="windy", nodata=False)
+    path = tmp_path / "scene.tif"
+    tifffile.imwrite(path, image.astype(np.float32))  # float 0-255: refused while reading
+    out = tmp_path / "out"
+    assert cli_main(["screen", str(model_dir), str(path), "--out", str(out)]) == 2
+    assert json.loads((out / "run.json").read_text())["status"] == "failed"
+    tifffile.imwrite(path, image)  # corrected: another file, so other parameters
+    assert cli_main(["screen", str(model_dir), str(path), "--out", str(out)]) == 0
+    record = json.loads((out / "run.json").read_text())
+    assert record["status"] == "complete" and "error" not in record
+
+
+def test_stale_output_stage_of_a_killed_run_is_removed(model_dir, png_image, png_run, tmp_path):
+    out = tmp_path / "again"
+    shutil.copytree(png_run[0], out)
+    stale = out / ".outputs.k1ll3d"
+    stale.mkdir()
+    (stale / "tiles.csv").write_text("half")
+    screen(model_dir, [png_image], out, tile=TILE, progress=False)
+    assert not stale.exists()
