@@ -588,7 +588,18 @@ def _read_screen(screen_dir):
     missing = [c for c in _SCREEN_REQUIRED if c not in tiles.columns]
     if missing:
         raise DetectorError(f"{str(path)!r} lacks the column(s) {missing!r}.")
+    dup = tiles["tile_id"].duplicated(keep="first")
+    if dup.any():
+        row = int(np.flatnonzero(dup.to_numpy())[0])
+        first = int(np.flatnonzero((tiles["tile_id"] == tiles["tile_id"].iloc[row]).to_numpy())[0])
+        raise DetectorError(f"{str(path)!r} row {row + 1}: tile_id {tiles['tile_id'].iloc[row]!r} repeats row "
+                            f"{first + 1}; each tile must be counted once.")
     bad = pd.to_numeric(tiles["p_deposit"], errors="coerce")
+    text = bad.isna() & tiles["p_deposit"].notna()
+    if text.any():
+        row = int(np.flatnonzero(text.to_numpy())[0])
+        raise DetectorError(f"{str(path)!r} row {row + 1}: p_deposit {tiles['p_deposit'].iloc[row]!r} is not a number.")
+    _check_against_run(screen_dir, path, tiles)
     wrong = tiles.index[(bad < 0) | (bad > 1)]
     if len(wrong):
         row = int(wrong[0])
@@ -606,15 +617,31 @@ def _read_screen(screen_dir):
     return tiles, detections
 
 
-def _read_card(model_dir):
-    model_dir = Path(model_dir)
-    path = model_dir / "model.json"
-    if not path.is_file():
-        raise DetectorError(f"model folder {str(model_dir)!r} has no model.json.")
+def _check_against_run(screen_dir, path, tiles):
+    """tiles.csv must hold every tile its screening's run.json counted (rows deleted by hand are refused)."""
+    run_file = Path(screen_dir) / "run.json"
+    if not run_file.is_file():
+        return  # a table made by other means: nothing to check it against
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as err:
-        raise DetectorError(f"{str(path)!r} is not valid JSON: {err}.") from err
+        record = json.loads(run_file.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as err:
+        raise DetectorError(f"{str(run_file)!r} is not a readable run record: {err}.") from err
+    if not isinstance(record, dict):
+        raise DetectorError(f"{str(run_file)!r} is not a run record (a JSON object).")
+    if record.get("status") != "complete":
+        raise DetectorError(f"{str(run_file)!r} has status {record.get('status')!r}: the screening did not finish; "
+                            f"run `frostvane screen` again to complete it.")
+    expected = (record.get("counts") or {}).get("n_tiles")
+    if isinstance(expected, int) and expected != len(tiles):
+        raise DetectorError(f"{str(path)!r} has {len(tiles)} tile rows; its screening ({str(run_file)!r}) produced "
+                            f"{expected}: rows were added or deleted; screen again rather than edit it.")
+
+
+def _read_card(model_dir):
+    """The card of a model whose ONNX files and card schema pass :func:`detector.model.load_model`."""
+    from detector.model import load_model
+
+    return load_model(model_dir).card
 
 
 def _jsonable(value):
@@ -861,10 +888,22 @@ def _subset_sizes(n_remaining, fractions):
 
 
 def _write_subset(tileset_root, tiles_raw, consensus_raw, image_ids, folder):
-    """A tile-set folder restricted to some images; image paths point back to the original files."""
+    """A tile-set folder restricted to some images; its images are hard links to the original files
+    (copies where the file system has none), since tile paths must stay inside their folder."""
+    import os
+    import shutil
+
     folder.mkdir(parents=True, exist_ok=True)
     tiles = tiles_raw[tiles_raw["image_id"].isin(image_ids)].copy()
-    tiles["path"] = [str((Path(tileset_root) / p).resolve()) for p in tiles["path"]]
+    for rel in tiles["path"]:
+        target = folder / rel
+        if target.exists():
+            continue
+        target.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            os.link(Path(tileset_root) / rel, target)
+        except OSError:
+            shutil.copyfile(Path(tileset_root) / rel, target)
     consensus = consensus_raw[consensus_raw["tile_id"].isin(set(tiles["tile_id"]))]
     tiles.to_csv(folder / "tiles.csv", index=False)
     consensus.to_csv(folder / "consensus.csv", index=False)

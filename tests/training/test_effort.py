@@ -2,6 +2,7 @@
 
 import argparse
 import json
+import shutil
 import math
 
 import numpy as np
@@ -334,10 +335,12 @@ def _args(model_dir, screen_dir, **kw):
 
 
 @pytest.fixture
-def folders(tmp_path):
+def folders(tmp_path, tiny_model):
+    # A real model folder (effort checks its ONNX files and card), with the held-out table above.
     model = tmp_path / "model"
-    model.mkdir()
-    (model / "model.json").write_text(json.dumps(_card()))
+    shutil.copytree(tiny_model[0], model)
+    card = json.loads((model / "model.json").read_text())
+    (model / "model.json").write_text(json.dumps({**card, **_card()}))
     screen = tmp_path / "screen"
     screen.mkdir()
     tiles = _screen()
@@ -376,7 +379,9 @@ def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
     elif case == "columns":
         pd.read_csv(screen / "tiles.csv").drop(columns=["p_deposit"]).to_csv(screen / "tiles.csv", index=False)
     elif case == "no_heldout":
-        (model / "model.json").write_text(json.dumps({"heldout_metrics": {}}))
+        card = json.loads((model / "model.json").read_text())
+        del card["heldout_tiles"]
+        (model / "model.json").write_text(json.dumps(card))
     else:
         args.recall = 0.0 if case == "recall0" else 1.5
     with pytest.raises(DetectorError, match=message):
@@ -437,7 +442,7 @@ def _tiny_tileset(root, n_images=8):
     for i in range(n_images):
         for k in range(1 + i % 3):  # 1 to 3 tiles per image, so subset sizes differ
             tile_id = f"IMG_{i:02d}_T{k}"
-            write_image(root / f"{tile_id}.png", np.full((32, 32), 100, np.uint8))
+            write_image(root / f"{tile_id}.png", np.full((64, 64), 100, np.uint8))
             rows.append({"tile_id": tile_id, "image_id": f"IMG_{i:02d}", "path": f"{tile_id}.png"})
     pd.DataFrame(rows).to_csv(root / "tiles.csv", index=False)
     pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
@@ -498,3 +503,37 @@ def test_run_effort_updates_the_geopackage_tile_routes(folders):
     _, back, fields = read_layer(screen / "detections.gpkg", "tiles")
     assert list(fields["route"]) == routed["route"].tolist() and set(fields["route"]) - {""}
     np.testing.assert_allclose(back[2][:3], rings[2])
+
+
+def _write_run(screen, n_tiles, status="complete"):
+    (screen / "run.json").write_text(json.dumps({"status": status, "counts": {"n_tiles": n_tiles}}))
+
+
+@pytest.mark.parametrize("case", ["duplicate", "deleted", "p_deposit_text", "unfinished", "onnx_changed"])
+def test_effort_refuses_edited_screens_and_models_by_name(folders, case, capsys):
+    from training.cli import main
+
+    model, screen = folders
+    tiles = pd.read_csv(screen / "tiles.csv", dtype=str, keep_default_na=False)
+    _write_run(screen, len(tiles), status="running" if case == "unfinished" else "complete")
+    if case == "duplicate":
+        pd.concat([tiles, tiles.iloc[[3]]]).to_csv(screen / "tiles.csv", index=False)
+        words = ["row 11", "tile_id 's3'", "repeats row 4"]
+    elif case == "deleted":
+        tiles.drop(index=[2, 5]).to_csv(screen / "tiles.csv", index=False)
+        words = ["has 8 tile rows", "produced 10"]
+    elif case == "p_deposit_text":
+        tiles.loc[4, "p_deposit"] = "abc"
+        tiles.to_csv(screen / "tiles.csv", index=False)
+        words = ["row 5", "p_deposit 'abc' is not a number"]
+    elif case == "unfinished":
+        words = ["status 'running'"]
+    else:
+        (model / "objects.onnx").write_bytes((model / "objects.onnx").read_bytes() + b"\0")
+        words = ["objects.onnx", "changed after export"]
+    before = (screen / "tiles.csv").read_bytes()
+    assert main(["effort", str(model), str(screen)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("frostvane: error:") == 1 and all(w in err for w in words), err
+    assert not (screen / "effort.json").exists() and not (screen / "routes.csv").exists()
+    assert (screen / "tiles.csv").read_bytes() == before
