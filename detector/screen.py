@@ -620,7 +620,9 @@ def _run_dask(todo, model_dir, min_score, scheduler):
 def _progress(total, initial, enabled):
     from tqdm.auto import tqdm
 
-    return tqdm(total=total, initial=initial, unit="tile", desc="screen", disable=not enabled, leave=False)
+    # disable=None: tqdm stays quiet when stderr is not a terminal (a log file, a pipe).
+    return tqdm(total=total, initial=initial, unit="tile", desc="screen", disable=None if enabled else True,
+                leave=False)
 
 
 # ----------------------------------------------------------------------------- run record

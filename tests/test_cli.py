@@ -1,6 +1,9 @@
 """The frostvane command: exit codes and messages."""
 
+import json
 import shutil
+
+from detector.model import sha256_file
 
 from training.cli import main
 
@@ -30,7 +33,19 @@ def test_evaluate(tiny_model, tiny_tileset, tmp_path, capsys):
     out = tmp_path / "report"
     assert main(["evaluate", str(tiny_model[0]), str(tiny_tileset), "--out", str(out)]) == 0
     assert (out / "report.md").is_file()
-    assert "report.md" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert "report.md" in printed
+    # The tiny model was fitted and calibrated on this very tile set: said, and recorded.
+    assert "warning:" in printed and "optimistic" in printed
+    meta = json.loads((out / "report.json").read_text())["scores"]["meta"]
+    assert meta["images_seen_in_training"]
+    assert meta["model_card_sha256"] == sha256_file(tiny_model[0] / "model.json")
+    assert set(meta["model_files_sha256"]) == {"detector.onnx", "orientation.onnx", "objects.onnx"}
+    assert meta["tileset_sha256"]["tiles.csv"] == sha256_file(tiny_tileset / "tiles.csv")
+    assert meta["date_utc"].endswith("Z")
+    # Three images are too few for a 95 % CI: the report says range, not CI.
+    report = (out / "report.md").read_text()
+    assert "3 images: too few for a 95 % CI" in report
 
 
 def test_synth_and_refuse_non_empty(tmp_path, capsys):

@@ -222,6 +222,18 @@ def _raise_terminated(signum, frame):
     raise _Terminated()
 
 
+def _quiet_progress_off_terminal():
+    """No progress bars when stderr is not a terminal (a log file or pipe would fill with them).
+
+    Every bar is tqdm's; its ``TQDM_DISABLE`` environment setting is read when tqdm is first
+    imported (after this, in this process) and is inherited by worker processes.
+    """
+    import os
+
+    if not sys.stderr.isatty() and "tqdm" not in sys.modules:
+        os.environ.setdefault("TQDM_DISABLE", "1")
+
+
 def main(argv=None):
     """Entry point of the ``frostvane`` console script; returns the exit code."""
     import signal
@@ -229,6 +241,7 @@ def main(argv=None):
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    _quiet_progress_off_terminal()
     # Without this, `kill` (SIGTERM) ends the process at once and its worker processes live on.
     on_main_thread = threading.current_thread() is threading.main_thread()
     previous = signal.signal(signal.SIGTERM, _raise_terminated) if on_main_thread else None

@@ -70,7 +70,7 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
 
     tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
     tile_ids = list(tile_ids)
-    iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False)
+    iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False, disable=None)  # None: quiet off a terminal
     if workers > 1:
         results = Parallel(n_jobs=workers, backend="loky")(
             delayed(_run_one)(str(model.folder), tileset, tid, tau, min_score) for tid in iterator
@@ -265,6 +265,22 @@ def write_detections_csv(detections, path):
         frame.to_csv(tmp, index=False, float_format="%.3f")
 
 
+def _provenance(model, model_dir, tileset_root):
+    """What a report was made from and when: model card and file hashes, tile-set table hashes, UTC date."""
+    import datetime
+
+    from detector.contract import CONSENSUS_FILE, TILES_FILE
+    from detector.model import MODEL_CARD, sha256_file
+
+    model_dir, root = Path(model_dir), Path(tileset_root)
+    return {
+        "model_card_sha256": sha256_file(model_dir / MODEL_CARD),
+        "model_files_sha256": dict(model.card["files"]),
+        "tileset_sha256": {name: sha256_file(root / name) for name in (TILES_FILE, CONSENSUS_FILE)},
+        "date_utc": datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+    }
+
+
 def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print,
                    workers=1, n_worst=6):
     """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
@@ -332,11 +348,16 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         ceiling = score_catalogs(truth, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
     seen = set(model.card["training"]["images"]["fit"]) | set(model.card["training"]["images"]["calibration"])
     overlap = sorted(set(tiles["image_id"]) & seen)
+    if overlap:
+        shown = ", ".join(overlap[:5]) + (f" and {len(overlap) - 5} more" if len(overlap) > 5 else "")
+        log(f"warning: {len(overlap)} of the {tiles['image_id'].nunique()} images scored here were used to fit or "
+            f"calibrate this model ({shown}); its scores on them are optimistic. Evaluate on images it never saw.")
     with atomic_dir(out, replace=True) as tmp:
         write_detections_csv(detections, tmp / "detections.csv")
         scores["patch"] = {k: v for k, v in patch.items() if k != "curves"}
-        scores["meta"] = {"model": str(model_dir), "tileset": str(tileset_root), "min_score": min_score,
-                          "images_seen_in_training": overlap, "tiles": int(len(tiles))}
+        scores["meta"] = {"model": str(Path(model_dir).resolve()), "tileset": str(Path(tileset_root).resolve()),
+                          "min_score": min_score, "images_seen_in_training": overlap, "tiles": int(len(tiles)),
+                          **_provenance(model, model_dir, tileset_root)}
         pr_curves = {name: {**patch["curves"][name], "average_precision": patch[name]["average_precision"]}
                      for name in CLASS_NAMES[1:]}
         y = run["patch_true"]

@@ -106,8 +106,9 @@ def headline_table(scores, ceiling=None):
     str
     """
     intervals = scores.get("intervals", {})
+    kind = intervals.get("kind", "95 % CI (bootstrap by image)")
     lines = [
-        "| Metric | Model | 95 % CI (by image) | Ceiling (truth vs consensus) | Target | Met |",
+        f"| Metric | Model | {kind} | Ceiling (truth vs consensus) | Target | Met |",
         "| --- | --- | --- | --- | --- | --- |",
     ]
     for row in evaluate_targets(scores):

@@ -680,6 +680,11 @@ def _weighted_quantile(values, weights, q):
     return out
 
 
+#: Fewest images for a bootstrap percentile interval to be called a confidence interval; with fewer,
+#: the resampled statistics take a handful of values and only their full range is reported.
+MIN_IMAGES_FOR_CI = 5
+
+
 def bootstrap_interval(values, image_ids, statistic="median", *, n_boot=1000, seed=0, level=0.95):
     """Bootstrap interval of a statistic by resampling images with replacement.
 
@@ -707,6 +712,9 @@ def bootstrap_interval(values, image_ids, statistic="median", *, n_boot=1000, se
     Returns
     -------
     (low, high) : tuple of float or None
+        The percentile interval; with fewer than :data:`MIN_IMAGES_FOR_CI`
+        images, the full range (min, max) of the resampled statistics, which
+        is no confidence interval and must not be called one.
     """
     values = np.asarray(values, dtype=float)
     image_ids = np.asarray(image_ids)
@@ -740,9 +748,18 @@ def bootstrap_interval(values, image_ids, statistic="median", *, n_boot=1000, se
     stats = stats[np.isfinite(stats)]
     if stats.size == 0:
         return None, None
+    if k < MIN_IMAGES_FOR_CI:
+        return float(stats.min()), float(stats.max())
     alpha = (1.0 - level) / 2.0
     low, high = np.quantile(stats, [alpha, 1.0 - alpha])
     return float(low), float(high)
+
+
+def interval_kind(n_images):
+    """What the by-image bootstrap intervals of ``n_images`` images are: a 95 % CI or only a range."""
+    if n_images < MIN_IMAGES_FOR_CI:
+        return f"range of bootstrap resamples ({n_images} image{'s' if n_images != 1 else ''}: too few for a 95 % CI)"
+    return "95 % CI (bootstrap by image)"
 
 
 def _f1_units(detections, consensus, pairs, tiles, kind):
@@ -887,7 +904,8 @@ def score_catalogs(
                       "prevailing_deg": None if prevailing_deg is None else float(prevailing_deg)},
         "coverage": coverage,
         "breakdowns": breakdowns(detections, consensus, pairs, tiles, fans),
-        "intervals": {"level": 0.95, "n_boot": int(n_boot), "seed": int(seed), "by": "image_id", **intervals},
+        "intervals": {"level": 0.95, "n_boot": int(n_boot), "seed": int(seed), "by": "image_id",
+                      "kind": interval_kind(int(tiles["image_id"].nunique())), **intervals},
         "reference": {
             "crowd_vs_expert_tile_mean_deg": CROWD_VS_EXPERT_DEG,
             "note": "common practice: the crowd's per-tile mean fan direction agrees with an expert's within about 10 degrees",

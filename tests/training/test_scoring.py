@@ -266,3 +266,15 @@ def test_score_catalogs_json_ready_and_errors():
     bad.loc[2, "tile_id"] = "nowhere"
     with pytest.raises(DetectorError, match="consensus row 2: tile_id 'nowhere'"):
         scoring.score_catalogs(det, bad, tiles)
+
+
+def test_bootstrap_of_few_images_is_a_range_not_a_ci():
+    from training.scoring import MIN_IMAGES_FOR_CI, bootstrap_interval, interval_kind
+
+    # Three images, one value each: a resample of one image drawn three times (probability 1/9 per
+    # replicate) gives that image's value, so the range of 1000 resampled means is (1, 3) exactly.
+    assert bootstrap_interval([1.0, 2.0, 3.0], ["a", "b", "c"], "mean", n_boot=1000) == (1.0, 3.0)
+    assert "too few for a 95 % CI" in interval_kind(3) and interval_kind(MIN_IMAGES_FOR_CI).startswith("95 % CI")
+    # From five images on, the percentile interval: strictly inside the extremes for these values.
+    low, high = bootstrap_interval(np.arange(1.0, 11.0), list("abcdefghij"), "mean", n_boot=2000)
+    assert 1.0 < low < 5.5 < high < 10.0
