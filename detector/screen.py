@@ -1057,6 +1057,10 @@ class _Figures:
         self.rose, rose_axes = _figure(n, 3.6, polar=True)
         self.quick_axes = dict(zip(self.names, quick_axes, strict=True))
         self.rose_axes = dict(zip(self.names, rose_axes, strict=True))
+        georefs = [g for name in self.names for g in images[name]["georefs"].values()]
+        # Fans are coloured by azimuth where the image is georeferenced, as the rose counts them.
+        self.all_azimuth = bool(georefs) and all(g is not None for g in georefs)
+        self.some_azimuth = any(g is not None for g in georefs)
 
     def add(self, name, detections, tasks, images, *, band, nodata, blocks=None):
         """Draw one image's panels (a no-op for images beyond the panel limit)."""
@@ -1073,7 +1077,9 @@ class _Figures:
 
         bar = self.quick.colorbar(ScalarMappable(norm=Normalize(0, 360), cmap=DIRECTION_CMAP),
                                   ax=list(self.quick_axes.values()), shrink=0.7, ticks=[0, 90, 180, 270, 360])
-        bar.set_label("fan direction, degrees clockwise from image up", fontsize=7)
+        bar.set_label("fan azimuth, degrees clockwise from north" if self.all_azimuth else
+                      "fan azimuth (georeferenced images) or direction from image up (others), degrees clockwise"
+                      if self.some_azimuth else "fan direction, degrees clockwise from image up", fontsize=7)
         self.rose.suptitle(
             ("fan azimuth, degrees clockwise from north" if self.use_azimuth
              else "fan direction, degrees clockwise from image up") + "; weighted by length", fontsize=8,
@@ -1081,6 +1087,46 @@ class _Figures:
         for fig, path in ((self.quick, quicklook_path), (self.rose, rose_path)):
             with atomic_path(path) as tmp:
                 fig.savefig(tmp, format="png")
+
+
+def _panel_georef(entry):
+    """The georeferencer of an image's first piece and that piece (None, None when it has no CRS)."""
+    piece = entry["pieces"][0]
+    georef = entry["georefs"].get(piece.path)
+    return (georef, piece) if georef is not None else (None, None)
+
+
+def _north_deg(georef, col, row):
+    """Direction of north in the image at (col, row), degrees clockwise from image up."""
+    guess = (-float(georef.grid_to_azimuth(0.0, col, row))) % 360.0
+    # One correction step for projections that are not conformal.
+    error = (float(georef.grid_to_azimuth(guess, col, row)) + 180.0) % 360.0 - 180.0
+    return (guess - error) % 360.0
+
+
+def _panel_furniture(ax, entry, tasks, canvas, scale, has_detections):
+    """Axis units in image px, and for georeferenced images a north arrow and a scale bar."""
+    from matplotlib.ticker import FuncFormatter
+
+    from .plots import add_legend, add_north_arrow, add_scale_bar
+
+    to_px = FuncFormatter(lambda v, _pos: f"{v / scale:.0f}")
+    ax.xaxis.set_major_formatter(to_px)
+    ax.yaxis.set_major_formatter(to_px)
+    ax.set_xlabel("column, px", fontsize=6)
+    ax.set_ylabel("row, px", fontsize=6)
+    georef, piece = _panel_georef(entry)
+    if georef is not None:
+        col, row = piece.width / 2 - 0.5, piece.height / 2 - 0.5
+        add_north_arrow(ax, _north_deg(georef, col, row))
+        metres_per_px = float(georef.ground_length_m(1.0, 90.0, col, row))
+        add_scale_bar(ax, metres_per_px / scale, width_units=canvas.shape[1])
+    else:
+        mpp = [t.metres_per_px for t in tasks if np.isfinite(t.metres_per_px)]
+        if mpp:
+            add_scale_bar(ax, float(np.median(mpp)) / scale, width_units=canvas.shape[1])
+    if has_detections:
+        add_legend(ax)
 
 
 def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata, blocks=None):
@@ -1100,12 +1146,17 @@ def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata, 
             x_px=shown["x_px"] * scale, y_px=shown["y_px"] * scale, length_px=shown["length_px"] * scale,
             semi_major_px=shown["semi_major_px"] * scale, semi_minor_px=shown["semi_minor_px"] * scale,
         )
-        draw_features(ax, shown, linewidth=0.6, as_collection=True)
+        color = shown["direction_deg"].to_numpy(dtype=float)
+        if "azimuth_deg" in shown.columns:
+            azimuth = shown["azimuth_deg"].to_numpy(dtype=float)
+            color = np.where(np.isfinite(azimuth), azimuth, color)
+        draw_features(ax, shown, linewidth=0.6, as_collection=True, color_deg=color)
         title += f"  ({n_all} detections" + (f", {len(shown)} strongest drawn)" if n_all > len(shown) else ")")
     ax.set_xlim(-0.5, canvas.shape[1] - 0.5)
     ax.set_ylim(canvas.shape[0] - 0.5, -0.5)
     ax.set_title(title + (f"  [1:{1 / scale:.0f}]" if scale < 1 else ""), fontsize=8)
     ax.tick_params(labelsize=6)
+    _panel_furniture(ax, images[name], tasks, canvas, scale, not detections.empty)
 
 
 def _rose_panel(ax, name, detections, use_azimuth):

@@ -155,3 +155,47 @@ def test_wkb_round_trips_through_gdal_and_routes_update(tmp_path):
     assert list(fields["route"]) == ["", "crowd"] and np.isnan(fields["p_deposit"][1])
     np.testing.assert_allclose(back[1][:3], rings[1])
     assert not list(tmp_path.glob(".*"))
+
+
+def test_polar_quicklook_uses_azimuths_with_north_arrow_and_scale_bar(model_dir, tmp_path, monkeypatch):  # noqa: F811
+    from matplotlib import colormaps
+
+    import detector.screen as screen_module
+    from detector.geometry import direction_deg
+    from detector.plots import DIRECTION_CMAP
+
+    captured = {}
+    save = screen_module._Figures.save
+
+    def keep(self, *paths):
+        captured["figures"] = self
+        save(self, *paths)
+
+    monkeypatch.setattr(screen_module._Figures, "save", keep)
+    tif = tmp_path / "polar.tif"
+    write_geotiff(tif, _scene((HEIGHT, WIDTH), 21, scenario="windy", nodata=False), crs=MARS_SOUTH_POLAR_STEREO,
+                  transform=Affine(RES, 0.0, X0, 0.0, -RES, Y0))
+    screen(model_dir, [tif], tmp_path / "out", tile=TILE, progress=False)
+    figures = captured["figures"]
+    assert figures.all_azimuth
+    (ax,) = figures.quick_axes.values()
+    (arrow,) = [t for t in ax.texts if t.get_gid() == "north_arrow"]
+    (x0, y0), (x1, y1) = arrow.xyann, arrow.xy
+    drawn = float(direction_deg(x1 - x0, -(y1 - y0)))  # axes fractions have y up
+    # Oracle: PROJ maps a point 0.01 degree further north at the image centre back to the grid.
+    to_map = pyproj.Transformer.from_crs("IAU_2015:49900", MARS_SOUTH_POLAR_STEREO)
+    to_geo = pyproj.Transformer.from_crs(MARS_SOUTH_POLAR_STEREO, "IAU_2015:49900")
+    cx, cy = X0 + RES * WIDTH / 2, Y0 - RES * HEIGHT / 2
+    lat, lon = to_geo.transform(cx, cy)
+    nx, ny = to_map.transform(lat + 0.01, lon)
+    expected = float(direction_deg(nx - cx, -(ny - cy)))  # map y up is image up
+    assert abs((drawn - expected + 180.0) % 360.0 - 180.0) < 0.5
+    assert any(t.get_gid() == "scale_bar" and t.get_text().endswith("m") for t in ax.texts)
+    assert ax.get_legend() is not None and ax.get_xlabel() == "column, px"
+    # Fans coloured by azimuth, as the rose counts them (not by direction from image up).
+    det = pd.read_csv(tmp_path / "out" / "detections.csv")
+    fans = det[det["kind"] == "fan"]
+    (collection,) = [c for c in ax.collections if len(c.get_paths()) == len(det)]
+    edge = collection.get_edgecolor()[(det["kind"] == "fan").to_numpy()]
+    np.testing.assert_allclose(edge[:, :3], colormaps[DIRECTION_CMAP](fans["azimuth_deg"].to_numpy() / 360.0)[:, :3],
+                               atol=1e-6)

@@ -11,7 +11,8 @@ from PIL import Image
 
 from detector.errors import DetectorError, TileSetError
 from detector.labels import ellipse_polygon, sector_polygon
-from detector.plots import SPOT_COLOR, draw_features, plot_overlay
+from detector.plots import (DIRECTION_CMAP, HALO_COLOR, SPOT_COLOR, add_north_arrow, add_scale_bar, draw_features,
+                            nice_length_m, plot_overlay)
 from detector.tileset import load_tileset
 from tests.detector._tileset_factory import write_tileset
 
@@ -55,11 +56,11 @@ def test_patches_follow_the_outlines():
 def test_fans_coloured_by_cyclic_direction():
     _, ax = _axis()
     patches = draw_features(ax, FEATURES)
-    twilight = colormaps["twilight"]
-    assert np.allclose(patches[0].get_edgecolor()[:3], twilight(90 / 360)[:3])
-    assert np.allclose(patches[2].get_edgecolor()[:3], twilight(300 / 360)[:3])
+    cyclic = colormaps[DIRECTION_CMAP]
+    assert np.allclose(patches[0].get_edgecolor()[:3], cyclic(90 / 360)[:3])
+    assert np.allclose(patches[2].get_edgecolor()[:3], cyclic(300 / 360)[:3])
     # A cyclic map gives (almost) the same colour at 0 and 360 degrees.
-    assert np.allclose(twilight(0.0), twilight(1.0), atol=0.02)
+    assert np.allclose(cyclic(0.0), cyclic(1.0), atol=0.1)
     plain = draw_features(_axis()[1], FEATURES, color_by_direction=False)
     assert np.allclose(plain[0].get_edgecolor(), plain[2].get_edgecolor())
     assert np.allclose(plain[1].get_edgecolor(), to_rgba(SPOT_COLOR))
@@ -90,7 +91,7 @@ def test_features_land_on_their_pixels():
         return rgba[int(round(height - dy)), int(round(dx)), :3] / 255.0
 
     # Inside the fan (to the right of its apex, direction 90): the fan colour.
-    assert np.allclose(pixel(40, 30), colormaps["twilight"](0.25)[:3], atol=0.03)
+    assert np.allclose(pixel(40, 30), colormaps[DIRECTION_CMAP](0.25)[:3], atol=0.03)
     # Left of the apex and far above it: the black tile.
     assert np.allclose(pixel(5, 30), 0, atol=0.03)
     assert np.allclose(pixel(40, 5), 0, atol=0.03)
@@ -136,3 +137,48 @@ def test_overlay_rejects_bad_requests(tileset, tmp_path):
     with pytest.raises(DetectorError, match="at least one"):
         plot_overlay(tileset, [], tmp_path / "x.png")
     assert not (tmp_path / "x.png").exists()
+
+
+def _wcag_luminance(rgb):
+    # Relative luminance of sRGB (WCAG 2.1, section 1.4.3 definitions; sRGB transfer of IEC 61966-2-1).
+    c = np.asarray(rgb, dtype=float)[:3]
+    lin = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+    return float(lin @ [0.2126, 0.7152, 0.0722])
+
+
+def _contrast(a, b):
+    la, lb = sorted((_wcag_luminance(a), _wcag_luminance(b)), reverse=True)
+    return (la + 0.05) / (lb + 0.05)
+
+
+def test_outlines_stay_visible_on_bright_ice_and_dark_ground():
+    from matplotlib import patheffects
+
+    patches = draw_features(_axis()[1], FEATURES)
+    for patch in patches:
+        strokes = [e for e in patch.get_path_effects() if isinstance(e, patheffects.Stroke)]
+        assert strokes and strokes[0]._gc["foreground"] == HALO_COLOR
+    # WCAG 2.1 asks 3:1 for graphical objects (success criterion 1.4.11): the halo against white ice,
+    # and every direction colour against a black deposit (the halo carries it on white).
+    assert _contrast(to_rgba(HALO_COLOR), (1, 1, 1)) >= 3.0
+    colours = colormaps[DIRECTION_CMAP](np.linspace(0, 1, 73))
+    assert min(_contrast(c, (0, 0, 0)) for c in list(colours) + [to_rgba(SPOT_COLOR)]) >= 3.0
+
+
+@pytest.mark.parametrize(("max_m", "expected"), [(730.0, 500.0), (1999.0, 1000.0), (2000.0, 2000.0), (0.37, 0.2),
+                                                 (99.0, 50.0)])
+def test_scale_bar_lengths_are_1_2_5_steps(max_m, expected):
+    assert nice_length_m(max_m) == pytest.approx(expected)
+
+
+def test_north_arrow_and_scale_bar_are_drawn():
+    _, ax = _axis((100, 200))
+    ax.set_xlim(-0.5, 199.5)
+    ax.set_ylim(99.5, -0.5)
+    arrow = add_north_arrow(ax, 90.0)  # north to the image right
+    (x0, y0), (x1, y1) = arrow.xyann, arrow.xy
+    assert arrow.get_text() == "N" and x1 > x0 and y1 == pytest.approx(y0)
+    label = add_scale_bar(ax, 10.0, width_units=200)  # 10 m per px, 2000 m wide: the bar may take 500 m
+    assert label == "500 m"
+    (bar,) = [line for line in ax.lines if line.get_gid() == "scale_bar"]
+    assert np.diff(bar.get_xdata())[0] == pytest.approx(50.0)  # 500 m at 10 m per px
