@@ -18,18 +18,19 @@ def _tile_size(text):
 def add_detector_commands(commands):
     """Register ``validate`` and ``screen`` on an argparse subparsers object."""
     validate = commands.add_parser("validate", help="Check a tile set against the contract; print its summary.")
-    validate.add_argument("tile_set", type=Path)
+    validate.add_argument("tile_set", type=Path, help="Tile-set folder (tiles.csv, consensus.csv, images).")
     validate.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
-                          help="Drop consensus features with fewer votes (default 3, common practice).")
+                          help="Drop consensus features with fewer votes (common practice: 3).")
     validate.set_defaults(func=_validate)
 
     screen = commands.add_parser("screen", help="Screen images or tile sets; write the screening folder.")
-    screen.add_argument("model_dir", type=Path)
-    screen.add_argument("inputs", type=Path, nargs="+", metavar="INPUT")
-    screen.add_argument("--out", type=Path, required=True)
-    screen.add_argument("--tile", type=_tile_size, default=(800, 600), help="Tile size WIDTHxHEIGHT, px.")
+    screen.add_argument("model_dir", type=Path, help="Model folder (model.json and its ONNX files).")
+    screen.add_argument("inputs", type=Path, nargs="+", metavar="INPUT",
+                        help="Image files (any raster GDAL reads) and/or tile-set folders.")
+    screen.add_argument("--out", type=Path, required=True, help="Screening folder to write (or to continue).")
+    screen.add_argument("--tile", type=_tile_size, default="800x600", help="Tile size WIDTHxHEIGHT, px.")
     screen.add_argument("--overlap", type=int, default=32, help="Margin read around each tile, px.")
-    screen.add_argument("--workers", type=int, default=1)
+    screen.add_argument("--workers", type=int, default=1, help="Local worker processes.")
     screen.add_argument("--scheduler", default=None, help="Address of a running Dask distributed scheduler.")
     screen.add_argument("--nodata", default=None, metavar="VALUE",
                         help="Pixel value marking no data: a number, or 'none' when no value does (NaN pixels "
@@ -38,6 +39,8 @@ def add_detector_commands(commands):
     screen.add_argument("--band", type=int, default=None, help="1-based band of a multi-band image.")
     screen.add_argument("--any-body", action="store_true",
                         help="Screen a raster whose CRS is not on Mars (refused otherwise).")
+    screen.add_argument("--force", action="store_true",
+                        help="Discard what the output folder holds (another or unfinished run) and start afresh.")
     screen.set_defaults(func=_screen)
 
 

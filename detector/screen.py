@@ -1353,7 +1353,7 @@ def _per_image(tiles, detections):
 
 
 def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, scheduler=None, nodata=None,
-           band=None, min_score=None, progress=True, any_body=False):
+           band=None, min_score=None, progress=True, any_body=False, force=False):
     """Screen images or tile sets with a model and write the screening folder.
 
     Parameters
@@ -1387,6 +1387,9 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     any_body : bool, default=False
         Accept rasters whose CRS is not on Mars (otherwise refused, see
         :func:`detector.geo.check_mars_crs`).
+    force : bool, default=False
+        Delete whatever ``out`` holds (another run, an unfinished one, other
+        files) once the inputs are checked, and screen from scratch.
 
     Returns
     -------
@@ -1413,6 +1416,10 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
     params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
     out = Path(out)
+    if force and out.is_dir():
+        import shutil
+
+        shutil.rmtree(out)
     record = _claim(out, params)
     try:
         journal = _Journal(out)
@@ -1506,6 +1513,6 @@ def screen_command(args):
     """``frostvane screen``: run :func:`screen` with the parsed arguments and print the summary."""
     summary = screen(
         args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap, workers=args.workers,
-        scheduler=args.scheduler, nodata=args.nodata, band=args.band, any_body=args.any_body,
+        scheduler=args.scheduler, nodata=args.nodata, band=args.band, any_body=args.any_body, force=args.force,
     )
     print(summary.format())

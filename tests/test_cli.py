@@ -56,3 +56,64 @@ def test_synth_and_refuse_non_empty(tmp_path, capsys):
     assert main(args) == 2
     assert "not empty" in capsys.readouterr().err
     assert main(args + ["--force"]) == 0
+
+
+def _all_parsers():
+    import argparse
+
+    from training.cli import build_parser
+
+    found = []
+
+    def walk(parser, name):
+        found.append((name, parser))
+        for action in parser._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                for sub_name, sub in action.choices.items():
+                    walk(sub, f"{name} {sub_name}")
+
+    walk(build_parser(), "frostvane")
+    return found
+
+
+def test_every_option_has_help_and_shows_its_default():
+    import argparse
+
+    for name, parser in _all_parsers():
+        text = parser.format_help()
+        for action in parser._actions:
+            if isinstance(action, (argparse._HelpAction, argparse._VersionAction, argparse._SubParsersAction)):
+                continue
+            assert action.help, f"{name}: {action.dest} has no help"
+            if action.option_strings and not action.required:
+                assert "default" in parser._get_formatter()._get_help_string(action).lower(), (name, action.dest)
+        assert "(default: " in text or name in ("frostvane", "frostvane benchmark"), name
+
+
+def test_version(capsys):
+    import pytest
+
+    with pytest.raises(SystemExit) as info:
+        main(["--version"])
+    assert info.value.code == 0 and capsys.readouterr().out.startswith("frostvane ")
+
+
+def test_screen_force_replaces_another_run(tmp_path, capsys):
+    import numpy as np
+
+    from detector.io import write_image
+    from training.cli import DEFAULT_MODEL
+    from training.synth import render_scene, to_uint8
+
+    image, _ = render_scene((200, 256), np.random.default_rng(3), scenario="windy", nodata=False)
+    path = tmp_path / "scene.png"
+    write_image(path, to_uint8(image))
+    out = tmp_path / "out"
+    base = ["screen", str(DEFAULT_MODEL), str(path), "--out", str(out)]
+    assert main(base) == 0
+    (out / "notes.txt").write_text("old")
+    assert main(base + ["--tile", "128x100"]) == 2  # another run's folder: refused
+    assert "another screening run" in capsys.readouterr().err
+    assert main(base + ["--tile", "128x100", "--force"]) == 0
+    assert json.loads((out / "run.json").read_text())["parameters"]["tile"] == [128, 100]
+    assert not (out / "notes.txt").exists()

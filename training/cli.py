@@ -31,70 +31,80 @@ def _image_list(text):
 
 def _add_training_commands(commands):
     synth = commands.add_parser("synth", help="Render an invented synthetic tile set with truth and consensus.")
-    synth.add_argument("out", type=Path)
-    synth.add_argument("--images", type=int, default=8)
-    synth.add_argument("--tiles-per-image", type=int, default=5)
-    synth.add_argument("--seed", type=int, default=0)
+    synth.add_argument("out", type=Path, help="Folder of the new tile set.")
+    synth.add_argument("--images", type=int, default=8, help="Invented source images.")
+    synth.add_argument("--tiles-per-image", type=int, default=5, help="Tiles cut from each image.")
+    synth.add_argument("--seed", type=int, default=0, help="Seed of the scene generator.")
     synth.add_argument("--profile", choices=("nominal", "shifted"), default="nominal",
                        help="Scene settings: the training distribution, or one shifted outside it.")
     synth.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
     synth.set_defaults(func=_synth)
 
     train = commands.add_parser("train", help="Train a model on a tile set with consensus; write MODEL_DIR.")
-    train.add_argument("tile_set", type=Path)
-    train.add_argument("--out", type=Path, required=True)
-    train.add_argument("--seed", type=int, default=0)
+    train.add_argument("tile_set", type=Path, help="Tile set with consensus.csv to learn from.")
+    train.add_argument("--out", type=Path, required=True, help="Model folder to write.")
+    train.add_argument("--seed", type=int, default=0, help="Seed of the split, sampling and fitting.")
     hold = train.add_mutually_exclusive_group()
-    hold.add_argument("--holdout-fraction", type=float, default=0.2)
-    hold.add_argument("--holdout-images", type=_image_list, default=())
-    train.add_argument("--max-patches", type=int, default=300_000)
-    train.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES)
-    train.add_argument("--workers", type=int, default=1)
+    hold.add_argument("--holdout-fraction", type=float, default=0.2,
+                      help="Share of the images held out for scoring the model card.")
+    hold.add_argument("--holdout-images", type=_image_list, default="",
+                      help="Comma-separated image ids to hold out instead of a random share.")
+    train.add_argument("--max-patches", type=int, default=300_000, help="Most patches the classifier learns from.")
+    train.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
+                       help="Drop consensus features with fewer votes (common practice: 3).")
+    train.add_argument("--workers", type=int, default=1, help="Local worker processes for feature extraction.")
     train.add_argument("--force", action="store_true", help="Replace an existing model folder.")
     train.set_defaults(func=_train)
 
     evaluate = commands.add_parser("evaluate", help="Score a model on a labelled tile set; write REPORT_DIR.")
-    evaluate.add_argument("model_dir", type=Path)
-    evaluate.add_argument("tile_set", type=Path)
-    evaluate.add_argument("--out", type=Path, required=True)
+    evaluate.add_argument("model_dir", type=Path, help="Model folder.")
+    evaluate.add_argument("tile_set", type=Path, help="Labelled tile set to score it on.")
+    evaluate.add_argument("--out", type=Path, required=True, help="Report folder to write.")
     evaluate.add_argument("--min-score", type=float, default=None,
                           help="Smallest detection score kept (default: the model's tuned threshold, else 0.5).")
-    evaluate.add_argument("--workers", type=int, default=1)
-    evaluate.add_argument("--force", action="store_true")
+    evaluate.add_argument("--workers", type=int, default=1, help="Local worker processes.")
+    evaluate.add_argument("--force", action="store_true", help="Replace a non-empty report folder.")
     evaluate.set_defaults(func=_evaluate)
 
     effort = commands.add_parser("effort", help="Route screened tiles and estimate the volunteer effort left.")
-    effort.add_argument("model_dir", type=Path)
-    effort.add_argument("screen_dir", type=Path, nargs="?")
-    effort.add_argument("--classifications-per-tile", type=int, default=30)
-    effort.add_argument("--seconds-per-classification", type=float, default=None)
-    effort.add_argument("--recall", type=float, default=0.98)
-    effort.add_argument("--max-direction-error", type=float, default=20.0)
-    effort.add_argument("--learning-curve", type=Path, metavar="TILESET", default=None)
-    effort.add_argument("--out", type=Path, default=None)
-    effort.add_argument("--seed", type=int, default=0)
+    effort.add_argument("model_dir", type=Path, help="Model folder (its held-out table sets the routes).")
+    effort.add_argument("screen_dir", type=Path, nargs="?", help="Output of frostvane screen.")
+    effort.add_argument("--classifications-per-tile", type=int, default=30,
+                        help="Volunteer classifications a crowd tile needs.")
+    effort.add_argument("--seconds-per-classification", type=float, default=None,
+                        help="Volunteer time per classification, s (default: an assumed figure, said in the output).")
+    effort.add_argument("--recall", type=float, default=0.98,
+                        help="Share of the deposit area that skipped tiles may not lose.")
+    effort.add_argument("--max-direction-error", type=float, default=20.0,
+                        help="Largest median fan direction error of machine-routed tiles, degrees.")
+    effort.add_argument("--learning-curve", type=Path, metavar="TILESET", default=None,
+                        help="Also fit the learning curve on this labelled tile set.")
+    effort.add_argument("--out", type=Path, default=None,
+                        help="Folder for effort.json and routes.csv (default: the screening folder).")
+    effort.add_argument("--seed", type=int, default=0, help="Seed of the bootstrap and the learning curve.")
     effort.set_defaults(func=_effort)
 
     bench = commands.add_parser("benchmark", help="Build the fixed benchmark, or score a model on it.")
     bench_commands = bench.add_subparsers(dest="benchmark_command", required=True)
     build = bench_commands.add_parser("build", help="Render the benchmark's train, held-out, shifted and negative sets.")
-    build.add_argument("out", type=Path)
-    build.add_argument("--seed", type=int, default=7)
-    build.add_argument("--train-images", type=int, default=120)
-    build.add_argument("--heldout-images", type=int, default=40)
-    build.add_argument("--shifted-images", type=int, default=20)
-    build.add_argument("--tiles-per-image", type=int, default=4)
+    build.add_argument("out", type=Path, help="Benchmark folder to write.")
+    build.add_argument("--seed", type=int, default=7, help="Seed of every set.")
+    build.add_argument("--train-images", type=int, default=120, help="Images of the train set.")
+    build.add_argument("--heldout-images", type=int, default=40, help="Images of the held-out set.")
+    build.add_argument("--shifted-images", type=int, default=20, help="Images of the shifted set.")
+    build.add_argument("--tiles-per-image", type=int, default=4, help="Tiles cut from each image.")
     build.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
     build.set_defaults(func=_benchmark_build)
     run = bench_commands.add_parser("run", help="Score a model on a benchmark; print and write the table.")
-    run.add_argument("model_dir", type=Path)
-    run.add_argument("bench", type=Path)
-    run.add_argument("--out", type=Path, required=True)
-    run.add_argument("--min-score", type=float, default=None)
-    run.add_argument("--workers", type=int, default=2)
+    run.add_argument("model_dir", type=Path, help="Model folder.")
+    run.add_argument("bench", type=Path, help="Benchmark folder (frostvane benchmark build).")
+    run.add_argument("--out", type=Path, required=True, help="Folder for benchmark.md and benchmark.json.")
+    run.add_argument("--min-score", type=float, default=None,
+                     help="Smallest detection score kept (default: the model's tuned threshold).")
+    run.add_argument("--workers", type=int, default=2, help="Local worker processes.")
     run.add_argument("--compare", nargs=2, action="append", metavar=("LABEL", "BENCHMARK_JSON"), default=[],
                      help="Set the model columns of an earlier benchmark.json beside this run's.")
-    run.add_argument("--force", action="store_true")
+    run.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
     run.set_defaults(func=_benchmark_run)
 
     winds = commands.add_parser(
@@ -136,9 +146,9 @@ def _add_training_commands(commands):
     winds.set_defaults(func=_winds)
 
     demo = commands.add_parser("demo", help="Run the whole job on the shipped demo tiles and model.")
-    demo.add_argument("--out", type=Path, default=Path("out/demo"))
-    demo.add_argument("--tiles", type=Path, default=DEFAULT_DEMO_TILES)
-    demo.add_argument("--model", type=Path, default=DEFAULT_MODEL)
+    demo.add_argument("--out", type=Path, default=Path("out/demo"), help="Folder for everything the demo writes.")
+    demo.add_argument("--tiles", type=Path, default=DEFAULT_DEMO_TILES, help="Labelled tile set of the demo.")
+    demo.add_argument("--model", type=Path, default=DEFAULT_MODEL, help="Model to run.")
     demo.add_argument("--retrain", action="store_true", help="Train a fresh model instead of using the shipped one.")
     demo.set_defaults(func=_demo)
 
@@ -202,13 +212,44 @@ def _demo(args):
     run_demo(args.out, tiles=args.tiles, model=args.model, retrain=args.retrain)
 
 
+class _DefaultsFormatter(argparse.HelpFormatter):
+    """Help that ends every option with its default (unless the text already says it)."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if action.required or action.default is argparse.SUPPRESS or "default" in text.lower():
+            return text
+        if not action.option_strings and action.nargs not in ("?", "*"):
+            return text  # a required positional argument has no default
+        default = "not set" if action.default is None else "%(default)s"
+        return f"{text} (default: {default})"
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose help shows every option's default."""
+
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("formatter_class", _DefaultsFormatter)
+        super().__init__(*args, **kwargs)
+
+
+def _version():
+    try:
+        from importlib.metadata import version
+
+        return version("frostvane")
+    except Exception:  # run from a source tree without installing
+        return "unknown"
+
+
 def build_parser():
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="frostvane",
         description="Pre-screen orbital images for seasonal fans and spots, estimate remaining volunteer effort, "
         "and benchmark direction recovery.",
     )
-    commands = parser.add_subparsers(dest="command", required=True)
+    parser.add_argument("--version", action="version", version=f"frostvane {_version()}")
+    commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
     add_detector_commands(commands)
     _add_training_commands(commands)
     return parser
