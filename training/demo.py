@@ -140,7 +140,8 @@ def run_demo(out, *, tiles, model, retrain=False):
         shutil.rmtree(screen_dir)
     summary = screen(model_dir, [mosaic], screen_dir)
     print(summary.format())
-    print(f"screening outputs: {screen_dir} (quicklook.png, rose.png, tiles.csv, detections.csv, detections.gpkg)")
+    print(f"screening outputs: {screen_dir} (quicklook.png, rose.png, tiles.csv, detections.csv, detections.gpkg "
+          f"in the mosaic's polar stereographic CRS, detections.geojson in planetocentric lon/lat)")
 
     _section("5. remaining volunteer effort")
     from .effort import run_effort
@@ -152,6 +153,7 @@ def run_demo(out, *, tiles, model, retrain=False):
 
     _section("done")
     print(f"everything is in {out}/: consensus_overlay.png, report/ (report.md, *.png), "
-          f"screen/ (tiles.csv, detections.csv, detections.gpkg, quicklook.png, rose.png, effort.json, routes.csv), "
+          f"screen/ (tiles.csv, detections.csv, detections.gpkg, detections.geojson, quicklook.png, rose.png, "
+          f"effort.json, routes.csv), "
           f"winds/ (bins.csv, images.csv, agreement_*.csv, model_match.csv, winds.json, bins.geojson, *.png)")
     print(f"demo took {time.perf_counter() - started:.0f} s")
