@@ -184,7 +184,7 @@ def add_north_arrow(ax, north_deg, *, where=(0.08, 0.86), size=0.07):
     Returns
     -------
     arrow : matplotlib.text.Annotation
-        Labelled "N", with ``gid`` "north_arrow".
+        The arrow (``gid`` "north_arrow"); an "N" (``gid`` "north_label") stands beyond its tip.
     """
     from .geometry import unit_vector
 
@@ -192,10 +192,12 @@ def add_north_arrow(ax, north_deg, *, where=(0.08, 0.86), size=0.07):
     # Axes fractions have y up, the image has rows down.
     tip = (where[0] + size * d_col, where[1] - size * d_row)
     tail = (where[0] - size * d_col, where[1] + size * d_row)
-    arrow = ax.annotate("N", xy=tip, xytext=tail, xycoords="axes fraction", textcoords="axes fraction",
-                        ha="center", va="center", fontsize=8, color="white", fontweight="bold",
+    arrow = ax.annotate("", xy=tip, xytext=tail, xycoords="axes fraction", textcoords="axes fraction",
                         arrowprops=dict(arrowstyle="-|>", color="white", lw=1.5, path_effects=_halo(1.5)),
-                        path_effects=_halo(0.5), gid="north_arrow")
+                        gid="north_arrow")
+    # The letter just beyond the tip, where a reader looks for it.
+    ax.text(tip[0] + 0.4 * size * d_col, tip[1] - 0.4 * size * d_row, "N", transform=ax.transAxes, ha="center",
+            va="center", fontsize=8, color="white", fontweight="bold", path_effects=_halo(0.5), gid="north_label")
     return arrow
 
 

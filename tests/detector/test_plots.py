@@ -177,7 +177,8 @@ def test_north_arrow_and_scale_bar_are_drawn():
     ax.set_ylim(99.5, -0.5)
     arrow = add_north_arrow(ax, 90.0)  # north to the image right
     (x0, y0), (x1, y1) = arrow.xyann, arrow.xy
-    assert arrow.get_text() == "N" and x1 > x0 and y1 == pytest.approx(y0)
+    (letter,) = [t for t in ax.texts if t.get_gid() == "north_label"]
+    assert letter.get_text() == "N" and letter.get_position()[0] > x1 and x1 > x0 and y1 == pytest.approx(y0)
     label = add_scale_bar(ax, 10.0, width_units=200)  # 10 m per px, 2000 m wide: the bar may take 500 m
     assert label == "500 m"
     (bar,) = [line for line in ax.lines if line.get_gid() == "scale_bar"]
