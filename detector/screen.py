@@ -299,7 +299,8 @@ def _plan_tileset(root, *, nodata, band, any_body=False, min_side=64):
 def _plan(inputs, *, tile, overlap, nodata, band, any_body=False, min_side=64):
     if isinstance(inputs, (str, os.PathLike)):
         inputs = [inputs]
-    inputs = [Path(p) for p in inputs]
+    # Absolute: workers on other machines or in other folders (a Dask cluster) must find the same files.
+    inputs = [Path(p).resolve() for p in inputs]
     if not inputs:
         raise DetectorError("screen needs at least one input image or tile-set folder.")
     tasks, images, owner = [], {}, {}
@@ -598,7 +599,7 @@ def _run_loky(todo, model_dir, min_score, workers):
     yield from parallel(delayed(_screen_tile)(index, task, model_dir, min_score) for index, task in todo)
 
 
-def _run_dask(todo, model_dir, min_score, scheduler):
+def _run_dask(todo, model_dir, min_score, scheduler, info=None):
     from distributed import Client, as_completed
 
     try:
@@ -606,6 +607,8 @@ def _run_dask(todo, model_dir, min_score, scheduler):
     except (OSError, TimeoutError, ValueError) as err:
         raise DetectorError(f"Dask scheduler {scheduler!r} cannot be reached: {err}.") from err
     with client:
+        if info is not None:
+            info["workers"] = max(1, len(client.scheduler_info().get("workers", {})))
         futures = client.map(
             _screen_tile, [i for i, _ in todo], [t for _, t in todo], model_dir=model_dir, min_score=min_score,
             pure=False,
@@ -1428,8 +1431,9 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         n_resumed = len(finished)
         todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
         model_arg = str(model_dir.resolve())
+        cluster = {}  # the Dask run says how many workers it had
         if scheduler:
-            results = _run_dask(todo, model_arg, min_score, scheduler)
+            results = _run_dask(todo, model_arg, min_score, scheduler, info=cluster)
         elif workers > 1 and len(todo) > 1:
             results = _run_loky(todo, model_arg, min_score, workers)
         else:
@@ -1459,7 +1463,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         megapixels=pixels / 1e6,
         seconds=seconds,
         mpx_per_s=pixels / 1e6 / seconds if seconds > 0 else math.nan,
-        workers=workers,
+        workers=cluster.get("workers", workers),
         per_image=per_image,
         **totals,
     )
@@ -1469,7 +1473,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         "parameters": params,
         "version": _version(),
         "run": {
-            "workers": workers, "scheduler": scheduler, "min_score": min_score,
+            "workers": summary.workers, "scheduler": scheduler, "min_score": min_score,
             "python": platform.python_version(),
             "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         },

@@ -466,13 +466,16 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_pa
     _same_outputs(out, reference)
 
 
-def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path):
+def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path, monkeypatch):
     from distributed import LocalCluster
 
     with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None) as cluster:
-        summary = screen(model_dir, [big_png], tmp_path / "dask", tile=TILE, scheduler=cluster.scheduler_address,
-                         progress=False)
-    assert summary.n_tiles == 36
+        # The workers started in another folder: relative paths given here must still reach them.
+        monkeypatch.chdir(big_png.parent)
+        summary = screen(model_dir, [big_png.name], tmp_path / "dask", tile=TILE,
+                         scheduler=cluster.scheduler_address, progress=False)
+    assert summary.n_tiles == 36 and summary.workers == 2
+    assert json.loads((tmp_path / "dask" / "run.json").read_text())["run"]["workers"] == 2
     _same_outputs(tmp_path / "dask", big_reference)
 
 
