@@ -120,10 +120,11 @@ def _add_training_commands(commands):
                        help="Image table: image_id, solar_longitude_deg[, region, metres_per_px, lon_deg, lat_deg].")
     winds.add_argument("--model-winds", type=Path, default=None, metavar="CSV",
                        help="Modelled winds to compare with (format in README, 'Winds by region and season').")
-    winds.add_argument("--out", type=Path, required=True)
+    winds.add_argument("--out", type=Path, required=True, help="Folder for the wind tables, GIS layers and plots.")
     winds.add_argument("--ls-bin", type=float, default=WIND_DEFAULTS.ls_bin_deg,
                        help="Solar-longitude bin width, deg (default %(default)s).")
-    winds.add_argument("--weighting", choices=WIND_WEIGHTINGS, default=WIND_DEFAULTS.weighting)
+    winds.add_argument("--weighting", choices=WIND_WEIGHTINGS, default=WIND_DEFAULTS.weighting,
+                       help="How each fan counts in a bin's wind: by length, direction confidence, both or equally.")
     winds.add_argument("--resample", choices=WIND_RESAMPLE_UNITS, default=WIND_DEFAULTS.resample,
                        help="Bootstrap unit (default: tiles, the independent unit).")
     winds.add_argument("--bootstrap", type=int, default=WIND_DEFAULTS.n_boot, help="Bootstrap replicates.")
@@ -140,8 +141,9 @@ def _add_training_commands(commands):
                        help="Largest Ls difference of a model row from a bin's centre, deg (default: half a bin).")
     winds.add_argument("--model-max-km", type=float, default=WIND_DEFAULTS.model_max_km,
                        help="Largest distance of a lon/lat model row from a bin's centroid, km.")
-    winds.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES)
-    winds.add_argument("--seed", type=int, default=0)
+    winds.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
+                       help="Drop consensus features with fewer votes (common practice: 3).")
+    winds.add_argument("--seed", type=int, default=0, help="Seed of the bootstrap.")
     winds.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")
     winds.set_defaults(func=_winds)
 

@@ -740,15 +740,19 @@ def _records(frame):
 
 
 def _bins_geojson(bins, frame_label):
-    """Points at the bins' centroids (Mars lon/lat); bins without a location get a null geometry."""
+    """Points at the bins' centroids (Mars lon/lat); bins without a location get a null geometry.
+
+    RFC 7946: positions are [lon, lat] (planetocentric, on the IAU 2015 Mars sphere, :data:`GIS_CRS`),
+    and the collection has no ``crs`` or other foreign member; each feature's properties say which
+    frame its directions are in (``direction_frame``).
+    """
     features = []
     for rec in _records(bins):
         located = rec.get("lon_deg") is not None and rec.get("lat_deg") is not None
         features.append({"type": "Feature",
                          "geometry": {"type": "Point", "coordinates": [rec["lon_deg"], rec["lat_deg"]]} if located else None,
-                         "properties": rec})
-    return {"type": "FeatureCollection", "coordinates": "lonlat", "directions": frame_label,
-            "crs": {"type": "name", "properties": {"name": GIS_CRS}}, "features": features}
+                         "properties": {**rec, "direction_frame": frame_label}})
+    return {"type": "FeatureCollection", "features": features}
 
 
 #: Mars (2015) sphere, ocentric lon/lat: the CRS of the GIS layers (PROJ's IAU_2015 authority).

@@ -210,6 +210,8 @@ def test_outputs_and_gis_layers(hand_set, tmp_path):
     assert record["bins"][0]["mean_to_deg"] == pytest.approx(bins["mean_to_deg"][0], rel=1e-5)
     geo = json.loads((out / "bins.geojson").read_text())
     assert [f["geometry"]["coordinates"] for f in geo["features"]][0] == pytest.approx([10.0, -80.0])
+    # RFC 7946 section 4: no "crs" member, and no other foreign member at the top level.
+    assert set(geo) == {"type", "features"} and "direction_frame" in geo["features"][0]["properties"]
     # GDAL (through pyogrio) reads the GeoPackage back: 3 points in the Mars 2015 ocentric CRS.
     info = pyogrio.read_info(out / "bins.gpkg")
     assert info["features"] == 3 and info["geometry_type"] == "Point"
