@@ -69,7 +69,7 @@ class TrainConfig:
         ``all_rotations_below`` fitting tiles, else 2, so that large catalogs keep
         the augmentation at about twice the cost of no augmentation.
     all_rotations_below : int, default=200
-    max_candidate_tiles : int, default=300
+    max_candidate_tiles : int, default=600
         Most fitting tile extractions read for the object classifier's candidates
         (drawn evenly over the two folds); a few thousand readings suffice, and
         reading candidates costs a second feature extraction.
@@ -94,7 +94,7 @@ class TrainConfig:
     rotations: tuple = (0, 1, 2, 3)
     rotations_per_tile: int = None
     all_rotations_below: int = 200
-    max_candidate_tiles: int = 300
+    max_candidate_tiles: int = 600
     neg_ratio: float = 3.0
     degrade: bool = True
     max_iter: int = 300
@@ -553,6 +553,10 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
     for held in folds:
         rest = [i for i in fit_img if i not in held] or list(held)  # one image: in-sample, said in the card
         mask = np.isin(train.image_id, rest)
+        if len(np.unique(train.cls[mask])) < len(CLASS_NAMES):
+            # A fold of a small catalog can lack a class (no spot in half its images): its model
+            # could not give the three probabilities, so this fold is read in-sample, like one image.
+            mask = np.isin(train.image_id, fit_img)
         # Fold models only stand in for the full one on unseen images: no more boosting
         # iterations than it needed.
         clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, replace(config, max_iter=n_iter))

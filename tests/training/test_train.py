@@ -222,3 +222,17 @@ def test_same_seed_gives_the_same_detector(tiny_model, tiny_tileset, tmp_path):
         again = train_model(tiny_tileset, tmp_path / "model", TINY_CONFIG, log=lambda s: None)
     assert again["files"]["detector.onnx"] == card["files"]["detector.onnx"]
     assert again["heldout_metrics"]["fan_f1"] == card["heldout_metrics"]["fan_f1"]
+
+
+@pytest.mark.slow
+def test_train_reads_a_fold_without_spots_in_sample(tmp_path):
+    # 4 images x 2 tiles (seed 0): of the two fitting images one has no spot patch, so the
+    # out-of-fold classifier of one fold would know two classes only; training must still finish.
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "set", n_images=4, tiles_per_image=2, seed=0)
+    config = TrainConfig(seed=0, rotations=(0,), max_patches=20000, max_iter=20)
+    lines = []
+    card = train_model(root, tmp_path / "model", config, log=lines.append)
+    assert (tmp_path / "model" / "model.json").exists()
+    assert card["training"]["readings"]["fit"] > 0
