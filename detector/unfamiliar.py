@@ -2,7 +2,7 @@
 
 import numpy as np
 
-__all__ = ["unfamiliarity_distance", "unfamiliarity_score"]
+__all__ = ["DEFAULT_PASS_SHARE", "pass_threshold", "unfamiliarity_distance", "unfamiliarity_score"]
 
 
 def unfamiliarity_distance(stats, summaries):
@@ -39,3 +39,42 @@ def unfamiliarity_score(stats, summaries):
     if not stats:
         return np.full(len(np.atleast_2d(summaries)), np.nan)
     return unfamiliarity_distance(stats, summaries) / float(stats["threshold"])
+
+
+#: Share of in-distribution held-out tiles that pass the unfamiliarity check by default.
+DEFAULT_PASS_SHARE = 0.95
+
+
+def pass_threshold(values, pass_share=DEFAULT_PASS_SHARE):
+    """Smallest value that at least ``pass_share`` of ``values`` do not exceed.
+
+    It is the ``ceil(pass_share * n)``-th smallest finite value (the inverse of
+    the empirical distribution function, ``numpy.quantile(...,
+    method="inverted_cdf")``), so exactly that many tiles, or more when tied,
+    pass a rule ``value <= threshold``.
+
+    Parameters
+    ----------
+    values : ndarray of shape (n,)
+        Unfamiliarity scores (or distances) of in-distribution held-out tiles;
+        NaN values are ignored.
+    pass_share : float, default=0.95
+        Share of the tiles that must pass, in (0, 1].
+
+    Returns
+    -------
+    threshold : float
+        NaN when no value is finite.
+
+    Raises
+    ------
+    ValueError
+        ``pass_share`` outside (0, 1].
+    """
+    if not (isinstance(pass_share, (int, float)) and 0.0 < pass_share <= 1.0):
+        raise ValueError(f"pass_share must be in (0, 1]; got {pass_share!r}.")
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return float("nan")
+    return float(np.quantile(v, pass_share, method="inverted_cdf"))
