@@ -29,7 +29,7 @@ from detector.model import (
 )
 from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
-from detector.unfamiliar import unfamiliarity_distance
+from detector.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
 
 from .dataset import build_patch_set, rotation_jobs
 from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly
@@ -501,9 +501,32 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
         heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log, workers=config.workers)
         card["heldout_metrics"] = summarise_for_card(heldout)
         card["heldout_tiles"] = heldout["per_tile"]
+        _unfamiliarity_from_heldout(card)
         card["training"]["seconds"] = round(time.perf_counter() - started, 1)
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
     return card
+
+
+def _unfamiliarity_from_heldout(card, pass_share=DEFAULT_PASS_SHARE):
+    """Move the unfamiliarity threshold to where ``pass_share`` of the held-out tiles pass.
+
+    The training-set threshold is set on the tiles the statistics were fitted on,
+    which look more familiar than new tiles of the same kind; the held-out tiles
+    stand for those. Their scores are rescaled in place to the new threshold.
+    """
+    stats = card.get("unfamiliarity")
+    scores = np.array([np.nan if t.get("unfamiliarity") is None else t["unfamiliarity"]
+                       for t in card["heldout_tiles"]], dtype=np.float64)
+    factor = pass_threshold(scores, pass_share) if stats else float("nan")
+    if not (np.isfinite(factor) and factor > 0):
+        return
+    stats["threshold_fit"] = stats["threshold"]
+    stats["threshold"] = float(stats["threshold"] * factor)
+    stats["pass_share"] = float(pass_share)
+    stats["threshold_from"] = "held-out tiles"
+    for tile, score in zip(card["heldout_tiles"], scores):
+        if np.isfinite(score):
+            tile["unfamiliarity"] = float(score / factor)
 
 
 def _tile_sample(tile_ids, cap, seed):
