@@ -236,3 +236,18 @@ def test_train_reads_a_fold_without_spots_in_sample(tmp_path):
     card = train_model(root, tmp_path / "model", config, log=lines.append)
     assert (tmp_path / "model" / "model.json").exists()
     assert card["training"]["readings"]["fit"] > 0
+
+
+def test_unfamiliarity_threshold_moves_to_the_held_out_pass_share():
+    # Held-out scores 0.1 ... 2.0 (20 tiles) under a training threshold of 3.0: 95 % of 20 is 19 tiles,
+    # the 19th smallest score is 1.9, so the threshold becomes 3.0 * 1.9 = 5.7 and the scores divide by 1.9.
+    from training.train import _unfamiliarity_from_heldout
+
+    scores = np.round(np.arange(1, 21) / 10, 1)
+    card = {"unfamiliarity": {"threshold": 3.0}, "heldout_tiles": [{"unfamiliarity": float(s)} for s in scores]}
+    _unfamiliarity_from_heldout(card)
+    assert card["unfamiliarity"]["threshold"] == pytest.approx(5.7)
+    assert card["unfamiliarity"]["threshold_fit"] == 3.0 and card["unfamiliarity"]["pass_share"] == 0.95
+    rescaled = np.array([t["unfamiliarity"] for t in card["heldout_tiles"]])
+    assert rescaled == pytest.approx(scores / 1.9)
+    assert int(np.sum(rescaled <= 1.0 + 1e-12)) == 19
