@@ -11,6 +11,9 @@ from pathlib import Path
 from detector.cli import add_detector_commands
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
+from detector.unfamiliar import DEFAULT_PASS_SHARE
+
+from .effort import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
 
 from .winds import FRAMES as WIND_FRAMES
 from .winds import RESAMPLE_UNITS as WIND_RESAMPLE_UNITS
@@ -68,21 +71,48 @@ def _add_training_commands(commands):
 
     effort = commands.add_parser("effort", help="Route screened tiles and estimate the volunteer effort left.")
     effort.add_argument("model_dir", type=Path, help="Model folder (its held-out table sets the routes).")
-    effort.add_argument("screen_dir", type=Path, nargs="?", help="Output of frostvane screen.")
-    effort.add_argument("--classifications-per-tile", type=int, default=30,
-                        help="Volunteer classifications a crowd tile needs.")
-    effort.add_argument("--seconds-per-classification", type=float, default=None,
-                        help="Volunteer time per classification, s (default: an assumed figure, said in the output).")
-    effort.add_argument("--recall", type=float, default=0.98,
-                        help="Share of the deposit area that skipped tiles may not lose.")
-    effort.add_argument("--max-direction-error", type=float, default=20.0,
-                        help="Largest median fan direction error of machine-routed tiles, degrees.")
+    effort.add_argument("screen_dir", type=Path, nargs="?", help="Output of frostvane screen, made by this model.")
+    _add_campaign_options(effort)
+    effort.add_argument("--recall", type=float, default=DEFAULT_RECALL,
+                        help="Share of the held-out deposit area the skip route must keep.")
+    effort.add_argument("--min-f1", type=float, default=DEFAULT_MIN_F1,
+                        help="Pooled object F1 the machine route promises on held-out tiles.")
+    effort.add_argument("--max-direction-error", type=float, default=DEFAULT_MAX_DIRECTION_ERROR,
+                        help="Median fan direction error the machine route promises, degrees.")
+    effort.add_argument("--pass-share", type=float, default=DEFAULT_PASS_SHARE,
+                        help="Share of held-out tiles that pass the unfamiliarity check.")
+    effort.add_argument("--next-tiles", type=Path, metavar="TILESET", default=None,
+                        help="Rank the crowd tiles found in this tile set by what they would teach the model.")
     effort.add_argument("--learning-curve", type=Path, metavar="TILESET", default=None,
                         help="Also fit the learning curve on this labelled tile set.")
     effort.add_argument("--out", type=Path, default=None,
-                        help="Folder for effort.json and routes.csv (default: the screening folder).")
+                        help="Folder for effort.json, routes.csv and the plots (default: the screening folder).")
     effort.add_argument("--seed", type=int, default=0, help="Seed of the bootstrap and the learning curve.")
     effort.set_defaults(func=_effort)
+
+    backtest = commands.add_parser("backtest", help="Hide a labelled tile set's consensus, screen and estimate "
+                                   "effort, and compare with the hidden catalog.")
+    backtest.add_argument("model_dir", type=Path)
+    backtest.add_argument("tile_set", type=Path)
+    backtest.add_argument("--out", type=Path, required=True)
+    _add_campaign_options(backtest, classifications=False)
+    backtest.add_argument("--workers", type=int, default=1)
+    backtest.add_argument("--seed", type=int, default=0)
+    backtest.set_defaults(func=_backtest)
+
+    order = commands.add_parser("labelling-order", help="Retrain on a pool in ranked and random labelling order "
+                                "and compare the learning curves.")
+    order.add_argument("model_dir", type=Path)
+    order.add_argument("tile_set", type=Path)
+    order.add_argument("--out", type=Path, required=True)
+    order.add_argument("--base-images", type=int, default=3)
+    order.add_argument("--holdout-images", type=int, default=3)
+    order.add_argument("--batch", type=int, default=6)
+    order.add_argument("--batches", type=int, default=3)
+    order.add_argument("--max-patches", type=int, default=20000)
+    order.add_argument("--workers", type=int, default=1)
+    order.add_argument("--seed", type=int, default=0)
+    order.set_defaults(func=_labelling_order)
 
     bench = commands.add_parser("benchmark", help="Build the fixed benchmark, or score a model on it.")
     bench_commands = bench.add_subparsers(dest="benchmark_command", required=True)
@@ -155,6 +185,31 @@ def _add_training_commands(commands):
     demo.set_defaults(func=_demo)
 
 
+def _iso_date(text):
+    import datetime
+
+    try:
+        return datetime.date.fromisoformat(text)
+    except ValueError as err:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an ISO date (YYYY-MM-DD)") from err
+
+
+def _add_campaign_options(parser, *, classifications=True):
+    """Campaign options; each overrides the same key of --campaign FILE (see README, "Campaign file")."""
+    parser.add_argument("--campaign", type=Path, default=None, metavar="FILE",
+                        help="Campaign file (.json or .toml) with the keys below.")
+    parser.add_argument("--classifications-needed", type=int, default=None,
+                        help="Classifications before a tile's consensus is final (default 30: common practice 20-30).")
+    if classifications:
+        parser.add_argument("--classifications", type=Path, default=None, metavar="TILESET_OR_CSV",
+                            help="What each tile already has: a tile set (its classifications column) or a CSV "
+                                 "tile_id,classifications.")
+    parser.add_argument("--seconds-per-classification", type=float, default=None)
+    parser.add_argument("--classifications-per-day", type=float, default=None,
+                        help="Volunteer throughput; gives the effort left as a date range.")
+    parser.add_argument("--start-date", type=_iso_date, default=None, help="First day of the remaining work.")
+
+
 def _synth(args):
     from .synth import synthesize_tileset
 
@@ -185,6 +240,22 @@ def _effort(args):
     from .effort import effort_command
 
     effort_command(args)
+
+
+def _backtest(args):
+    from .backtest import backtest
+    from .effort import _campaign_from_args
+
+    backtest(args.model_dir, args.tile_set, args.out, campaign=_campaign_from_args(args), seed=args.seed,
+             workers=args.workers)
+
+
+def _labelling_order(args):
+    from .active import labelling_order_study
+
+    labelling_order_study(args.model_dir, args.tile_set, args.out, base_images=args.base_images,
+                          holdout_images=args.holdout_images, batch=args.batch, n_batches=args.batches,
+                          seed=args.seed, max_patches=args.max_patches, workers=args.workers)
 
 
 def _benchmark_build(args):

@@ -1,72 +1,79 @@
-"""Tests of tile routing, the volunteer effort estimate and the learning-curve power law."""
+"""Tests of tile routing, its measured promises, the effort arithmetic and the effort command."""
 
 import argparse
+import datetime
+import hashlib
 import json
 import shutil
-import math
 
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.optimize import curve_fit
 
 from detector.errors import DetectorError
+from training.campaign import Campaign
 from training.effort import (
-    _curve_verdicts,
+    ScreenModelMismatch,
+    check_screen_model,
+    deposit_probability,
     effort_command,
     estimate_effort,
-    fit_power_law,
-    learning_curve,
     machine_threshold,
-    power_law,
+    pooled_f1,
     route_tiles,
     run_effort,
     skip_threshold,
-    tile_confidence,
     tile_detection_summary,
-    tiles_needed,
 )
 
 # --------------------------------------------------------------------------- hand-made tables
 
 
-def _heldout_row(tile_id, p, area, *, f1=0.9, err=5.0, score=0.9, dconf=0.9, n_det=3, unf=0.5):
-    return {"tile_id": tile_id, "image_id": "IMG_H", "p_deposit": p, "consensus_px": area,
-            "n_consensus": int(area > 0), "n_detections": n_det, "f1": f1, "fan_error_median_deg": err,
-            "mean_score": score, "mean_direction_confidence": dconf, "unfamiliarity": unf}
+def _heldout_row(tile_id, p, area, n_cons, n_det, tp, *, err=5.0, score=0.9, unf=0.5):
+    f1 = 2 * tp / (n_det + n_cons) if n_det + n_cons else 1.0
+    return {"tile_id": tile_id, "image_id": f"IMG_{tile_id}", "p_deposit": p, "consensus_px": area,
+            "n_consensus": n_cons, "n_detections": n_det, "f1": f1, "fan_error_median_deg": err,
+            "mean_score": score, "mean_direction_confidence": None, "unfamiliarity": unf}
 
 
 def _card():
-    """Held-out table: 6 confident good tiles, 3 weak tiles, 1 empty tile; 1000 px of deposits."""
+    """Held-out table of 10 one-tile images; 1000 px of deposits (worked through in the tests)."""
     rows = [
-        _heldout_row("h0", 0.95, 300, score=0.95, dconf=0.90),
-        _heldout_row("h1", 0.93, 200, score=0.92, dconf=0.88),
-        _heldout_row("h2", 0.90, 150, score=0.90, dconf=0.86),
-        _heldout_row("h3", 0.88, 100, score=0.89, dconf=0.85),
-        _heldout_row("h4", 0.85, 80, score=0.87, dconf=0.84),
-        _heldout_row("h5", 0.80, 60, score=0.86, dconf=0.83, err=12.0),
-        _heldout_row("h6", 0.60, 50, f1=0.3, err=60.0, score=0.55, dconf=0.40),
-        _heldout_row("h7", 0.40, 40, f1=0.2, err=None, score=0.50, dconf=None),
-        _heldout_row("h8", 0.20, 20, f1=0.0, err=None, score=0.40, dconf=None, n_det=1),
-        _heldout_row("h9", 0.05, 0, f1=1.0, err=None, score=0.0, dconf=None, n_det=0),
+        _heldout_row("h0", 0.95, 300, 4, 4, 4, score=0.95, unf=0.3),
+        _heldout_row("h1", 0.93, 200, 4, 4, 3, score=0.92, unf=0.4),
+        _heldout_row("h2", 0.90, 150, 3, 3, 2, score=0.90, unf=0.5),
+        _heldout_row("h3", 0.88, 100, 2, 2, 2, score=0.89, unf=0.3),
+        _heldout_row("h4", 0.85, 80, 2, 2, 1, score=0.87, unf=0.4),
+        _heldout_row("h5", 0.80, 60, 2, 2, 2, score=0.86, unf=0.5, err=12.0),
+        _heldout_row("h6", 0.60, 50, 2, 4, 1, score=0.55, unf=0.6, err=60.0),
+        _heldout_row("h7", 0.40, 40, 1, 1, 0, score=0.50, unf=0.7, err=None),
+        _heldout_row("h8", 0.20, 20, 1, 1, 0, score=0.40, unf=0.8, err=None),
+        _heldout_row("h9", 0.05, 0, 0, 0, 0, score=0.0, unf=0.9, err=None),
     ]
     return {"heldout_tiles": rows}
 
 
 def _screen():
-    """Screen table of 10 tiles with per-tile detection summaries."""
+    """Screen table of 11 tiles with per-tile detection summaries."""
     return pd.DataFrame({
-        "tile_id": [f"s{i}" for i in range(10)],
-        "image": ["IMG_S"] * 10,
-        "p_deposit": [0.99, 0.97, 0.90, 0.70, 0.30, 0.01, 0.02, 0.96, np.nan, 0.0],
-        "unfamiliarity": [0.3, 0.4, 0.5, 0.5, 0.6, 0.2, 1.7, 1.4, 0.5, np.nan],
-        "route": ["", "", "", "", "", "", "", "", "", "nodata"],
-        "mean_score": [0.95, 0.90, 0.60, 0.50, 0.45, 0.0, 0.0, 0.99, 0.5, 0.0],
-        "mean_direction_confidence": [0.92, 0.90, 0.50, np.nan, np.nan, np.nan, np.nan, 0.99, np.nan, np.nan],
-        "n_detections": [4, 3, 2, 1, 1, 0, 0, 5, 1, 0],
+        "tile_id": [f"s{i}" for i in range(11)],
+        "image": ["IMG_S"] * 11,
+        "p_deposit": [0.99, 0.97, 0.90, 0.70, 0.30, 0.01, 0.02, 0.96, np.nan, 0.0, 0.50],
+        "unfamiliarity": [0.3, 0.4, 0.5, 0.5, 0.6, 0.2, 1.7, 1.4, 0.5, np.nan, 0.3],
+        "route": [""] * 9 + ["nodata", ""],
+        "mean_score": [0.95, 0.90, 0.60, 0.86, 0.45, 0.0, 0.0, 0.99, 0.5, 0.0, 0.0],
+        "n_detections": [4, 3, 2, 1, 1, 0, 0, 5, 1, 0, 0],
     })
 
 
+# Thresholds of the hand table, worked once for every test below:
+# - unfamiliar: 95 % of 10 tiles is 9.5, so the 10th smallest unfamiliarity, 0.9, is the cut;
+# - skip: areas by p_deposit descending 300, 200, 150, 100, 80, 60, 50, 40, 20 (1000 px); 98 % = 980 px
+#   needs everything down to h7 (p 0.40): tiles below 0.40 (h8, h9) are skipped, losing 20 px = 2 %;
+# - machine: eligible h0..h7 (detections, familiar, not skipped); by mean score, pooled F1 over
+#   h0..h4 (score >= 0.87) is 2 * 12 / 30 = 0.800, h0..h5 (>= 0.86) 2 * 14 / 34 = 0.824, with h6
+#   (>= 0.55) 2 * 15 / 40 = 0.750, with h7 (>= 0.50) 2 * 15 / 42 = 0.714. The smallest qualifying
+#   threshold for F1 >= 0.8 is 0.86 (6 tiles, 6 of the 9 deposit tiles; median direction error 5 deg).
 # --------------------------------------------------------------------------- skip threshold
 
 
@@ -123,36 +130,42 @@ def test_skip_threshold_matches_naive_oracle():
 # --------------------------------------------------------------------------- machine threshold
 
 
-def _naive_machine_threshold(conf, f1, err, min_f1, max_err, min_tiles):
+def _naive_machine_threshold(conf, tp, det, cons, err, min_f1, max_err, min_tiles):
+    """Oracle: try every confidence in increasing order; the first whose set keeps the promise."""
     for c in sorted(set(conf)):
         inside = [i for i in range(len(conf)) if conf[i] >= c]
-        errs = [err[i] for i in inside if not math.isnan(err[i])]
-        if (len(inside) >= min_tiles and np.median([f1[i] for i in inside]) >= min_f1 and errs
-                and np.median(errs) <= max_err):
+        errs = [err[i] for i in inside if not np.isnan(err[i])]
+        den = sum(det[i] + cons[i] for i in inside)
+        f1 = 2 * sum(tp[i] for i in inside) / den if den else np.nan
+        if len(inside) >= min_tiles and f1 >= min_f1 and errs and np.median(errs) <= max_err:
             return c
     return None
 
 
-def test_machine_threshold_on_hand_table():
-    # Confidence = min(mean score, mean direction confidence), or the mean score without fans:
-    # h0..h5 0.90, 0.88, 0.86, 0.85, 0.84, 0.83; h6 0.40; h7 0.50; h8 0.40 (h9 has no detections).
-    # At c = 0.40 all 9 tiles count: F1 sorted 0, 0.2, 0.3, 0.9 x 6 -> median 0.9 >= 0.8; fan
-    # errors 5 x 5, 12, 60 (h7, h8 have none) -> median 5 deg <= 20. 0.40 is the smallest candidate.
-    card = _card()
+def _held_arrays(card):
     held = pd.DataFrame(card["heldout_tiles"])
+    held = held[held["p_deposit"] >= 0.40]  # the skip threshold of the hand table
     held = held[held["n_detections"] > 0]
-    conf = tile_confidence(held["mean_score"], pd.to_numeric(held["mean_direction_confidence"]))
+    tp = np.round(held["f1"] * (held["n_detections"] + held["n_consensus"]) / 2)
     err = pd.to_numeric(held["fan_error_median_deg"]).to_numpy(float)
-    got = machine_threshold(conf, held["f1"], err, min_f1=0.8, max_direction_error=20.0)
-    assert got == pytest.approx(0.40)
-    # No tile has F1 above 0.9, so a target of 0.95 is never met.
-    assert machine_threshold(conf, held["f1"], err, min_f1=0.95) is None
-    # A direction target of 4 deg is never met (best median is 5 deg): no machine route.
-    assert machine_threshold(conf, held["f1"], err, max_direction_error=4.0) is None
-    # Needing 7 tiles: only 0.50 (7 tiles) and 0.40 (9 tiles) have enough; 0.40 is smaller.
-    assert machine_threshold(conf, held["f1"], err, min_tiles=7) == pytest.approx(0.40)
-    # Needing 10 tiles: never enough.
-    assert machine_threshold(conf, held["f1"], err, min_tiles=10) is None
+    return held["mean_score"].to_numpy(float), tp, held["n_detections"], held["n_consensus"], err
+
+
+def test_pooled_f1_by_hand():
+    # 12 matched of 14 detections and 16 consensus features: 2 * 12 / 30 = 0.8.
+    assert pooled_f1([4, 3, 5], [4, 5, 5], [5, 6, 5]) == pytest.approx(0.8)
+    assert np.isnan(pooled_f1([0], [0], [0]))
+
+
+def test_machine_threshold_on_hand_table():
+    conf, tp, det, cons, err = _held_arrays(_card())
+    assert machine_threshold(conf, tp, det, cons, err, min_f1=0.8) == pytest.approx(0.86)
+    # F1 0.75 is met down to 0.55 (h6 in, 0.750) but not at 0.50 (0.714).
+    assert machine_threshold(conf, tp, det, cons, err, min_f1=0.75) == pytest.approx(0.55)
+    # A direction target of 4 deg is never met (the best median is 5 deg).
+    assert machine_threshold(conf, tp, det, cons, err, max_direction_error=4.0) is None
+    # Needing 7 tiles: the 7-tile set has F1 0.75 < 0.8, so nothing qualifies.
+    assert machine_threshold(conf, tp, det, cons, err, min_tiles=7) is None
 
 
 def test_machine_threshold_matches_naive_oracle():
@@ -160,36 +173,76 @@ def test_machine_threshold_matches_naive_oracle():
     for _ in range(40):
         n = int(rng.integers(1, 25))
         conf = np.round(rng.random(n), 2)
-        f1 = np.clip(conf + rng.normal(0, 0.2, n), 0, 1)
+        det = rng.integers(1, 10, n)
+        cons = rng.integers(0, 10, n)
+        tp = np.minimum(det, cons) * np.clip(conf + rng.normal(0, 0.2, n), 0, 1)
+        tp = np.round(tp)
         err = np.where(rng.random(n) < 0.3, np.nan, rng.gamma(2.0, 10.0 * (1.1 - conf)))
-        got = machine_threshold(conf, f1, err, min_f1=0.7, max_direction_error=15.0, min_tiles=3)
-        assert got == _naive_machine_threshold(list(conf), list(f1), list(err), 0.7, 15.0, 3)
+        got = machine_threshold(conf, tp, det, cons, err, min_f1=0.7, max_direction_error=15.0, min_tiles=3)
+        assert got == _naive_machine_threshold(list(conf), list(tp), list(det), list(cons), list(err), 0.7, 15.0, 3)
 
 
 # --------------------------------------------------------------------------- routing
 
 
-def test_route_tiles_routes_and_unfamiliar_never_skip_or_machine():
-    routed = route_tiles(_screen(), _card(), recall=0.98)
+def test_route_tiles_routes_reasons_and_promises():
+    routed = route_tiles(_screen(), _card())
     th = routed.attrs["thresholds"]
-    # Held-out areas descending: 300, 200, 150, 100, 80, 60, 50, 40, 20 (total 1000 px);
-    # 980 px needs everything down to h7 (p 0.40): threshold 0.40.
     assert th["skip_p_deposit"] == pytest.approx(0.40)
-    assert th["machine_confidence"] == pytest.approx(0.40)
+    assert th["machine_confidence"] == pytest.approx(0.86)
+    assert th["unfamiliar_cut"] == pytest.approx(0.9)
     route = dict(zip(routed["tile_id"], routed["route"]))
-    assert route["s0"] == "machine" and route["s1"] == "machine"  # confident, familiar
-    assert route["s2"] == "machine"  # confidence min(0.60, 0.50) = 0.50 >= 0.40
-    assert route["s3"] == "machine" and route["s4"] == "skip"  # s4: p 0.30 < 0.40
-    assert route["s5"] == "skip"
-    assert route["s6"] == "crowd" and route["s7"] == "crowd"  # unfamiliar (1.7, 1.4)
-    assert route["s8"] == "crowd"  # unknown p_deposit cannot be skipped
-    assert route["s9"] == "nodata"
-    assert routed["unfamiliar"].tolist() == [False] * 6 + [True, True, False, False]
-    unfamiliar = routed["unfamiliar"].to_numpy()
-    assert set(routed.loc[unfamiliar, "route"]) == {"crowd"}
+    assert [route[f"s{i}"] for i in range(11)] == [
+        "machine", "machine", "crowd", "machine",  # s3 is tied at 0.86: kept for the machine
+        "skip", "skip",  # p_deposit 0.30 and 0.01 < 0.40
+        "crowd", "crowd",  # unfamiliar (1.7, 1.4 > 0.9), whatever their scores
+        "crowd", "nodata",  # unknown p_deposit cannot be skipped; no data
+        "crowd",  # p 0.50 >= 0.40 but no detection
+    ]
+    reason = dict(zip(routed["tile_id"], routed["reason"]))
+    assert reason["s6"].startswith("crowd, unfamiliar: unfamiliarity 1.70 above 0.90")
+    assert reason["s3"].startswith("machine: 1 detection(s), mean score 0.860 >= 0.860")
+    assert reason["s2"].startswith("crowd: 2 detection(s), mean score 0.600 below the machine's 0.860")
+    assert reason["s10"] == "crowd: p_deposit 0.500 at or above 0.400 but no detection"
+    # The promises with their values measured on the held-out tiles.
+    m = th["measured_heldout"]
+    assert m["missed_deposit_share"] == pytest.approx(0.02)
+    assert m["machine_tiles"] == 6 and m["machine_f1"] == pytest.approx(28 / 34)
+    assert m["machine_direction_median_deg"] == pytest.approx(5.0)
+    assert m["machine_deposit_share"] == pytest.approx(6 / 9)
+    assert "pooled object F1 >= 0.8" in th["machine_note"]
+    grid = {row["min_f1"]: row for row in th["promise_grid"]}
+    # F1 >= 0.7 reaches down to h7 (0.714, 8 tiles); no set of 5 or more reaches 0.9.
+    assert grid[0.7]["machine_tiles"] == 8 and grid[0.9]["machine_tiles"] == 0
 
 
-def test_route_tiles_no_machine_threshold_says_so():
+def test_a_tile_with_detections_is_never_skipped_without_saying_why():
+    # Screen and effort agree: every skipped tile that the screen found deposits on says so, for
+    # random screens as well as the hand table.
+    rng = np.random.default_rng(5)
+    n = 200
+    screen = pd.DataFrame({"tile_id": [f"r{i}" for i in range(n)], "image": "I", "p_deposit": rng.random(n),
+                           "unfamiliarity": rng.random(n), "route": "",
+                           "mean_score": rng.random(n), "n_detections": rng.integers(0, 4, n)})
+    for table in (screen, _screen()):
+        routed = route_tiles(table, _card())
+        skipped = routed[routed["route"].eq("skip") & (routed["n_detections"] > 0)]
+        assert len(skipped) > 0
+        assert skipped["reason"].str.contains(r"its \d+ detection\(s\) \(best score", regex=True).all()
+        assert routed["reason"].str.len().gt(0).all()
+        # Tiles without detections are never routed to the machine.
+        assert not (routed["route"].eq("machine") & routed["n_detections"].eq(0)).any()
+
+
+def test_unfamiliar_cut_follows_the_pass_share():
+    # pass share 0.8: sorted held-out unfamiliarity 0.3, 0.3, 0.4, 0.4, 0.5, 0.5, 0.6, 0.7, 0.8, 0.9;
+    # the 8th smallest (0.7) is the cut, so 8 of 10 pass and h8, h9 would not; s4 (0.6) passes.
+    routed = route_tiles(_screen(), _card(), pass_share=0.8)
+    assert routed.attrs["thresholds"]["unfamiliar_cut"] == pytest.approx(0.7)
+    assert routed["unfamiliar"].tolist() == [False] * 6 + [True, True] + [False] * 3
+
+
+def test_no_machine_threshold_says_so():
     card = _card()
     for row in card["heldout_tiles"]:
         row["f1"] = 0.1
@@ -197,10 +250,11 @@ def test_route_tiles_no_machine_threshold_says_so():
     assert routed.attrs["thresholds"]["machine_confidence"] is None
     assert "no tile is routed to machine" in routed.attrs["thresholds"]["machine_note"]
     assert "machine" not in set(routed["route"])
+    assert "no confidence threshold keeps the machine's promise" in routed.loc[2, "reason"]
 
 
 def test_route_tiles_from_detections_table():
-    screen = _screen().drop(columns=["mean_score", "mean_direction_confidence", "n_detections"])
+    screen = _screen().drop(columns=["mean_score", "n_detections"])
     detections = pd.DataFrame({
         "tile_id": ["s0", "s0", "s1", "s3"],
         "kind": ["fan", "spot", "fan", "spot"],
@@ -208,130 +262,101 @@ def test_route_tiles_from_detections_table():
         "direction_confidence": [0.8, np.nan, 0.9, np.nan],
     })
     summary = tile_detection_summary(detections)
-    # Hand values: s0 mean score (0.9 + 1.0) / 2 = 0.95, direction confidence 0.8 (its fan only).
+    # Hand values: s0 mean score (0.9 + 1.0) / 2 = 0.95, best 1.0, direction confidence 0.8 (its fan only).
     assert summary.loc["s0", "mean_score"] == pytest.approx(0.95)
+    assert summary.loc["s0", "max_score"] == pytest.approx(1.0)
     assert summary.loc["s0", "mean_direction_confidence"] == pytest.approx(0.8)
     assert np.isnan(summary.loc["s3", "mean_direction_confidence"])
     routed = route_tiles(screen, _card(), detections=detections)
     route = dict(zip(routed["tile_id"], routed["route"]))
-    assert route["s0"] == "machine"  # min(0.95, 0.8) = 0.8 >= 0.40
-    assert route["s1"] == "crowd"  # min(0.3, 0.9) = 0.3 < 0.40
+    assert route["s0"] == "machine"  # 0.95 >= 0.86
+    assert route["s1"] == "crowd"  # 0.3 < 0.86
     assert route["s2"] == "crowd"  # no detections at all
+    assert route["s3"] == "crowd"  # 0.8 < 0.86
 
 
 # --------------------------------------------------------------------------- effort
 
 
-def _crowd_frame(n_crowd, n_skip=2):
-    n = n_crowd + n_skip
-    return pd.DataFrame({
-        "tile_id": [f"t{i}" for i in range(n)], "image": ["I"] * n,
-        "p_deposit": [0.9] * n_crowd + [0.01] * n_skip,
-        "unfamiliarity": [2.0] * n_crowd + [0.1] * n_skip,
-        "route": [""] * n,
-    })
+def test_deposit_probability_is_the_isotonic_fit():
+    # Held-out p and deposit: the pool-adjacent-violators fit of (0, 1, 0, 1) at p 0.1..0.4 is
+    # (0, 0.5, 0.5, 1); read between points linearly and flat beyond them; NaN counts as 1.
+    q = deposit_probability([0.1, 0.2, 0.3, 0.4], [0, 1, 0, 1], [0.0, 0.1, 0.25, 0.35, 0.9, np.nan])
+    assert q == pytest.approx([0.0, 0.0, 0.5, 0.75, 1.0, 1.0])
 
 
-def test_hours_on_hand_case():
-    # 7 unfamiliar tiles go to crowd whatever the thresholds: 7 x 30 x 45 s / 3600 = 2.625 h.
-    routed = route_tiles(_crowd_frame(7), _card())
-    effort = estimate_effort(routed, _card(), classifications_per_tile=30, seconds_per_classification=45.0,
-                             n_boot=50)
-    assert effort["tiles"]["crowd"] == 7
-    assert effort["classifications"] == 210
-    assert effort["hours"] == pytest.approx(7 * 30 * 45 / 3600)
-    assert effort["seconds_assumed"] is False
-    # Default time per classification is an assumption and is said to be one.
-    default = estimate_effort(routed, _card(), n_boot=50)
-    assert default["hours"] == pytest.approx(7 * 30 * 60 / 3600)
-    assert default["seconds_assumed"] is True
-    assert any("assumed" in a for a in default["assumptions"])
-    # Every bootstrap replicate routes the unfamiliar tiles to crowd, so the interval is exact.
-    assert effort["interval_90"]["crowd_tiles"] == [7.0, 7.0]
-
-
-def test_missed_share_from_heldout():
-    # Threshold 0.40 at recall 0.98 skips h8 (20 px) and h9 (0 px): 20 / 1000 missed.
-    routed = route_tiles(_screen(), _card(), recall=0.98)
-    effort = estimate_effort(routed, _card(), n_boot=100)
+def test_effort_arithmetic_by_hand():
+    # Crowd tiles s2, s6, s7, s8, s10 with 12, 30, 40, 0, 25 classifications of 30 needed:
+    # 18 + 0 + 0 + 30 + 5 = 53 left; at 45 s, 53 * 45 / 3600 = 0.6625 h; at 20 a day 2.65 days.
+    # Skip tiles s4, s5 (none yet) would need 60, machine tiles s0, s1, s3 90: 203 without routing.
+    routed = route_tiles(_screen(), _card())
+    have = pd.Series({"s2": 12, "s6": 30, "s7": 40, "s10": 25, "elsewhere": 3})
+    campaign = Campaign(classifications_needed=30, seconds_per_classification=45.0, classifications_per_day=20,
+                        start_date=datetime.date(2026, 3, 1))
+    effort = estimate_effort(routed, _card(), campaign=campaign, have=have, n_boot=50)
+    assert effort["classifications"] == 53
+    assert effort["hours"] == pytest.approx(53 * 45 / 3600)
+    assert effort["by_route"]["skip"]["classifications"] == 60
+    assert effort["by_route"]["machine"]["classifications"] == 90
+    assert effort["classifications_without_routing"] == 203
+    assert effort["tiles"]["finished"] == 2 and effort["tiles"]["skipped_with_detections"] == 1
+    assert effort["days"] == pytest.approx(2.65)
+    lo, hi = effort["interval_90"]["days"]
+    assert effort["dates"] == [(datetime.date(2026, 3, 1) + datetime.timedelta(days=int(np.ceil(d)))).isoformat()
+                               for d in (lo, hi)]
+    # Truly needed (expected): the held-out deposit rate is 0 at p 0.05 and 1 from p 0.20 up, so
+    # s2 (18), s8 (unknown p: 30), s10 (5) and the skipped s4 (p 0.30: 30) count, s5 (p 0.01) not.
+    assert effort["expected_needed"]["classifications"] == pytest.approx(83.0)
+    assert effort["machine"]["machine_f1"] == pytest.approx(28 / 34)
     assert effort["missed_deposit_share"] == pytest.approx(0.02)
-    assert effort["missed_deposit_share"] <= 1 - 0.98 + 1e-12
+    assert effort["campaign"]["seconds_assumed"] is False
 
 
-def test_bootstrap_deterministic_and_contains_point():
+def test_default_campaign_is_stated_as_assumed():
+    routed = route_tiles(_screen(), _card())
+    effort = estimate_effort(routed, _card(), n_boot=20)
+    # No classifications given: every crowd tile needs 30 at the assumed 60 s.
+    assert effort["classifications"] == 5 * 30
+    assert effort["hours"] == pytest.approx(5 * 30 * 60 / 3600)
+    assert effort["campaign"]["seconds_assumed"] is True
+    text = " ".join(effort["assumptions"])
+    assert "assumed" in text and "common practice" in text and "no tile has any classification" in text
+
+
+def test_bootstrap_by_image_is_deterministic_and_exact_when_routes_cannot_move():
     screen = _screen()
-    rng = np.random.default_rng(3)
-    big = pd.concat([screen.assign(tile_id=screen["tile_id"] + f"_{k}",
-                                   p_deposit=np.clip(screen["p_deposit"] + rng.normal(0, 0.05, 10), 0, 1))
-                     for k in range(20)], ignore_index=True)
-    routed = route_tiles(big, _card())
-    a = estimate_effort(routed, _card(), seed=5, n_boot=300)
-    b = estimate_effort(routed, _card(), seed=5, n_boot=300)
+    a = estimate_effort(route_tiles(screen, _card()), _card(), seed=5, n_boot=200)
+    b = estimate_effort(route_tiles(screen, _card()), _card(), seed=5, n_boot=200)
     assert a["interval_90"] == b["interval_90"]
-    lo, hi = a["interval_90"]["crowd_tiles"]
-    assert lo <= a["tiles"]["crowd"] <= hi
-    assert a["interval_90"]["hours"][0] <= a["hours"] <= a["interval_90"]["hours"][1]
-    # The missed share is judged out of bag, so it may exceed the in-sample 2 %; it is a share.
-    miv = a["interval_90"]["missed_deposit_share"]
-    assert 0.0 <= miv[0] <= miv[1] <= 1.0
-    c = estimate_effort(routed, _card(), seed=6, n_boot=300)
-    assert c["tiles"] == a["tiles"]
-
-
-# --------------------------------------------------------------------------- power law
-
-
-def test_power_law_fit_recovers_known_parameters():
-    n = np.array([10, 20, 40, 80, 160, 320, 640], dtype=float)
-    a, b, c = 2.0, 0.5, 0.1
-    e = a * n**-b + c
-    fit = fit_power_law(n, e)
-    assert fit["with_c"] is True
-    assert (fit["a"], fit["b"], fit["c"]) == pytest.approx((a, b, c), rel=1e-4, abs=1e-6)
-    # Reference: an unbounded scipy.optimize.curve_fit from a nearby start.
-    ref, _ = curve_fit(lambda x, a_, b_, c_: a_ * x**-b_ + c_, n, e, p0=[1.5, 0.4, 0.05])
-    assert (fit["a"], fit["b"], fit["c"]) == pytest.approx(tuple(ref), rel=1e-4, abs=1e-6)
-
-
-def test_power_law_without_c_matches_loglog_slope():
-    # With c = 0, log e = log a - b log n: the np.polyfit slope is -b.
-    n = np.array([8, 16, 32], dtype=float)
-    e = 3.0 * n**-0.7
-    fit = fit_power_law(n, e)  # three points: fitted without c
-    assert fit["with_c"] is False and fit["c"] == 0.0
-    slope, intercept = np.polyfit(np.log(n), np.log(e), 1)
-    assert fit["b"] == pytest.approx(-slope, rel=1e-6)
-    assert fit["a"] == pytest.approx(np.exp(intercept), rel=1e-6)
-    assert fit_power_law([10.0], [0.5]) is None
-
-
-def test_tiles_needed_inverts_the_law():
-    # 2 n^-0.5 + 0.1 = 0.2  <=>  n^0.5 = 20  <=>  n = 400.
-    fit = {"a": 2.0, "b": 0.5, "c": 0.1}
-    assert tiles_needed(fit, 0.2) == pytest.approx(400.0)
-    assert power_law(400.0, 2.0, 0.5, 0.1) == pytest.approx(0.2)
-    assert tiles_needed({"a": 2.0, "b": 0.5, "c": 0.25}, 0.2) == math.inf
-    # A nearly flat law needs more tiles than a float holds: infinite, not an overflow.
-    assert tiles_needed({"a": 1.0, "b": 1e-5, "c": 0.0}, 0.2) == math.inf
-    points = [{"n_tiles": n, "errors": {"fan_f1": power_law(n, 2.0, 0.5, 0.1), "spot_f1": 0.1,
-                                        "fan_direction_median_deg": power_law(n, 50.0, 0.3, 12.0)}}
-              for n in (25, 50, 100)]
-    fits = {"fan_f1": fit, "spot_f1": None, "fan_direction_median_deg": {"a": 50.0, "b": 0.3, "c": 12.0}}
-    verdicts = _curve_verdicts(points, fits)
-    assert verdicts["fan_f1"]["more_tiles"] == 300
-    assert verdicts["spot_f1"]["reached"] is True and verdicts["spot_f1"]["more_tiles"] == 0
-    assert "not reachable by this curve" in verdicts["fan_direction_median_deg"]["verdict"]
+    assert a["interval_90"]["n_boot"] == 200
+    lo, hi = a["interval_90"]["machine_f1"]
+    assert 0.0 <= lo <= hi <= 1.0
+    # Only unfamiliar tiles (far above every resample's cut): every resample sends them to the crowd.
+    frame = pd.DataFrame({"tile_id": [f"t{i}" for i in range(7)], "image": "I", "p_deposit": 0.9,
+                          "unfamiliarity": 5.0, "route": ""})
+    effort = estimate_effort(route_tiles(frame, _card()), _card(), n_boot=50)
+    assert effort["classifications"] == 210
+    assert effort["interval_90"]["classifications"] == [210.0, 210.0]
 
 
 # --------------------------------------------------------------------------- command
 
 
 def _args(model_dir, screen_dir, **kw):
-    base = dict(model_dir=model_dir, screen_dir=screen_dir, classifications_per_tile=30,
-                seconds_per_classification=None, recall=0.98, max_direction_error=20.0, learning_curve=None,
-                out=None, seed=0)
+    base = dict(model_dir=model_dir, screen_dir=screen_dir, campaign=None, classifications_needed=None,
+                classifications=None, seconds_per_classification=None, classifications_per_day=None,
+                start_date=None, recall=0.98, min_f1=0.8, max_direction_error=20.0, pass_share=0.95,
+                next_tiles=None, learning_curve=None, out=None, seed=0)
     base.update(kw)
     return argparse.Namespace(**base)
+
+
+def _write_run(screen, model, *, n_tiles=None, status="complete"):
+    """The screening's run record: finished, its tile count and the hash of the model that made it."""
+    digest = hashlib.sha256((model / "model.json").read_bytes()).hexdigest()
+    n_tiles = len(pd.read_csv(screen / "tiles.csv")) if n_tiles is None else n_tiles
+    (screen / "run.json").write_text(json.dumps({"status": status, "counts": {"n_tiles": n_tiles},
+                                                 "parameters": {"model_hash": digest}}))
 
 
 @pytest.fixture
@@ -347,31 +372,60 @@ def folders(tmp_path, tiny_model):
     tiles[["tile_id", "image", "p_deposit", "unfamiliarity", "route"]].assign(
         col0=0, row0=0, width=800, height=600, fan_cover=0.1, spot_cover=0.0, n_fans=1,
         mean_direction_deg=90.0, direction_scatter_deg=10.0).to_csv(screen / "tiles.csv", index=False)
-    pd.DataFrame({"tile_id": ["s0", "s1", "s3"], "kind": ["fan", "fan", "spot"], "score": [0.95, 0.9, 0.5],
-                  "direction_confidence": [0.9, 0.9, np.nan]}).to_csv(screen / "detections.csv", index=False)
+    pd.DataFrame({"tile_id": ["s0", "s1", "s3", "s4"], "kind": ["fan", "fan", "spot", "spot"],
+                  "score": [0.95, 0.9, 0.9, 0.45], "direction_confidence": [0.9, 0.9, np.nan, np.nan]}
+                 ).to_csv(screen / "detections.csv", index=False)
+    _write_run(screen, model)
     return model, screen
 
 
-def test_run_effort_writes_outputs(folders, capsys):
+def test_run_effort_writes_outputs(folders, tmp_path, capsys):
     model, screen = folders
-    effort_command(_args(model, screen))
+    (tmp_path / "campaign.toml").write_text('classifications_needed = 20\nseconds_per_classification = 30\n'
+                                            'classifications_per_day = 10\nstart_date = 2026-03-01\n'
+                                            'classifications = "have.csv"\n')
+    pd.DataFrame({"tile_id": ["s2", "s8"], "classifications": [5, 20]}).to_csv(tmp_path / "have.csv", index=False)
+    effort_command(_args(model, screen, campaign=tmp_path / "campaign.toml"))
     effort = json.loads((screen / "effort.json").read_text())
     routes = pd.read_csv(screen / "routes.csv")
     tiles = pd.read_csv(screen / "tiles.csv")
-    assert list(routes.columns) == ["tile_id", "image", "route", "unfamiliar", "p_deposit", "unfamiliarity"]
+    assert list(routes.columns) == ["tile_id", "image", "route", "reason", "unfamiliar", "p_deposit",
+                                    "unfamiliarity", "n_detections", "confidence", "classifications_have",
+                                    "classifications_left"]
     assert tiles["route"].tolist() == routes["route"].tolist()
-    assert sum(effort["tiles"][r] for r in ("skip", "machine", "crowd", "nodata")) == 10
-    assert effort["classifications"] == effort["tiles"]["crowd"] * 30
-    assert "assumed; use your campaign's figure" in capsys.readouterr().out
+    # Crowd tiles s2 (15 left), s6, s7 (20 each), s8 (0), s10 (20): 75; at 30 s, 0.625 h; 7.5 days.
+    assert routes["classifications_left"].sum() == effort["classifications"] == 75
+    assert effort["hours"] == pytest.approx(75 * 30 / 3600)
+    assert effort["dates"] is not None and effort["tiles"]["listed_in_classifications"] == 2
+    out = capsys.readouterr().out
+    assert "7.5 days" in out and "wrote" in out
+    assert (screen / "effort.png").stat().st_size > 1000 and (screen / "hours.png").stat().st_size > 1000
     assert not list(screen.glob(".*tmp*"))
 
 
-@pytest.mark.parametrize("case", ["no_folder", "no_tiles", "columns", "no_heldout", "recall0", "recall_big"])
+def test_effort_refuses_a_screening_of_another_model(folders):
+    model, screen = folders
+    check_screen_model(model, screen)  # the fixture's own model: accepted
+    card = json.loads((model / "model.json").read_text())
+    card["heldout_tiles"][0]["p_deposit"] = 0.951  # any change to the card is another model
+    (model / "model.json").write_text(json.dumps(card))
+    before = (screen / "tiles.csv").read_bytes()
+    with pytest.raises(ScreenModelMismatch, match="made by another model"):
+        run_effort(model, screen, log=lambda *_: None)
+    assert (screen / "tiles.csv").read_bytes() == before and not (screen / "effort.json").exists()
+    (screen / "run.json").unlink()
+    with pytest.raises(ScreenModelMismatch, match="no model_hash"):
+        check_screen_model(model, screen)
+
+
+@pytest.mark.parametrize("case", ["no_folder", "no_tiles", "columns", "no_heldout", "recall0", "recall_big",
+                                  "min_f1", "pass_share"])
 def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
     model, screen = folders
     args = _args(model, screen)
     message = {"no_folder": "does not exist", "no_tiles": "no tiles.csv", "columns": "lacks the column",
-               "no_heldout": "heldout_tiles", "recall0": "recall", "recall_big": "recall"}[case]
+               "no_heldout": "heldout_tiles", "recall0": "recall", "recall_big": "recall", "min_f1": "min_f1",
+               "pass_share": "pass share"}[case]
     if case == "no_folder":
         args.screen_dir = tmp_path / "missing"
     elif case == "no_tiles":
@@ -382,6 +436,11 @@ def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
         card = json.loads((model / "model.json").read_text())
         del card["heldout_tiles"]
         (model / "model.json").write_text(json.dumps(card))
+        _write_run(screen, model)
+    elif case == "min_f1":
+        args.min_f1 = 1.5
+    elif case == "pass_share":
+        args.pass_share = 0.0
     else:
         args.recall = 0.0 if case == "recall0" else 1.5
     with pytest.raises(DetectorError, match=message):
@@ -391,101 +450,39 @@ def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
 def test_cli_exit_code_two(folders, tmp_path):
     from training.cli import main
 
-    model, _ = folders
+    model, screen = folders
     assert main(["effort", str(model), str(tmp_path / "missing")]) == 2
     assert main(["effort", str(model)]) == 2  # neither SCREEN_DIR nor --learning-curve
+    (tmp_path / "bad.json").write_text('{"classifications_needed": -1}')
+    assert main(["effort", str(model), str(screen), "--campaign", str(tmp_path / "bad.json")]) == 2
+    assert main(["effort", str(model), str(screen), "--classifications-needed", "25",
+                 "--seconds-per-classification", "20", "--out", str(tmp_path / "o")]) == 0
+    assert json.loads((tmp_path / "o" / "effort.json").read_text())["classifications"] == 5 * 25
 
 
-def test_run_effort_out_folder(folders, tmp_path):
-    model, screen = folders
-    out = tmp_path / "elsewhere"
-    effort = run_effort(model, screen, out=out, seconds_per_classification=30.0, n_boot=100, log=lambda *_: None)
-    assert (out / "effort.json").is_file() and (out / "routes.csv").is_file()
-    assert effort["hours"] == pytest.approx(effort["tiles"]["crowd"] * 30 * 30 / 3600)
+def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
+    """End to end: the shipped model screens two demo tiles; effort accepts it and explains every route."""
+    from pathlib import Path
 
+    from detector.screen import screen
 
-@pytest.mark.slow
-def test_learning_curve_smoke(tmp_path):
-    from training.synth import synthesize_tileset
-
-    # The same tiny set as the session fixtures: every class occurs in its fitting image.
-    root = synthesize_tileset(tmp_path / "tiles", n_images=3, tiles_per_image=1, seed=3)
-    curve = learning_curve(root, seed=0, out=tmp_path / "curve", max_patches=2000, max_iter=20, log=lambda *_: None)
-    # Three images: one held out, one run on the other two (fit + calibration).
-    assert [p["n_images"] for p in curve["points"]] == [2]
-    assert not set(curve["holdout_images"]) & set(curve["points"][0]["images"])
-    assert 0.0 <= curve["points"][0]["errors"]["fan_f1"] <= 1.0
-    saved = json.loads((tmp_path / "curve" / "learning_curve.json").read_text())
-    assert saved["targets"].keys() == {"fan_f1", "spot_f1", "fan_direction_median_deg"}
-    assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
-
-
-def test_far_extrapolation_is_not_promised():
-    # 1 n^-0.05 at n = 100 is 0.79; reaching 0.2 needs n = 5^20 ~ 1e14 tiles: beyond 100 x 100.
-    fit = {"a": 1.0, "b": 0.05, "c": 0.0}
-    points = [{"n_tiles": 100, "errors": {"fan_f1": 0.79, "spot_f1": 0.79, "fan_direction_median_deg": 30.0}}]
-    verdicts = _curve_verdicts(points, {"fan_f1": fit, "spot_f1": None, "fan_direction_median_deg": None})
-    assert tiles_needed(fit, 0.2) == pytest.approx(5.0**20)
-    assert verdicts["fan_f1"]["more_tiles"] is None
-    assert "not reachable by this curve within 100x" in verdicts["fan_f1"]["verdict"]
-    assert "too few measured points" in verdicts["spot_f1"]["verdict"]
-    flat = _curve_verdicts(points, {"fan_f1": {"a": 0.3, "b": 1e-8, "c": 0.49}, "spot_f1": None,
-                                    "fan_direction_median_deg": None})
-    assert "does not fall with more tiles" in flat["fan_f1"]["verdict"]
-
-
-def _tiny_tileset(root, n_images=8):
-    from detector.io import write_image
-
-    root.mkdir(parents=True)
-    rows = []
-    for i in range(n_images):
-        for k in range(1 + i % 3):  # 1 to 3 tiles per image, so subset sizes differ
-            tile_id = f"IMG_{i:02d}_T{k}"
-            write_image(root / f"{tile_id}.png", np.full((64, 64), 100, np.uint8))
-            rows.append({"tile_id": tile_id, "image_id": f"IMG_{i:02d}", "path": f"{tile_id}.png"})
-    pd.DataFrame(rows).to_csv(root / "tiles.csv", index=False)
-    pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
-                          "semi_major_px", "semi_minor_px", "votes"]).to_csv(root / "consensus.csv", index=False)
-    return root
-
-
-def test_learning_curve_orchestration_recovers_law(tmp_path, monkeypatch):
-    """Nested subsets, fixed held-out images and the fit, with training replaced by exact power laws."""
-    import training.train as train_module
-    from detector.tileset import load_tileset
-
-    root = _tiny_tileset(tmp_path / "tiles")
-    runs = []
-
-    def fake_train(subset, out, config, *, force, log):
-        tileset = load_tileset(subset)
-        hold = set(config.holdout_images)
-        n = int((~tileset.tiles["image_id"].isin(hold)).sum())
-        runs.append((set(tileset.image_ids) - hold, hold, config))
-        metrics = {"fan_f1": 1.0 - power_law(n, 2.0, 0.5, 0.05), "spot_f1": 1.0 - power_law(n, 1.5, 0.3, 0.0),
-                   "fan_direction_median_deg": power_law(n, 80.0, 0.6, 3.0)}
-        return {"heldout_metrics": metrics, "training": {"tiles": {"fit": n - 1, "calibration": 1}, "seconds": 0.0}}
-
-    monkeypatch.setattr(train_module, "train_model", fake_train)
-    curve = learning_curve(root, seed=1, out=tmp_path / "curve", log=lambda *_: None)
-    trained = [r[0] for r in runs]
-    # Held-out images chosen once and never trained on; subsets nested, 2 images up.
-    assert all(r[1] == runs[0][1] for r in runs) and runs[0][1]
-    assert all(not (t & runs[0][1]) for t in trained)
-    assert all(a < b for a, b in zip(trained, trained[1:]))
-    assert len(trained[0]) == 2
-    assert all(r[2].rotations == (0,) for r in runs)
-    fan = curve["fits"]["fan_f1"]
-    assert len(curve["points"]) >= 4 and fan["with_c"]
-    assert (fan["a"], fan["b"], fan["c"]) == pytest.approx((2.0, 0.5, 0.05), rel=1e-3, abs=1e-4)
-    # Hand inversion: 2 n^-0.5 + 0.05 = 0.2 -> n = (2 / 0.15)^2 = 177.8 -> 178 tiles in all.
-    n_max = max(p["n_tiles"] for p in curve["points"])
-    assert curve["targets"]["fan_f1"]["n_tiles_needed"] == 178
-    assert curve["targets"]["fan_f1"]["more_tiles"] == 178 - n_max
-    # 80 n^-0.6 + 3 = 10 -> n = (80 / 7)^(1 / 0.6) = 58.0.
-    assert curve["targets"]["fan_direction_median_deg"]["n_tiles_needed"] in (58, 59)
-    assert (tmp_path / "curve" / "learning_curve.png").stat().st_size > 1000
+    root = Path(__file__).resolve().parents[2]
+    tiles = pd.read_csv(root / "demo_tiles" / "tiles.csv").head(2)
+    (tmp_path / "set" / "images").mkdir(parents=True)
+    for rel in tiles["path"]:
+        shutil.copyfile(root / "demo_tiles" / rel, tmp_path / "set" / rel)
+    tiles.to_csv(tmp_path / "set" / "tiles.csv", index=False)
+    screen(root / "models" / "demo", [tmp_path / "set"], tmp_path / "screen", progress=False)
+    effort = run_effort(root / "models" / "demo", tmp_path / "screen", n_boot=50, plots=False,
+                        campaign=Campaign(classifications=root / "demo_tiles"), log=lambda *_: None)
+    routes = pd.read_csv(tmp_path / "screen" / "routes.csv")
+    detections = pd.read_csv(tmp_path / "screen" / "detections.csv")
+    counted = detections.groupby("tile_id").size().reindex(routes["tile_id"]).fillna(0).to_numpy()
+    assert routes["n_detections"].tolist() == counted.tolist()
+    assert routes["reason"].str.match(r"^(skip|machine|crowd|nodata)").all()
+    have = tiles.set_index("tile_id")["classifications"].reindex(routes["tile_id"]).to_numpy()
+    assert routes["classifications_have"].tolist() == have.tolist()
+    assert effort["classifications"] == int(np.where(routes["route"] == "crowd", np.maximum(30 - have, 0), 0).sum())
 
 
 def test_run_effort_updates_the_geopackage_tile_routes(folders):
@@ -498,15 +495,11 @@ def test_run_effort_updates_the_geopackage_tile_routes(folders):
                         {"tile_id": tiles["tile_id"].to_numpy(dtype=object), "route": tiles["route"].to_numpy(dtype=object),
                          "p_deposit": pd.to_numeric(tiles["p_deposit"]).to_numpy(dtype=float)},
                         crs_wkt=PIXEL_CRS_WKT)
-    run_effort(model, screen, n_boot=100, log=lambda *_: None)
+    run_effort(model, screen, n_boot=100, plots=False, log=lambda *_: None)
     routed = pd.read_csv(screen / "tiles.csv", keep_default_na=False)
     _, back, fields = read_layer(screen / "detections.gpkg", "tiles")
     assert list(fields["route"]) == routed["route"].tolist() and set(fields["route"]) - {""}
     np.testing.assert_allclose(back[2][:3], rings[2])
-
-
-def _write_run(screen, n_tiles, status="complete"):
-    (screen / "run.json").write_text(json.dumps({"status": status, "counts": {"n_tiles": n_tiles}}))
 
 
 @pytest.mark.parametrize("case", ["duplicate", "deleted", "p_deposit_text", "unfinished", "onnx_changed"])
@@ -515,13 +508,13 @@ def test_effort_refuses_edited_screens_and_models_by_name(folders, case, capsys)
 
     model, screen = folders
     tiles = pd.read_csv(screen / "tiles.csv", dtype=str, keep_default_na=False)
-    _write_run(screen, len(tiles), status="running" if case == "unfinished" else "complete")
+    _write_run(screen, model, n_tiles=len(tiles), status="running" if case == "unfinished" else "complete")
     if case == "duplicate":
         pd.concat([tiles, tiles.iloc[[3]]]).to_csv(screen / "tiles.csv", index=False)
-        words = ["row 11", "tile_id 's3'", "repeats row 4"]
+        words = ["row 12", "tile_id 's3'", "repeats row 4"]
     elif case == "deleted":
         tiles.drop(index=[2, 5]).to_csv(screen / "tiles.csv", index=False)
-        words = ["has 8 tile rows", "produced 10"]
+        words = ["has 9 tile rows", "produced 11"]
     elif case == "p_deposit_text":
         tiles.loc[4, "p_deposit"] = "abc"
         tiles.to_csv(screen / "tiles.csv", index=False)
