@@ -31,7 +31,10 @@ from detector.io import atomic_path, write_json
 from ._json import jsonable
 
 __all__ = ["tile_uncertainty", "greedy_order", "rank_tiles", "labelling_order_study", "study_summary",
-           "tiles_to_reach"]
+           "tiles_to_reach", "tiles_needed_interval"]
+
+#: The target the study reports tiles for (the learning curve's fan target).
+FAN_F1_TARGET = 0.8
 
 
 def tile_uncertainty(proba, valid):
@@ -179,6 +182,67 @@ def tiles_to_reach(n, score, target):
     return None
 
 
+def tiles_needed_interval(n, score, target, *, n_boot=500, seed=0):
+    """Labelled tiles at which a fitted curve reaches ``target``, with a residual-bootstrap interval.
+
+    Fits ``1 - score = a * n**-b + c`` (:func:`training.curve.fit_power_law`),
+    solves it for ``target`` (:func:`training.curve.tiles_needed`), then refits
+    ``n_boot`` times with the residuals resampled to give a 90 % interval.
+
+    Parameters
+    ----------
+    n : ndarray of shape (k,)
+        Labelled tiles (all of them, not only the added ones), > 0.
+    score : ndarray of shape (k,)
+        An F1 (higher is better) at each size.
+    target : float
+        F1 to reach.
+
+    Returns
+    -------
+    result : dict
+        ``fit``, ``tiles`` (point estimate; inf when the fit levels off below
+        the target), ``interval_90`` (inf allowed), ``share_reaching`` (share of
+        refits that reach the target at all), ``law`` (the fitted form in words).
+    """
+    from .curve import fit_power_law, power_law, tiles_needed
+
+    n = np.asarray(n, dtype=np.float64)
+    error = 1.0 - np.asarray(score, dtype=np.float64)
+    fit = fit_power_law(n, error, c_max=1.0)
+    if fit is None:
+        return {"fit": None, "tiles": None, "interval_90": None, "share_reaching": None, "law": None}
+    point = tiles_needed(fit, 1.0 - target)
+    fitted = power_law(n, fit["a"], fit["b"], fit["c"])
+    resid = error - fitted
+    rng = np.random.default_rng(seed)
+    draws = []
+    for _ in range(n_boot):
+        refit = fit_power_law(n, fitted + rng.choice(resid, size=len(resid), replace=True),
+                              with_c=fit["with_c"], c_max=1.0)
+        draws.append(math.inf if refit is None else tiles_needed(refit, 1.0 - target))
+    draws = np.asarray(draws)
+    # Without interpolation, so that refits that never reach the target (inf) stay ordered.
+    interval = [float(v) for v in np.percentile(draws, [5.0, 95.0], method="inverted_cdf")]
+    return {"fit": fit, "tiles": point, "interval_90": interval,
+            "share_reaching": float(np.mean(np.isfinite(draws))),
+            "law": f"1 - F1 = a * n^-b + c, n labelled tiles; a = {fit['a']:.3g}, b = {fit['b']:.3g}, "
+                   f"c = {fit['c']:.3g} (F1 levels off at {1.0 - fit['c']:.3f})"}
+
+
+def _needed_words(result, target, n_now):
+    if result["fit"] is None:
+        return f"fan F1 >= {target}: too few points to fit a curve"
+    lo, hi = result["interval_90"]
+    if not math.isfinite(result["tiles"]):
+        return (f"fan F1 >= {target}: not reached on this curve, which levels off at F1 "
+                f"{1.0 - result['fit']['c']:.3f}; {result['share_reaching']:.0%} of the refits reach it at all")
+    more = max(0.0, result["tiles"] - n_now)
+    hi_text = "no finite number" if not math.isfinite(hi) else f"{hi:,.0f}"
+    return (f"fan F1 >= {target}: about {result['tiles']:,.0f} labelled tiles in all, {more:,.0f} more than the "
+            f"{n_now} used here (90% interval {lo:,.0f} to {hi_text}), if the fitted curve holds")
+
+
 def _subset(root, tiles_raw, consensus_raw, tile_ids, folder):
     folder.mkdir(parents=True, exist_ok=True)
     tiles = tiles_raw[tiles_raw["tile_id"].isin(set(tile_ids))].copy()
@@ -266,12 +330,15 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
         random_need = tiles_to_reach(sizes, score(curves["random"]), target)
         saved[metric] = {"target": target, "ranked_tiles": ranked_need, "random_tiles": random_need,
                          "saved": None if ranked_need is None or random_need is None else random_need - ranked_need}
+    n_all = [len(base_ids) + k for k in sizes]
+    needed = tiles_needed_interval(n_all, [p["fan_f1"] for p in curves["ranked"]], FAN_F1_TARGET, seed=seed)
+    needed["words"] = _needed_words(needed, FAN_F1_TARGET, n_all[-1])
     study = jsonable({
         "tileset": str(root), "model_dir": str(model_dir), "seed": seed,
         "images": {"base": base, "holdout": held, "pool": pool_images},
         "base_tiles": len(base_ids), "pool_tiles": len(pool_ids), "batch": batch, "sizes": sizes,
         "train_config": {"rotations": [0], "max_patches": max_patches, "max_iter": max_iter},
-        "curves": curves, "saved": saved, "ranking": ranking.to_dict(orient="records"),
+        "curves": curves, "saved": saved, "tiles_needed": needed, "ranking": ranking.to_dict(orient="records"),
         "seconds": round(time.perf_counter() - started, 1),
     })
     out = Path(out)
@@ -297,6 +364,11 @@ def study_summary(study):
         else:
             lines.append(f"  {label}: the random order reaches {s['target']:.3f} with {s['random_tiles']:.0f} pool "
                          f"tiles, the ranked order with {s['ranked_tiles']:.1f}: {s['saved']:.1f} tiles saved")
+    needed = study.get("tiles_needed") or {}
+    if needed.get("words"):
+        lines.append(f"  {needed['words']}")
+        if needed.get("law"):
+            lines.append(f"    fitted on the ranked order: {needed['law']}")
     return "\n".join(lines)
 
 

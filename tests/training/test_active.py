@@ -89,3 +89,19 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
     assert saved["ranked_tiles"] <= saved["random_tiles"]
     assert json.loads((tmp_path / "out" / "labelling_order.json").read_text())["sizes"] == [0, 1, 2]
     assert (tmp_path / "out" / "labelling_order.png").stat().st_size > 1000
+
+
+def test_tiles_needed_interval_recovers_an_exact_curve():
+    from training.active import tiles_needed_interval
+
+    # F1 = 1 - (2 n^-0.5 + 0.05): F1 0.8 needs 2 n^-0.5 = 0.15, n = (2 / 0.15)^2 = 177.8 tiles.
+    n = np.array([9, 15, 21, 27, 40])
+    f1 = 1 - (2 * n**-0.5 + 0.05)
+    result = tiles_needed_interval(n, f1, 0.8, n_boot=50)
+    assert result["tiles"] == pytest.approx(177.8, rel=1e-2)
+    # Exact points leave no residuals: every refit gives the same answer.
+    assert result["interval_90"] == pytest.approx([result["tiles"]] * 2, rel=1e-2)
+    assert "1 - F1 = a * n^-b + c" in result["law"]
+    # A curve that levels off at F1 0.6 never reaches 0.8.
+    flat = tiles_needed_interval(n, 1 - (2 * n**-0.5 + 0.4), 0.8, n_boot=20)
+    assert flat["tiles"] == np.inf and flat["share_reaching"] == 0.0
