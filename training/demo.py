@@ -67,6 +67,34 @@ def _demo_winds(tiles, screen_dir, out):
           f"direction_vs_ls.png, cover_length_vs_ls.png, machine_vs_crowd.png, model_match.png)")
 
 
+#: Volunteer throughput of the demo's invented campaign, classifications a day.
+DEMO_CLASSIFICATIONS_PER_DAY = 1500.0
+
+#: Recorded studies shipped in docs/ (their commands are in README, "Where the next volunteer hour goes").
+DOCS = Path(__file__).resolve().parent.parent / "docs"
+
+
+def _next_hour(model_dir, tileset, unseen, out):
+    """Rank the unseen demo tiles for volunteers; show the recorded labelling-order study and learning curve."""
+    import json
+    import shutil
+
+    from .active import rank_tiles, study_summary
+
+    ids = tileset.tiles.loc[tileset.tiles["image_id"].isin(unseen), "tile_id"].tolist()
+    ranked = rank_tiles(model_dir, tileset.root, ids)
+    ranked.to_csv(out / "next_tiles.csv", index=False)
+    print(ranked.head(5).to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    print(f"next tiles for volunteers: {out / 'next_tiles.csv'}")
+    study = DOCS / "labelling_order.json"
+    if study.is_file():
+        print(f"recorded labelling-order study ({study}):")
+        print(study_summary(json.loads(study.read_text())))
+    for name in ("labelling_order.png", "learning_curve.png"):
+        if (DOCS / name).is_file():
+            shutil.copyfile(DOCS / name, out / name)
+
+
 def run_demo(out, *, tiles, model, retrain=False):
     """Validate, evaluate, screen, estimate effort and read the winds on the demo tiles.
 
@@ -144,16 +172,22 @@ def run_demo(out, *, tiles, model, retrain=False):
           f"in the mosaic's polar stereographic CRS, detections.geojson in planetocentric lon/lat)")
 
     _section("5. remaining volunteer effort")
+    from .campaign import Campaign
     from .effort import run_effort
 
-    run_effort(model_dir, screen_dir)
+    # An invented campaign: 30 classifications a tile, 45 s each, 1500 a day from today.
+    run_effort(model_dir, screen_dir, campaign=Campaign(seconds_per_classification=45.0,
+                                                        classifications_per_day=DEMO_CLASSIFICATIONS_PER_DAY))
 
-    _section("6. surface winds by region and season: the crowd's consensus and the screened image")
+    _section("6. where the next volunteer hour goes")
+    _next_hour(model_dir, tileset, unseen, out)
+
+    _section("7. surface winds by region and season: the crowd's consensus and the screened image")
     _demo_winds(tiles, screen_dir, out)
 
     _section("done")
     print(f"everything is in {out}/: consensus_overlay.png, report/ (report.md, *.png), "
           f"screen/ (tiles.csv, detections.csv, detections.gpkg, detections.geojson, quicklook.png, rose.png, "
-          f"effort.json, routes.csv), "
+          f"effort.json, routes.csv, effort.png, hours.png), next_tiles.csv, labelling_order.png, learning_curve.png, "
           f"winds/ (bins.csv, images.csv, agreement_*.csv, model_match.csv, winds.json, bins.geojson, *.png)")
     print(f"demo took {time.perf_counter() - started:.0f} s")
