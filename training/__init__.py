@@ -10,6 +10,9 @@ The public API:
   region and season from fan catalogs
 - :func:`error_breakdown`, :func:`plot_error_tiles`, :func:`diagnose_catalogs`: where features are lost and
   where false detections come from
+- :class:`Campaign`, :func:`read_campaign`, :func:`route_tiles`, :func:`estimate_effort`, :func:`run_effort`:
+  routes with measured promises and the volunteer effort left; :func:`backtest` replays it on a hidden catalog
+- :func:`rank_tiles`, :func:`labelling_order_study`: where the next volunteer hour goes; :func:`learning_curve`
 - the ``frostvane`` console script: :func:`main`
 """
 
@@ -22,6 +25,15 @@ _LAZY = {
     "analyse_winds": "winds",
     "write_winds": "winds",
     "WindSettings": "winds",
+    "Campaign": "campaign",
+    "read_campaign": "campaign",
+    "route_tiles": "effort",
+    "estimate_effort": "effort",
+    "run_effort": "effort",
+    "backtest": "backtest",
+    "rank_tiles": "active",
+    "labelling_order_study": "active",
+    "learning_curve": "curve",
     "diagnose_catalogs": "diagnose",
     "error_breakdown": "diagnose",
     "evaluate_model": "evaluate",
@@ -49,9 +61,18 @@ def __dir__():
 
 
 __all__ = [
+    "Campaign",
     "TrainConfig",
     "WindSettings",
     "analyse_winds",
+    "backtest",
+    "estimate_effort",
+    "labelling_order_study",
+    "learning_curve",
+    "rank_tiles",
+    "read_campaign",
+    "route_tiles",
+    "run_effort",
     "diagnose_catalogs",
     "error_breakdown",
     "evaluate_model",
