@@ -88,7 +88,7 @@ def plot_hours(effort, path):
     hours = [effort["by_route"][r]["hours"] for r in routes]
     labels = ["crowd: to spend", "machine: saved", "skip: saved"]
     bars = ax.barh(labels, hours, color=[_COLOURS[r] for r in routes])
-    ax.bar_label(bars, labels=[f"{h:,.1f} h" for h in hours], padding=3)
+    ax.bar_label(bars, labels=[f"{h:,.1f} h" if h >= 1 else f"{h:.2f} h" for h in hours], padding=3)
     band = effort["interval_90"]["hours"]
     if band:
         ax.errorbar(effort["hours"], 0, xerr=[[effort["hours"] - band[0]], [band[1] - effort["hours"]]],
@@ -101,16 +101,18 @@ def plot_hours(effort, path):
     if dated:
         ax = axes[1]
         per_day = c["classifications_per_day"]
-        start = _dt.date.fromisoformat(c["start_date"]) if c["start_date"] else _dt.date.today()
+        start = c["start_date"] or _dt.date.today().isoformat()
         total = effort["classifications"]
         lo, hi = effort["interval_90"]["classifications"] or (total, total)
+        # Days from the start on a plain axis: a campaign may have hours or years left.
         for value, style, label in ((total, "-", "estimate"), (lo, ":", "90% interval"), (hi, ":", None)):
-            days = value / per_day
-            ax.plot([start, start + _dt.timedelta(days=days)], [value * c["seconds_per_classification"] / 3600, 0],
-                    style, color=_COLOURS["crowd"], label=label)
+            ax.plot([0.0, value / per_day], [value * c["seconds_per_classification"] / 3600, 0.0], style,
+                    color=_COLOURS["crowd"], label=label)
+        ax.set_xlim(0.0, max(hi / per_day * 1.1, 1.0))
+        ax.set_ylim(bottom=0.0)
+        ax.set_xlabel(f"days from {start} at {per_day:g} classifications a day")
         ax.set_ylabel("volunteer hours left")
-        ax.set_title(f"at {per_day:g} classifications a day: done {effort['dates'][0]} to {effort['dates'][1]}",
-                     fontsize=10)
+        ax.set_title(f"done between {effort['dates'][0]} and {effort['dates'][1]}", fontsize=10)
+        ax.grid(alpha=0.3)
         ax.legend(fontsize=8)
-        fig.autofmt_xdate()
     return _save(fig, path, plt)
