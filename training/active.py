@@ -362,8 +362,10 @@ def study_summary(study):
             lines.append(f"  {label}: the ranked order does not reach the random order's final {s['target']:.3f} "
                          f"within the pool tiles tried")
         else:
-            lines.append(f"  {label}: the random order reaches {s['target']:.3f} with {s['random_tiles']:.0f} pool "
-                         f"tiles, the ranked order with {s['ranked_tiles']:.1f}: {s['saved']:.1f} tiles saved")
+            verdict = (f"{s['saved']:.1f} tiles saved" if s["saved"] >= 0
+                       else f"the ranked order needs {-s['saved']:.1f} tiles more")
+            lines.append(f"  {label}: the random order reaches {s['target']:.3f} with {s['random_tiles']:.1f} pool "
+                         f"tiles, the ranked order with {s['ranked_tiles']:.1f}: {verdict}")
     needed = study.get("tiles_needed") or {}
     if needed.get("words"):
         lines.append(f"  {needed['words']}")
