@@ -29,6 +29,7 @@ from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
 from ._json import jsonable
+from ._subsets import write_subset
 
 __all__ = ["tile_uncertainty", "greedy_order", "rank_tiles", "labelling_order_study", "study_summary",
            "tiles_to_reach", "tiles_needed_interval"]
@@ -243,14 +244,6 @@ def _needed_words(result, target, n_now):
             f"{n_now} used here (90% interval {lo:,.0f} to {hi_text}), if the fitted curve holds")
 
 
-def _subset(root, tiles_raw, consensus_raw, tile_ids, folder):
-    folder.mkdir(parents=True, exist_ok=True)
-    tiles = tiles_raw[tiles_raw["tile_id"].isin(set(tile_ids))].copy()
-    tiles["path"] = [str((Path(root) / p).resolve()) for p in tiles["path"]]
-    tiles.to_csv(folder / "tiles.csv", index=False)
-    consensus_raw[consensus_raw["tile_id"].isin(set(tile_ids))].to_csv(folder / "consensus.csv", index=False)
-
-
 def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdout_images=3, batch=4, n_batches=3,
                           seed=0, max_patches=20000, max_iter=60, workers=1, log=print):
     """Retrain on batches of a pool in ranked and in random order; compare the learning curves.
@@ -308,7 +301,7 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
                 key = frozenset(chosen)
                 if key not in cache:
                     folder = Path(tmp) / f"{name}_{k}"
-                    _subset(root, tiles_raw, consensus_raw, chosen + held_ids, folder)
+                    write_subset(root, tiles_raw, consensus_raw, chosen + held_ids, folder)
                     card = train_model(folder, Path(tmp) / f"model_{name}_{k}", config, force=True,
                                        log=lambda *_: None)
                     cache[key] = card["heldout_metrics"]

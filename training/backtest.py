@@ -31,6 +31,7 @@ from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
 from ._json import jsonable
+from ._subsets import write_subset
 from .campaign import Campaign, remaining_classifications
 
 __all__ = ["CAMPAIGN_STATES", "campaign_state", "backtest", "backtest_table"]
@@ -72,12 +73,10 @@ def campaign_state(tile_ids, state, needed, *, seed=0):
 
 
 def _hidden_copy(tileset, folder):
-    """The tile table alone, with absolute image paths: the screening cannot see the consensus."""
-    folder.mkdir(parents=True, exist_ok=True)
-    tiles = tileset.tiles.copy()
-    tiles["path"] = [str((Path(tileset.root) / p).resolve()) for p in tiles["path"]]
-    keep = [c for c in tiles.columns if c != "classifications"]
-    tiles[keep].to_csv(folder / TILES_FILE, index=False)
+    """The tile table and images alone (no consensus.csv): the screening cannot see the catalog."""
+    tiles_raw = pd.read_csv(Path(tileset.root) / TILES_FILE, dtype=str, keep_default_na=False)
+    tiles_raw = tiles_raw[[c for c in tiles_raw.columns if c != "classifications"]]
+    write_subset(tileset.root, tiles_raw, None, set(tiles_raw["tile_id"]), folder)
     return folder
 
 

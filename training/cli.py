@@ -92,26 +92,26 @@ def _add_training_commands(commands):
 
     backtest = commands.add_parser("backtest", help="Hide a labelled tile set's consensus, screen and estimate "
                                    "effort, and compare with the hidden catalog.")
-    backtest.add_argument("model_dir", type=Path)
-    backtest.add_argument("tile_set", type=Path)
-    backtest.add_argument("--out", type=Path, required=True)
+    backtest.add_argument("model_dir", type=Path, help="Model folder; it must never have seen the tile set's images.")
+    backtest.add_argument("tile_set", type=Path, help="Labelled tile set: its consensus is the hidden catalog.")
+    backtest.add_argument("--out", type=Path, required=True, help="Folder for the screening and backtest.md / .json.")
     _add_campaign_options(backtest, classifications=False)
-    backtest.add_argument("--workers", type=int, default=1)
-    backtest.add_argument("--seed", type=int, default=0)
+    backtest.add_argument("--workers", type=int, default=1, help="Screening processes.")
+    backtest.add_argument("--seed", type=int, default=0, help="Seed of the campaign states and the bootstrap.")
     backtest.set_defaults(func=_backtest)
 
     order = commands.add_parser("labelling-order", help="Retrain on a pool in ranked and random labelling order "
                                 "and compare the learning curves.")
-    order.add_argument("model_dir", type=Path)
-    order.add_argument("tile_set", type=Path)
-    order.add_argument("--out", type=Path, required=True)
-    order.add_argument("--base-images", type=int, default=3)
-    order.add_argument("--holdout-images", type=int, default=3)
-    order.add_argument("--batch", type=int, default=6)
-    order.add_argument("--batches", type=int, default=3)
-    order.add_argument("--max-patches", type=int, default=20000)
-    order.add_argument("--workers", type=int, default=1)
-    order.add_argument("--seed", type=int, default=0)
+    order.add_argument("model_dir", type=Path, help="Model that ranks the pool's tiles.")
+    order.add_argument("tile_set", type=Path, help="Labelled tile set split into start, pool and held-out images.")
+    order.add_argument("--out", type=Path, required=True, help="Folder for labelling_order.json and .png.")
+    order.add_argument("--base-images", type=int, default=3, help="Images labelled at the start.")
+    order.add_argument("--holdout-images", type=int, default=3, help="Images every run is scored on.")
+    order.add_argument("--batch", type=int, default=6, help="Pool tiles added before each retraining.")
+    order.add_argument("--batches", type=int, default=3, help="Number of batches.")
+    order.add_argument("--max-patches", type=int, default=20000, help="Patch cap of each small training run.")
+    order.add_argument("--workers", type=int, default=1, help="Feature extraction processes.")
+    order.add_argument("--seed", type=int, default=0, help="Seed of the image split and the random order.")
     order.set_defaults(func=_labelling_order)
 
     bench = commands.add_parser("benchmark", help="Build the fixed benchmark, or score a model on it.")
@@ -204,10 +204,12 @@ def _add_campaign_options(parser, *, classifications=True):
         parser.add_argument("--classifications", type=Path, default=None, metavar="TILESET_OR_CSV",
                             help="What each tile already has: a tile set (its classifications column) or a CSV "
                                  "tile_id,classifications.")
-    parser.add_argument("--seconds-per-classification", type=float, default=None)
+    parser.add_argument("--seconds-per-classification", type=float, default=None,
+                        help="Volunteer time per classification, s (default: 60 s, said to be assumed).")
     parser.add_argument("--classifications-per-day", type=float, default=None,
                         help="Volunteer throughput; gives the effort left as a date range.")
-    parser.add_argument("--start-date", type=_iso_date, default=None, help="First day of the remaining work.")
+    parser.add_argument("--start-date", type=_iso_date, default=None,
+                        help="First day of the remaining work, YYYY-MM-DD (default: today).")
 
 
 def _synth(args):

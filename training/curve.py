@@ -20,6 +20,7 @@ from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
 from ._json import jsonable as _jsonable
+from ._subsets import write_subset
 
 __all__ = [
     "LEARNING_CURVE_TARGETS",
@@ -216,14 +217,9 @@ def _subset_sizes(n_remaining, fractions):
 
 
 def _write_subset(tileset_root, tiles_raw, consensus_raw, image_ids, folder):
-    """A tile-set folder restricted to some images; image paths point back to the original files."""
-    folder.mkdir(parents=True, exist_ok=True)
-    tiles = tiles_raw[tiles_raw["image_id"].isin(image_ids)].copy()
-    tiles["path"] = [str((Path(tileset_root) / p).resolve()) for p in tiles["path"]]
-    consensus = consensus_raw[consensus_raw["tile_id"].isin(set(tiles["tile_id"]))]
-    tiles.to_csv(folder / "tiles.csv", index=False)
-    consensus.to_csv(folder / "consensus.csv", index=False)
-    return len(tiles)
+    """A tile-set folder restricted to some images (images linked, see :mod:`training._subsets`)."""
+    chosen = tiles_raw.loc[tiles_raw["image_id"].isin(image_ids), "tile_id"]
+    return write_subset(tileset_root, tiles_raw, consensus_raw, set(chosen), folder)
 
 
 def learning_curve(tileset_root, *, seed=0, fractions=None, out=None, max_patches=20000, max_iter=100,

@@ -122,7 +122,7 @@ def _tiny_tileset(root, n_images=8):
     for i in range(n_images):
         for k in range(1 + i % 3):  # 1 to 3 tiles per image, so subset sizes differ
             tile_id = f"IMG_{i:02d}_T{k}"
-            write_image(root / f"{tile_id}.png", np.full((32, 32), 100, np.uint8))
+            write_image(root / f"{tile_id}.png", np.full((64, 64), 100, np.uint8))
             rows.append({"tile_id": tile_id, "image_id": f"IMG_{i:02d}", "path": f"{tile_id}.png"})
     pd.DataFrame(rows).to_csv(root / "tiles.csv", index=False)
     pd.DataFrame(columns=["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "opening_deg",
