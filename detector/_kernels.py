@@ -8,12 +8,52 @@ on which implementation made them; the tests hold them to scikit-image.
 
 Compiled functions are cached on disk (``cache=True``): the first run on a
 machine compiles them (a few seconds), later processes load the cache.
+
+Compiled loops do not check bounds: a bin or index outside its histogram or
+table would write or read outside it. The public wrappers of the histogram and
+box loops (:func:`u16_histogram`, :func:`cell_counts`, :func:`cell_weighted`,
+:func:`glcm_folded_counts`, :func:`glcm_full_counts`, :func:`box_sums`)
+check ranges and shapes first and raise :class:`~detector.errors.KernelRangeError`
+naming the value; they change no result.
 """
 
 import numpy as np
 from numba import njit
 
-__all__ = ["lbp_codes", "cell_counts", "cell_weighted", "glcm_folded_counts", "glcm_full_counts"]
+from .errors import KernelRangeError
+
+__all__ = ["lbp_codes", "u16_histogram", "cell_counts", "cell_weighted", "glcm_folded_counts", "glcm_full_counts",
+           "box_sums"]
+
+
+def _check_integers(name, values):
+    if values.dtype.kind not in "ui":
+        raise KernelRangeError(f"{name} must hold integers; got dtype {values.dtype}.")
+
+
+def _check_range(name, values, stop):
+    """Every value of the integer array ``values`` in [0, stop), else a KernelRangeError naming it."""
+    _check_integers(name, values)
+    if values.size == 0:
+        return
+    lo, hi = values.min(), values.max()
+    if lo < 0 or hi >= stop:
+        bad = lo if lo < 0 else hi
+        raise KernelRangeError(f"{name} holds {int(bad)!r}, outside 0 .. {stop - 1}; a compiled loop would "
+                               f"write outside its histogram.")
+
+
+def _check_covers(name, shape, rows, cols):
+    """A 2-D ``shape`` holds at least ``rows`` x ``cols`` values (the full cells a loop reads)."""
+    if len(shape) != 2 or shape[0] < rows or shape[1] < cols:
+        raise KernelRangeError(f"{name} has shape {tuple(shape)!r}; the cell grid needs at least "
+                               f"({rows}, {cols}).")
+
+
+def _check_grid(cell_px, ncr, ncc):
+    if cell_px < 1 or ncr < 0 or ncc < 0:
+        raise KernelRangeError(f"cell grid of {ncr!r} x {ncc!r} cells of {cell_px!r} px is not valid; "
+                               f"cells need at least 1 px and the counts must not be negative.")
 
 
 @njit(cache=True, nogil=True)
@@ -76,10 +116,25 @@ def _lbp_bits_on_grid(values, centre, ones, changes, prev, count_changes):
         prev[c] = bit
 
 
-@njit(cache=True, nogil=True)
 def u16_histogram(u16, valid, use_valid):
     """Counts (65536,) int64 of a uint16 image's values, over ``valid`` pixels when
-    ``use_valid`` (``np.bincount(u16[valid], minlength=65536)``, without the int64 copy)."""
+    ``use_valid`` (``np.bincount(u16[valid], minlength=65536)``, without the int64 copy).
+
+    Raises
+    ------
+    KernelRangeError
+        ``u16`` is not 2-D uint16 or ``valid`` (when used) has another shape.
+    """
+    if u16.dtype != np.uint16 or u16.ndim != 2:
+        raise KernelRangeError(f"u16_histogram takes a 2-D uint16 image; got {u16.ndim}-D {u16.dtype}.")
+    if use_valid and valid.shape != u16.shape:
+        raise KernelRangeError(f"valid has shape {valid.shape!r}; the image has shape {u16.shape!r}.")
+    return _u16_histogram(u16, valid, use_valid)
+
+
+@njit(cache=True, nogil=True)
+def _u16_histogram(u16, valid, use_valid):
+    """The loop of :func:`u16_histogram`."""
     hist = np.zeros(65536, dtype=np.int64)
     h, w = u16.shape
     for r in range(h):
@@ -89,12 +144,27 @@ def u16_histogram(u16, valid, use_valid):
     return hist
 
 
-@njit(cache=True, nogil=True)
 def cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask):
     """Per-cell histogram (ncr, ncc, n_bins) int64 of small integer ``bins`` over full cells.
 
     Pixels where ``use_mask`` and not ``mask`` are left out.
+
+    Raises
+    ------
+    KernelRangeError
+        A bin outside 0 .. n_bins - 1 in the cells counted, or arrays smaller than the grid.
     """
+    _check_grid(cell_px, ncr, ncc)
+    _check_covers("bins", bins.shape, ncr * cell_px, ncc * cell_px)
+    if use_mask:
+        _check_covers("mask", mask.shape, ncr * cell_px, ncc * cell_px)
+    _check_range("bins", bins[:ncr * cell_px, :ncc * cell_px], n_bins)
+    return _cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask)
+
+
+@njit(cache=True, nogil=True)
+def _cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask):
+    """The loop of :func:`cell_counts`."""
     out = np.zeros((ncr, ncc, n_bins), dtype=np.int64)
     for r in range(ncr * cell_px):
         i = r // cell_px
@@ -107,9 +177,24 @@ def cell_counts(bins, cell_px, ncr, ncc, n_bins, mask, use_mask):
     return out
 
 
-@njit(cache=True, nogil=True)
 def cell_weighted(bins, weights, cell_px, ncr, ncc, n_bins):
-    """Per-cell weighted histogram (ncr, ncc, n_bins) float64; sums in row-major pixel order."""
+    """Per-cell weighted histogram (ncr, ncc, n_bins) float64; sums in row-major pixel order.
+
+    Raises
+    ------
+    KernelRangeError
+        As :func:`cell_counts`, or ``weights`` smaller than the grid.
+    """
+    _check_grid(cell_px, ncr, ncc)
+    _check_covers("bins", bins.shape, ncr * cell_px, ncc * cell_px)
+    _check_covers("weights", weights.shape, ncr * cell_px, ncc * cell_px)
+    _check_range("bins", bins[:ncr * cell_px, :ncc * cell_px], n_bins)
+    return _cell_weighted(bins, weights, cell_px, ncr, ncc, n_bins)
+
+
+@njit(cache=True, nogil=True)
+def _cell_weighted(bins, weights, cell_px, ncr, ncc, n_bins):
+    """The loop of :func:`cell_weighted`."""
     out = np.zeros((ncr, ncc, n_bins), dtype=np.float64)
     for r in range(ncr * cell_px):
         i = r // cell_px
@@ -179,6 +264,10 @@ def _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, code, n_codes, row_codes)
 def _pair_codes(q, code, cell_px, ncr, ncc, d_rows, d_cols, n_codes):
     """:func:`_pair_counts` with a row-code buffer of the smallest dtype that holds the codes."""
     n_levels = code.shape[0]
+    _check_grid(cell_px, ncr, ncc)
+    _check_covers("q", q.shape, ncr * cell_px, ncc * cell_px)
+    if d_rows.shape != d_cols.shape or d_rows.ndim != 1:
+        raise KernelRangeError(f"offsets need as many rows as columns; got {d_rows.shape!r} and {d_cols.shape!r}.")
     dtype = np.uint8 if n_levels * n_levels <= 256 else np.int32
     row_codes = np.empty(q.shape[1], dtype=dtype)
     return _pair_counts(q, cell_px, ncr, ncc, d_rows, d_cols, np.ascontiguousarray(code), n_codes, row_codes)
@@ -192,6 +281,13 @@ def _marked(q, levels, valid, use_valid):
     return np.where(valid, q.astype(dtype, copy=False), dtype.type(levels))
 
 
+def _check_glcm_input(q, levels, valid, use_valid):
+    """Grey levels in 0 .. levels - 1 (the extra level marks no-data) and a mask of the image's shape."""
+    _check_range("grey levels q", q, levels)
+    if use_valid and valid.shape != q.shape:
+        raise KernelRangeError(f"valid has shape {valid.shape!r}; the grey levels have shape {q.shape!r}.")
+
+
 def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_valid):
     """Unordered-pair co-occurrence counts (ncr * ncc, n_offsets, levels (levels + 1) / 2) int32.
 
@@ -202,6 +298,7 @@ def glcm_folded_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_
     code = np.full((levels + 1, levels + 1), iu.size, dtype=np.int32)
     code[iu, ju] = np.arange(iu.size)
     code[ju, iu] = np.arange(iu.size)
+    _check_glcm_input(q, levels, valid, use_valid)
     n = levels + 1 if use_valid else levels
     return _pair_codes(_marked(q, levels, valid, use_valid), code[:n, :n], cell_px, ncr, ncc, d_rows, d_cols,
                        iu.size)
@@ -211,6 +308,7 @@ def glcm_full_counts(q, cell_px, ncr, ncc, d_rows, d_cols, levels, valid, use_va
     """Ordered-pair co-occurrence counts (ncr * ncc, n_offsets, levels, levels) int32 (see above)."""
     code = np.full((levels + 1, levels + 1), levels * levels, dtype=np.int32)
     code[:levels, :levels] = np.arange(levels * levels).reshape(levels, levels)
+    _check_glcm_input(q, levels, valid, use_valid)
     n = levels + 1 if use_valid else levels
     out = _pair_codes(_marked(q, levels, valid, use_valid), code[:n, :n], cell_px, ncr, ncc, d_rows, d_cols,
                       levels * levels)
@@ -748,10 +846,29 @@ def gaussian(image, sigma, truncate=4.0):
     return _symmetric_pass(first, weights, 1, np.empty_like(image))
 
 
-@njit(cache=True, nogil=True)
 def box_sums(table, i0, j0, i1, j1):
     """``table[i1, j1] - table[i0, j1] - table[i1, j0] + table[i0, j0]`` for every box
-    (indices already clipped), evaluated left to right as numpy does; shape (n, C)."""
+    (indices already clipped), evaluated left to right as numpy does; shape (n, C).
+
+    Raises
+    ------
+    KernelRangeError
+        An index outside the table, or index arrays of different lengths.
+    """
+    if table.ndim != 3:
+        raise KernelRangeError(f"box_sums takes a (rows, cols, channels) table; got shape {table.shape!r}.")
+    n = i0.shape
+    for name, index, stop in (("i0", i0, table.shape[0]), ("j0", j0, table.shape[1]),
+                              ("i1", i1, table.shape[0]), ("j1", j1, table.shape[1])):
+        if index.shape != n or index.ndim != 1:
+            raise KernelRangeError(f"box index {name} has shape {index.shape!r}; i0 has {n!r}.")
+        _check_range(f"box index {name}", index, stop)
+    return _box_sums(table, i0, j0, i1, j1)
+
+
+@njit(cache=True, nogil=True)
+def _box_sums(table, i0, j0, i1, j1):
+    """The loop of :func:`box_sums`."""
     n = i0.size
     n_ch = table.shape[2]
     out = np.empty((n, n_ch), dtype=table.dtype)

@@ -5,7 +5,8 @@ it into one line on stderr and exit code 2. Classes also inherit from builtins
 so that callers may catch ``ValueError`` or ``OSError`` as usual.
 """
 
-__all__ = ["DetectorError", "TileSetError", "SpecError", "ImageError", "ModelError", "CatalogError"]
+__all__ = ["DetectorError", "TileSetError", "SpecError", "ImageError", "ModelError", "CatalogError",
+           "KernelRangeError"]
 
 
 class DetectorError(Exception):
@@ -42,3 +43,8 @@ class ModelError(DetectorError, ValueError):
 
 class CatalogError(DetectorError, ValueError):
     """A fan catalog (detections, a screening folder) or a table read beside it breaks its format."""
+
+
+class KernelRangeError(DetectorError, ValueError):
+    """An array handed to a compiled loop holds an index or bin outside the range the loop writes
+    into, or has a shape the loop would read past (compiled loops do not check bounds)."""
