@@ -7,7 +7,8 @@ order, no fast-math, sums in row-major pixel order), so features do not depend
 on which implementation made them; the tests hold them to scikit-image.
 
 Compiled functions are cached on disk (``cache=True``): the first run on a
-machine compiles them (a few seconds), later processes load the cache.
+machine compiles them (up to 1-2 minutes in all; the commands say so, see
+:mod:`detector._jit`), later processes load the cache.
 
 Compiled loops do not check bounds: a bin or index outside its histogram or
 table would write or read outside it. The public wrappers of the histogram and

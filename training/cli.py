@@ -350,6 +350,17 @@ def _quiet_progress_off_terminal():
         os.environ.setdefault("TQDM_DISABLE", "1")
 
 
+def _runs_detector(args):
+    """Whether the command runs the compiled pixel loops (features, candidates, readings)."""
+    if args.command in ("screen", "train", "evaluate", "backtest", "labelling-order", "demo"):
+        return True
+    if args.command == "benchmark":
+        return args.benchmark_command == "run"
+    if args.command == "effort":
+        return args.learning_curve is not None or args.next_tiles is not None
+    return False
+
+
 def main(argv=None):
     """Entry point of the ``frostvane`` console script; returns the exit code."""
     import signal
@@ -362,6 +373,11 @@ def main(argv=None):
     on_main_thread = threading.current_thread() is threading.main_thread()
     previous = signal.signal(signal.SIGTERM, _raise_terminated) if on_main_thread else None
     try:
+        if _runs_detector(args):
+            # numba compiles on first use: without this line the first tile looks hung
+            from detector._jit import announce_compiling
+
+            announce_compiling()
         code = args.func(args)
     except DetectorError as err:
         problems = getattr(err, "problems", None) or [str(err)]
