@@ -247,8 +247,20 @@ def orientation_training_set(X, axis_deg, fan_direction_deg, names, *, flip=True
     return np.concatenate([X, flipped]), np.concatenate([y, 1 - y])
 
 
-def _fit_hgb(X, y, X_val, y_val, config, *, class_weight=None):
+def _fit_hgb(X, y, X_val, y_val, config, *, class_weight=None, log=None, what="model"):
+    """Fit a HistGradientBoosting classifier with early stopping on (X_val, y_val).
+
+    ``log`` (a print-like callable), when given, hears the fit's size before it starts and
+    its iterations and seconds after: a long fit is otherwise silent. Logging changes no value.
+    """
+    import time
+
     from sklearn.ensemble import HistGradientBoostingClassifier
+
+    if log is not None:
+        log(f"fitting {what}: {X.shape[0]} rows x {X.shape[1]} features, {len(np.unique(y))} classes, "
+            f"up to {config.max_iter} iterations...")
+    start = time.perf_counter()
 
     model = HistGradientBoostingClassifier(
         max_iter=config.max_iter,
@@ -267,6 +279,8 @@ def _fit_hgb(X, y, X_val, y_val, config, *, class_weight=None):
         model.fit(X, y)
     else:
         model.fit(X, y, X_val=X_val, y_val=y_val)
+    if log is not None:
+        log(f"fitted {what}: {model.n_iter_} iterations in {time.perf_counter() - start:.1f} s")
     return model
 
 
@@ -406,7 +420,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
         f"calibration {len(val)}")
 
-    classifier = _fit_hgb(train.X, train.cls, val.X, val.cls, config)
+    classifier = _fit_hgb(train.X, train.cls, val.X, val.cls, config, log=log, what="patch classifier")
     raw_val = classifier.predict_proba(val.X)
     calibration = fit_calibration(raw_val, val.cls)
     cal_before = calibration_scores(raw_val, val.cls)
@@ -422,7 +436,7 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
                                       train.fan_direction_deg[fan_fit], names)
     Xov, yov = orientation_training_set(val.X[fan_val][:, index], val.axis_deg[fan_val],
                                         val.fan_direction_deg[fan_val], names)
-    orientation = _fit_hgb(Xo, yo, Xov, yov, config)
+    orientation = _fit_hgb(Xo, yo, Xov, yov, config, log=log, what="orientation model")
 
     # The object classifier learns from candidates whose patch maps come from models that
     # never saw their image (two folds over the fitting images), like new images will.
@@ -434,7 +448,8 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     cal_sample = _tile_sample(ids["calibration"], config.max_candidate_tiles, config.seed + 5)
     cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
                              workers=config.workers, desc="calibration candidates")
-    object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config)
+    object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
+                            what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
@@ -573,7 +588,7 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
     folds = [order[0::2], order[1::2]] if len(order) >= 2 else [order]
     Xov, yov = _orientation_rows(val, np.ones(len(val), bool), index, names)
     parts = []
-    for held in folds:
+    for k, held in enumerate(folds):
         rest = [i for i in fit_img if i not in held] or list(held)  # one image: in-sample, said in the card
         mask = np.isin(train.image_id, rest)
         if len(np.unique(train.cls[mask])) < len(CLASS_NAMES):
@@ -582,10 +597,12 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
             mask = np.isin(train.image_id, fit_img)
         # Fold models only stand in for the full one on unseen images: no more boosting
         # iterations than it needed.
-        clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, replace(config, max_iter=n_iter))
+        clf = _fit_hgb(train.X[mask], train.cls[mask], val.X, val.cls, replace(config, max_iter=n_iter), log=log,
+                       what=f"fold {k + 1}/{len(folds)} patch classifier")
         cal = fit_calibration(clf.predict_proba(val.X), val.cls)
         Xo, yo = _orientation_rows(train, mask, index, names)
-        ori = _fit_hgb(Xo, yo, Xov, yov, config) if len(np.unique(yo)) > 1 else None
+        ori = (_fit_hgb(Xo, yo, Xov, yov, config, log=log, what=f"fold {k + 1}/{len(folds)} orientation model")
+               if len(np.unique(yo)) > 1 else None)
         polarity = _PolarityPredictor(ori, index) if ori is not None else (lambda X: np.full(len(X), 0.5, np.float32))
         held_tiles = tileset.tiles.loc[tileset.tiles["image_id"].isin(held), "tile_id"].tolist()
         jobs = rotation_jobs(held_tiles, config.rotations, per_tile=per_tile, seed=config.seed + 3)

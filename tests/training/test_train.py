@@ -236,6 +236,28 @@ def test_train_reads_a_fold_without_spots_in_sample(tmp_path):
     card = train_model(root, tmp_path / "model", config, log=lines.append)
     assert (tmp_path / "model" / "model.json").exists()
     assert card["training"]["readings"]["fit"] > 0
+    # every fit is announced with its size and ends with its iterations and seconds
+    for what in ("patch classifier", "orientation model", "object classifier", "fold 1/2 patch classifier"):
+        assert any(line.startswith(f"fitting {what}: ") and " rows x " in line for line in lines), what
+        assert any(line.startswith(f"fitted {what}: ") and line.endswith(" s") for line in lines), what
+
+
+def test_fit_log_reports_size_iterations_and_seconds_and_changes_no_value():
+    # scikit-learn's bundled iris data (Fisher 1936), three classes; the same seed must give
+    # the same model with and without logging
+    from sklearn.datasets import load_iris
+
+    from training.train import _fit_hgb
+
+    X, y = load_iris(return_X_y=True)
+    config = TrainConfig(seed=3, max_iter=30)
+    lines = []
+    logged = _fit_hgb(X[::2], y[::2], X[1::2], y[1::2], config, log=lines.append, what="iris model")
+    quiet = _fit_hgb(X[::2], y[::2], X[1::2], y[1::2], config)
+    assert lines[0] == "fitting iris model: 75 rows x 4 features, 3 classes, up to 30 iterations..."
+    assert lines[1].startswith(f"fitted iris model: {logged.n_iter_} iterations in ") and len(lines) == 2
+    assert logged.n_iter_ == quiet.n_iter_
+    assert logged.predict_proba(X).tobytes() == quiet.predict_proba(X).tobytes()
 
 
 def test_unfamiliarity_threshold_moves_to_the_held_out_pass_share():
