@@ -592,11 +592,46 @@ def _run_serial(todo, model_dir, min_score):
         yield _screen_tile(index, task, model_dir, min_score)
 
 
+_PARENT_POLL_S = 0.5
+_parent_watch = {}
+
+
+def _exit_with_parent():
+    """In a local worker process: exit as soon as the process that started it is gone.
+
+    A parent killed outright (SIGKILL, the out-of-memory killer) cannot stop its workers, and
+    they would screen on for minutes. POSIX re-parents an orphan (to init or a subreaper), so
+    a daemon thread that sees ``os.getppid()`` change ends the worker; portable and needs no
+    signal of the parent's. Installed once per process, only in local workers (a Dask
+    worker's parent is the cluster's business).
+    """
+    if _parent_watch:
+        return
+    import threading
+
+    parent = os.getppid()
+    _parent_watch["parent"] = parent
+
+    def watch():
+        while True:
+            time.sleep(_PARENT_POLL_S)
+            if os.getppid() != parent:
+                os._exit(1)  # nothing of ours to flush: journal entries are written by the parent
+
+    threading.Thread(target=watch, name="frostvane-parent-watch", daemon=True).start()
+
+
+def _screen_tile_local(index, task, model_dir, min_score):
+    """:func:`_screen_tile` in a local worker that ends with its parent."""
+    _exit_with_parent()
+    return _screen_tile(index, task, model_dir, min_score)
+
+
 def _run_loky(todo, model_dir, min_score, workers):
     from joblib import Parallel, delayed
 
     parallel = Parallel(n_jobs=workers, backend="loky", return_as="generator_unordered")
-    yield from parallel(delayed(_screen_tile)(index, task, model_dir, min_score) for index, task in todo)
+    yield from parallel(delayed(_screen_tile_local)(index, task, model_dir, min_score) for index, task in todo)
 
 
 def _run_dask(todo, model_dir, min_score, scheduler, info=None):

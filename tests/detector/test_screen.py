@@ -466,6 +466,34 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_pa
     _same_outputs(out, reference)
 
 
+@pytest.mark.skipif(not Path("/proc/self/stat").exists() or os.name != "posix",
+                    reason="reads processes from Linux /proc; a dead parent's children are re-parented on POSIX")
+def test_workers_exit_soon_after_their_parent_is_killed(model_dir, big_png, tmp_path):
+    # SIGKILL cannot be caught: the workers themselves must notice that their parent is gone
+    # (POSIX gives an orphan a new parent, so os.getppid() changes).
+    argv = _cli("screen", model_dir, big_png, "--out", tmp_path / "orphaned", "--tile", "100x75", "--workers", "2")
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    journal = tmp_path / "orphaned" / ".partial"
+    deadline = time.monotonic() + 300
+    try:
+        while time.monotonic() < deadline and proc.poll() is None and len(_journal_entries(journal)) < 2:
+            time.sleep(0.02)
+        assert proc.poll() is None, "the run ended before it could be killed"
+        workers = _child_pids(proc.pid)
+        assert len(workers) >= 2
+        proc.send_signal(signal.SIGKILL)
+    finally:
+        proc.wait(timeout=30)
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline and any(_running(p) for p in workers):
+        time.sleep(0.1)
+    left = [p for p in workers if _running(p)]
+    for pid in left:  # do not leave them behind for the rest of the suite
+        os.kill(pid, signal.SIGKILL)
+    assert not left, f"workers {left} outlived their killed parent by 10 s"
+
+
 def test_dask_local_cluster_matches_serial(model_dir, big_png, big_reference, tmp_path, monkeypatch):
     from distributed import LocalCluster
 
