@@ -281,3 +281,46 @@ def test_diagnose_catalogs_without_a_model(tiny_tileset, tmp_path):
         w["figure"].split("/")[-1] for w in summary["worst_tiles"])
     with pytest.raises(DetectorError, match="not empty"):
         diagnose_catalogs(tiny_tileset / "truth.csv", tiny_tileset, out)
+
+
+def _readme_table_columns(heading):
+    """Column names listed in the README table that follows the line starting with ``heading``."""
+    import re
+    from pathlib import Path
+
+    lines = (Path(__file__).resolve().parents[2] / "README.md").read_text().splitlines()
+    start = next(i for i, line in enumerate(lines) if line.startswith(heading))
+    names = []
+    for line in lines[start + 1:]:
+        if names and not line.startswith("|"):
+            break
+        if line.startswith("| `"):
+            names.append(re.findall(r"`([^`]+)`", line.split("|")[1]))
+    return names
+
+
+@pytest.mark.parametrize(("heading", "name", "first"), [
+    ("`errors_consensus.csv`, one row", "errors_consensus.csv", "cons_index"),
+    ("`errors_detections.csv`, one row", "errors_detections.csv", "det_index"),
+])
+def test_error_tables_have_the_columns_the_readme_lists(tiny_tileset, tmp_path, heading, name, first):
+    # Every column written is documented, in order; a "`a` ... `b`" row stands for the contract's
+    # run of columns from a to b.
+    from detector.contract import DETECTION_COLUMNS
+    from training.diagnose import diagnose_catalogs
+
+    # the truth as a detection catalog with every column of evaluate's detections.csv
+    detections = pd.read_csv(tiny_tileset / "truth.csv").assign(score=1.0, direction_confidence=1.0)
+    detections.reindex(columns=DETECTION_COLUMNS).to_csv(tmp_path / "detections.csv", index=False)
+    out = tmp_path / "diag"
+    diagnose_catalogs(tmp_path / "detections.csv", tiny_tileset, out)
+    written = list(pd.read_csv(out / name, nrows=0).columns)
+    documented = []
+    for names in _readme_table_columns(heading):
+        if len(names) == 2 and names[0] in DETECTION_COLUMNS:  # a run of contract columns
+            run = list(DETECTION_COLUMNS)
+            documented += run[run.index(names[0]):run.index(names[1]) + 1]
+        else:
+            documented += names
+    assert documented[0] == first
+    assert written == documented
