@@ -25,7 +25,7 @@ bench: $(STAMP)
 demo-tiles: $(STAMP)
 	$(BIN)/frostvane synth demo_tiles --images 8 --tiles-per-image 5 --seed 2026 --force
 
-# The fixed benchmark (train, held-out, shifted, negatives; see README "Benchmark"); about 3 minutes.
+# The fixed benchmark (train, held-out, shifted, negatives; see README "Benchmark"); about 5 minutes.
 BENCH ?= out/bench
 benchmark-data: $(STAMP)
 	test -f $(BENCH)/benchmark.json || $(BIN)/frostvane benchmark build $(BENCH)

@@ -68,7 +68,7 @@ class BenchmarkLayout:
     tiles_per_image : int, default=4
     """
 
-    def __init__(self, *, seed=7, train_images=120, heldout_images=40, shifted_images=20, tiles_per_image=4):
+    def __init__(self, *, seed=7, train_images=240, heldout_images=40, shifted_images=20, tiles_per_image=4):
         for name, value, low in (("seed", seed, 0), ("train_images", train_images, 3),
                                  ("heldout_images", heldout_images, 1), ("shifted_images", shifted_images, 1),
                                  ("tiles_per_image", tiles_per_image, 1)):

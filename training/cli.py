@@ -119,7 +119,7 @@ def _add_training_commands(commands):
     build = bench_commands.add_parser("build", help="Render the benchmark's train, held-out, shifted and negative sets.")
     build.add_argument("out", type=Path, help="Benchmark folder to write.")
     build.add_argument("--seed", type=int, default=7, help="Seed of every set.")
-    build.add_argument("--train-images", type=int, default=120, help="Images of the train set.")
+    build.add_argument("--train-images", type=int, default=240, help="Images of the train set.")
     build.add_argument("--heldout-images", type=int, default=40, help="Images of the held-out set.")
     build.add_argument("--shifted-images", type=int, default=20, help="Images of the shifted set.")
     build.add_argument("--tiles-per-image", type=int, default=4, help="Tiles cut from each image.")
