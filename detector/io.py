@@ -195,7 +195,7 @@ def image_size(path):
         with Image.open(path) as handle:
             return int(handle.width), int(handle.height)
     except Exception as err:  # any decoder failure is a corrupt image to the user
-        raise ImageError(f"image {str(path)!r} cannot be read: {err}.") from err
+        raise ImageError(f"image {str(path)!r} cannot be read: {str(err).rstrip('.')}.") from err
 
 
 def write_image(path, image):

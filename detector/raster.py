@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DetectorError, ImageError, SpecError, TileSetError
-from .io import atomic_path, read_image
+from .io import atomic_path, image_size, read_image
 
 __all__ = [
     "TileWindow",
@@ -605,7 +605,7 @@ def mosaic_tiles(tiles_df, root, image_id, out_path, *, crs=None, transform=None
     paths = [root / p for p in rows["path"].astype(str)]
 
     # Sizes come from the file headers, so the first pass does not decode pixels.
-    sizes = np.array([_image_size(p) for p in paths], dtype=np.int64).reshape(-1, 2)
+    sizes = np.array([image_size(p) for p in paths], dtype=np.int64).reshape(-1, 2)
     width = int((col0 + sizes[:, 0]).max())
     height = int((row0 + sizes[:, 1]).max())
     first = read_image(paths[0])
@@ -624,22 +624,3 @@ def mosaic_tiles(tiles_df, root, image_id, out_path, *, crs=None, transform=None
                 h, w = tile.shape
                 dst.write(tile, 1, window=Window(int(c), int(r), w, h))
     return height, width
-
-
-def _image_size(path):
-    """(width, height) of an image from its header, px."""
-    if not Path(path).is_file():
-        raise ImageError(f"image {str(path)!r} does not exist.")
-    try:
-        if Path(path).suffix.lower() in (".tif", ".tiff"):
-            import tifffile
-
-            with tifffile.TiffFile(path) as tif:
-                shape = tif.pages[0].shape
-            return int(shape[1]), int(shape[0])
-        from PIL import Image
-
-        with Image.open(path) as handle:
-            return handle.size
-    except Exception as err:  # any decoder failure is a corrupt image to the user
-        raise ImageError(f"image {str(path)!r} cannot be read: {str(err).rstrip('.')}.") from err
