@@ -429,6 +429,36 @@ def _running(pid):
     return state != "Z"
 
 
+def _screen_with_two_busy_workers(model_dir, image, out, *, stderr):
+    """``frostvane screen`` with 2 workers on 100 x 75 px tiles, in a subprocess, once two tiles are journalled.
+
+    Returns the process and its worker pids (the run is killed if it cannot get that far).
+    """
+    argv = _cli("screen", model_dir, image, "--out", out, "--tile", "100x75", "--workers", "2")
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=stderr, text=True)
+    deadline = time.monotonic() + 300
+    try:
+        while time.monotonic() < deadline and proc.poll() is None and len(_journal_entries(out / ".partial")) < 2:
+            time.sleep(0.02)
+        assert proc.poll() is None, "the run ended before the test could signal it"
+        workers = _child_pids(proc.pid)
+        assert len(workers) >= 2
+    except BaseException:
+        proc.kill()
+        proc.wait(timeout=30)
+        raise
+    return proc, workers
+
+
+def _still_running(pids, seconds):
+    """The pids still running after waiting up to ``seconds`` for them to end."""
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline and any(_running(p) for p in pids):
+        time.sleep(0.1)
+    return [p for p in pids if _running(p)]
+
+
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from Linux /proc")
 def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_path):
     # `kill PID` (SIGTERM) must end a run as Ctrl-C does: exit 128 + 15, its worker processes gone,
@@ -438,17 +468,8 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_pa
     reference = tmp_path / "reference"
     screen(model_dir, [big_png], reference, tile=small, overlap=32, progress=False)
     out = tmp_path / "terminated"
-    argv = _cli("screen", model_dir, big_png, "--out", out, "--tile", "100x75", "--workers", "2")
-    env = {**os.environ, "OMP_NUM_THREADS": "1"}
-    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    journal = out / ".partial"
-    deadline = time.monotonic() + 300
+    proc, workers = _screen_with_two_busy_workers(model_dir, big_png, out, stderr=subprocess.PIPE)
     try:
-        while time.monotonic() < deadline and proc.poll() is None and len(_journal_entries(journal)) < 2:
-            time.sleep(0.02)
-        assert proc.poll() is None, "the run ended before it could be stopped"
-        workers = _child_pids(proc.pid)
-        assert len(workers) >= 2
         proc.send_signal(signal.SIGTERM)
         _, err = proc.communicate(timeout=60)
     finally:
@@ -456,10 +477,7 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_pa
             proc.kill()
     assert proc.returncode == 143, err
     assert "terminated; finished work is kept" in err
-    deadline = time.monotonic() + 30
-    while time.monotonic() < deadline and any(_running(p) for p in workers):
-        time.sleep(0.1)
-    assert not [p for p in workers if _running(p)]
+    assert not _still_running(workers, 30)
     assert not any((out / name).exists() for name in OUTPUT_FILES)
     summary = screen(model_dir, [big_png], out, tile=small, overlap=32, progress=False)
     assert summary.n_tiles == 144 and 2 <= summary.n_resumed < 144
@@ -471,24 +489,13 @@ def test_terminated_run_stops_its_workers_and_resumes(model_dir, big_png, tmp_pa
 def test_workers_exit_soon_after_their_parent_is_killed(model_dir, big_png, tmp_path):
     # SIGKILL cannot be caught: the workers themselves must notice that their parent is gone
     # (POSIX gives an orphan a new parent, so os.getppid() changes).
-    argv = _cli("screen", model_dir, big_png, "--out", tmp_path / "orphaned", "--tile", "100x75", "--workers", "2")
-    env = {**os.environ, "OMP_NUM_THREADS": "1"}
-    proc = subprocess.Popen(argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    journal = tmp_path / "orphaned" / ".partial"
-    deadline = time.monotonic() + 300
+    proc, workers = _screen_with_two_busy_workers(model_dir, big_png, tmp_path / "orphaned",
+                                                  stderr=subprocess.DEVNULL)
     try:
-        while time.monotonic() < deadline and proc.poll() is None and len(_journal_entries(journal)) < 2:
-            time.sleep(0.02)
-        assert proc.poll() is None, "the run ended before it could be killed"
-        workers = _child_pids(proc.pid)
-        assert len(workers) >= 2
         proc.send_signal(signal.SIGKILL)
     finally:
         proc.wait(timeout=30)
-    deadline = time.monotonic() + 10
-    while time.monotonic() < deadline and any(_running(p) for p in workers):
-        time.sleep(0.1)
-    left = [p for p in workers if _running(p)]
+    left = _still_running(workers, 10)
     for pid in left:  # do not leave them behind for the rest of the suite
         os.kill(pid, signal.SIGKILL)
     assert not left, f"workers {left} outlived their killed parent by 10 s"
