@@ -635,15 +635,13 @@ def _run_loky(todo, model_dir, min_score, workers):
 
 
 def _run_dask(todo, model_dir, min_score, scheduler, info=None):
-    from distributed import Client, as_completed
+    from distributed import as_completed
 
-    try:
-        client = Client(scheduler, timeout=30)
-    except (OSError, TimeoutError, ValueError) as err:
-        raise DetectorError(f"Dask scheduler {scheduler!r} cannot be reached: {err}.") from err
-    with client:
+    from .cluster import connect, worker_count
+
+    with connect(scheduler) as client:
         if info is not None:
-            info["workers"] = max(1, len(client.scheduler_info().get("workers", {})))
+            info["workers"] = worker_count(client)
         futures = client.map(
             _screen_tile, [i for i, _ in todo], [t for _, t in todo], model_dir=model_dir, min_score=min_score,
             pure=False,
