@@ -3,7 +3,7 @@
 from dataclasses import dataclass
 
 import numpy as np
-from joblib import Parallel, delayed
+from joblib import delayed
 from tqdm.auto import tqdm
 
 from detector.detect import tile_summary_vector
@@ -11,6 +11,8 @@ from detector.features import extract_features, patch_targets
 from detector.spec import patch_axis_deg
 from detector.labels import rasterise_features
 from detector._allocator import reuse_freed_memory
+
+from .parallel import tile_parallel
 
 __all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs",
            "degrade_tile", "augmented_tile", "DEGRADE_RANGES"]
@@ -261,7 +263,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
     max_patches : int, optional
         Cap on the total; drawn uniformly (deposit patches kept first) when exceeded.
     workers : int, default=1
-        joblib processes.
+        Local worker processes (joblib); inside :func:`training.parallel.on_cluster`
+        the tiles go to the Dask cluster instead.
     sample : bool, default=True
         False keeps every valid patch (calibration wants the true class mix).
     keep_tiles : bool, default=True
@@ -284,7 +287,7 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
     iterator = tqdm(list(zip(jobs, seeds)), desc=desc, unit="tile", leave=False)
     # Sampling happens inside the worker so that only kept patches travel back: memory
     # grows with the kept patches, not with the catalog.
-    results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
+    results = tile_parallel(workers)(
         delayed(_extract_one)(tileset, tid, spec, r, tau, s, sample, neg_ratio, hard_share, degrade)
         for (tid, r), s in iterator
     )

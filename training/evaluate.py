@@ -55,7 +55,10 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
     tau : float, optional
         Coverage threshold for the patch targets; default the model's training tau.
     workers : int, default=1
-        joblib processes; each loads the model from its folder once.
+        Local worker processes (joblib); each loads the model from its folder once.
+        Inside :func:`training.parallel.on_cluster` the tiles go to the Dask cluster
+        instead, whose workers must see the model folder and the tile set by the
+        same absolute paths.
     min_score : float, optional
         Smallest object score kept; default the model card's.
 
@@ -66,15 +69,16 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
         ``patch_proba`` (n, 3), ``per_tile`` (list of dict: tile_id, p_deposit,
         summary...).
     """
-    from joblib import Parallel, delayed
+    from joblib import delayed
+
+    from .parallel import current_cluster, tile_parallel
 
     tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
     tile_ids = list(tile_ids)
     iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False, disable=None)  # None: quiet off a terminal
-    if workers > 1:
-        results = Parallel(n_jobs=workers, backend="loky")(
-            delayed(_run_one)(str(model.folder), tileset, tid, tau, min_score) for tid in iterator
-        )
+    if workers > 1 or current_cluster() is not None:
+        folder = str(Path(model.folder).absolute())  # workers may run in another folder
+        results = tile_parallel(workers)(delayed(_run_one)(folder, tileset, tid, tau, min_score) for tid in iterator)
     else:
         results = [_run_one(model, tileset, tid, tau, min_score) for tid in iterator]
     frames = [r[0] for r in results if len(r[0])]
