@@ -117,3 +117,23 @@ def test_screen_force_replaces_another_run(tmp_path, capsys):
     assert main(base + ["--tile", "128x100", "--force"]) == 0
     assert json.loads((out / "run.json").read_text())["parameters"]["tile"] == [128, 100]
     assert not (out / "notes.txt").exists()
+
+
+def test_train_with_an_unreachable_scheduler_writes_nothing(tiny_tileset, tmp_path, monkeypatch, capsys):
+    import socket
+
+    import detector.cluster
+    from detector._jit import COMPILING_MESSAGE
+
+    monkeypatch.setattr(detector.cluster, "CONNECT_TIMEOUT_S", 1.0)
+    with socket.socket() as sock:  # a local port nothing listens on
+        sock.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{sock.getsockname()[1]}"
+    before = sorted(tmp_path.rglob("*"))
+    code = main(["train", str(tiny_tileset), "--out", str(tmp_path / "new" / "model"), "--scheduler", address])
+    assert code == 2
+    # (a fresh machine also announces its first compilation)
+    err = [line for line in capsys.readouterr().err.splitlines() if line != COMPILING_MESSAGE]
+    assert len(err) == 1 and err[0].startswith("frostvane: error: Dask scheduler ") and repr(address) in err[0]
+    assert "cannot be reached" in err[0]
+    assert sorted(tmp_path.rglob("*")) == before

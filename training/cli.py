@@ -55,7 +55,12 @@ def _add_training_commands(commands):
     train.add_argument("--max-patches", type=int, default=300_000, help="Most patches the classifier learns from.")
     train.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
                        help="Drop consensus features with fewer votes (common practice: 3).")
-    train.add_argument("--workers", type=int, default=1, help="Local worker processes for feature extraction.")
+    train.add_argument("--workers", type=int, default=1,
+                       help="Local worker processes for feature extraction, candidate readings and scoring.")
+    train.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="Address of a running Dask distributed scheduler (e.g. tcp://10.0.0.5:8786): the same "
+                       "work runs on its cluster instead, whose workers must see the tile set and the output "
+                       "folder by the same absolute paths; overrides --workers.")
     train.add_argument("--force", action="store_true", help="Replace an existing model folder.")
     train.set_defaults(func=_train)
 
@@ -225,7 +230,7 @@ def _train(args):
 
     config = TrainConfig(seed=args.seed, holdout_fraction=args.holdout_fraction,
                          holdout_images=tuple(args.holdout_images), max_patches=args.max_patches,
-                         min_votes=args.min_votes, workers=args.workers)
+                         min_votes=args.min_votes, workers=args.workers, scheduler=args.scheduler)
     card = train_model(args.tile_set, args.out, config, force=args.force)
     print(format_card_summary(card, args.out))
 

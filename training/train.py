@@ -1,5 +1,6 @@
 """Fit the patch classifier and the orientation model, calibrate, export, score held-out images."""
 
+import contextlib
 import hashlib
 import json
 import platform
@@ -35,6 +36,7 @@ from .dataset import build_patch_set, rotation_jobs
 from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, fit_direction_confidence
+from .parallel import current_cluster, on_cluster, tile_parallel
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]
@@ -57,6 +59,14 @@ class TrainConfig:
         Cap on the training patches (memory budget).
     min_votes : int, default=3
     workers : int, default=1
+        Local worker processes for the tile loops (features, candidate readings,
+        tuning and held-out scoring). With ``scheduler``, the run records the
+        cluster's worker count here.
+    scheduler : str, optional
+        Address of a running Dask distributed scheduler (e.g.
+        ``"tcp://10.0.0.5:8786"``): the tile loops run on its cluster instead of
+        local processes, with the same results. Its workers must see the tile
+        set (and the output folder's parent) by the same absolute paths.
     tau : float, default=0.05
         Coverage a patch needs to count as fan or spot for training. Below the
         engine's 0.15 default so that small spots (radius 5-15 px, 2-15 % of a
@@ -90,6 +100,7 @@ class TrainConfig:
     max_patches: int = 300_000
     min_votes: int = DEFAULT_MIN_VOTES
     workers: int = 1
+    scheduler: str = None
     tau: float = 0.05
     rotations: tuple = (0, 1, 2, 3)
     rotations_per_tile: int = None
@@ -108,6 +119,9 @@ class TrainConfig:
             raise DetectorError(f"max patches must be at least 100; got {self.max_patches!r}.")
         if self.workers < 1:
             raise DetectorError(f"workers must be at least 1; got {self.workers!r}.")
+        if self.scheduler is not None and (not isinstance(self.scheduler, str) or not self.scheduler.strip()):
+            raise DetectorError(f"scheduler must be a Dask scheduler address such as 'tcp://10.0.0.5:8786'; "
+                                f"got {self.scheduler!r}.")
 
 
 def split_images(image_ids, *, holdout_fraction=0.2, holdout_images=(), calibration_fraction=0.2, seed=0):
@@ -373,13 +387,35 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     spec = spec or FeatureSpec()
     if out.exists() and any(out.iterdir()) and not force:
         raise DetectorError(f"output folder {str(out)!r} is not empty; choose another or pass --force.")
+    # The cluster is reached before anything is written: a scheduler that is not there leaves no trace.
+    with _tile_workers(config, log) as config:
+        return _train(tileset_root, out, config, spec, log, started)
+
+
+@contextlib.contextmanager
+def _tile_workers(config, log):
+    """The run's config with the workers its tile loops have: local processes, or (inside the
+    connection) the cluster of ``config.scheduler``, whose worker count replaces ``workers``."""
+    if config.scheduler is None:
+        log(f"workers: {config.workers} local process{'es' if config.workers > 1 else ''}")
+        yield config
+        return
+    with on_cluster(config.scheduler) as cluster:
+        log(f"workers: {cluster['workers']} on the Dask cluster of {config.scheduler} "
+            f"({cluster['threads']} thread{'s' if cluster['threads'] > 1 else ''})")
+        yield replace(config, workers=cluster["workers"])
+
+
+def _train(tileset_root, out, config, spec, log, started):
+    """The body of :func:`train_model` once the tile loops' workers are known."""
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
     except OSError as err:
         raise DetectorError(f"output folder {str(out)!r} cannot be created: {err.strerror}.") from err
     if not _writable(out.parent):
         raise DetectorError(f"output folder {str(out.parent)!r} is not writable.")
-    tileset = load_tileset(tileset_root, min_votes=config.min_votes)
+    # Absolute, as workers in other folders (a Dask cluster's) must find the same images.
+    tileset = load_tileset(Path(tileset_root).absolute(), min_votes=config.min_votes)
     if len(tileset.tiles) == 0:
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
     fit_img, cal_img, hold_img = split_images(
@@ -446,8 +482,8 @@ def train_model(tileset_root, out, config=TrainConfig(), *, spec=None, force=Fal
     full_patches = _CalibratedPredictor(classifier, calibration)
     full_polarity = _PolarityPredictor(orientation, index)
     cal_sample = _tile_sample(ids["calibration"], config.max_candidate_tiles, config.seed + 5)
-    cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
-                             workers=config.workers, desc="calibration candidates")
+    cand_val = _candidates(tileset, cal_sample, spec, full_patches, full_polarity, params,
+                           workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
@@ -610,9 +646,31 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         if len(jobs) > cap:
             keep = np.sort(rng.choice(len(jobs), size=cap, replace=False))
             jobs = [jobs[i] for i in keep]
-        parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
-                                   workers=config.workers, jobs=jobs, desc="out-of-fold candidates",
-                                   degrade=config.degrade))
+        parts.append(_candidates(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
+                                 workers=config.workers, jobs=jobs, desc="out-of-fold candidates",
+                                 degrade=config.degrade))
+    return CandidateSet.concat(parts)
+
+
+def _candidates(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers, jobs=None,
+                desc, degrade=False):
+    """:func:`training.objects.candidate_set`, its tiles spread over the cluster when the run has one.
+
+    ``candidate_set`` runs its tiles in local processes; on a cluster every job (tile and turn)
+    becomes one call of it there, and the parts are joined in the order of the jobs, which is
+    what ``candidate_set`` itself returns for all of them.
+    """
+    from joblib import delayed
+
+    if current_cluster() is None:
+        return candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, workers=workers,
+                             jobs=jobs, desc=desc, degrade=degrade)
+    jobs = list(jobs) if jobs is not None else [(tid, 0) for tid in tile_ids]
+    parts = tile_parallel(workers)(
+        delayed(candidate_set)(tileset, (), spec, predict_patches, predict_polarity, params, jobs=[job], desc=desc,
+                               degrade=degrade)
+        for job in jobs
+    )
     return CandidateSet.concat(parts)
 
 
@@ -642,6 +700,13 @@ def format_card_summary(card, folder):
         f"  held out: fan F1 {f(h.get('fan_f1'))}, spot F1 {f(h.get('spot_f1'))}, fan direction median "
         f"{f(h.get('fan_direction_median_deg'), 1)} deg (p90 {f(h.get('fan_direction_p90_deg'), 1)}), "
         f"flip rate {f(h.get('flip_rate'), 3)}",
-        f"  {t.get('seconds', 'n/a')} s",
+        f"  {t.get('seconds', 'n/a')} s, {_workers_text(t['config'])}",
     ]
     return "\n".join(lines)
+
+
+def _workers_text(config):
+    """How a run's tile loops ran, from its card's config (cards before the scheduler option lack it)."""
+    workers = config.get("workers", 1)
+    where = f" on the Dask cluster of {config['scheduler']}" if config.get("scheduler") else " (local)"
+    return f"{workers} worker{'s' if workers != 1 else ''}{where}"

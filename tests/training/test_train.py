@@ -14,6 +14,7 @@ from training.train import (
     calibration_scores,
     fit_calibration,
     fit_unfamiliarity,
+    format_card_summary,
     orientation_feature_names,
     orientation_training_set,
     split_images,
@@ -273,3 +274,57 @@ def test_unfamiliarity_threshold_moves_to_the_held_out_pass_share():
     rescaled = np.array([t["unfamiliarity"] for t in card["heldout_tiles"]])
     assert rescaled == pytest.approx(scores / 1.9)
     assert int(np.sum(rescaled <= 1.0 + 1e-12)) == 19
+
+
+# --------------------------------------------------------------------------- on a Dask cluster
+
+
+@pytest.mark.slow
+def test_training_on_a_cluster_gives_the_local_model(tmp_path, monkeypatch):
+    # 3 images x 2 tiles, two turns: every tile loop (features, out-of-fold and calibration
+    # candidates, tuning, held-out scoring) has several jobs for the cluster's two workers.
+    from dataclasses import replace
+
+    from distributed import LocalCluster
+    from threadpoolctl import threadpool_limits
+
+    from detector.model import ONNX_FILES
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "set", n_images=3, tiles_per_image=2, seed=3)
+    config = TrainConfig(seed=1, rotations=(0, 1), max_patches=5000, max_iter=20)
+    import sklearn.ensemble  # noqa: F401  (the OpenMP runtime loads with it; limit after)
+
+    with threadpool_limits(limits=1):
+        local = train_model(root, tmp_path / "local", config, log=lambda s: None)
+        with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None) as cluster:
+            address = cluster.scheduler_address
+            # The workers started in another folder: the relative paths given here must still reach them.
+            monkeypatch.chdir(tmp_path)
+            lines = []
+            remote = train_model("set", "cluster", replace(config, scheduler=address), log=lines.append)
+            ran = set(cluster.scheduler.task_prefixes)
+    # The same model: the three ONNX files byte for byte (hence the same probabilities on every
+    # tile), and what was computed through them on the cluster (tuning, held-out scores).
+    for name in ONNX_FILES:
+        assert (tmp_path / "cluster" / name).read_bytes() == (tmp_path / "local" / name).read_bytes(), name
+    assert remote["files"] == local["files"]
+    for key in ("calibration", "assembly", "assembly_tuning", "heldout_metrics", "heldout_tiles", "unfamiliarity"):
+        assert remote[key] == local[key], key
+    assert remote["training"]["readings"] == local["training"]["readings"]
+    assert remote["training"]["patches"] == local["training"]["patches"]
+    # Every loop ran there, and the run says on how many workers.
+    for function in ("_extract_one", "candidate_set", "_run_one"):
+        assert any(function in prefix for prefix in ran), (function, ran)
+    assert lines[0] == f"workers: 2 on the Dask cluster of {address} (2 threads)"
+    assert remote["training"]["config"]["workers"] == 2 and remote["training"]["config"]["scheduler"] == address
+    assert local["training"]["config"]["workers"] == 1 and local["training"]["config"]["scheduler"] is None
+    assert remote["training"]["tileset"] == "set"
+    assert format_card_summary(remote, "cluster").endswith(f" s, 2 workers on the Dask cluster of {address}")
+    assert format_card_summary(local, "local").endswith(" s, 1 worker (local)")
+
+
+@pytest.mark.parametrize("scheduler", ["", "  ", 8786])
+def test_config_refuses_a_scheduler_that_is_no_address(scheduler):
+    with pytest.raises(DetectorError, match=f"scheduler must be a Dask scheduler address.*got {scheduler!r}"):
+        TrainConfig(scheduler=scheduler)
