@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from joblib import Parallel, delayed
+from joblib import delayed
 from tqdm.auto import tqdm
 
 from detector.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
@@ -19,6 +19,7 @@ from detector.features import extract_features
 from detector._allocator import reuse_freed_memory
 
 from .dataset import augmented_tile
+from .parallel import tile_parallel
 from .scoring import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
@@ -179,7 +180,7 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     """
     image = tileset.tiles.set_index("tile_id")["image_id"]
     jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
-    results = Parallel(n_jobs=workers, backend="loky" if workers > 1 else "sequential")(
+    results = tile_parallel(workers)(
         delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r, degrade)
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )

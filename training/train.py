@@ -36,7 +36,7 @@ from .dataset import build_patch_set, rotation_jobs
 from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, fit_direction_confidence
-from .parallel import current_cluster, on_cluster, tile_parallel
+from .parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]
@@ -482,7 +482,7 @@ def _train(tileset_root, out, config, spec, log, started):
     full_patches = _CalibratedPredictor(classifier, calibration)
     full_polarity = _PolarityPredictor(orientation, index)
     cal_sample = _tile_sample(ids["calibration"], config.max_candidate_tiles, config.seed + 5)
-    cand_val = _candidates(tileset, cal_sample, spec, full_patches, full_polarity, params,
+    cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
                            workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
@@ -646,31 +646,9 @@ def _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spe
         if len(jobs) > cap:
             keep = np.sort(rng.choice(len(jobs), size=cap, replace=False))
             jobs = [jobs[i] for i in keep]
-        parts.append(_candidates(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
+        parts.append(candidate_set(tileset, held_tiles, spec, _CalibratedPredictor(clf, cal), polarity, params,
                                  workers=config.workers, jobs=jobs, desc="out-of-fold candidates",
                                  degrade=config.degrade))
-    return CandidateSet.concat(parts)
-
-
-def _candidates(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers, jobs=None,
-                desc, degrade=False):
-    """:func:`training.objects.candidate_set`, its tiles spread over the cluster when the run has one.
-
-    ``candidate_set`` runs its tiles in local processes; on a cluster every job (tile and turn)
-    becomes one call of it there, and the parts are joined in the order of the jobs, which is
-    what ``candidate_set`` itself returns for all of them.
-    """
-    from joblib import delayed
-
-    if current_cluster() is None:
-        return candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, workers=workers,
-                             jobs=jobs, desc=desc, degrade=degrade)
-    jobs = list(jobs) if jobs is not None else [(tid, 0) for tid in tile_ids]
-    parts = tile_parallel(workers)(
-        delayed(candidate_set)(tileset, (), spec, predict_patches, predict_polarity, params, jobs=[job], desc=desc,
-                               degrade=degrade)
-        for job in jobs
-    )
     return CandidateSet.concat(parts)
 
 

@@ -58,7 +58,7 @@ from detector.errors import CatalogError, DetectorError
 from detector.geometry import angular_difference
 from detector.io import atomic_dir, write_json
 
-from .wind_catalogs import NO_REGION, read_consensus_catalog, read_image_table, read_machine_catalog
+from .wind_catalogs import read_consensus_catalog, read_image_table, read_machine_catalog
 from .wind_catalogs import metadata_from_tileset
 
 __all__ = [
