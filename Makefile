@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench models demo-tiles benchmark benchmark-data clean
+.PHONY: demo test lint bench models demo-tiles benchmark benchmark-data clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -17,6 +17,10 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest
+
+# Likely bugs and unused code (ruff; its rules are in pyproject.toml).
+lint: $(STAMP)
+	$(BIN)/ruff check .
 
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_features.py

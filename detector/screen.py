@@ -838,7 +838,7 @@ class _GeoContext:
     def describe(self):
         """One line per GeoPackage layer pair: what its coordinates are."""
         out = {}
-        for path, (suffix, wkt) in self.layers.items():
+        for path, (suffix, _wkt) in self.layers.items():
             g = self.georefs[path]
             out.setdefault(suffix, "image pixels (x = column, y = -row), no CRS" if g is None
                            else f"map coordinates of {g.crs.name!r}")

@@ -538,7 +538,7 @@ def benchmark_table(results, *, compare=()):
     columns = [("model", "model", results)] + [(label, "model", other) for label, other in compare] + [
         ("threshold", "threshold", results), ("truth ceiling", "truth", results)]
     header = ["metric", "target"]
-    for set_name, title in (("heldout", "in-dist"), ("shifted", "shifted")):
+    for _set_name, title in (("heldout", "in-dist"), ("shifted", "shifted")):
         header += [f"{label} ({title})" for label, _, _ in columns]
     lines = ["| " + " | ".join(header) + " |", "|" + " --- |" * len(header)]
     for label, keys, fmt, target in _ROWS:

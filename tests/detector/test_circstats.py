@@ -200,7 +200,7 @@ def test_mixture_recovers_simulated_modes(seed, modes, kappas, weights):
     one = circstats.fit_vonmises_mixture(angles, 1)
     assert two["bic"] < one["bic"]
     order = np.argsort([circstats.angular_difference(two["mean_deg"], m).min() for m in modes])
-    for j, (m, k, w) in enumerate(zip(modes, kappas, weights)):
+    for m, k, w in zip(modes, kappas, weights):
         i = int(np.argmin(circstats.angular_difference(two["mean_deg"], m)))
         assert circstats.angular_difference(two["mean_deg"][i], m) < 5.0
         assert two["weight"][i] == pytest.approx(w, abs=0.07)

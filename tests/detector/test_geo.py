@@ -182,7 +182,7 @@ def test_lengths_in_metres():
     k = 2.0 / (1.0 + np.sin(np.radians(85.0)))
     assert georef.ground_length_m(100.0, 45.0, col, row) == pytest.approx(50.0 / k, rel=1e-6)
     with pytest.raises(DetectorError, match="not in metres"):
-        Georeferencer(MARS_GEOGRAPHIC, Affine(0.01, 0, 0, 0, -0.01, 0)).metres_per_px
+        _ = Georeferencer(MARS_GEOGRAPHIC, Affine(0.01, 0, 0, 0, -0.01, 0)).metres_per_px
 
 
 def test_bad_inputs_raise_clear_errors():

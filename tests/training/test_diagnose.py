@@ -188,7 +188,7 @@ def test_every_feature_has_exactly_one_outcome_and_matches_equal_the_matcher(see
     assert (b.consensus.loc[dup["cons_index"].astype(int), "outcome"] == "matched").all()
     # Shares of each side and kind add up to one, and the tallies count every feature once.
     for side in ("consensus", "detections"):
-        for kind, entry in b.headline[side].items():
+        for entry in b.headline[side].values():
             if entry["n"]:
                 assert sum(v for k, v in entry.items() if k != "n") == pytest.approx(1.0)
     by_image = b.by_image
