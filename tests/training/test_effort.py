@@ -278,11 +278,14 @@ def test_route_tiles_from_detections_table():
 # --------------------------------------------------------------------------- effort
 
 
-def test_deposit_probability_is_the_isotonic_fit():
-    # Held-out p and deposit: the pool-adjacent-violators fit of (0, 1, 0, 1) at p 0.1..0.4 is
-    # (0, 0.5, 0.5, 1); read between points linearly and flat beyond them; NaN counts as 1.
-    q = deposit_probability([0.1, 0.2, 0.3, 0.4], [0, 1, 0, 1], [0.0, 0.1, 0.25, 0.35, 0.9, np.nan])
-    assert q == pytest.approx([0.0, 0.0, 0.5, 0.75, 1.0, 1.0])
+def test_deposit_probability_is_the_presence_calibration():
+    # Every held-out tile at one p_deposit: the fit is the intercept alone, Firth's (k + 1/2) / (n + 1)
+    # (Firth 1993, Biometrika 80, section 3): 1 deposit tile of 4 -> 1.5 / 5 = 0.3, at any p.
+    q = deposit_probability([0.5] * 4, [0, 1, 0, 0], [0.0, 0.5, 0.9, np.nan])
+    assert q == pytest.approx([0.3, 0.3, 0.3, 1.0])
+    # A rising relation is kept rising, and NaN held-out values are left out.
+    q = deposit_probability([0.2, 0.4, 0.6, 0.8, np.nan], [0, 0, 1, 1, 0], [0.1, 0.5, 0.95])
+    assert np.all(np.diff(q) > 0) and 0.0 < q[0] < 0.5 < q[2] < 1.0
 
 
 def test_effort_arithmetic_by_hand():
@@ -304,9 +307,17 @@ def test_effort_arithmetic_by_hand():
     lo, hi = effort["interval_90"]["days"]
     assert effort["dates"] == [(datetime.date(2026, 3, 1) + datetime.timedelta(days=int(np.ceil(d)))).isoformat()
                                for d in (lo, hi)]
-    # Truly needed (expected): the held-out deposit rate is 0 at p 0.05 and 1 from p 0.20 up, so
-    # s2 (18), s8 (unknown p: 30), s10 (5) and the skipped s4 (p 0.30: 30) count, s5 (p 0.01) not.
-    assert effort["expected_needed"]["classifications"] == pytest.approx(83.0)
+    # Truly needed (expected): each tile's classifications left times its presence probability
+    # (tests/training/test_presence.py holds that calibration to its references): s2 (18 left),
+    # s10 (5), the skipped s4 and s5 (30 each); s8 has no p_deposit and counts in full (30); the
+    # unfamiliar s6, s7 count in full but have none left; machine tiles count for nothing.
+    held = pd.DataFrame(_card()["heldout_tiles"])
+    q = dict(zip(routed["tile_id"], deposit_probability(held["p_deposit"], held["consensus_px"] > 0,
+                                                        routed["p_deposit"])))
+    expected = 18 * q["s2"] + 5 * q["s10"] + 30 * q["s4"] + 30 * q["s5"] + 30
+    assert effort["expected_needed"]["classifications"] == pytest.approx(expected)
+    assert effort["expected_needed"]["on_skipped_tiles"]["classifications"] == pytest.approx(30 * (q["s4"] + q["s5"]))
+    assert effort["expected_needed"]["on_unfamiliar_tiles"] == 0
     assert effort["machine"]["machine_f1"] == pytest.approx(28 / 34)
     assert effort["missed_deposit_share"] == pytest.approx(0.02)
     assert effort["campaign"]["seconds_assumed"] is False
@@ -337,6 +348,96 @@ def test_bootstrap_by_image_is_deterministic_and_exact_when_routes_cannot_move()
     effort = estimate_effort(route_tiles(frame, _card()), _card(), n_boot=50)
     assert effort["classifications"] == 210
     assert effort["interval_90"]["classifications"] == [210.0, 210.0]
+
+
+def _presence_card(p, has_deposit, image_ids):
+    # Held-out tiles without detections: no machine route, so only the presence calibration is at work.
+    rows = [{"tile_id": f"h{i}", "image_id": str(img), "p_deposit": float(pi), "consensus_px": 100 * int(y),
+             "n_consensus": int(y), "n_detections": 0, "f1": 0.0, "fan_error_median_deg": None,
+             "mean_score": 0.0, "unfamiliarity": 0.5} for i, (pi, y, img) in enumerate(zip(p, has_deposit, image_ids))]
+    return {"heldout_tiles": rows}
+
+
+def _screen_at(p):
+    return pd.DataFrame({"tile_id": [f"s{i}" for i in range(len(p))], "image": "S", "p_deposit": p,
+                         "unfamiliarity": 0.5, "route": ""})
+
+
+def test_needed_interval_draws_each_tiles_presence():
+    """With the calibration pinned, the interval is the binomial one of which tiles hold deposits.
+
+    One held-out image of 40 tiles, all at p_deposit 0.9, 29 with deposits: every resample of images
+    is that image, so the presence probability is Firth's (29 + 0.5) / 41 = 0.7195 in every
+    resample. 100 screened tiles at p 0.9 with none classified: the tiles truly needing people are
+    Binomial(100, 0.7195), so the 90 % interval is 30 x its 5 % and 95 % quantiles (scipy.stats.binom),
+    up to the Monte Carlo error of 1000 draws (one tile either way).
+    """
+    from scipy.stats import binom
+
+    card = _presence_card([0.9] * 40, [1] * 29 + [0] * 11, ["A"] * 40)
+    effort = estimate_effort(route_tiles(_screen_at([0.9] * 100), card), card, n_boot=1000, seed=3)
+    q = 29.5 / 41
+    needed = effort["expected_needed"]
+    assert needed["classifications"] == pytest.approx(30 * 100 * q)
+    lo, hi = needed["interval_90"]
+    assert abs(lo / 30 - binom.ppf(0.05, 100, q)) <= 1 and abs(hi / 30 - binom.ppf(0.95, 100, q)) <= 1
+    # Resampling the (pinned) calibration alone gives no spread: the variance the draws add.
+    assert needed["interval_90_calibration_only"] == pytest.approx([30 * 100 * q] * 2)
+
+
+def test_needed_interval_covers_at_its_stated_rate():
+    """Coverage in a world whose truth is known: presence ~ Bernoulli(expit(-1 + 1.5 logit p)).
+
+    40 repetitions, each with 30 held-out images of 4 tiles and 40 new tiles drawn alike. A 90 %
+    interval that holds covers the new tiles' true classifications in Binomial(40, 0.9) of them, at
+    least its 1 % quantile (scipy.stats.binom); the interval of the calibration's resampling alone
+    covers far fewer (200 repetitions when this test was written: 0.925 against 0.595), since it
+    leaves out which tiles truly hold deposits.
+    """
+    from scipy.special import expit, logit
+    from scipy.stats import binom
+
+    def world(rng, n):
+        p = rng.beta(5.0, 1.0, size=n)
+        return p, rng.random(n) < expit(-1.0 + 1.5 * logit(p))
+
+    reps = 40
+    covered = {"interval_90": 0, "interval_90_calibration_only": 0}
+    for rep in range(reps):
+        rng = np.random.default_rng(100 + rep)
+        p, y = world(rng, 120)
+        card = _presence_card(p, y, np.arange(120) // 4)
+        p_new, y_new = world(rng, 40)
+        needed = estimate_effort(route_tiles(_screen_at(p_new), card), card, n_boot=200, seed=rep)["expected_needed"]
+        for key in covered:
+            lo, hi = needed[key]
+            covered[key] += lo <= 30 * y_new.sum() <= hi
+    assert covered["interval_90"] >= binom.ppf(0.01, reps, 0.9)
+    assert covered["interval_90_calibration_only"] < binom.ppf(0.01, reps, 0.9)
+    assert covered["interval_90"] - covered["interval_90_calibration_only"] >= 6
+
+
+def test_machine_spread_is_a_named_range_below_five_images():
+    # Six machine tiles (h0..h5) from 3 images: too few for an interval, so the route's figures are the
+    # range of its images'. Pooled F1 by hand (matched / detections / consensus of the hand table):
+    # A = h0 + h1 (4 + 3 of 8 + 8) = 14 / 16 = 0.875; B = h2 + h3 (2 + 2 of 5 + 5) = 8 / 10 = 0.8;
+    # C = h4 + h5 (1 + 2 of 4 + 4) = 6 / 8 = 0.75. Median direction errors 5, 5 and 8.5 (5 and 12) deg.
+    card = _card()
+    for row, image in zip(card["heldout_tiles"], "AABBCCDEFG"):
+        row["image_id"] = image
+    effort = estimate_effort(route_tiles(_screen(), card), card, n_boot=50)
+    spread = effort["machine"]["spread"]
+    assert spread["kind"] == "range" and spread["images"] == 3
+    assert spread["f1"] == pytest.approx([0.75, 0.875])
+    assert spread["direction_median_deg"] == pytest.approx([5.0, 8.5])
+    assert "too few for an interval" in spread["label"]
+    from training.effort import effort_summary
+
+    assert "range over the 3 held-out image(s)" in effort_summary(effort)
+    # The hand table's own one-tile images: six images carry machine tiles, so the out-of-bag interval stands.
+    effort = estimate_effort(route_tiles(_screen(), _card()), _card(), n_boot=50)
+    assert effort["machine"]["spread"]["kind"] == "interval"
+    assert effort["machine"]["spread"]["f1"] == effort["interval_90"]["machine_f1"]
 
 
 # --------------------------------------------------------------------------- command
