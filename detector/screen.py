@@ -15,7 +15,10 @@ The screening folder
     tiles (``frostvane effort`` fills it) and ``"nodata"`` for tiles whose
     core is less than half valid, which are not scored. ``area_m2`` is the
     ground area of the tile's core and ``covered_m2`` that of its fan and
-    spot cover, m^2 (NaN when the scale is unknown).
+    spot cover, m^2 (NaN when the scale is unknown). The
+    ``unfamiliarity_share_<group>`` columns split the tile's squared
+    unfamiliarity distance among the feature groups
+    (:func:`detector.unfamiliar.unfamiliarity_parts`; they sum to 1).
 ``detections.csv``
     :data:`detector.contract.DETECTION_COLUMNS` in tile px, plus ``image``,
     ``col0`` and ``row0`` (image px of the tile's top-left pixel: image px =
@@ -75,6 +78,7 @@ from .errors import DetectorError, ImageError, SpecError, TileSetError
 from .geojson import write_geojson_chunks
 from .io import atomic_path, write_json
 from .raster import TileWindow, check_complete, open_raster, plan_windows
+from .unfamiliar import SHARE_COLUMNS
 
 __all__ = [
     "TILE_COLUMNS",
@@ -108,7 +112,7 @@ TILE_COLUMNS = (
     "valid_fraction",
     "area_m2",
     "covered_m2",
-)
+) + SHARE_COLUMNS
 
 #: Columns added to ``detections.csv`` for georeferenced rasters.
 GEO_COLUMNS = ("lon_deg", "lat_deg", "azimuth_deg", "wind_from_deg", "length_m")
@@ -383,7 +387,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
     """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
     from ._allocator import reuse_freed_memory
     from .detect import detect_tile
-    from .unfamiliar import unfamiliarity_score
+    from .unfamiliar import unfamiliarity_parts, unfamiliarity_score
 
     reuse_freed_memory()
     model = cached_model(model_dir)
@@ -400,6 +404,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
         "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan,
+        **dict.fromkeys(SHARE_COLUMNS, np.nan),
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
     if task.canvas_step:
@@ -472,6 +477,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
         direction_scatter_deg=spread,
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
     )
+    shares = unfamiliarity_parts(model.card.get("unfamiliarity"), result.summary[None, :], model.card["feature_names"])
+    row.update(zip(SHARE_COLUMNS, (float(v) for v in shares[0])))
     row["covered_m2"] = (row["fan_cover"] + row["spot_cover"]) * row["area_m2"]
     entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
     return index, entry

@@ -8,7 +8,17 @@ import numpy as np
 import pytest
 import skimage.data
 
-from detector.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_score
+from detector.unfamiliar import (
+    DEFAULT_PASS_SHARE,
+    SHARE_COLUMNS,
+    UNFAMILIARITY_GROUPS,
+    feature_group_index,
+    pass_threshold,
+    unfamiliarity_contributions,
+    unfamiliarity_distance,
+    unfamiliarity_parts,
+    unfamiliarity_score,
+)
 
 MODEL_DIR = Path(__file__).resolve().parents[2] / "models" / "demo"
 
@@ -102,3 +112,61 @@ def test_shifted_scenes_are_mostly_flagged(tmp_path):
 
     assert sum(flagged) >= 2
     assert 1.0 - binom.cdf(sum(flagged) - 1, len(flagged), 1.0 - DEFAULT_PASS_SHARE) < 0.05
+
+
+# --------------------------------------------------------------------------- which feature groups
+
+
+def _hand_stats():
+    """Four features, two principal components along the first two axes (variances 1 and 4), residual scale 2."""
+    return {"mean": [0.0] * 4, "scale": [1.0] * 4, "components": [[1.0, 0, 0, 0], [0, 1.0, 0, 0]],
+            "variances": [1.0, 4.0], "resid_scale": 2.0, "threshold": 1.0}
+
+
+HAND_NAMES = ["int_mean", "hog_b0_c0_o0", "glcm_contrast_d1_a0", "st_coherence_w64"]
+
+
+def test_group_shares_by_hand():
+    # z = (2, 2, 1, 0). Mahalanobis part over k = 2 components: (2^2 / 1 + 2^2 / 4) / 2 = 2.5, of which
+    # int_mean 2.0 and hog 0.5; residual part (1^2 + 0^2) / 2 = 0.5, all glcm. Squared distance 3:
+    # intensity 2/3, gradients 1/6, co-occurrence 1/6, the rest 0.
+    z = np.array([[2.0, 2.0, 1.0, 0.0]])
+    assert unfamiliarity_contributions(_hand_stats(), z)[0] == pytest.approx([2.0, 0.5, 0.5, 0.0])
+    shares = dict(zip(UNFAMILIARITY_GROUPS, unfamiliarity_parts(_hand_stats(), z, HAND_NAMES)[0]))
+    assert shares == pytest.approx({"intensity": 2 / 3, "gradients": 1 / 6, "cooccurrence": 1 / 6,
+                                    "local_patterns": 0.0, "structure": 0.0, "polarity": 0.0, "other": 0.0})
+    # The score is sqrt(3); without the intensity part it would be sqrt(3 * (1 - 2/3)) = 1.
+    assert unfamiliarity_score(_hand_stats(), z)[0] == pytest.approx(np.sqrt(3.0))
+    # A tile at the training mean has no distance to share; a model without statistics shares nothing.
+    assert np.isnan(unfamiliarity_parts(_hand_stats(), np.zeros((1, 4)), HAND_NAMES)).all()
+    assert np.isnan(unfamiliarity_parts(None, z, HAND_NAMES)).all()
+    with pytest.raises(ValueError, match="feature names"):
+        unfamiliarity_parts(_hand_stats(), z, HAND_NAMES[:3])
+
+
+def test_contributions_sum_to_the_squared_distance():
+    # Rotated components (fitted on correlated data): the per-feature terms mix features, yet add up
+    # exactly to the squared distance computed the usual way (projection and residual).
+    from training.train import fit_unfamiliarity
+
+    rng = np.random.default_rng(3)
+    mix = rng.normal(size=(10, 10))
+    stats = fit_unfamiliarity(rng.normal(size=(200, 10)) @ mix, n_components=4)
+    tiles = 1.5 * rng.normal(size=(50, 10)) @ mix
+    terms = unfamiliarity_contributions(stats, tiles)
+    assert (terms >= 0).all()
+    np.testing.assert_allclose(terms.sum(axis=1), unfamiliarity_distance(stats, tiles) ** 2, rtol=1e-10)
+    names = [f"{p}{i}" for i, p in enumerate(["int_", "hog_", "glcm_", "lbp", "st_", "pol_", "x_"] * 2)][:10]
+    np.testing.assert_allclose(unfamiliarity_parts(stats, tiles, names).sum(axis=1), 1.0)
+
+
+def test_feature_groups_of_the_shipped_model():
+    # Counted by hand from its feature_names: 36 HOG, 72 GLCM, 28 LBP, 11 intensity, 8 structure
+    # tensor, 21 polarity features; none left over.
+    names = json.loads((MODEL_DIR / "model.json").read_text())["feature_names"]
+    counts = np.bincount(feature_group_index(names), minlength=len(UNFAMILIARITY_GROUPS))
+    assert dict(zip(UNFAMILIARITY_GROUPS, counts.tolist())) == {
+        "intensity": 11, "gradients": 36, "cooccurrence": 72, "local_patterns": 28, "structure": 8,
+        "polarity": 21, "other": 0}
+    assert feature_group_index(["unknown_feature"]).tolist() == [len(UNFAMILIARITY_GROUPS) - 1]
+    assert SHARE_COLUMNS[0] == "unfamiliarity_share_intensity" and len(SHARE_COLUMNS) == len(UNFAMILIARITY_GROUPS)
