@@ -36,7 +36,7 @@ import pandas as pd
 
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
-from detector.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold
+from detector.unfamiliar import DEFAULT_PASS_SHARE, FEATURE_GROUPS, SHARE_COLUMNS, pass_threshold
 
 from ._json import jsonable as _jsonable
 from .campaign import DEFAULT_CLASSIFICATIONS_NEEDED, Campaign, date_range, days_for, read_classifications, remaining_classifications
@@ -55,6 +55,7 @@ __all__ = [
     "tile_confidence",
     "route_tiles",
     "tile_detection_summary",
+    "unfamiliar_groups_text",
     "deposit_probability",
     "estimate_effort",
     "effort_summary",
@@ -370,17 +371,57 @@ def _route_codes(nodata, p, unf, conf, has_det, skip, machine, cut):
     return code, unfamiliar
 
 
-def _reasons(code, p, unf, conf, n_det, max_score, *, skip, machine, cut, recall, pass_share):
+#: A feature group is named in an unfamiliar tile's reason from this share of its squared distance up.
+REASON_MIN_SHARE = 0.10
+
+
+def unfamiliar_groups_text(score, shares, cut):
+    """Which feature groups put a tile over the unfamiliarity cut, in words.
+
+    Groups with at least :data:`REASON_MIN_SHARE` of the squared distance are
+    named, largest first, each with the score the tile would have without its
+    part (``score * sqrt(1 - share)``, :func:`detector.unfamiliar.unfamiliarity_parts`);
+    the text ends by naming the groups whose removal alone brings the tile
+    within the cut, or saying that none does.
+
+    Parameters
+    ----------
+    score : float
+        The tile's unfamiliarity score.
+    shares : ndarray of shape (len(UNFAMILIARITY_GROUPS),)
+        Each group's share of the squared distance; NaN when not recorded.
+    cut : float
+
+    Returns
+    -------
+    text : str
+    """
+    shares = np.asarray(shares, dtype=np.float64)
+    if not np.isfinite(shares).all():
+        return "its feature groups were not recorded (screen again with this version to see them)"
+    labels = [label for _, label, _ in FEATURE_GROUPS]
+    order = [g for g in np.argsort(-shares, kind="stable") if shares[g] >= REASON_MIN_SHARE]
+    without = score * np.sqrt(np.clip(1.0 - shares, 0.0, None))
+    parts = ", ".join(f"{labels[g]} {shares[g]:.0%} ({without[g]:.2f} without it)" for g in order)
+    alone = [labels[g] for g in order if without[g] <= cut]
+    tail = (f"without {' or '.join(alone)} alone it would pass" if alone
+            else "no single group's removal brings it within the cut")
+    return f"share of its squared distance from the training tiles: {parts}; {tail}"
+
+
+def _reasons(code, p, unf, conf, n_det, max_score, *, skip, machine, cut, recall, pass_share, shares=None):
     """One sentence per tile saying why it took its route."""
     machine_text = ("no confidence threshold keeps the machine's promise on the held-out tiles" if machine is None
                     else f"below the machine's {machine:.3f}")
+    if shares is None:
+        shares = np.full((len(code), len(FEATURE_GROUPS)), np.nan)
     out = []
-    for c, pi, ui, ci, ni, mi in zip(code, p, unf, conf, n_det, max_score):
+    for c, pi, ui, ci, ni, mi, si in zip(code, p, unf, conf, n_det, max_score, shares):
         if c == _CODE["nodata"]:
             out.append("nodata: under half of the tile's core holds valid pixels")
         elif np.isfinite(ui) and ui > cut:
             out.append(f"crowd, unfamiliar: unfamiliarity {ui:.2f} above {cut:.2f}, the value "
-                       f"{pass_share:.0%} of held-out tiles stay within")
+                       f"{pass_share:.0%} of held-out tiles stay within; {unfamiliar_groups_text(ui, si, cut)}")
         elif c == _CODE["skip"]:
             text = f"skip: p_deposit {pi:.3f} below {skip:.3f}, set to keep {recall:.0%} of held-out deposit area"
             if ni > 0:
@@ -457,8 +498,9 @@ def route_tiles(screen_tiles_df, card, *, recall=DEFAULT_RECALL, max_direction_e
     max_score = pd.to_numeric(screen["max_score"], errors="coerce").to_numpy(np.float64) \
         if "max_score" in screen.columns else conf
     screen["route"] = np.asarray(ROUTES, dtype=object)[code]
+    shares = screen.reindex(columns=list(SHARE_COLUMNS)).apply(pd.to_numeric, errors="coerce").to_numpy(np.float64)
     screen["reason"] = _reasons(code, p, unf, conf, n_det, max_score, skip=skip, machine=machine, cut=cut,
-                                recall=recall, pass_share=pass_share)
+                                recall=recall, pass_share=pass_share, shares=shares)
     screen["unfamiliar"] = unfamiliar
     screen["confidence"] = conf
     screen["n_detections"] = n_det

@@ -234,6 +234,30 @@ def test_a_tile_with_detections_is_never_skipped_without_saying_why():
         assert not (routed["route"].eq("machine") & routed["n_detections"].eq(0)).any()
 
 
+def test_unfamiliar_reason_names_the_feature_groups():
+    # s6: score 1.70 over the cut 0.9; its squared distance 64 % co-occurrence texture, 25 % gradient
+    # histograms, 6 % intensity, 5 % structure. Without co-occurrence: 1.70 * sqrt(0.36) = 1.02, still
+    # above 0.9; without gradients 1.70 * sqrt(0.75) = 1.47. s7: 1.40, 90 % intensity: without it
+    # 1.40 * sqrt(0.1) = 0.44, within the cut.
+    from detector.unfamiliar import SHARE_COLUMNS
+
+    screen = _screen()
+    for column in SHARE_COLUMNS:
+        screen[column] = 0.0
+    screen.loc[6, ["unfamiliarity_share_cooccurrence", "unfamiliarity_share_gradients",
+                   "unfamiliarity_share_intensity", "unfamiliarity_share_structure"]] = [0.64, 0.25, 0.06, 0.05]
+    screen.loc[7, ["unfamiliarity_share_intensity", "unfamiliarity_share_polarity"]] = [0.9, 0.1]
+    reason = dict(zip(*route_tiles(screen, _card())[["tile_id", "reason"]].to_numpy().T))
+    assert reason["s6"] == ("crowd, unfamiliar: unfamiliarity 1.70 above 0.90, the value 95% of held-out tiles stay "
+                            "within; share of its squared distance from the training tiles: co-occurrence texture "
+                            "64% (1.02 without it), gradient histograms 25% (1.47 without it); no single group's "
+                            "removal brings it within the cut")
+    assert reason["s7"].endswith("intensity and darkness 90% (0.44 without it), polarity along the axis 10% "
+                                 "(1.33 without it); without intensity and darkness alone it would pass")
+    # A screening made before the groups were recorded says so.
+    assert "feature groups were not recorded" in route_tiles(_screen(), _card())["reason"][6]
+
+
 def test_unfamiliar_cut_follows_the_pass_share():
     # pass share 0.8: sorted held-out unfamiliarity 0.3, 0.3, 0.4, 0.4, 0.5, 0.5, 0.6, 0.7, 0.8, 0.9;
     # the 8th smallest (0.7) is the cut, so 8 of 10 pass and h8, h9 would not; s4 (0.6) passes.
@@ -578,6 +602,10 @@ def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
                         campaign=Campaign(classifications=root / "demo_tiles"), log=lambda *_: None)
     routes = pd.read_csv(tmp_path / "screen" / "routes.csv")
     detections = pd.read_csv(tmp_path / "screen" / "detections.csv")
+    from detector.unfamiliar import SHARE_COLUMNS
+
+    shares = pd.read_csv(tmp_path / "screen" / "tiles.csv")[list(SHARE_COLUMNS)]
+    np.testing.assert_allclose(shares.sum(axis=1), 1.0, rtol=1e-9)
     counted = detections.groupby("tile_id").size().reindex(routes["tile_id"]).fillna(0).to_numpy()
     assert routes["n_detections"].tolist() == counted.tolist()
     assert routes["reason"].str.match(r"^(skip|machine|crowd|nodata)").all()
