@@ -487,7 +487,8 @@ def backtest_table(result):
             lines.append(f"| {p['route']} | {p['tiles']} | {p['promise']} | {p['heldout'] or '-'} | {p['backtest']} | "
                          f"{kept} |")
     if result.get("machine_tested") is False:
-        lines += ["", f"Machine route: {result['machine_statement']}."]
+        statement = result["machine_statement"]
+        lines += ["", f"{statement[:1].upper()}{statement[1:]}."]
     workload = result.get("crowd_workload")
     if workload:
         lines += ["", "Sent to the crowd (a routing figure, not an estimate of the need): " + "; ".join(

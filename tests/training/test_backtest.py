@@ -167,7 +167,7 @@ def test_backtest_end_to_end(tmp_path):
     if saved["routes"]["machine"] == 0:
         assert saved["machine_tested"] is False
         assert saved["machine_statement"].startswith("no tile reached the machine route")
-        assert "Machine route: no tile reached the machine route" in md
+        assert "\nNo tile reached the machine route: " in md
 
 
 def test_backtest_refuses_training_images(tmp_path):
