@@ -135,6 +135,19 @@ def _pool_valid_share(valid, r, c, spec):
     return _dense.box(table, i0, j0, i0 + k, j0 + k)[:, 0] / spec.patch_px**2
 
 
+#: Guards of the shape features against degenerate patches. Gradient energy (mean squared
+#: gradient over the tile's robust spread squared) below which a patch is flat:
+_FLAT_ENERGY = 1e-8
+#: Anisotropy (|eigenvalue difference| / trace) below which a tensor or a dark mass has no axis.
+_MIN_COHERENCE = 1e-3
+#: Variance along or across the axis (px^2) below which skewness and widening are undefined.
+_MIN_SPREAD_PX2 = 0.25
+#: Largest magnitude of skewness and widening.
+_SHAPE_BOUND = 20.0
+#: Summed darkness of a patch below which it holds no dark mass.
+_MIN_DARK_MASS = 1e-6
+
+
 def _safe_div(a, b):
     return np.divide(a, b, out=np.zeros(np.broadcast(a, b).shape), where=b > 0)
 
@@ -353,9 +366,14 @@ class _Pooler:
                    * (np.clip(j1, 0, self.ncc) - np.clip(j0, 0, self.ncc)) * spec.cell_px**2)
             jxx, jyy, jxy = J[:, 0], J[:, 1], J[:, 2]
             norm = np.hypot(jxx - jyy, 2 * jxy)
-            cos2, sin2 = _safe_div(jxx - jyy, norm), _safe_div(2 * jxy, norm)
             trace = jxx + jyy
-            cols += [cos2, sin2, _safe_div(norm, trace), trace / npx / prep.scale**2]
+            energy = trace / npx / prep.scale**2
+            # A flat (or nearly flat) patch, or one whose gradients point every way alike, has no
+            # axis: rounding residue must not give it one that flips from patch to patch.
+            oriented = (energy > _FLAT_ENERGY) & (norm > _MIN_COHERENCE * trace)
+            norm = np.where(oriented, norm, 0.0)
+            cos2, sin2 = _safe_div(jxx - jyy, norm), _safe_div(2 * jxy, norm)
+            cols += [cos2, sin2, _safe_div(norm, trace), np.where(energy > _FLAT_ENERGY, energy, 0.0)]
             axis = (cos2, sin2)
         return np.stack(cols, axis=1), axis
 
@@ -381,6 +399,9 @@ class _Pooler:
         m_cells = np.stack([(bx[p] * (y**q)[:, :, None]).sum(axis=1) for p, q in powers], axis=-1)
         M = self.pool(m_cells)
         m00 = M[:, powers.index((0, 0))]
+        # darkness summed over the patch (robust z units): below this there is no dark mass to describe
+        has_mass = m00 > _MIN_DARK_MASS
+        m00 = np.where(has_mass, m00, 0.0)
         E = {pq: _safe_div(M[:, i], m00) for i, pq in enumerate(powers)}
         # moments about the patch centre: E[(x - cx)^p (y - cy)^q]
         from math import comb
@@ -407,9 +428,15 @@ class _Pooler:
         var_t = np.maximum(t2 - t1**2, 0)
         mu3 = s3 - 3 * s1 * s2 + 2 * s1**3
         centroid = s1 / spec.patch_px
-        skew = _safe_div(mu3, var_s**1.5 + 1e-12)
+        # Skewness and widening are shape ratios: below a quarter pixel of spread (a dot, a line
+        # one pixel wide, no dark mass) their denominators are rounding residue, so they are 0
+        # there, and they are bounded where they are defined.
+        spread_s = has_mass & (var_s > _MIN_SPREAD_PX2)
+        spread_st = spread_s & (var_t > _MIN_SPREAD_PX2)
+        skew = np.clip(_safe_div(mu3, np.where(spread_s, var_s, 0.0) ** 1.5), -_SHAPE_BOUND, _SHAPE_BOUND)
         widen = st2 - 2 * t1 * st - s1 * t2 + 2 * s1 * t1**2
-        widen = _safe_div(widen, np.sqrt(var_s) * var_t + 1e-12)
+        widen = np.clip(_safe_div(widen, np.where(spread_st, np.sqrt(var_s) * var_t, 0.0)),
+                        -_SHAPE_BOUND, _SHAPE_BOUND)
 
         # near-far halves from the patch's cells, soft sign of each cell centre's s
         offs = (np.arange(k) + 0.5) * cp - spec.patch_px / 2.0
@@ -422,6 +449,7 @@ class _Pooler:
         cyy = np.maximum(C[(0, 2)] - C[(0, 1)] ** 2, 0)
         cxy = C[(1, 1)] - C[(1, 0)] * C[(0, 1)]
         n2 = np.hypot(cxx - cyy, 2 * cxy)
+        n2 = np.where(n2 > _MIN_COHERENCE * (cxx + cyy), n2, 0.0)  # a round dark mass has no axis
         dark_cos2, dark_sin2 = -_safe_div(cxx - cyy, n2), -_safe_div(2 * cxy, n2)
         elong = _safe_div(n2, cxx + cyy)
         return np.concatenate(

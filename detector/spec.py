@@ -24,7 +24,7 @@ __all__ = [
 ]
 
 #: Bumped whenever a feature's definition or order changes.
-FEATURE_VERSION = 1
+FEATURE_VERSION = 2
 
 #: Polarity features whose value changes sign when the patch axis is flipped by
 #: 180 degrees (equivalently, when the patch content is rotated by 180 degrees).

@@ -468,3 +468,50 @@ def test_square_erosion_equals_scipy_minimum_filter(size):
     mask[:, :3] = True
     ref = ndi.minimum_filter(mask, size=size, mode="nearest")
     np.testing.assert_array_equal(_dense.erode_square(mask, size), ref)
+
+
+def _feature(X, name):
+    return X[:, SPEC.feature_names.index(name)]
+
+
+@pytest.mark.parametrize("mark", ["dot", "line", "diagonal", "faint", "none"])
+def test_degenerate_patches_have_no_axis_and_bounded_shape(mark):
+    # A flat tile with at most one dark pixel, a one-pixel line, or one pixel darker by 1e-6 (rounding
+    # residue). Where scikit-image's structure tensor (skimage.feature.structure_tensor) is zero the
+    # patch has no axis, so every axis feature is exactly 0 there (no sign picked from residue); the
+    # widening across the axis of a dark mass of no width is undefined, so it is 0, never a ratio of
+    # residues; skewness and widening stay finite and bounded everywhere.
+    tile = np.full((256, 448), 120, np.uint8)
+    if mark == "dot":
+        tile[100, 130] = 20
+    elif mark == "line":
+        tile[100, 60:200] = 20
+    elif mark == "diagonal":
+        tile[np.arange(60, 140), np.arange(100, 180)] = 20
+    elif mark == "faint":
+        tile = np.full((256, 448), 0.5)
+        tile[100, 130] = 0.5 - 1e-6
+    X, grid = extract_features(tile, SPEC)
+    assert np.isfinite(X).all()
+    for name in ("pol_skew_along", "pol_widening"):
+        assert np.abs(_feature(X, name)).max() <= 20.0
+    if mark in ("line", "diagonal"):
+        np.testing.assert_array_equal(_feature(X, "pol_widening"), 0.0)
+    A_rr, A_rc, A_cc = structure_tensor(np.asarray(tile, float), sigma=SPEC.st_tensor_sigma)
+    no_gradient = (np.abs(A_rr) + np.abs(A_rc) + np.abs(A_cc)) == 0
+    # patches whose 128 px context holds no gradient at all: far from the mark
+    still = ndi.minimum_filter(no_gradient.astype(np.uint8), size=2 * 70 + 1, mode="nearest").astype(bool)
+    far = still[grid.y_px.astype(int), grid.x_px.astype(int)]
+    axis_names = ("st_axis_cos2_w64", "st_axis_sin2_w64", "st_axis_cos2_w128", "st_axis_sin2_w128",
+                  "pol_axis_cos2", "pol_axis_sin2", "pol_dark_axis_cos2", "pol_dark_axis_sin2")
+    if mark == "faint":
+        # a residue of 1e-6 has no axis anywhere, and gives shape ratios of residue size only
+        for name in axis_names:
+            np.testing.assert_array_equal(_feature(X, name), 0.0, err_msg=name)
+        assert np.abs(X[:, [SPEC.feature_names.index(n) for n in ("pol_skew_along", "pol_widening")]]).max() < 1e-3
+        return
+    if mark == "none":
+        far = np.ones(grid.n_patches, bool)
+    assert far.any()
+    for name in axis_names + ("pol_skew_along", "pol_widening"):
+        np.testing.assert_array_equal(_feature(X, name)[far], 0.0, err_msg=name)
