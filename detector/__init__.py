@@ -7,7 +7,7 @@ The public API (everything else is private or lives in its module):
 - features: :class:`FeatureSpec`, :data:`FEATURE_VERSION`, :func:`extract_features`,
   :func:`patch_grid`, :func:`patch_targets`, :class:`PatchGrid`
 - models: :func:`load_model`, :class:`Model`, :func:`detect_tile`, :class:`TileResult`
-- screening: :func:`detector.screen.screen` (module ``detector.screen``)
+- screening: :func:`detector.screening.screen` (package ``detector.screening``)
 - conventions: :func:`direction_deg`, :func:`unit_vector`, :func:`angular_difference`
 - circular statistics: :func:`circular_mean`, :func:`circular_std`, :func:`rayleigh_test`
 - errors: :class:`DetectorError`, :class:`TileSetError`, :class:`SpecError`, :class:`ImageError`,
@@ -15,13 +15,13 @@ The public API (everything else is private or lives in its module):
 """
 
 from .circstats import circular_mean, circular_std, rayleigh_test
-from .detect import TileResult, detect_tile
+from .inference.detect import TileResult, detect_tile
 from .errors import DetectorError, ImageError, ModelError, SpecError, TileSetError
-from .features import PatchGrid, extract_features, patch_grid, patch_targets
+from .tile.features import PatchGrid, extract_features, patch_grid, patch_targets
 from .geometry import angular_difference, direction_deg, unit_vector
 from .labels import LabelMasks, rasterise_features
-from .model import Model, load_model
-from .spec import FEATURE_VERSION, FeatureSpec
+from .inference.model import Model, load_model
+from .tile.spec import FEATURE_VERSION, FeatureSpec
 from .tileset import TileSet, format_summary, load_tileset, summarize_tileset
 
 

@@ -17,7 +17,8 @@ COMPILING_MESSAGE = "frostvane: compiling the pixel loops once (1-2 minutes on a
 
 def _sentinels():
     """Compiled loops every detected tile runs through: features, candidates, readings."""
-    from . import _kernels, _readings
+    from .tile import _kernels
+    from .objects import _readings
 
     return {
         "_kernels.lbp_codes": _kernels.lbp_codes,

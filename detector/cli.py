@@ -52,6 +52,6 @@ def _validate(args):
 
 
 def _screen(args):
-    from .screen import screen_command
+    from .screening.screen import screen_command
 
     screen_command(args)

@@ -3,7 +3,7 @@
 import json
 import shutil
 
-from detector.model import sha256_file
+from detector.inference.model import sha256_file
 
 from training.cli import main
 

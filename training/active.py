@@ -102,7 +102,7 @@ def greedy_order(uncertainty, vectors):
 
 
 def _describe_tiles(model, tileset, tile_ids):
-    from detector.detect import detect_tile
+    from detector.inference.detect import detect_tile
 
     stats = model.card.get("unfamiliarity") or {}
     rows, vectors = [], []
@@ -135,7 +135,7 @@ def rank_tiles(model_dir, tileset_root, tile_ids=None, *, log=print):
         ``rank`` (1 = label first), ``tile_id``, ``uncertainty``, ``gain`` (the
         uncertainty-times-diversity value at its pick), ``p_deposit``, ``n_detections``.
     """
-    from detector.model import load_model
+    from detector.inference.model import load_model
     from detector.tileset import load_tileset
 
     model = load_model(model_dir)

@@ -333,8 +333,8 @@ def backtest(model_dir, tileset_root, out, *, campaign=None, states=CAMPAIGN_STA
         ``crowd_workload`` per state, ``routes`` (tiles per route),
         ``checks`` (covered of counted), ``seconds``.
     """
-    from detector.model import load_model
-    from detector.screen import screen
+    from detector.inference.model import load_model
+    from detector.screening.screen import screen
     from detector.tileset import load_tileset
 
     from .effort import _read_screen, estimate_effort, route_tiles

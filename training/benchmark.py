@@ -312,7 +312,7 @@ def _error_shares(detections, consensus, tiles):
 def _score_set(name, root, model, *, workers, min_score, log):
     """Model, threshold baseline and truth ceiling on one set."""
     from detector.tileset import load_tileset
-    from detector.unfamiliar import unfamiliarity_score
+    from detector.inference.unfamiliar import unfamiliarity_score
 
     from .evaluate import run_on_tiles
     from .scoring import score_catalogs
@@ -380,7 +380,7 @@ def run_benchmark(model_dir, bench, out, *, workers=2, min_score=None, compare=N
     results : dict
         What ``benchmark.json`` holds.
     """
-    from detector.model import load_model
+    from detector.inference.model import load_model
 
     from .evaluate import write_detections_csv
     from .report import _clean

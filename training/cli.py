@@ -11,7 +11,7 @@ from pathlib import Path
 from detector.cli import add_detector_commands
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
-from detector.unfamiliar import DEFAULT_PASS_SHARE
+from detector.inference.unfamiliar import DEFAULT_PASS_SHARE
 
 from .effort import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
 

@@ -6,9 +6,9 @@ import numpy as np
 from joblib import delayed
 from tqdm.auto import tqdm
 
-from detector.detect import tile_summary_vector
-from detector.features import extract_features, patch_targets
-from detector.spec import patch_axis_deg
+from detector.inference.detect import tile_summary_vector
+from detector.tile.features import extract_features, patch_targets
+from detector.tile.spec import patch_axis_deg
 from detector.labels import rasterise_features
 from detector._allocator import reuse_freed_memory
 

@@ -110,10 +110,10 @@ def run_demo(out, *, tiles, model, retrain=False):
     """
     from affine import Affine
 
-    from detector.geo import MARS_SOUTH_POLAR_STEREO
-    from detector.model import load_model
+    from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
+    from detector.inference.model import load_model
     from detector.plots import plot_overlay
-    from detector.raster import mosaic_tiles
+    from detector.gis.raster import mosaic_tiles
 
     from .evaluate import evaluate_model
 
@@ -153,7 +153,7 @@ def run_demo(out, *, tiles, model, retrain=False):
           f"{out / 'report' / 'worst_tiles'})")
 
     _section("4. screen a whole demo image (a georeferenced GeoTIFF mosaic of its tiles)")
-    from detector.screen import screen
+    from detector.screening.screen import screen
 
     image_id = unseen[0]
     mpp = float(tileset.tiles.loc[tileset.tiles["image_id"] == image_id, "metres_per_px"].iloc[0])

@@ -36,7 +36,7 @@ import pandas as pd
 
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
-from detector.unfamiliar import DEFAULT_PASS_SHARE, FEATURE_GROUPS, SHARE_COLUMNS, pass_threshold
+from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, FEATURE_GROUPS, SHARE_COLUMNS, pass_threshold
 
 from ._json import jsonable as _jsonable
 from .campaign import DEFAULT_CLASSIFICATIONS_NEEDED, Campaign, date_range, days_for, read_classifications, remaining_classifications
@@ -1002,7 +1002,7 @@ def _check_against_run(screen_dir, path, tiles):
 
 def _read_card(model_dir):
     """The card of a model whose ONNX files and card schema pass :func:`detector.model.load_model`."""
-    from detector.model import load_model
+    from detector.inference.model import load_model
 
     return load_model(model_dir).card
 
@@ -1016,7 +1016,7 @@ def check_screen_model(model_dir, screen_dir):
         The screening folder has no readable run.json or a model hash other
         than the sha256 of ``model_dir/model.json``.
     """
-    from detector.model import MODEL_CARD, sha256_file
+    from detector.inference.model import MODEL_CARD, sha256_file
 
     run_path = Path(screen_dir) / "run.json"
     try:
@@ -1085,7 +1085,7 @@ def run_effort(model_dir, screen_dir, *, out=None, campaign=None, recall=DEFAULT
     written = [out / "effort.json", out / "routes.csv"]
     gpkg = Path(screen_dir) / "detections.gpkg"
     if gpkg.is_file():
-        from detector.gpkg import update_tile_routes
+        from detector.gis.gpkg import update_tile_routes
 
         update_tile_routes(gpkg, dict(zip(routed["tile_id"].astype(str), routed["route"].astype(str), strict=True)))
     if plots:

@@ -6,16 +6,16 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from detector.assemble import OBJECT_COLUMNS
+from detector.objects.assemble import OBJECT_COLUMNS
 from detector.contract import DETECTION_COLUMNS, TRUTH_FILE
-from detector.detect import detect_tile
+from detector.inference.detect import detect_tile
 from detector.errors import DetectorError, TileSetError
-from detector.features import extract_features, patch_targets
+from detector.tile.features import extract_features, patch_targets
 from detector.io import atomic_dir, atomic_path
 from detector.labels import rasterise_features
-from detector.model import CLASS_NAMES, cached_model, load_model
+from detector.inference.model import CLASS_NAMES, cached_model, load_model
 from detector.tileset import load_tileset
-from detector.unfamiliar import unfamiliarity_score
+from detector.inference.unfamiliar import unfamiliarity_score
 from detector._allocator import reuse_freed_memory
 
 from .diagnose import error_breakdown, write_error_analysis
@@ -274,7 +274,7 @@ def _provenance(model, model_dir, tileset_root):
     import datetime
 
     from detector.contract import CONSENSUS_FILE, TILES_FILE
-    from detector.model import MODEL_CARD, sha256_file
+    from detector.inference.model import MODEL_CARD, sha256_file
 
     model_dir, root = Path(model_dir), Path(tileset_root)
     return {

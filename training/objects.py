@@ -13,9 +13,9 @@ import pandas as pd
 from joblib import delayed
 from tqdm.auto import tqdm
 
-from detector.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
-from detector.detect import tile_candidates, tile_maps
-from detector.features import extract_features
+from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
+from detector.inference.detect import tile_candidates, tile_maps
+from detector.tile.features import extract_features
 from detector._allocator import reuse_freed_memory
 
 from .dataset import augmented_tile

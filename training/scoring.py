@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from detector.circstats import grouped_circular_mean
-from detector.detect import fan_direction_weights, tile_direction_stats
+from detector.inference.detect import fan_direction_weights, tile_direction_stats
 from detector.errors import DetectorError
 from detector.geometry import angular_difference, axial_difference
 

@@ -11,13 +11,13 @@ from pathlib import Path
 import numpy as np
 from scipy.optimize import minimize
 
-from detector.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
+from detector.objects.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
 from detector.circstats import circular_mean
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError, TileSetError
 from detector.geometry import angular_difference
 from detector.io import atomic_dir
-from detector.model import (
+from detector.inference.model import (
     CLASS_NAMES,
     DETECTOR_ONNX,
     MODEL_CARD,
@@ -28,9 +28,9 @@ from detector.model import (
     Calibration,
     sha256_file,
 )
-from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
+from detector.tile.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
-from detector.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
+from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
 
 from .dataset import build_patch_set, rotation_jobs
 from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly

@@ -532,7 +532,7 @@ def read_model_winds(path):
 
 def _distance_km(lon1, lat1, lon2, lat2):
     """Great-circle distance on the Mars sphere, km (haversine)."""
-    from detector.geo import MARS_RADIUS_M
+    from detector.gis.geo import MARS_RADIUS_M
 
     p1, p2 = np.radians(lat1), np.radians(lat2)
     dl = np.radians(np.asarray(lon2, dtype=float) - lon1)
@@ -816,7 +816,7 @@ def write_winds(analysis, out, *, force=False):
     with atomic_dir(out, replace=True) as tmp:
         for name, table in tables.items():
             table.to_csv(tmp / name, index=False, float_format="%.6g")
-        from detector.geojson import write_geojson
+        from detector.gis.geojson import write_geojson
 
         write_geojson(tmp / "bins.geojson", _bins_geojson(analysis.bins, analysis.frame_label))
         n_gpkg = _write_geopackage(tmp / "bins.gpkg", analysis.bins)

@@ -63,8 +63,8 @@ def _naive(tile, spec, n_patches):
     """Per-patch loop of scikit-image calls over the first ``n_patches`` windows."""
     from skimage.feature import graycomatrix, graycoprops, hog, local_binary_pattern, structure_tensor
 
-    from detector import _dense
-    from detector.features import patch_grid
+    from detector.tile import _dense
+    from detector.tile.features import patch_grid
 
     prep = _dense.prepare_tile(tile, spec)
     q = _dense.quantise(prep.image, prep.lo, prep.hi, spec.glcm_levels).astype(np.uint8)
@@ -91,8 +91,8 @@ def _naive(tile, spec, n_patches):
 
 
 def worker_tile(args):
-    from detector.features import extract_features
-    from detector.spec import FeatureSpec
+    from detector.tile.features import extract_features
+    from detector.tile.spec import FeatureSpec
 
     spec = FeatureSpec()
     tile = _scene((600, 800), seed=1)
@@ -144,8 +144,8 @@ def worker_large(args):
     import rasterio
     from rasterio.windows import Window
 
-    from detector.features import extract_features, patch_grid
-    from detector.spec import FeatureSpec
+    from detector.tile.features import extract_features, patch_grid
+    from detector.tile.spec import FeatureSpec
 
     spec = FeatureSpec()
     margin = spec.patch_px - spec.stride_px

@@ -21,8 +21,8 @@ _WRITE = """
 import json, resource, sys, time
 import numpy as np
 from affine import Affine
-from detector.geo import MARS_SOUTH_POLAR_STEREO
-from detector.raster import write_by_windows
+from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
+from detector.gis.raster import write_by_windows
 
 path, size = sys.argv[1], int(sys.argv[2])
 
@@ -41,7 +41,7 @@ print(json.dumps({"seconds": time.perf_counter() - t,
 
 _READ = """
 import json, resource, sys, time
-from detector.raster import open_raster
+from detector.gis.raster import open_raster
 
 t = time.perf_counter()
 total = 0

@@ -76,8 +76,8 @@ def _scene_source(seed=0):
 def _write(path, width, height, fill):
     from affine import Affine
 
-    from detector.geo import MARS_SOUTH_POLAR_STEREO
-    from detector.raster import write_by_windows
+    from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
+    from detector.gis.raster import write_by_windows
 
     transform = Affine(1.0, 0.0, 250_000.0, 0.0, -1.0, 20_000.0)
     write_by_windows(path, width, height, fill, crs=MARS_SOUTH_POLAR_STEREO, transform=transform, window=1024)

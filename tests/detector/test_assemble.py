@@ -6,8 +6,8 @@ import pytest
 from scipy import ndimage
 from scipy.interpolate import RegularGridInterpolator
 
-from detector import _readings
-from detector.assemble import (
+from detector.objects import _readings
+from detector.objects.assemble import (
     _box_mean,
     PatchField,
     AssemblyParams,
@@ -24,10 +24,10 @@ from detector.assemble import (
     reading_matrix,
     upsample_patch_maps,
 )
-from detector.features import patch_grid
+from detector.tile.features import patch_grid
 from detector.geometry import angular_difference, axial_difference
 from detector.labels import rasterise_features
-from detector.spec import FeatureSpec
+from detector.tile.spec import FeatureSpec
 
 SHAPE = (220, 220)
 APEX = (110.0, 110.0)
@@ -463,7 +463,7 @@ def test_objects_respect_min_score(two_candidates):
 def test_components_are_numbered_and_described_as_scipy_does(seed):
     # scipy.ndimage.label (default 4-connected cross), find_objects and numpy's bincount
     # and nonzero are the reference for the one compiled labelling pass.
-    from detector import _kernels
+    from detector.tile import _kernels
 
     rng = np.random.default_rng(seed)
     shape = tuple(int(v) for v in rng.integers(1, 140, 2)) if seed else (664, 864)
@@ -490,7 +490,7 @@ def test_components_are_numbered_and_described_as_scipy_does(seed):
 
 def test_spiral_component_merges_to_one_label():
     # a spiral meets itself from below many times: every provisional label merges into one
-    from detector import _kernels
+    from detector.tile import _kernels
 
     mask = np.zeros((41, 41), dtype=bool)
     r0, r1, c0, c1 = 0, 40, 0, 40
@@ -509,7 +509,7 @@ def test_spiral_component_merges_to_one_label():
 @pytest.mark.parametrize("shape", [(664, 864), (30, 20), (5, 70), (3, 3)])
 @pytest.mark.parametrize("sigma", [0.7, 1.0, 2.5, 3.0])  # radius 3 (odd), 4, 10, 12
 def test_gaussian_equals_scipy_gaussian_filter_to_the_last_bit(shape, sigma):
-    from detector import _kernels
+    from detector.tile import _kernels
 
     image = (np.random.default_rng(9).random(shape) * 5).astype(np.float32)
     image[image < 1] = 0
@@ -521,7 +521,7 @@ def test_gaussian_equals_scipy_gaussian_filter_to_the_last_bit(shape, sigma):
 
 @pytest.mark.parametrize("seed", range(4))
 def test_city_block_ring_equals_scipy_iterated_dilation(seed):
-    from detector import _kernels
+    from detector.tile import _kernels
 
     rng = np.random.default_rng(30 + seed)
     local = ndimage.binary_opening(rng.random((40, 55)) > 0.7)
@@ -541,7 +541,7 @@ def test_patch_field_compiled_read_equals_numpy(grid_and_values):
 
 @pytest.mark.parametrize("shape", [(40, 55), (5, 9), (3, 30)])
 def test_separable_running_maximum_equals_scipy_maximum_filter(shape):
-    from detector import _kernels
+    from detector.tile import _kernels
 
     x = np.random.default_rng(shape[0]).random(shape).astype(np.float32)
     mine = _kernels.running_extreme(_kernels.running_extreme(x, 15, 0, True), 15, 1, True)
@@ -551,7 +551,7 @@ def test_separable_running_maximum_equals_scipy_maximum_filter(shape):
 @pytest.mark.parametrize("n", [1, 2, 3, 8, 39, 1000, 1001])
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_median_equals_numpy_to_the_last_bit(n, dtype):
-    from detector.assemble import _median
+    from detector.objects.assemble import _median
 
     v = (np.random.default_rng(n).standard_normal(n) * 3).astype(dtype)
     v[::5] = np.round(v[::5])  # ties

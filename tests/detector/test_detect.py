@@ -4,10 +4,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from detector.assemble import OBJECT_COLUMNS
+from detector.objects.assemble import OBJECT_COLUMNS
 from detector.contract import DETECTION_COLUMNS
-from detector.detect import detect_tile
-from detector.model import load_model
+from detector.inference.detect import detect_tile
+from detector.inference.model import load_model
 from detector.tileset import load_tileset
 
 

@@ -7,11 +7,11 @@ from scipy import ndimage as ndi
 from scipy.stats import circmean
 from skimage.feature import graycomatrix, graycoprops, hog, local_binary_pattern, structure_tensor
 
-from detector import _dense
+from detector.tile import _dense
 from detector.errors import ImageError
-from detector.features import extract_features, flip_polarity, patch_grid, patch_targets
+from detector.tile.features import extract_features, flip_polarity, patch_grid, patch_targets
 from detector.geometry import axial_difference, unit_vector
-from detector.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec, patch_axis_deg
+from detector.tile.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec, patch_axis_deg
 
 SPEC = FeatureSpec()
 
@@ -90,7 +90,7 @@ def test_cell_sums_equal_numpy_reduction_bit_for_bit(shape, cell_px):
 def test_intensity_maps_equal_the_numpy_formulas_bit_for_bit(with_nodata):
     # numpy's float32 arithmetic, np.clip and the cell reduction are the reference; the signs of
     # zeros count too (a negative z times an invalid pixel's 0 is -0.0 in numpy as well).
-    from detector import _kernels
+    from detector.tile import _kernels
 
     rng = np.random.default_rng(4)
     image = rng.random((130, 170)).astype(np.float32)
@@ -114,7 +114,7 @@ def test_intensity_maps_equal_the_numpy_formulas_bit_for_bit(with_nodata):
 
 
 def test_u16_histogram_equals_numpy_bincount():
-    from detector import _kernels
+    from detector.tile import _kernels
 
     rng = np.random.default_rng(6)
     u16 = rng.integers(0, 65536, size=(97, 131)).astype(np.uint16)

@@ -6,7 +6,7 @@ import pytest
 from affine import Affine
 
 from detector.errors import DetectorError
-from detector.geo import (
+from detector.gis.geo import (
     MARS_EQUIRECTANGULAR,
     MARS_GEOGRAPHIC,
     MARS_RADIUS_M,

@@ -9,8 +9,8 @@ import pyproj
 from affine import Affine
 
 from detector.errors import DetectorError
-from detector.geo import MARS_SOUTH_POLAR_STEREO, Georeferencer
-from detector.geojson import detections_to_geojson, ring_signed_area, split_lonlat_ring, write_geojson
+from detector.gis.geo import MARS_SOUTH_POLAR_STEREO, Georeferencer
+from detector.gis.geojson import detections_to_geojson, ring_signed_area, split_lonlat_ring, write_geojson
 
 
 def _detections():
@@ -152,7 +152,7 @@ def test_empty_and_bad_detections():
 
 
 def test_chunked_writing_equals_one_collection(tmp_path):
-    from detector.geojson import write_geojson, write_geojson_chunks
+    from detector.gis.geojson import write_geojson, write_geojson_chunks
 
     def collection(k0, k1):
         return {"type": "FeatureCollection",

@@ -35,7 +35,7 @@ def test_empty_cache_is_cold_and_announced(tmp_path):
 
 def test_a_loop_compiled_into_the_cache_reads_warm(tmp_path):
     code = ("import numpy as np\n"
-            "from detector import _jit, _kernels\n"
+            "from detector import _jit\nfrom detector.tile import _kernels\n"
             "_kernels.cell_sums_f32(np.zeros((16, 16), np.float32), 16, 1, 1)\n"
             "print(sorted(_jit.cold_kernels()))\n")
     first = _python(code, tmp_path)

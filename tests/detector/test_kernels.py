@@ -8,7 +8,7 @@ refused by name before the loop runs (compiled loops do not check bounds).
 import numpy as np
 import pytest
 
-from detector import _kernels
+from detector.tile import _kernels
 from detector.errors import DetectorError, KernelRangeError
 
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from detector.errors import ModelError, SpecError
-from detector.model import DETECTOR_ONNX, MODEL_CARD, ORIENTATION_ONNX, Calibration, load_model
+from detector.inference.model import DETECTOR_ONNX, MODEL_CARD, ORIENTATION_ONNX, Calibration, load_model
 from training.export import onnx_parity, to_onnx_bytes
 
 

@@ -7,9 +7,9 @@ import rasterio
 from affine import Affine
 
 from detector.errors import ImageError, SpecError, TileSetError
-from detector.geo import MARS_SOUTH_POLAR_STEREO
+from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
 from detector.io import write_image
-from detector.raster import (
+from detector.gis.raster import (
     TileWindow,
     mosaic_tiles,
     open_raster,

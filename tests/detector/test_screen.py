@@ -18,10 +18,10 @@ from affine import Affine
 from PIL import Image
 
 from detector.contract import DETECTION_COLUMNS
-from detector.geo import MARS_SOUTH_POLAR_STEREO
+from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
 from detector.io import write_image
-from detector.raster import write_geotiff
-from detector.screen import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
+from detector.gis.raster import write_geotiff
+from detector.screening.screen import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
 from training.cli import main as cli_main
 
 REPO = Path(__file__).resolve().parents[2]
@@ -44,12 +44,12 @@ def _build_small_model(folder, seed=0):
     from sklearn.ensemble import HistGradientBoostingClassifier
     from threadpoolctl import threadpool_limits
 
-    from detector.assemble import AssemblyParams
-    from detector.features import extract_features
-    from detector.assemble import OBJECT_FEATURE_NAMES
-    from detector.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, OBJECTS_ONNX,
+    from detector.objects.assemble import AssemblyParams
+    from detector.tile.features import extract_features
+    from detector.objects.assemble import OBJECT_FEATURE_NAMES
+    from detector.inference.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, OBJECTS_ONNX,
                                 ORIENTATION_ONNX, sha256_file)
-    from detector.spec import POLARITY_ODD_FEATURES, FeatureSpec
+    from detector.tile.spec import POLARITY_ODD_FEATURES, FeatureSpec
     from training.export import to_onnx_bytes
     from training.synth import render_scene, to_uint8
     from training.train import orientation_feature_names
@@ -623,7 +623,7 @@ def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_p
     # The canvas the outputs draw is every step-th pixel of each file, no-data as NaN,
     # read again from the files (numpy striding of rasterio's reads is the reference).
     # The workers' samples of their tile cores must rebuild exactly that canvas.
-    from detector import screen as S
+    from detector.screening import screen as S
 
     if source == "tile_set":
         inputs = [REPO / "demo_tiles"]
@@ -760,7 +760,7 @@ def test_run_record_that_is_not_an_object_is_refused(model_dir, png_image, tmp_p
 @pytest.mark.parametrize("error", [PermissionError(13, "Permission denied"), OSError(28, "No space left on device")])
 def test_unwritable_output_gives_one_line_and_a_rerun_succeeds(model_dir, png_image, tmp_path, capsys, monkeypatch,
                                                                error):
-    import detector.screen as screen_module
+    import detector.screening.screen as screen_module
 
     def refuse(*args, **kwargs):
         error.filename = str(tmp_path / "out" / "tiles.csv")

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from detector.errors import SpecError
-from detector.spec import (
+from detector.tile.spec import (
     FEATURE_VERSION,
     POLARITY_AXIS_FEATURES,
     POLARITY_ODD_FEATURES,

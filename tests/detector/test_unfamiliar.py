@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import skimage.data
 
-from detector.unfamiliar import (
+from detector.inference.unfamiliar import (
     DEFAULT_PASS_SHARE,
     SHARE_COLUMNS,
     UNFAMILIARITY_GROUPS,
@@ -79,8 +79,8 @@ def test_shipped_model_held_out_tiles_pass_at_the_stated_share():
 def test_real_deposit_free_textures_are_flagged(name):
     # scikit-image's sample textures (an outside dataset with no frost deposits) lie beyond the cut
     # that 95 % of the shipped model's held-out tiles pass.
-    from detector.detect import detect_tile
-    from detector.model import load_model
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
 
     model = load_model(MODEL_DIR)
     scores = [t["unfamiliarity"] for t in model.card["heldout_tiles"]]
@@ -95,8 +95,8 @@ def test_shifted_scenes_are_mostly_flagged(tmp_path):
     # Scenes rendered outside the training settings (blur, noise, faint deposits) are flagged far more
     # often than the 5 % of in-distribution tiles: under a 5 % rate, 2 or more of 6 has probability
     # 1 - binom.cdf(1, 6, 0.05) = 0.033 (scipy.stats).
-    from detector.detect import detect_tile
-    from detector.model import load_model
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
     from detector.tileset import load_tileset
     from training.synth import synthesize_tileset
 

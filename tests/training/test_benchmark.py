@@ -180,9 +180,9 @@ def test_shipped_model_leaves_real_textures_to_people_or_quiet(name):
     # either flags the tile unfamiliar (so screening leaves it to people) or detects nothing on it.
     from pathlib import Path
 
-    from detector.detect import detect_tile
-    from detector.model import load_model
-    from detector.unfamiliar import unfamiliarity_score
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
+    from detector.inference.unfamiliar import unfamiliarity_score
 
     model = load_model(Path(__file__).resolve().parents[2] / "models" / "demo")
     tile = np.maximum(getattr(skimage.data, name)(), 1).astype(np.uint8)

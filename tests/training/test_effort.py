@@ -239,7 +239,7 @@ def test_unfamiliar_reason_names_the_feature_groups():
     # histograms, 6 % intensity, 5 % structure. Without co-occurrence: 1.70 * sqrt(0.36) = 1.02, still
     # above 0.9; without gradients 1.70 * sqrt(0.75) = 1.47. s7: 1.40, 90 % intensity: without it
     # 1.40 * sqrt(0.1) = 0.44, within the cut.
-    from detector.unfamiliar import SHARE_COLUMNS
+    from detector.inference.unfamiliar import SHARE_COLUMNS
 
     screen = _screen()
     for column in SHARE_COLUMNS:
@@ -589,7 +589,7 @@ def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
     """End to end: the shipped model screens two demo tiles; effort accepts it and explains every route."""
     from pathlib import Path
 
-    from detector.screen import screen
+    from detector.screening.screen import screen
 
     root = Path(__file__).resolve().parents[2]
     tiles = pd.read_csv(root / "demo_tiles" / "tiles.csv").head(2)
@@ -602,7 +602,7 @@ def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
                         campaign=Campaign(classifications=root / "demo_tiles"), log=lambda *_: None)
     routes = pd.read_csv(tmp_path / "screen" / "routes.csv")
     detections = pd.read_csv(tmp_path / "screen" / "detections.csv")
-    from detector.unfamiliar import SHARE_COLUMNS
+    from detector.inference.unfamiliar import SHARE_COLUMNS
 
     shares = pd.read_csv(tmp_path / "screen" / "tiles.csv")[list(SHARE_COLUMNS)]
     np.testing.assert_allclose(shares.sum(axis=1), 1.0, rtol=1e-9)
@@ -615,7 +615,7 @@ def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
 
 
 def test_run_effort_updates_the_geopackage_tile_routes(folders):
-    from detector.gpkg import PIXEL_CRS_WKT, read_layer, write_polygon_layer
+    from detector.gis.gpkg import PIXEL_CRS_WKT, read_layer, write_polygon_layer
 
     model, screen = folders
     tiles = pd.read_csv(screen / "tiles.csv", dtype={"route": str}, keep_default_na=False)

@@ -4,7 +4,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from detector.assemble import HYP_AXIS_FORWARD, HYP_AXIS_REVERSE, HYP_MODES, Candidate
+from detector.objects.assemble import HYP_AXIS_FORWARD, HYP_AXIS_REVERSE, HYP_MODES, Candidate
 from training.objects import LABEL_MAX_DIRECTION_DEG, label_readings
 from training.scoring import match_objects
 

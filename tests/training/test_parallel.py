@@ -43,7 +43,7 @@ def test_inside_a_cluster_the_jobs_run_on_its_workers_in_job_order():
 def test_features_on_a_cluster_equal_the_local_ones(tiny_tileset):
     from distributed import LocalCluster
 
-    from detector.spec import FeatureSpec
+    from detector.tile.spec import FeatureSpec
     from detector.tileset import load_tileset
 
     tileset = load_tileset(tiny_tileset)

@@ -8,7 +8,7 @@ import pytest
 from sklearn.metrics import brier_score_loss, log_loss
 
 from detector.errors import DetectorError, TileSetError
-from detector.spec import FeatureSpec, POLARITY_ODD_FEATURES
+from detector.tile.spec import FeatureSpec, POLARITY_ODD_FEATURES
 from training.train import (
     TrainConfig,
     calibration_scores,
@@ -100,7 +100,7 @@ def test_orientation_training_set_flips_odd_features_and_targets():
 
 
 def test_fit_unfamiliarity_scores_training_low_and_far_high():
-    from detector.unfamiliar import unfamiliarity_score
+    from detector.inference.unfamiliar import unfamiliarity_score
 
     rng = np.random.default_rng(3)
     summaries = rng.normal(size=(40, 12))
@@ -288,7 +288,7 @@ def test_training_on_a_cluster_gives_the_local_model(tmp_path, monkeypatch):
     from distributed import LocalCluster
     from threadpoolctl import threadpool_limits
 
-    from detector.model import ONNX_FILES
+    from detector.inference.model import ONNX_FILES
     from training.synth import synthesize_tileset
 
     root = synthesize_tileset(tmp_path / "set", n_images=3, tiles_per_image=2, seed=3)

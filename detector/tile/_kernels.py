@@ -21,7 +21,7 @@ naming the value; they change no result.
 import numpy as np
 from numba import njit
 
-from .errors import KernelRangeError
+from ..errors import KernelRangeError
 
 __all__ = ["lbp_codes", "u16_histogram", "cell_counts", "cell_weighted", "glcm_folded_counts", "glcm_full_counts",
            "box_sums"]

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import _dense, _kernels
-from .errors import ImageError
+from ..errors import ImageError
 from .spec import FeatureSpec
 
 __all__ = ["PatchGrid", "PatchTargets", "patch_grid", "extract_features", "patch_targets", "flip_polarity"]

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import DetectorError
+from ..errors import DetectorError
 
 __all__ = ["PIXEL_CRS_WKT", "polygon_wkb", "write_polygon_layer", "read_layer", "update_tile_routes"]
 
@@ -139,7 +139,7 @@ def update_tile_routes(path, routes):
     import pyogrio
     import pyogrio.raw
 
-    from .io import atomic_path
+    from ..io import atomic_path
 
     path = Path(path)
     try:

@@ -9,7 +9,7 @@ silently drop every detection, ``-5`` keep every candidate).
 import math
 import re
 
-from .errors import ModelError
+from ..errors import ModelError
 
 __all__ = ["check_card"]
 

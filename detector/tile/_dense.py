@@ -12,7 +12,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from . import _kernels
-from .errors import ImageError
+from ..errors import ImageError
 
 _U16 = 65535.0
 

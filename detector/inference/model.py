@@ -14,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ModelError, SpecError
-from .spec import FEATURE_VERSION, FeatureSpec
+from ..errors import ModelError, SpecError
+from ..tile.spec import FEATURE_VERSION, FeatureSpec
 
 __all__ = [
     "CLASS_NAMES",
@@ -138,7 +138,7 @@ class Model:
         if len(F) == 0:
             return np.zeros(0, dtype=np.float32)
         if self._objects is None:
-            from .assemble import OBJECT_FEATURE_NAMES
+            from ..objects.assemble import OBJECT_FEATURE_NAMES
 
             return F[:, OBJECT_FEATURE_NAMES.index("read_p_fan")].astype(np.float32)
         return _run_proba(self._objects, F)[:, 1]
@@ -151,7 +151,7 @@ class Model:
         (``direction_confidence``: feature names, mean, scale, coef, intercept,
         bound_deg). Without it, the orientation model's agreement ``(1 + vote) / 2``.
         """
-        from .assemble import OBJECT_FEATURE_NAMES
+        from ..objects.assemble import OBJECT_FEATURE_NAMES
 
         F = np.asarray(F, dtype=np.float64)
         fit = self.card.get("direction_confidence")
@@ -222,7 +222,7 @@ def load_model(folder):
         )
     import dataclasses
 
-    from .assemble import OBJECT_FEATURE_NAMES, AssemblyParams
+    from ..objects.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
     from .card import check_card
 
     check_card(card, repr(str(card_path)), onnx_files=ONNX_FILES, class_names=CLASS_NAMES,

@@ -12,7 +12,7 @@ up, as in :mod:`detector.geometry`.
 import numpy as np
 from numba import njit
 
-from ._kernels import pairwise_block as _block
+from ..tile._kernels import pairwise_block as _block
 
 __all__ = ["psum", "quantile", "direction_histogram", "circular_smooth", "direction_modes", "axis_moments", "spot_reading", "describe_component",
            "component_summary", "FAN_FIELDS", "SUMMARY_FIELDS"]

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import SpecError
+from ..errors import SpecError
 
 __all__ = [
     "FEATURE_VERSION",

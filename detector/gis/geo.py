@@ -32,8 +32,8 @@ from pyproj.crs import GeographicCRS, PrimeMeridian, ProjectedCRS
 from pyproj.crs.coordinate_operation import EquidistantCylindricalConversion, PolarStereographicAConversion
 from pyproj.crs.datum import CustomDatum, CustomEllipsoid
 
-from .errors import DetectorError, SpecError
-from .geometry import unit_vector
+from ..errors import DetectorError, SpecError
+from ..geometry import unit_vector
 
 __all__ = [
     "MARS_RADIUS_M",

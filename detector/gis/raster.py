@@ -18,8 +18,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import DetectorError, ImageError, SpecError, TileSetError
-from .io import atomic_path, image_size, read_image
+from ..errors import DetectorError, ImageError, SpecError, TileSetError
+from ..io import atomic_path, image_size, read_image
 
 __all__ = [
     "TileWindow",
@@ -318,7 +318,7 @@ class RasterSource:
                 mask |= array == self.nodata
         else:
             mask = array == self.nodata
-        from .io import supported_pixels
+        from ..io import supported_pixels
 
         array = supported_pixels(array, f"{str(self.path)!r} (window {c0}, {r0}, {w} x {h} px)", valid=~mask)
         return array, mask

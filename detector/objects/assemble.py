@@ -26,9 +26,10 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from . import _kernels, _readings
-from .contract import DETECTION_COLUMNS
-from .geometry import direction_deg, unit_vector
+from ..tile import _kernels
+from . import _readings
+from ..contract import DETECTION_COLUMNS
+from ..geometry import direction_deg, unit_vector
 
 __all__ = [
     "AssemblyParams",

@@ -5,9 +5,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from . import _dense
-from .circstats import circular_std, robust_circular_mean
-from .assemble import (
+from ..tile import _dense
+from ..circstats import circular_std, robust_circular_mean
+from ..objects.assemble import (
     AssemblyParams,
     PatchField,
     find_candidates,
@@ -15,9 +15,9 @@ from .assemble import (
     objects_from_candidates,
     reading_matrix,
 )
-from .features import _features_of_prepared
-from .geometry import unit_vector
-from .spec import patch_axis_deg
+from ..tile.features import _features_of_prepared
+from ..geometry import unit_vector
+from ..tile.spec import patch_axis_deg
 
 __all__ = ["TileResult", "TileMaps", "detect_tile", "tile_maps", "tile_candidates", "tile_summary_vector",
            "fan_direction_weights", "tile_direction_stats"]

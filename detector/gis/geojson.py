@@ -41,9 +41,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import DetectorError
-from .io import atomic_path
-from .labels import ellipse_polygon, sector_polygon
+from ..errors import DetectorError
+from ..io import atomic_path
+from ..labels import ellipse_polygon, sector_polygon
 
 __all__ = [
     "detections_to_geojson",

@@ -71,14 +71,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .detect import fan_direction_weights, tile_direction_stats
-from .model import cached_model
-from .contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
-from .errors import DetectorError, ImageError, SpecError, TileSetError
-from .geojson import write_geojson_chunks
-from .io import atomic_path, write_json
-from .raster import TileWindow, check_complete, open_raster, plan_windows
-from .unfamiliar import SHARE_COLUMNS
+from ..inference.detect import fan_direction_weights, tile_direction_stats
+from ..inference.model import cached_model
+from ..contract import CONSENSUS_FILE, DETECTION_COLUMNS, TILES_FILE, TILES_REQUIRED
+from ..errors import DetectorError, ImageError, SpecError, TileSetError
+from ..gis.geojson import write_geojson_chunks
+from ..io import atomic_path, write_json
+from ..gis.raster import TileWindow, check_complete, open_raster, plan_windows
+from ..inference.unfamiliar import SHARE_COLUMNS
 
 __all__ = [
     "TILE_COLUMNS",
@@ -199,7 +199,7 @@ def _georeferencer(src, any_body):
     """The source's georeferencer (None without a CRS); a CRS not on Mars is refused unless ``any_body``."""
     if not src.is_georeferenced:
         return None
-    from .geo import check_mars_crs
+    from ..gis.geo import check_mars_crs
 
     check_mars_crs(src.crs, src.path, any_body=any_body)
     return src.georeferencer()
@@ -234,7 +234,7 @@ def _plan_raster(path, *, tile, overlap, nodata, band, any_body=False, min_side=
 
 def _read_tile_table(root):
     """Tile table of a tile-set folder; the consensus, when present, is validated too."""
-    from .tileset import load_tileset
+    from ..tileset import load_tileset
 
     if (root / CONSENSUS_FILE).is_file():
         return load_tileset(root, check_images=False).tiles
@@ -268,7 +268,7 @@ def _plan_tileset(root, *, nodata, band, any_body=False, min_side=64):
         zip(tiles["tile_id"].astype(str), tiles["image_id"].astype(str), tiles["path"].astype(str),
             col0.to_numpy(dtype=float), row0.to_numpy(dtype=float), scale, strict=True)
     ):
-        from .tileset import path_problem
+        from ..tileset import path_problem
 
         problem = path_problem(root, rel)
         if problem:
@@ -385,9 +385,9 @@ def _canvas_block(array, mask, task):
 
 def _screen_tile(index, task, model_dir, min_score=None):
     """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
-    from ._allocator import reuse_freed_memory
-    from .detect import detect_tile
-    from .unfamiliar import unfamiliarity_parts, unfamiliarity_score
+    from .._allocator import reuse_freed_memory
+    from ..inference.detect import detect_tile
+    from ..inference.unfamiliar import unfamiliarity_parts, unfamiliarity_score
 
     reuse_freed_memory()
     model = cached_model(model_dir)
@@ -490,7 +490,7 @@ def _core_area_m2(task, georef):
     win = task.window
     if georef is None:
         return float(win.width * win.height * task.metres_per_px**2)
-    from .geo import polygon_ground_area_m2
+    from ..gis.geo import polygon_ground_area_m2
 
     corners = _core_corners(win)
     # Pixel centres are at integer px, corners half a pixel out.
@@ -512,13 +512,13 @@ def _detection_areas_m2(det, task, georef):
     """Ground area of each detection's outline (the polygon written to the GIS files), m^2."""
     if det.empty:
         return np.zeros(0)
-    from .geojson import detection_rings, ring_signed_area
+    from ..gis.geojson import detection_rings, ring_signed_area
 
     rings, _ = detection_rings(det)
     if georef is None:
         px = np.array([abs(ring_signed_area(r)) for r in rings])
         return px * task.metres_per_px**2
-    from .geo import polygon_ground_area_m2
+    from ..gis.geo import polygon_ground_area_m2
 
     sizes = [len(r) for r in rings]
     allv = np.vstack(rings) + (task.file_col0, task.file_row0)
@@ -644,7 +644,7 @@ def _run_loky(todo, model_dir, min_score, workers):
 def _run_dask(todo, model_dir, min_score, scheduler, info=None):
     from distributed import as_completed
 
-    from .cluster import connect, worker_count
+    from ..cluster import connect, worker_count
 
     with connect(scheduler) as client:
         if info is not None:
@@ -681,7 +681,7 @@ def _version():
 
 
 def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
-    from .model import MODEL_CARD, sha256_file
+    from ..inference.model import MODEL_CARD, sha256_file
 
     return {
         "model_dir": str(Path(model_dir).resolve()),
@@ -697,7 +697,7 @@ def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
 
 def _nodata_record(nodata):
     """The no-data choice as JSON can hold it: null (the raster's own, else 0), "none", or a number."""
-    from .raster import nodata_value
+    from ..gis.raster import nodata_value
 
     if nodata is None:
         return None
@@ -865,7 +865,7 @@ def _geojson_chunks(detections, tasks, geo, *, chunk=2000):
 
 def _geojson(detections, tasks, geo):
     """Planetocentric lon/lat FeatureCollection of georeferenced detections (see detector.geojson)."""
-    from .geojson import detections_to_geojson
+    from ..gis.geojson import detections_to_geojson
 
     paths, ox, oy = _image_offsets(detections, tasks)
     df = detections.copy()
@@ -896,8 +896,8 @@ def _write_gpkg_chunk(path, name, tiles, detections, tasks, images, geo, created
 
     ``created`` is the set of layers already in the file (updated here).
     """
-    from .geojson import detection_rings
-    from .gpkg import PIXEL_CRS_WKT, write_polygon_layer
+    from ..gis.geojson import detection_rings
+    from ..gis.gpkg import PIXEL_CRS_WKT, write_polygon_layer
 
     pieces = {p.path: p for p in images[name]["pieces"]}
     by_tile = {t.tile_id: t for t in tasks}
@@ -1116,7 +1116,7 @@ class _Figures:
         from matplotlib.cm import ScalarMappable
         from matplotlib.colors import Normalize
 
-        from .plots import DIRECTION_CMAP
+        from ..plots import DIRECTION_CMAP
 
         bar = self.quick.colorbar(ScalarMappable(norm=Normalize(0, 360), cmap=DIRECTION_CMAP),
                                   ax=list(self.quick_axes.values()), shrink=0.7, ticks=[0, 90, 180, 270, 360])
@@ -1151,7 +1151,7 @@ def _panel_furniture(ax, entry, tasks, canvas, scale, has_detections):
     """Axis units in image px, and for georeferenced images a north arrow and a scale bar."""
     from matplotlib.ticker import FuncFormatter
 
-    from .plots import add_legend, add_north_arrow, add_scale_bar
+    from ..plots import add_legend, add_north_arrow, add_scale_bar
 
     to_px = FuncFormatter(lambda v, _pos: f"{v / scale:.0f}")
     ax.xaxis.set_major_formatter(to_px)
@@ -1173,7 +1173,7 @@ def _panel_furniture(ax, entry, tasks, canvas, scale, has_detections):
 
 
 def _quicklook_panel(ax, name, detections, tasks, images, cap, *, band, nodata, blocks=None):
-    from .plots import draw_features
+    from ..plots import draw_features
 
     canvas, scale = _canvas(images[name], band, nodata, cap, blocks)
     ax.imshow(_gray_rgb(canvas), interpolation="nearest")
@@ -1448,7 +1448,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     t_start = time.perf_counter()
     workers = _check_workers(workers)
     if nodata is not None:
-        from .raster import nodata_value
+        from ..gis.raster import nodata_value
 
         nodata = nodata_value(nodata)
         nodata = "none" if math.isnan(nodata) else nodata  # NaN is no key for the per-process raster cache
