@@ -4,7 +4,7 @@ import pytest
 from threadpoolctl import threadpool_limits
 
 from training.synth import synthesize_tileset
-from training.train import TrainConfig, train_model
+from training.fitting.train import TrainConfig, train_model
 
 #: Small enough that training takes seconds; three images allow the grouped fit / calibration / hold-out split.
 TINY_IMAGES = 3

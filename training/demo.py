@@ -24,7 +24,7 @@ def _print_benchmark_headline(model_dir):
     """The model's benchmark table (held-out, shifted, negatives), when it ships one."""
     import json
 
-    from .benchmark import benchmark_table
+    from .evaluation.benchmark import benchmark_table
 
     path = Path(model_dir) / BENCHMARK_FILE
     if not path.is_file():
@@ -52,7 +52,7 @@ def _demo_winds(tiles, screen_dir, out):
     """``frostvane winds`` on the demo consensus, the demo screening and an invented model table."""
     from detector.io import atomic_path
 
-    from .winds import WindSettings, analyse_winds, format_headline, write_winds
+    from .winds.winds import WindSettings, analyse_winds, format_headline, write_winds
 
     model_csv = out / "model_winds.csv"
     with atomic_path(model_csv) as tmp:
@@ -79,7 +79,7 @@ def _next_hour(model_dir, tileset, unseen, out):
     import json
     import shutil
 
-    from .active import rank_tiles, study_summary
+    from .effort.active import rank_tiles, study_summary
 
     ids = tileset.tiles.loc[tileset.tiles["image_id"].isin(unseen), "tile_id"].tolist()
     ranked = rank_tiles(model_dir, tileset.root, ids)
@@ -115,7 +115,7 @@ def run_demo(out, *, tiles, model, retrain=False):
     from detector.plots import plot_overlay
     from detector.gis.raster import mosaic_tiles
 
-    from .evaluate import evaluate_model
+    from .evaluation.evaluate import evaluate_model
 
     started = time.perf_counter()
     out = Path(out)
@@ -131,7 +131,7 @@ def run_demo(out, *, tiles, model, retrain=False):
     model_dir = Path(model)
     if retrain or not (model_dir / "model.json").is_file():
         _section("2. train a model (no shipped model found or --retrain)")
-        from .train import TrainConfig, format_card_summary, train_model
+        from .fitting.train import TrainConfig, format_card_summary, train_model
 
         model_dir = out / "model"
         card = train_model(tiles, model_dir, TrainConfig(seed=2026), force=True)
@@ -172,8 +172,8 @@ def run_demo(out, *, tiles, model, retrain=False):
           f"in the mosaic's polar stereographic CRS, detections.geojson in planetocentric lon/lat)")
 
     _section("5. remaining volunteer effort")
-    from .campaign import Campaign
-    from .effort import run_effort
+    from .effort.campaign import Campaign
+    from .effort.effort import run_effort
 
     # An invented campaign: 30 classifications a tile, 45 s each, 1500 a day from today.
     run_effort(model_dir, screen_dir, campaign=Campaign(seconds_per_classification=45.0,

@@ -23,8 +23,8 @@ sys.path.insert(0, str(ROOT))
 import pandas as pd  # noqa: E402
 
 from tests.training._wind_truth import check_record, recovery_table, synthesize_with_winds  # noqa: E402
-from training.wind_catalogs import read_consensus_catalog  # noqa: E402
-from training.winds import IMAGE_KEYS, WindSettings, summarise_groups  # noqa: E402
+from training.winds.wind_catalogs import read_consensus_catalog  # noqa: E402
+from training.winds.winds import IMAGE_KEYS, WindSettings, summarise_groups  # noqa: E402
 
 
 def _table(root, winds):

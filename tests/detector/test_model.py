@@ -9,7 +9,7 @@ import pytest
 
 from detector.errors import ModelError, SpecError
 from detector.inference.model import DETECTOR_ONNX, MODEL_CARD, ORIENTATION_ONNX, Calibration, load_model
-from training.export import onnx_parity, to_onnx_bytes
+from training.fitting.export import onnx_parity, to_onnx_bytes
 
 
 @pytest.fixture

@@ -50,9 +50,9 @@ def _build_small_model(folder, seed=0):
     from detector.inference.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, OBJECTS_ONNX,
                                 ORIENTATION_ONNX, sha256_file)
     from detector.tile.spec import POLARITY_ODD_FEATURES, FeatureSpec
-    from training.export import to_onnx_bytes
+    from training.fitting.export import to_onnx_bytes
     from training.synth import render_scene, to_uint8
-    from training.train import orientation_feature_names
+    from training.fitting.train import orientation_feature_names
 
     rng = np.random.default_rng(seed)
     image, truth = render_scene((384, 512), rng, scenario="windy", nodata=False)

@@ -52,7 +52,7 @@ def test_pass_threshold_matches_oracle_and_ignores_nan():
 
 def test_stated_pass_rate_holds_on_new_in_distribution_tiles():
     """Fit the statistics, set the threshold on held-out tiles, check the rate on fresh tiles of the same kind."""
-    from training.train import fit_unfamiliarity
+    from training.fitting.train import fit_unfamiliarity
 
     rng = np.random.default_rng(7)
     cov = np.diag(np.linspace(3.0, 0.2, 12))
@@ -147,7 +147,7 @@ def test_group_shares_by_hand():
 def test_contributions_sum_to_the_squared_distance():
     # Rotated components (fitted on correlated data): the per-feature terms mix features, yet add up
     # exactly to the squared distance computed the usual way (projection and residual).
-    from training.train import fit_unfamiliarity
+    from training.fitting.train import fit_unfamiliarity
 
     rng = np.random.default_rng(3)
     mix = rng.normal(size=(10, 10))

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy.stats import entropy
 
-from training.active import greedy_order, labelling_order_study, tile_uncertainty, tiles_to_reach
+from training.effort.active import greedy_order, labelling_order_study, tile_uncertainty, tiles_to_reach
 
 
 def test_tile_uncertainty_is_scipy_entropy_normalised():
@@ -48,8 +48,8 @@ def test_tiles_to_reach_interpolates():
 
 def test_order_study_orchestration(tmp_path, monkeypatch):
     """Batches, both orders, shared start and the tiles saved, with training replaced by a known response."""
-    import training.active as active
-    import training.train as train_module
+    import training.effort.active as active
+    import training.fitting.train as train_module
     from training.synth import synthesize_tileset
 
     root = synthesize_tileset(tmp_path / "tiles", n_images=8, tiles_per_image=1, seed=4, tile_shape=(64, 96),
@@ -92,7 +92,7 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
 
 
 def test_tiles_needed_interval_recovers_an_exact_curve():
-    from training.active import tiles_needed_interval
+    from training.effort.active import tiles_needed_interval
 
     # F1 = 1 - (2 n^-0.5 + 0.05): F1 0.8 needs 2 n^-0.5 = 0.15, n = (2 / 0.15)^2 = 177.8 tiles.
     n = np.array([9, 15, 21, 27, 40])

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from detector.errors import DetectorError
-from training.backtest import (
+from training.effort.backtest import (
     CAMPAIGN_STATES,
     _row,
     backtest,

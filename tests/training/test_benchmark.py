@@ -12,7 +12,7 @@ from detector.contract import CONSENSUS_COLUMNS
 from detector.errors import DetectorError
 from detector.geometry import angular_difference, unit_vector
 from detector.io import read_image
-from training.benchmark import (
+from training.evaluation.benchmark import (
     NEGATIVE_TEXTURES,
     BenchmarkLayout,
     _write_negatives,

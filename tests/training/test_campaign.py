@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from training.campaign import (
+from training.effort.campaign import (
     CAMPAIGN_KEYS,
     DEFAULT_CLASSIFICATIONS_NEEDED,
     Campaign,

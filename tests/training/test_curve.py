@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 from scipy.optimize import curve_fit
 
-from training.curve import (
+from training.effort.curve import (
     _curve_verdicts,
     fit_power_law,
     learning_curve,
@@ -132,7 +132,7 @@ def _tiny_tileset(root, n_images=8):
 
 def test_learning_curve_orchestration_recovers_law(tmp_path, monkeypatch):
     """Nested subsets, fixed held-out images and the fit, with training replaced by exact power laws."""
-    import training.train as train_module
+    import training.fitting.train as train_module
     from detector.tileset import load_tileset
 
     root = _tiny_tileset(tmp_path / "tiles")

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from training.dataset import augmented_tile, degrade_tile
+from training.fitting.dataset import augmented_tile, degrade_tile
 
 
 def _fixed(blur=0.0, noise=0.0, gain=1.0):

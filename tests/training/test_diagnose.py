@@ -14,8 +14,8 @@ import pytest
 
 from detector.errors import DetectorError
 from detector.labels import rasterise_features
-from training import diagnose
-from training.diagnose import (
+from training.evaluation import diagnose
+from training.evaluation.diagnose import (
     CONSENSUS_OUTCOMES,
     DETECTION_OUTCOMES,
     error_breakdown,
@@ -23,7 +23,7 @@ from training.diagnose import (
     plot_error_tiles,
     worst_tiles,
 )
-from training.scoring import match_objects
+from training.evaluation.scoring import match_objects
 
 
 def _fan(tile, x, y, d=90.0, length=40.0, spread=30.0, votes=5):
@@ -268,7 +268,7 @@ def test_public_api_listed():
 
 def test_diagnose_catalogs_without_a_model(tiny_tileset, tmp_path):
     # The tile set's noise-free truth scored as detections: every output is written and self-consistent.
-    from training.diagnose import diagnose_catalogs
+    from training.evaluation.diagnose import diagnose_catalogs
 
     out = tmp_path / "diag"
     b = diagnose_catalogs(tiny_tileset / "truth.csv", tiny_tileset, out)
@@ -307,7 +307,7 @@ def test_error_tables_have_the_columns_the_readme_lists(tiny_tileset, tmp_path, 
     # Every column written is documented, in order; a "`a` ... `b`" row stands for the contract's
     # run of columns from a to b.
     from detector.contract import DETECTION_COLUMNS
-    from training.diagnose import diagnose_catalogs
+    from training.evaluation.diagnose import diagnose_catalogs
 
     # the truth as a detection catalog with every column of evaluate's detections.csv
     detections = pd.read_csv(tiny_tileset / "truth.csv").assign(score=1.0, direction_confidence=1.0)

@@ -7,7 +7,7 @@ import pytest
 
 from detector.contract import DETECTION_COLUMNS
 from detector.errors import DetectorError
-from training.evaluate import evaluate_model
+from training.evaluation.evaluate import evaluate_model
 
 
 @pytest.fixture(scope="module")

@@ -5,8 +5,8 @@ import pandas as pd
 import pytest
 
 from detector.objects.assemble import HYP_AXIS_FORWARD, HYP_AXIS_REVERSE, HYP_MODES, Candidate
-from training.objects import LABEL_MAX_DIRECTION_DEG, label_readings
-from training.scoring import match_objects
+from training.fitting.objects import LABEL_MAX_DIRECTION_DEG, label_readings
+from training.evaluation.scoring import match_objects
 
 
 def _fan(hyp, x, y, direction, length=40.0):

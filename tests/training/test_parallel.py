@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from joblib import delayed
 
-from training.dataset import build_patch_set
+from training.fitting.dataset import build_patch_set
 from training.parallel import current_cluster, on_cluster, tile_parallel
 
 

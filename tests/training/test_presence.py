@@ -5,7 +5,7 @@ import pytest
 from scipy.optimize import minimize
 from scipy.special import expit, logit
 
-from training.presence import P_CLIP, firth_logistic, presence_coefficients, presence_probability
+from training.effort.presence import P_CLIP, firth_logistic, presence_coefficients, presence_probability
 
 
 def _naive_firth(x, y):

@@ -7,7 +7,7 @@ import pytest
 from sklearn.calibration import calibration_curve
 
 from detector.errors import DetectorError
-from training import report, scoring
+from training.evaluation import report, scoring
 from tests.training._boxes import box_rasteriser
 
 

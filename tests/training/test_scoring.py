@@ -8,7 +8,7 @@ from scipy.spatial import distance
 from sklearn import metrics
 
 from detector.errors import DetectorError
-from training import scoring
+from training.evaluation import scoring
 from tests.training._boxes import box_rasteriser
 
 
@@ -269,7 +269,7 @@ def test_score_catalogs_json_ready_and_errors():
 
 
 def test_bootstrap_of_few_images_is_a_range_not_a_ci():
-    from training.scoring import MIN_IMAGES_FOR_CI, bootstrap_interval, interval_kind
+    from training.evaluation.scoring import MIN_IMAGES_FOR_CI, bootstrap_interval, interval_kind
 
     # Three images, one value each: a resample of one image drawn three times (probability 1/9 per
     # replicate) gives that image's value, so the range of 1000 resampled means is (1, 3) exactly.

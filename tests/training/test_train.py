@@ -9,7 +9,7 @@ from sklearn.metrics import brier_score_loss, log_loss
 
 from detector.errors import DetectorError, TileSetError
 from detector.tile.spec import FeatureSpec, POLARITY_ODD_FEATURES
-from training.train import (
+from training.fitting.train import (
     TrainConfig,
     calibration_scores,
     fit_calibration,
@@ -248,7 +248,7 @@ def test_fit_log_reports_size_iterations_and_seconds_and_changes_no_value():
     # the same model with and without logging
     from sklearn.datasets import load_iris
 
-    from training.train import _fit_hgb
+    from training.fitting.train import _fit_hgb
 
     X, y = load_iris(return_X_y=True)
     config = TrainConfig(seed=3, max_iter=30)
@@ -264,7 +264,7 @@ def test_fit_log_reports_size_iterations_and_seconds_and_changes_no_value():
 def test_unfamiliarity_threshold_moves_to_the_held_out_pass_share():
     # Held-out scores 0.1 ... 2.0 (20 tiles) under a training threshold of 3.0: 95 % of 20 is 19 tiles,
     # the 19th smallest score is 1.9, so the threshold becomes 3.0 * 1.9 = 5.7 and the scores divide by 1.9.
-    from training.train import _unfamiliarity_from_heldout
+    from training.fitting.train import _unfamiliarity_from_heldout
 
     scores = np.round(np.arange(1, 21) / 10, 1)
     card = {"unfamiliarity": {"threshold": 3.0}, "heldout_tiles": [{"unfamiliarity": float(s)} for s in scores]}

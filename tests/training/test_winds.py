@@ -10,8 +10,8 @@ import pytest
 from detector import circstats
 from detector.errors import CatalogError, DetectorError
 from training.cli import main
-from training.wind_catalogs import read_consensus_catalog, read_screening_catalog
-from training.winds import (
+from training.winds.wind_catalogs import read_consensus_catalog, read_screening_catalog
+from training.winds.winds import (
     BIN_KEYS,
     IMAGE_KEYS,
     WindSettings,
@@ -334,7 +334,7 @@ def test_settings_validation():
 def test_screening_of_several_folders_keeps_tiles_apart(hand_set, tmp_path):
     a = _screening_copy(hand_set, tmp_path / "a")
     b = _screening_copy(hand_set, tmp_path / "b")
-    from training.wind_catalogs import metadata_from_tileset
+    from training.winds.wind_catalogs import metadata_from_tileset
 
     _, meta = metadata_from_tileset(hand_set)
     both = read_screening_catalog([a, b], meta=meta)

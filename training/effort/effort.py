@@ -38,7 +38,7 @@ from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, FEATURE_GROUPS, SHARE_COLUMNS, pass_threshold
 
-from ._json import jsonable as _jsonable
+from .._json import jsonable as _jsonable
 from .campaign import DEFAULT_CLASSIFICATIONS_NEEDED, Campaign, date_range, days_for, read_classifications, remaining_classifications
 from .presence import presence_coefficients, presence_probability
 
@@ -782,7 +782,7 @@ def _machine_spread(col, held_code, f1_iv, direction_iv):
     each such image are given as their range (min, max), which is no interval
     and says so.
     """
-    from .scoring import MIN_IMAGES_FOR_CI
+    from ..evaluation.scoring import MIN_IMAGES_FOR_CI
 
     machine = held_code == _CODE["machine"]
     images = np.unique(col["image_id"][machine])

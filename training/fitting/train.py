@@ -33,10 +33,10 @@ from detector.tileset import load_tileset
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
 
 from .dataset import build_patch_set, rotation_jobs
-from .evaluate import evaluate_tiles, summarise_for_card, tune_assembly
+from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, fit_direction_confidence
-from .parallel import on_cluster
+from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
            "orientation_feature_names", "orientation_training_set"]

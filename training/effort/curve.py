@@ -19,8 +19,8 @@ import pandas as pd
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
-from ._json import jsonable as _jsonable
-from ._subsets import write_subset
+from .._json import jsonable as _jsonable
+from .._subsets import write_subset
 
 __all__ = [
     "LEARNING_CURVE_TARGETS",
@@ -252,7 +252,7 @@ def learning_curve(tileset_root, *, seed=0, fractions=None, out=None, max_patche
     from detector.contract import CONSENSUS_FILE, TILES_FILE
     from detector.tileset import load_tileset
 
-    from .train import TrainConfig, split_images, train_model
+    from ..fitting.train import TrainConfig, split_images, train_model
 
     root = Path(tileset_root)
     tileset = load_tileset(root)

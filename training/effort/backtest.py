@@ -38,8 +38,8 @@ from detector.contract import TILES_FILE
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
-from ._json import jsonable
-from ._subsets import write_subset
+from .._json import jsonable
+from .._subsets import write_subset
 from .campaign import Campaign, remaining_classifications
 
 __all__ = ["CAMPAIGN_STATES", "campaign_state", "jeffreys_interval", "machine_measured", "route_promises", "backtest",
@@ -158,7 +158,7 @@ def machine_measured(detections, consensus, tile_ids):
         without detections and consensus), ``direction_median_deg`` (None
         without matched fans), ``tiles_with_matched_fans``.
     """
-    from .scoring import match_objects
+    from ..evaluation.scoring import match_objects
 
     ids = {str(t) for t in tile_ids}
     det = detections[detections["tile_id"].astype(str).isin(ids)].reset_index(drop=True)

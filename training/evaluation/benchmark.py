@@ -124,7 +124,7 @@ def build_benchmark(out, layout=None, *, force=False, log=print):
     -------
     pathlib.Path
     """
-    from .synth import SCENE_PROFILES, synthesize_tileset
+    from ..synth import SCENE_PROFILES, synthesize_tileset
 
     layout = BenchmarkLayout() if layout is None else layout
     out = Path(out)

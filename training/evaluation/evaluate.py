@@ -71,7 +71,7 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
     """
     from joblib import delayed
 
-    from .parallel import current_cluster, tile_parallel
+    from ..parallel import current_cluster, tile_parallel
 
     tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
     tile_ids = list(tile_ids)

@@ -12,7 +12,7 @@ from detector.tile.spec import patch_axis_deg
 from detector.labels import rasterise_features
 from detector._allocator import reuse_freed_memory
 
-from .parallel import tile_parallel
+from ..parallel import tile_parallel
 
 __all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs",
            "degrade_tile", "augmented_tile", "DEGRADE_RANGES"]

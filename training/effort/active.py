@@ -28,8 +28,8 @@ import pandas as pd
 from detector.errors import DetectorError
 from detector.io import atomic_path, write_json
 
-from ._json import jsonable
-from ._subsets import write_subset
+from .._json import jsonable
+from .._subsets import write_subset
 
 __all__ = ["tile_uncertainty", "greedy_order", "rank_tiles", "labelling_order_study", "study_summary",
            "tiles_to_reach", "tiles_needed_interval"]
@@ -266,7 +266,7 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
     from detector.contract import CONSENSUS_FILE, TILES_FILE
     from detector.tileset import load_tileset
 
-    from .train import TrainConfig, train_model
+    from ..fitting.train import TrainConfig, train_model
 
     started = time.perf_counter()
     root = Path(tileset_root)

@@ -1,0 +1,33 @@
+"""The volunteer effort left: the campaign, routes with measured promises, presence, the backtest,
+where the next volunteer hour goes (ranking, labelling order) and the learning curve.
+
+Names load their module on first use.
+"""
+
+from detector._lazy import lazy_exports
+
+__getattr__, __dir__ = lazy_exports(__name__, {
+    "Campaign": "campaign",
+    "read_campaign": "campaign",
+    "estimate_effort": "effort",
+    "route_tiles": "effort",
+    "run_effort": "effort",
+    "presence_coefficients": "presence",
+    "backtest": "backtest",
+    "labelling_order_study": "active",
+    "rank_tiles": "active",
+    "learning_curve": "curve",
+})
+
+__all__ = [
+    "Campaign",
+    "backtest",
+    "estimate_effort",
+    "labelling_order_study",
+    "learning_curve",
+    "presence_coefficients",
+    "rank_tiles",
+    "read_campaign",
+    "route_tiles",
+    "run_effort",
+]
