@@ -5,7 +5,7 @@ import shutil
 
 from detector.inference.model import sha256_file
 
-from training.cli import main
+from frostvane.cli import main
 
 
 def test_validate_ok(tiny_tileset, capsys):
@@ -61,7 +61,7 @@ def test_synth_and_refuse_non_empty(tmp_path, capsys):
 def _all_parsers():
     import argparse
 
-    from training.cli import build_parser
+    from frostvane.cli import build_parser
 
     found = []
 
@@ -102,7 +102,7 @@ def test_screen_force_replaces_another_run(tmp_path, capsys):
     import numpy as np
 
     from detector.io import write_image
-    from training.cli import DEFAULT_MODEL
+    from frostvane.cli import DEFAULT_MODEL
     from training.synth import render_scene, to_uint8
 
     image, _ = render_scene((200, 256), np.random.default_rng(3), scenario="windy", nodata=False)

@@ -13,7 +13,6 @@ The public API:
 - :class:`Campaign`, :func:`read_campaign`, :func:`route_tiles`, :func:`estimate_effort`, :func:`run_effort`:
   routes with measured promises and the volunteer effort left; :func:`backtest` replays it on a hidden catalog
 - :func:`rank_tiles`, :func:`labelling_order_study`: where the next volunteer hour goes; :func:`learning_curve`
-- the ``frostvane`` console script: :func:`main`
 """
 
 import importlib
@@ -21,7 +20,6 @@ import importlib
 # Submodules load on first use, so that the command line does not import the
 # training stack (scikit-learn, ONNX export) to screen or estimate effort.
 _LAZY = {
-    "main": "cli",
     "analyse_winds": "winds.winds",
     "write_winds": "winds.winds",
     "WindSettings": "winds.winds",
@@ -77,7 +75,6 @@ __all__ = [
     "error_breakdown",
     "evaluate_model",
     "headline_table",
-    "main",
     "match_objects",
     "plot_error_tiles",
     "render_scene",

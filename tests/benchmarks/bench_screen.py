@@ -105,7 +105,7 @@ def _tree_rss(proc, peaks):
 def _screen(model, image, out, workers):
     import psutil
 
-    argv = [sys.executable, "-m", "training.cli", "screen", str(model), str(image), "--out", str(out),
+    argv = [sys.executable, "-m", "frostvane.cli", "screen", str(model), str(image), "--out", str(out),
             "--workers", str(workers)]
     start = time.perf_counter()
     proc = subprocess.Popen(argv, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)

@@ -41,7 +41,7 @@ def _frostvane(args, log, env):
     """Run ``frostvane ARGS`` from the source tree; return its wall time in seconds."""
     start = time.perf_counter()
     with open(log, "w") as out:
-        proc = subprocess.run([sys.executable, "-m", "training.cli", *map(str, args)], cwd=ROOT, env=env,
+        proc = subprocess.run([sys.executable, "-m", "frostvane.cli", *map(str, args)], cwd=ROOT, env=env,
                               stdout=out, stderr=subprocess.STDOUT, check=False)
     seconds = time.perf_counter() - start
     if proc.returncode != 0:

@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 
 from detector import _jit
-from training.cli import main
+from frostvane.cli import main
 
 ROOT = Path(__file__).resolve().parents[2]
 

@@ -171,7 +171,7 @@ def test_card_breaking_its_schema_is_refused_naming_the_field(model_copy, edit, 
 
 
 def test_card_that_is_not_an_object_is_refused(model_copy, capsys):
-    from training.cli import main
+    from frostvane.cli import main
 
     (model_copy / MODEL_CARD).write_text("[1, 2]")
     with pytest.raises(ModelError, match="not an object"):

@@ -22,7 +22,7 @@ from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
 from detector.io import write_image
 from detector.gis.raster import write_geotiff
 from detector.screening.screen import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
-from training.cli import main as cli_main
+from frostvane.cli import main as cli_main
 
 REPO = Path(__file__).resolve().parents[2]
 DEMO_MODEL = REPO / "models" / "demo"
@@ -140,7 +140,7 @@ def big_reference(model_dir, big_png, tmp_path_factory):
 
 
 def _cli(*argv):
-    return [sys.executable, "-m", "training.cli", *map(str, argv)]
+    return [sys.executable, "-m", "frostvane.cli", *map(str, argv)]
 
 
 def _same_outputs(a, b):

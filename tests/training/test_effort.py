@@ -573,7 +573,7 @@ def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
 
 
 def test_cli_exit_code_two(folders, tmp_path):
-    from training.cli import main
+    from frostvane.cli import main
 
     model, screen = folders
     assert main(["effort", str(model), str(tmp_path / "missing")]) == 2
@@ -633,7 +633,7 @@ def test_run_effort_updates_the_geopackage_tile_routes(folders):
 
 @pytest.mark.parametrize("case", ["duplicate", "deleted", "p_deposit_text", "unfinished", "onnx_changed"])
 def test_effort_refuses_edited_screens_and_models_by_name(folders, case, capsys):
-    from training.cli import main
+    from frostvane.cli import main
 
     model, screen = folders
     tiles = pd.read_csv(screen / "tiles.csv", dtype=str, keep_default_na=False)

@@ -568,7 +568,7 @@ def test_shifted_tileset_is_deterministic_and_differs_from_nominal(tmp_path):
 
 
 def test_cli_profile_option_writes_the_shifted_set(tmp_path):
-    from training.cli import main
+    from frostvane.cli import main
 
     assert main(["synth", str(tmp_path / "cli"), "--images", "1", "--tiles-per-image", "1", "--seed", "3",
                  "--profile", "shifted"]) == 0

@@ -9,7 +9,7 @@ import pytest
 
 from detector import circstats
 from detector.errors import CatalogError, DetectorError
-from training.cli import main
+from frostvane.cli import main
 from training.winds.wind_catalogs import read_consensus_catalog, read_screening_catalog
 from training.winds.winds import (
     BIN_KEYS,

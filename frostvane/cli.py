@@ -13,12 +13,12 @@ from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE
 
-from .effort.effort import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
+from training.effort.effort import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
 
-from .winds.winds import FRAMES as WIND_FRAMES
-from .winds.winds import RESAMPLE_UNITS as WIND_RESAMPLE_UNITS
-from .winds.winds import WEIGHTINGS as WIND_WEIGHTINGS
-from .winds.winds import WindSettings
+from training.winds.winds import FRAMES as WIND_FRAMES
+from training.winds.winds import RESAMPLE_UNITS as WIND_RESAMPLE_UNITS
+from training.winds.winds import WEIGHTINGS as WIND_WEIGHTINGS
+from training.winds.winds import WindSettings
 
 WIND_DEFAULTS = WindSettings()
 
@@ -218,7 +218,7 @@ def _add_campaign_options(parser, *, classifications=True):
 
 
 def _synth(args):
-    from .synth import synthesize_tileset
+    from training.synth import synthesize_tileset
 
     path = synthesize_tileset(args.out, n_images=args.images, tiles_per_image=args.tiles_per_image,
                               seed=args.seed, force=args.force, settings=args.profile)
@@ -226,7 +226,7 @@ def _synth(args):
 
 
 def _train(args):
-    from .fitting.train import TrainConfig, format_card_summary, train_model
+    from training.fitting.train import TrainConfig, format_card_summary, train_model
 
     config = TrainConfig(seed=args.seed, holdout_fraction=args.holdout_fraction,
                          holdout_images=tuple(args.holdout_images), max_patches=args.max_patches,
@@ -236,7 +236,7 @@ def _train(args):
 
 
 def _evaluate(args):
-    from .evaluation.evaluate import evaluate_model
+    from training.evaluation.evaluate import evaluate_model
 
     evaluate_model(args.model_dir, args.tile_set, args.out, min_score=args.min_score, force=args.force,
                    workers=args.workers)
@@ -244,21 +244,21 @@ def _evaluate(args):
 
 
 def _effort(args):
-    from .effort.effort import effort_command
+    from training.effort.effort import effort_command
 
     effort_command(args)
 
 
 def _backtest(args):
-    from .effort.backtest import backtest
-    from .effort.effort import _campaign_from_args
+    from training.effort.backtest import backtest
+    from training.effort.effort import _campaign_from_args
 
     backtest(args.model_dir, args.tile_set, args.out, campaign=_campaign_from_args(args), seed=args.seed,
              workers=args.workers)
 
 
 def _labelling_order(args):
-    from .effort.active import labelling_order_study
+    from training.effort.active import labelling_order_study
 
     labelling_order_study(args.model_dir, args.tile_set, args.out, base_images=args.base_images,
                           holdout_images=args.holdout_images, batch=args.batch, n_batches=args.batches,
@@ -266,7 +266,7 @@ def _labelling_order(args):
 
 
 def _benchmark_build(args):
-    from .evaluation.benchmark import BenchmarkLayout, build_benchmark
+    from training.evaluation.benchmark import BenchmarkLayout, build_benchmark
 
     layout = BenchmarkLayout(seed=args.seed, train_images=args.train_images, heldout_images=args.heldout_images,
                              shifted_images=args.shifted_images, tiles_per_image=args.tiles_per_image)
@@ -274,20 +274,20 @@ def _benchmark_build(args):
 
 
 def _benchmark_run(args):
-    from .evaluation.benchmark import run_benchmark
+    from training.evaluation.benchmark import run_benchmark
 
     run_benchmark(args.model_dir, args.bench, args.out, workers=args.workers, min_score=args.min_score,
                   compare=[tuple(pair) for pair in args.compare], force=args.force)
 
 
 def _winds(args):
-    from .winds.winds import winds_command
+    from training.winds.winds import winds_command
 
     winds_command(args)
 
 
 def _demo(args):
-    from .demo import run_demo
+    from training.demo import run_demo
 
     run_demo(args.out, tiles=args.tiles, model=args.model, retrain=args.retrain)
 
