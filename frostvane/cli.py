@@ -1,4 +1,4 @@
-"""The ``frostvane`` command: a thin layer over the library API.
+"""The ``frostvane`` command line, all of it: a thin layer over the library API.
 
 Every subcommand maps its options one to one onto a library call; errors caused
 by input become one line on stderr and exit code 2.
@@ -8,7 +8,6 @@ import argparse
 import sys
 from pathlib import Path
 
-from detector.cli import add_detector_commands
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE
@@ -30,6 +29,58 @@ DEFAULT_DEMO_TILES = Path(__file__).resolve().parent.parent / "demo_tiles"
 
 def _image_list(text):
     return tuple(part.strip() for part in text.split(",") if part.strip())
+
+
+def _tile_size(text):
+    try:
+        width, height = (int(v) for v in text.lower().split("x"))
+    except ValueError:
+        raise ValueError(f"tile size {text!r} is not WIDTHxHEIGHT, e.g. 800x600") from None
+    return width, height
+
+
+def _add_detector_commands(commands):
+    validate = commands.add_parser("validate", help="Check a tile set against the contract; print its summary.")
+    validate.add_argument("tile_set", type=Path, help="Tile-set folder (tiles.csv, consensus.csv, images).")
+    validate.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
+                          help="Drop consensus features with fewer votes (common practice: 3).")
+    validate.set_defaults(func=_validate)
+
+    screen = commands.add_parser("screen", help="Screen images or tile sets; write the screening folder.")
+    screen.add_argument("model_dir", type=Path, help="Model folder (model.json and its ONNX files).")
+    screen.add_argument("inputs", type=Path, nargs="+", metavar="INPUT",
+                        help="Image files (any raster GDAL reads) and/or tile-set folders.")
+    screen.add_argument("--out", type=Path, required=True, help="Screening folder to write (or to continue).")
+    screen.add_argument("--tile", type=_tile_size, default="800x600", help="Tile size WIDTHxHEIGHT, px.")
+    screen.add_argument("--overlap", type=int, default=32, help="Margin read around each tile, px.")
+    screen.add_argument("--workers", type=int, default=1, help="Local worker processes.")
+    screen.add_argument("--scheduler", default=None, help="Address of a running Dask distributed scheduler.")
+    screen.add_argument("--nodata", default=None, metavar="VALUE",
+                        help="Pixel value marking no data: a number, or 'none' when no value does (NaN pixels "
+                        "of float images always do). Default: the raster's own no-data value, else 0, the fill "
+                        "of map-projected products; say 'none' for products whose darkest pixels are clipped to 0.")
+    screen.add_argument("--band", type=int, default=None, help="1-based band of a multi-band image.")
+    screen.add_argument("--any-body", action="store_true",
+                        help="Screen a raster whose CRS is not on Mars (refused otherwise).")
+    screen.add_argument("--force", action="store_true",
+                        help="Discard what the output folder holds (another or unfinished run) and start afresh.")
+    screen.set_defaults(func=_screen)
+
+
+def _validate(args):
+    from detector.tileset import format_summary, load_tileset, summarize_tileset
+
+    tileset = load_tileset(args.tile_set, min_votes=args.min_votes)
+    print(format_summary(summarize_tileset(tileset)))
+
+
+def _screen(args):
+    from detector.screening import screen
+
+    summary = screen(args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap,
+                     workers=args.workers, scheduler=args.scheduler, nodata=args.nodata, band=args.band,
+                     any_body=args.any_body, force=args.force)
+    print(summary.format())
 
 
 def _add_training_commands(commands):
@@ -243,17 +294,30 @@ def _evaluate(args):
     print(f"report: {args.out / 'report.md'}")
 
 
-def _effort(args):
-    from training.effort.effort import effort_command
+def _campaign_overrides(args):
+    """The campaign options given on the command line; each overrides the same key of --campaign FILE."""
+    return dict(classifications_needed=args.classifications_needed,
+                seconds_per_classification=args.seconds_per_classification,
+                classifications_per_day=args.classifications_per_day, start_date=args.start_date,
+                classifications=getattr(args, "classifications", None))
 
-    effort_command(args)
+
+def _effort(args):
+    from training.effort.effort import write_effort_outputs
+
+    write_effort_outputs(args.model_dir, args.screen_dir, campaign_file=args.campaign,
+                         campaign_overrides=_campaign_overrides(args), out=args.out, recall=args.recall,
+                         min_f1=args.min_f1, max_direction_error=args.max_direction_error,
+                         pass_share=args.pass_share, next_tiles=args.next_tiles,
+                         learning_curve_root=args.learning_curve, seed=args.seed)
 
 
 def _backtest(args):
     from training.effort.backtest import backtest
-    from training.effort.effort import _campaign_from_args
+    from training.effort.campaign import campaign_with_overrides
 
-    backtest(args.model_dir, args.tile_set, args.out, campaign=_campaign_from_args(args), seed=args.seed,
+    campaign = campaign_with_overrides(args.campaign, **_campaign_overrides(args))
+    backtest(args.model_dir, args.tile_set, args.out, campaign=campaign, seed=args.seed,
              workers=args.workers)
 
 
@@ -281,9 +345,15 @@ def _benchmark_run(args):
 
 
 def _winds(args):
-    from training.winds.winds import winds_command
+    from training.winds.winds import run_winds
 
-    winds_command(args)
+    settings = WindSettings(ls_bin_deg=args.ls_bin, weighting=args.weighting, resample=args.resample,
+                            n_boot=args.bootstrap, n_boot_modes=args.bootstrap_modes, frame=args.frame,
+                            north_up=args.north_up, min_fans=args.min_fans,
+                            model_ls_tolerance_deg=args.model_ls_tolerance, model_max_km=args.model_max_km,
+                            seed=args.seed)
+    run_winds(args.out, crowd=args.crowd, machine=args.machine, tiles=args.tiles, images=args.images,
+              model_winds=args.model_winds, settings=settings, min_votes=args.min_votes, force=args.force)
 
 
 def _demo(args):
@@ -330,7 +400,7 @@ def build_parser():
     )
     parser.add_argument("--version", action="version", version=f"frostvane {_version()}")
     commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
-    add_detector_commands(commands)
+    _add_detector_commands(commands)
     _add_training_commands(commands)
     return parser
 

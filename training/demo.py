@@ -153,7 +153,7 @@ def run_demo(out, *, tiles, model, retrain=False):
           f"{out / 'report' / 'worst_tiles'})")
 
     _section("4. screen a whole demo image (a georeferenced GeoTIFF mosaic of its tiles)")
-    from detector.screening.screen import screen
+    from detector.screening.run import screen
 
     image_id = unseen[0]
     mpp = float(tileset.tiles.loc[tileset.tiles["image_id"] == image_id, "metres_per_px"].iloc[0])

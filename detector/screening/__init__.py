@@ -3,8 +3,8 @@
 from .._lazy import lazy_exports
 
 __getattr__, __dir__ = lazy_exports(__name__, {
-    "ScreenSummary": "screen",
-    "screen": "screen",
+    "ScreenSummary": "run",
+    "screen": "run",
 })
 
 __all__ = ["ScreenSummary", "screen"]

@@ -13,7 +13,7 @@ from detector.errors import DetectorError
 from detector.gis.geo import MARS_SOUTH_POLAR_STEREO, Georeferencer, is_mars_crs
 from detector.gis.gpkg import PIXEL_CRS_WKT, polygon_wkb, read_layer, update_tile_routes, write_polygon_layer
 from detector.gis.raster import write_geotiff
-from detector.screening.screen import screen
+from detector.screening.run import screen
 
 from .test_screen import TILE, _scene, model_dir  # noqa: F401  (session fixture)
 
@@ -160,7 +160,7 @@ def test_wkb_round_trips_through_gdal_and_routes_update(tmp_path):
 def test_polar_quicklook_uses_azimuths_with_north_arrow_and_scale_bar(model_dir, tmp_path, monkeypatch):  # noqa: F811
     from matplotlib import colormaps
 
-    import detector.screening.screen as screen_module
+    import detector.screening.run as screen_module
     from detector.geometry import direction_deg
     from detector.plots import DIRECTION_CMAP
 

@@ -21,7 +21,7 @@ from detector.contract import DETECTION_COLUMNS
 from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
 from detector.io import write_image
 from detector.gis.raster import write_geotiff
-from detector.screening.screen import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
+from detector.screening.run import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
 from frostvane.cli import main as cli_main
 
 REPO = Path(__file__).resolve().parents[2]
@@ -623,7 +623,7 @@ def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_p
     # The canvas the outputs draw is every step-th pixel of each file, no-data as NaN,
     # read again from the files (numpy striding of rasterio's reads is the reference).
     # The workers' samples of their tile cores must rebuild exactly that canvas.
-    from detector.screening import screen as S
+    from detector.screening import run as S
 
     if source == "tile_set":
         inputs = [REPO / "demo_tiles"]
@@ -760,7 +760,7 @@ def test_run_record_that_is_not_an_object_is_refused(model_dir, png_image, tmp_p
 @pytest.mark.parametrize("error", [PermissionError(13, "Permission denied"), OSError(28, "No space left on device")])
 def test_unwritable_output_gives_one_line_and_a_rerun_succeeds(model_dir, png_image, tmp_path, capsys, monkeypatch,
                                                                error):
-    import detector.screening.screen as screen_module
+    import detector.screening.run as screen_module
 
     def refuse(*args, **kwargs):
         error.filename = str(tmp_path / "out" / "tiles.csv")

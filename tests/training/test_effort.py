@@ -16,7 +16,7 @@ from training.effort.effort import (
     ScreenModelMismatch,
     check_screen_model,
     deposit_probability,
-    effort_command,
+    write_effort_outputs,
     estimate_effort,
     machine_threshold,
     pooled_f1,
@@ -476,6 +476,17 @@ def _args(model_dir, screen_dir, **kw):
     return argparse.Namespace(**base)
 
 
+def _effort(args):
+    """``frostvane effort`` on parsed options (the command line's own mapping onto the library call)."""
+    overrides = {key: getattr(args, key) for key in ("classifications_needed", "classifications",
+                                                     "seconds_per_classification", "classifications_per_day",
+                                                     "start_date")}
+    write_effort_outputs(args.model_dir, args.screen_dir, campaign_file=args.campaign, campaign_overrides=overrides,
+                         out=args.out, recall=args.recall, min_f1=args.min_f1,
+                         max_direction_error=args.max_direction_error, pass_share=args.pass_share,
+                         next_tiles=args.next_tiles, learning_curve_root=args.learning_curve, seed=args.seed)
+
+
 def _write_run(screen, model, *, n_tiles=None, status="complete"):
     """The screening's run record: finished, its tile count and the hash of the model that made it."""
     digest = hashlib.sha256((model / "model.json").read_bytes()).hexdigest()
@@ -510,7 +521,7 @@ def test_run_effort_writes_outputs(folders, tmp_path, capsys):
                                             'classifications_per_day = 10\nstart_date = 2026-03-01\n'
                                             'classifications = "have.csv"\n')
     pd.DataFrame({"tile_id": ["s2", "s8"], "classifications": [5, 20]}).to_csv(tmp_path / "have.csv", index=False)
-    effort_command(_args(model, screen, campaign=tmp_path / "campaign.toml"))
+    _effort(_args(model, screen, campaign=tmp_path / "campaign.toml"))
     effort = json.loads((screen / "effort.json").read_text())
     routes = pd.read_csv(screen / "routes.csv")
     tiles = pd.read_csv(screen / "tiles.csv")
@@ -569,7 +580,7 @@ def test_bad_inputs_raise_detector_error(folders, tmp_path, case):
     else:
         args.recall = 0.0 if case == "recall0" else 1.5
     with pytest.raises(DetectorError, match=message):
-        effort_command(args)
+        _effort(args)
 
 
 def test_cli_exit_code_two(folders, tmp_path):
@@ -589,7 +600,7 @@ def test_effort_on_a_real_screening_of_the_demo_tiles(tmp_path):
     """End to end: the shipped model screens two demo tiles; effort accepts it and explains every route."""
     from pathlib import Path
 
-    from detector.screening.screen import screen
+    from detector.screening.run import screen
 
     root = Path(__file__).resolve().parents[2]
     tiles = pd.read_csv(root / "demo_tiles" / "tiles.csv").head(2)

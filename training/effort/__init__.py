@@ -1,7 +1,8 @@
 """The volunteer effort left: the campaign, routes with measured promises, presence, the backtest,
 where the next volunteer hour goes (ranking, labelling order) and the learning curve.
 
-Names load their module on first use.
+Names load their module on first use. The backtest is :func:`training.effort.backtest.backtest`
+(also :func:`training.backtest`).
 """
 
 from detector._lazy import lazy_exports
@@ -13,7 +14,6 @@ __getattr__, __dir__ = lazy_exports(__name__, {
     "route_tiles": "effort",
     "run_effort": "effort",
     "presence_coefficients": "presence",
-    "backtest": "backtest",
     "labelling_order_study": "active",
     "rank_tiles": "active",
     "learning_curve": "curve",
@@ -21,7 +21,6 @@ __getattr__, __dir__ = lazy_exports(__name__, {
 
 __all__ = [
     "Campaign",
-    "backtest",
     "estimate_effort",
     "labelling_order_study",
     "learning_curve",

@@ -334,7 +334,7 @@ def backtest(model_dir, tileset_root, out, *, campaign=None, states=CAMPAIGN_STA
         ``checks`` (covered of counted), ``seconds``.
     """
     from detector.inference.model import load_model
-    from detector.screening.screen import screen
+    from detector.screening.run import screen
     from detector.tileset import load_tileset
 
     from .effort import _read_screen, estimate_effort, route_tiles

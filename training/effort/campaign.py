@@ -40,6 +40,7 @@ __all__ = [
     "DEFAULT_SECONDS_PER_CLASSIFICATION",
     "CAMPAIGN_KEYS",
     "read_campaign",
+    "campaign_with_overrides",
     "read_classifications",
     "remaining_classifications",
     "days_for",
@@ -128,6 +129,24 @@ class Campaign:
             "classifications_from": None if self.classifications is None else str(self.classifications),
             "source": self.source,
         }
+
+
+def campaign_with_overrides(path=None, **overrides):
+    """The campaign of ``path`` (or the defaults) with some of its keys overridden.
+
+    Parameters
+    ----------
+    path : path-like, optional
+        Campaign file (.json or .toml, see :func:`read_campaign`).
+    **overrides
+        Campaign fields; None values leave the file's (or the default) value.
+
+    Returns
+    -------
+    campaign : Campaign
+    """
+    base = read_campaign(path) if path is not None else Campaign()
+    return base.replace(**overrides)
 
 
 def _parse_date(value, where):

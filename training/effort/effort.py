@@ -62,7 +62,7 @@ __all__ = [
     "check_screen_model",
     "run_effort",
     "write_next_tiles",
-    "effort_command",
+    "write_effort_outputs",
 ]
 
 ROUTES = ("skip", "machine", "crowd", "nodata")
@@ -1134,50 +1134,52 @@ def write_next_tiles(model_dir, effort_dir, tileset_root, *, log=print):
     return ranked
 
 
-def _campaign_from_args(args):
-    from .campaign import read_campaign
-
-    path = getattr(args, "campaign", None)
-    base = read_campaign(path) if path is not None else Campaign()
-    return base.replace(classifications_needed=getattr(args, "classifications_needed", None),
-                        seconds_per_classification=getattr(args, "seconds_per_classification", None),
-                        classifications_per_day=getattr(args, "classifications_per_day", None),
-                        start_date=getattr(args, "start_date", None),
-                        classifications=getattr(args, "classifications", None))
-
-
-def effort_command(args):
-    """``frostvane effort``: route screened tiles and estimate effort, and/or draw a learning curve.
+def write_effort_outputs(model_dir, screen_dir=None, *, campaign_file=None, campaign_overrides=None, out=None,
+                         recall=DEFAULT_RECALL,
+                         min_f1=DEFAULT_MIN_F1, max_direction_error=DEFAULT_MAX_DIRECTION_ERROR,
+                         pass_share=DEFAULT_PASS_SHARE, next_tiles=None, learning_curve_root=None, seed=0):
+    """Everything ``frostvane effort`` writes: routes and the effort left, next tiles, a learning curve.
 
     Parameters
     ----------
-    args : argparse.Namespace
-        ``model_dir``, ``screen_dir`` (optional with ``learning_curve``), the
-        campaign (``campaign`` file and the options overriding it), ``recall``,
-        ``min_f1``, ``max_direction_error``, ``pass_share``, ``learning_curve``
-        (tile set path or None), ``out`` (default the screen folder) and ``seed``.
+    model_dir : path-like
+        Model folder (its held-out table sets the routes).
+    screen_dir : path-like, optional
+        Output of ``frostvane screen`` made by this model; needed unless ``learning_curve_root`` is given.
+    campaign_file : path-like, optional
+        Campaign file (see :func:`training.effort.campaign.read_campaign`; default: the campaign defaults).
+    campaign_overrides : dict, optional
+        Campaign fields that override the file's (None values are ignored); the campaign is read only
+        when there is a screening to estimate.
+    out : path-like, optional
+        Folder for the outputs (default: the screening folder; for a learning curve alone,
+        ``out/learning_curve``).
+    recall, min_f1, max_direction_error, pass_share : float
+        Route settings, as in :func:`run_effort`.
+    next_tiles : path-like, optional
+        Tile set whose crowd tiles are ranked by what they would teach the model (needs ``screen_dir``).
+    learning_curve_root : path-like, optional
+        Labelled tile set on which the learning curve is also fitted.
+    seed : int, default=0
+        Seed of the bootstrap and the learning curve.
     """
+    from .campaign import campaign_with_overrides
     from .curve import learning_curve, learning_curve_summary
 
-    screen_dir = getattr(args, "screen_dir", None)
-    curve_root = getattr(args, "learning_curve", None)
-    out = getattr(args, "out", None)
-    _check_settings(recall=args.recall, min_f1=getattr(args, "min_f1", DEFAULT_MIN_F1),
-                    pass_share=getattr(args, "pass_share", DEFAULT_PASS_SHARE))
-    if screen_dir is None and curve_root is None:
+    _check_settings(recall=recall, min_f1=min_f1, pass_share=pass_share)
+    if screen_dir is None and learning_curve_root is None:
         raise DetectorError("frostvane effort needs a SCREEN_DIR (output of `frostvane screen`) or --learning-curve TILESET.")
     if screen_dir is not None:
-        run_effort(args.model_dir, screen_dir, out=out, campaign=_campaign_from_args(args), recall=args.recall,
-                   max_direction_error=args.max_direction_error, min_f1=getattr(args, "min_f1", DEFAULT_MIN_F1),
-                   pass_share=getattr(args, "pass_share", DEFAULT_PASS_SHARE), seed=args.seed)
-    next_root = getattr(args, "next_tiles", None)
-    if next_root is not None:
+        campaign = campaign_with_overrides(campaign_file, **(campaign_overrides or {}))
+        run_effort(model_dir, screen_dir, out=out, campaign=campaign, recall=recall,
+                   max_direction_error=max_direction_error, min_f1=min_f1, pass_share=pass_share, seed=seed)
+    if next_tiles is not None:
         if screen_dir is None:
             raise DetectorError("--next-tiles ranks the crowd tiles of a screening: give SCREEN_DIR too.")
-        write_next_tiles(args.model_dir, Path(out if out is not None else screen_dir), next_root)
-    if curve_root is not None:
+        write_next_tiles(model_dir, Path(out if out is not None else screen_dir), next_tiles)
+    if learning_curve_root is not None:
         curve_out = Path(out) if out is not None else (Path(screen_dir) if screen_dir is not None
                                                        else Path("out") / "learning_curve")
-        curve = learning_curve(curve_root, seed=args.seed, out=curve_out)
+        curve = learning_curve(learning_curve_root, seed=seed, out=curve_out)
         print(learning_curve_summary(curve))
         print(f"wrote {curve_out / 'learning_curve.json'} and {curve_out / 'learning_curve.png'}")

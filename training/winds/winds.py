@@ -79,7 +79,7 @@ __all__ = [
     "match_model_winds",
     "analyse_winds",
     "write_winds",
-    "winds_command",
+    "run_winds",
     "format_headline",
 ]
 
@@ -894,15 +894,21 @@ def format_headline(analysis, *, max_rows=16):
     return "\n".join(lines)
 
 
-def winds_command(args):
-    """``frostvane winds``: analyse, write, print the headline."""
-    settings = WindSettings(ls_bin_deg=args.ls_bin, weighting=args.weighting, resample=args.resample,
-                            n_boot=args.bootstrap, n_boot_modes=args.bootstrap_modes, frame=args.frame,
-                            north_up=args.north_up, min_fans=args.min_fans,
-                            model_ls_tolerance_deg=args.model_ls_tolerance, model_max_km=args.model_max_km,
-                            seed=args.seed)
-    analysis = analyse_winds(crowd=args.crowd, machine=args.machine, tiles=args.tiles, images=args.images,
-                             model_winds=args.model_winds, settings=settings, min_votes=args.min_votes)
-    files = write_winds(analysis, args.out, force=args.force)
+def run_winds(out, *, crowd=None, machine=(), tiles=None, images=None, model_winds=None, settings=None,
+              min_votes=3, force=False):
+    """``frostvane winds``: analyse the catalogs, write the outputs, print the headline.
+
+    Parameters
+    ----------
+    out : path-like
+        Folder for the wind tables, GIS layers and plots.
+    crowd, machine, tiles, images, model_winds, settings, min_votes
+        As in :func:`analyse_winds`.
+    force : bool, default=False
+        Replace a non-empty output folder.
+    """
+    analysis = analyse_winds(crowd=crowd, machine=machine, tiles=tiles, images=images,
+                             model_winds=model_winds, settings=settings, min_votes=min_votes)
+    files = write_winds(analysis, out, force=force)
     print(format_headline(analysis))
-    print(f"outputs in {args.out}: {', '.join(files)}")
+    print(f"outputs in {out}: {', '.join(files)}")

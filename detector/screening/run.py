@@ -88,7 +88,6 @@ __all__ = [
     "DEPOSIT_THRESHOLD",
     "ScreenSummary",
     "screen",
-    "screen_command",
     "tile_direction_stats",
 ]
 
@@ -1552,11 +1551,3 @@ def _finite(obj):
         return None
     return obj
 
-
-def screen_command(args):
-    """``frostvane screen``: run :func:`screen` with the parsed arguments and print the summary."""
-    summary = screen(
-        args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap, workers=args.workers,
-        scheduler=args.scheduler, nodata=args.nodata, band=args.band, any_body=args.any_body, force=args.force,
-    )
-    print(summary.format())
