@@ -3,7 +3,7 @@
 from .._lazy import lazy_exports
 
 __getattr__, __dir__ = lazy_exports(__name__, {
-    "ScreenSummary": "run",
+    "ScreenSummary": "outputs",
     "screen": "run",
 })
 

@@ -15,7 +15,8 @@ the same in both runs; the finished folder is then moved to ``--dest``. ``compar
 the same when their bytes are (sha256), and otherwise only when they agree after removing the
 fields that record when or how fast a run went (listed in :data:`VOLATILE_KEYS` and
 :data:`VOLATILE_LINES`; GeoPackages are compared table by table without their ``last_change``
-stamps). It prints one line per file that is not byte-identical and exits 1 when any file differs.
+stamps; printed output with the checkout's own path, where the demo shows the studies recorded
+in its docs/, read as ``<checkout>``). It prints one line per file that is not byte-identical and exits 1 when any file differs.
 """
 
 import argparse
@@ -54,6 +55,11 @@ VOLATILE_LINES = (
 )
 
 
+#: Where ``run`` notes the checkout whose code ran; printed paths into it (the recorded studies in
+#: docs/ that the demo shows) are compared as ``<checkout>``.
+CHECKOUT_FILE = "checkout.txt"
+
+
 def run(code, module, dest):
     """Run :data:`COMMANDS` with the code of ``code`` and move their outputs to ``dest``."""
     code = Path(code).resolve()
@@ -74,6 +80,7 @@ def run(code, module, dest):
                               capture_output=True, text=True)
         (out / f"{name}.log").write_text(f"exit {done.returncode}\n{done.stdout}{done.stderr}")
         print(f"{name}: exit {done.returncode}", flush=True)
+    (out / CHECKOUT_FILE).write_text(str(code))
     shutil.move(str(out), dest)
     shutil.rmtree(SCRATCH)
 
@@ -108,14 +115,21 @@ def _gpkg_rows(path):
         con.close()
 
 
-def _text(path):
+def _checkout(folder):
+    note = folder / CHECKOUT_FILE
+    return note.read_text().strip() if note.is_file() else None
+
+
+def _text(path, checkout):
     text = path.read_text(errors="replace")
+    if checkout:
+        text = text.replace(checkout, "<checkout>")
     for pattern, replacement in VOLATILE_LINES:
         text = pattern.sub(replacement, text)
     return text
 
 
-def same_after_masking(a, b):
+def same_after_masking(a, b, checkouts=(None, None)):
     """Whether two files that differ in bytes agree once their volatile fields are removed."""
     suffix = a.suffix.lower()
     if suffix == ".json":
@@ -123,7 +137,7 @@ def same_after_masking(a, b):
     if suffix == ".gpkg":
         return _gpkg_rows(a) == _gpkg_rows(b)
     if suffix in (".log", ".txt", ".md", ".csv"):
-        return _text(a) == _text(b)
+        return _text(a, checkouts[0]) == _text(b, checkouts[1])
     return False
 
 
@@ -132,6 +146,8 @@ def compare(before, after):
     before, after = Path(before), Path(after)
     names = sorted({p.relative_to(before) for p in before.rglob("*") if p.is_file()}
                    | {p.relative_to(after) for p in after.rglob("*") if p.is_file()})
+    names = [name for name in names if str(name) != CHECKOUT_FILE]
+    checkouts = (_checkout(before), _checkout(after))
     identical = masked = 0
     differ = []
     for name in names:
@@ -140,15 +156,15 @@ def compare(before, after):
             differ.append(f"{name}: only in {'after' if not a.is_file() else 'before'}")
         elif _sha256(a) == _sha256(b):
             identical += 1
-        elif same_after_masking(a, b):
+        elif same_after_masking(a, b, checkouts):
             masked += 1
-            print(f"same but for run dates, durations and speeds: {name}")
+            print(f"same but for run dates, durations, speeds and the checkout's path: {name}")
         else:
             differ.append(f"{name}: differs")
     for line in differ:
         print(f"DIFFERS: {line}")
-    print(f"{len(names)} files: {identical} byte-identical, {masked} identical but for run dates and "
-          f"durations, {len(differ)} differ")
+    print(f"{len(names)} files: {identical} byte-identical, {masked} identical but for run dates, durations, "
+          f"speeds and the checkout's path, {len(differ)} differ")
     return len(differ)
 
 

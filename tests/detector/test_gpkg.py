@@ -160,18 +160,18 @@ def test_wkb_round_trips_through_gdal_and_routes_update(tmp_path):
 def test_polar_quicklook_uses_azimuths_with_north_arrow_and_scale_bar(model_dir, tmp_path, monkeypatch):  # noqa: F811
     from matplotlib import colormaps
 
-    import detector.screening.run as screen_module
+    import detector.screening.outputs as screen_outputs
     from detector.geometry import direction_deg
     from detector.plots import DIRECTION_CMAP
 
     captured = {}
-    save = screen_module._Figures.save
+    save = screen_outputs._Figures.save
 
     def keep(self, *paths):
         captured["figures"] = self
         save(self, *paths)
 
-    monkeypatch.setattr(screen_module._Figures, "save", keep)
+    monkeypatch.setattr(screen_outputs._Figures, "save", keep)
     tif = tmp_path / "polar.tif"
     write_geotiff(tif, _scene((HEIGHT, WIDTH), 21, scenario="windy", nodata=False), crs=MARS_SOUTH_POLAR_STEREO,
                   transform=Affine(RES, 0.0, X0, 0.0, -RES, Y0))

@@ -21,7 +21,9 @@ from detector.contract import DETECTION_COLUMNS
 from detector.gis.geo import MARS_SOUTH_POLAR_STEREO
 from detector.io import write_image
 from detector.gis.raster import write_geotiff
-from detector.screening.run import GEO_COLUMNS, TILE_COLUMNS, screen, tile_direction_stats
+from detector.inference.detect import tile_direction_stats
+from detector.screening.folder import GEO_COLUMNS, TILE_COLUMNS
+from detector.screening.run import screen
 from frostvane.cli import main as cli_main
 
 REPO = Path(__file__).resolve().parents[2]
@@ -623,7 +625,7 @@ def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_p
     # The canvas the outputs draw is every step-th pixel of each file, no-data as NaN,
     # read again from the files (numpy striding of rasterio's reads is the reference).
     # The workers' samples of their tile cores must rebuild exactly that canvas.
-    from detector.screening import run as S
+    from detector.screening import outputs, plan, workers
 
     if source == "tile_set":
         inputs = [REPO / "demo_tiles"]
@@ -634,19 +636,19 @@ def test_quicklook_canvas_from_worker_samples_equals_a_second_read(source, tmp_p
         image[250:, 2000:2600] = 0
         write_geotiff(path, image, nodata=0)
         inputs = [path]
-    tasks, images = S._plan(inputs, tile=(800, 600), overlap=32, nodata=None, band=None)
-    steps = S._canvas_steps(images)
+    tasks, images = plan._plan(inputs, tile=(800, 600), overlap=32, nodata=None, band=None)
+    steps = plan._canvas_steps(images)
     assert steps and all(step >= 4 for step in steps.values())
-    cap = S._panel_cap(len(images))
+    cap = plan._panel_cap(len(images))
     for name in list(images)[:3]:
         blocks = []
         for task in (t for t in tasks if t.image == name):
             assert task.canvas_step == steps[name]
-            src, _ = S._cached_source(task.path, task.band, task.nodata)
+            src, _ = workers._cached_source(task.path, task.band, task.nodata)
             array, mask = src.read(task.window)
-            blocks.append((task.path, S._canvas_block(array, mask, task)))
-        sampled, scale = S._canvas(images[name], None, None, cap, blocks)
-        reread, scale_reread = S._canvas(images[name], None, None, cap)
+            blocks.append((task.path, workers._canvas_block(array, mask, task)))
+        sampled, scale = outputs._canvas(images[name], None, None, cap, blocks)
+        reread, scale_reread = outputs._canvas(images[name], None, None, cap)
         assert scale == scale_reread
         assert sampled.tobytes() == reread.tobytes()  # NaN where no data, in the same places
         if source != "tile_set":  # the no-data strip on the left is NaN on the canvas, the rest is not
