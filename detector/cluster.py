@@ -1,6 +1,6 @@
 """Dask distributed: reaching a running scheduler and counting its workers.
 
-Screening (:func:`detector.screen.screen`) and training (``training.parallel``) both
+Screening (:func:`detector.screening.run.screen`) and training (``training.parallel``) both
 run on a cluster given by its scheduler's address; this module is where they connect,
 so that both fail the same way. What runs on the workers belongs to the caller, and
 every file it names must be given by absolute path: a worker may run in another folder,

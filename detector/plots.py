@@ -174,7 +174,7 @@ def add_north_arrow(ax, north_deg, *, where=(0.08, 0.86), size=0.07):
         An axis showing an image (row down).
     north_deg : float
         Direction of north in the image, degrees clockwise from image up
-        (see :meth:`detector.geo.Georeferencer.grid_to_azimuth`: the image
+        (see :meth:`detector.gis.geo.Georeferencer.grid_to_azimuth`: the image
         direction whose azimuth is 0).
     where : (float, float), optional
         Arrow centre in axes fractions.

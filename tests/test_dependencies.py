@@ -2,7 +2,7 @@
 
 The floors are not decoration: with numpy 2.2 and older, ``np.sum`` of a long float64 array
 adds in another order than numpy 2.3 and later, and the compiled sums that reproduce it
-(``detector._readings.psum``, held to ``np.sum`` in tests/detector/test_assemble.py) differ in
+(``detector.objects._readings.psum``, held to ``np.sum`` in tests/detector/test_assemble.py) differ in
 the last bit (checked by hand on numpy 1.26.4, 2.0.2, 2.2.6, 2.3.5 and 2.4.6; see
 DEVELOPERS.md, "Dependency floors").
 """

@@ -1,7 +1,7 @@
 """Where training's tile loops run: local worker processes, or a Dask cluster.
 
-Feature extraction (:func:`training.dataset.build_patch_set`), candidate readings and
-the runs of a model over labelled tiles (:func:`training.evaluate.run_on_tiles`) are
+Feature extraction (:func:`training.fitting.dataset.build_patch_set`), candidate readings and
+the runs of a model over labelled tiles (:func:`training.evaluation.evaluate.run_on_tiles`) are
 loops over tiles. Each takes its joblib ``Parallel`` from :func:`tile_parallel`: outside
 :func:`on_cluster` that is ``workers`` local processes (joblib's loky backend; serial for
 one); inside it, every such loop goes to the Dask cluster through joblib's Dask backend,

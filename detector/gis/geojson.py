@@ -8,11 +8,11 @@ Coordinates
 -----------
 RFC 7946 positions are longitude and latitude in degrees; the standard names
 WGS 84, which does not exist on Mars, and it forbids a ``crs`` member. So, with
-a :class:`~detector.geo.Georeferencer`, positions are ``[lon, lat]``:
+a :class:`~detector.gis.geo.Georeferencer`, positions are ``[lon, lat]``:
 
 * planetocentric latitude (the angle at Mars's centre; identical to latitude
   on the IAU 2015 Mars sphere of radius 3 396 190 m, which is the geographic
-  CRS to read the file with, :data:`detector.geo.MARS_GEOGRAPHIC`);
+  CRS to read the file with, :data:`detector.gis.geo.MARS_GEOGRAPHIC`);
 * longitude east-positive in [-180, 180] (RFC 7946 section 4 range); a
   polygon crossing the antimeridian is cut there into a MultiPolygon
   (section 3.1.9), and one that encloses a pole is closed along the
@@ -222,7 +222,7 @@ def detections_to_geojson(detections_df, *, georef=None, n_arc=32, n_ellipse=48)
         and ``opening_deg`` (full opening, degrees) for fans,
         ``semi_major_px`` and ``semi_minor_px`` for spots; any further columns
         (``tile_id``, ``score``, ...) are copied to the properties.
-    georef : detector.geo.Georeferencer, optional
+    georef : detector.gis.geo.Georeferencer, optional
         Write planetocentric longitude / latitude; without it, image pixels
         (not for GIS; see the module notes).
     n_arc : int, optional

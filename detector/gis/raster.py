@@ -263,7 +263,7 @@ class RasterSource:
         return self.crs is not None and not self.transform.almost_equals(Affine.identity())
 
     def georeferencer(self):
-        """A :class:`detector.geo.Georeferencer` for this image."""
+        """A :class:`detector.gis.geo.Georeferencer` for this image."""
         from .geo import Georeferencer
 
         if not self.is_georeferenced:

@@ -84,7 +84,7 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
     object_feature_names : tuple of str
         Names the object classifier and direction-confidence model may read.
     assembly_fields : dict of str to type
-        Fields of :class:`detector.assemble.AssemblyParams` and their types.
+        Fields of :class:`detector.objects.assemble.AssemblyParams` and their types.
     """
     c = _Checker(card, source)
     if not isinstance(card, dict):

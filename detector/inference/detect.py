@@ -33,7 +33,7 @@ class TileResult:
     shape : tuple of int
         (rows, cols) of the tile, px.
     detections : DataFrame
-        Fan and spot objects (columns of :data:`detector.assemble.OBJECT_COLUMNS`), tile px.
+        Fan and spot objects (columns of :data:`detector.objects.assemble.OBJECT_COLUMNS`), tile px.
     grid : PatchGrid
     proba : ndarray of shape (n_patches, 3)
         Calibrated probabilities of none, fan and spot per patch ((1, 0, 0) for
@@ -83,7 +83,7 @@ class TileResult:
 
 @dataclass
 class TileMaps:
-    """Patch outputs of a tile, readable at any pixel (:class:`detector.assemble.PatchField`)."""
+    """Patch outputs of a tile, readable at any pixel (:class:`detector.objects.assemble.PatchField`)."""
 
     proba: np.ndarray
     polarity: np.ndarray
@@ -184,7 +184,7 @@ def tile_maps(X, grid, shape, spec, predict_patches, predict_polarity):
 
 
 def tile_candidates(tile, nodata_mask, maps, spec, params, *, prep=None):
-    """Dark components of a tile as object candidates (see :func:`detector.assemble.find_candidates`).
+    """Dark components of a tile as object candidates (see :func:`detector.objects.assemble.find_candidates`).
 
     ``prep``, the tile from ``_dense.prepare_tile``, saves preparing it again.
     """
@@ -199,7 +199,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
 
     Parameters
     ----------
-    model : detector.model.Model
+    model : detector.inference.model.Model
     tile : ndarray of shape (M, N)
         uint8, uint16 or float in [0, 1].
     tile_id : str, default=""

@@ -200,7 +200,7 @@ def load_model(folder):
     ------
     ModelError
         A file is missing, a hash differs from the one in the card, or the card breaks its
-        schema (:func:`detector.card.check_card`: types, lengths and ranges of every field read).
+        schema (:func:`detector.inference.card.check_card`: types, lengths and ranges of every field read).
     SpecError
         The model was made with another feature version or parameters than this code computes.
     """

@@ -40,7 +40,7 @@ GEO_COLUMNS = ("lon_deg", "lat_deg", "azimuth_deg", "wind_from_deg", "length_m")
 DETECTION_OUTPUT_COLUMNS = DETECTION_COLUMNS + ("image", "col0", "row0", "area_m2")
 
 
-#: How detections.geojson gives positions (see detector.geojson).
+#: How detections.geojson gives positions (see detector.gis.geojson).
 GEOJSON_COORDINATES = (
     "RFC 7946 [longitude, latitude] in degrees: planetocentric latitude (= latitude on the IAU 2015 Mars "
     "sphere, radius 3396190 m), longitude east-positive in [-180, 180]"

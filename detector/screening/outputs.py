@@ -119,7 +119,7 @@ def _geojson_chunks(detections, tasks, geo, *, chunk=2000):
 
 
 def _geojson(detections, tasks, geo):
-    """Planetocentric lon/lat FeatureCollection of georeferenced detections (see detector.geojson)."""
+    """Planetocentric lon/lat FeatureCollection of georeferenced detections (see detector.gis.geojson)."""
     from ..gis.geojson import detections_to_geojson
 
     paths, ox, oy = _image_offsets(detections, tasks)
@@ -508,7 +508,7 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
         if geo.any_georeferenced:
             write_geojson_chunks(stage / _GEOJSON, image_chunks(tiles_out, detections_out))
         else:
-            # Without any CRS there is no longitude or latitude to write: no GeoJSON (see detector.geojson).
+            # Without any CRS there is no longitude or latitude to write: no GeoJSON (see detector.gis.geojson).
             for _ in image_chunks(tiles_out, detections_out):
                 pass
     figures.save(stage / "quicklook.png", stage / "rose.png")

@@ -20,7 +20,7 @@ __all__ = []  # private to detector.screening
 
 
 # Per process: a few open rasters, so that a worker pays for opening once, not once
-# per tile (models are cached by detector.model.cached_model).
+# per tile (models are cached by detector.inference.model.cached_model).
 _SOURCES = OrderedDict()
 
 

@@ -368,7 +368,7 @@ def _clip(x, lo, hi):
 def intensity_maps(image, background, inv_scale, z_range, bin_scale, n_bins, dark_max, valid, use_valid,
                    cell_px, ncr, ncc):
     """The intensity group's per-pixel maps and cell sums in one pass over a float32 tile,
-    with numpy's float32 arithmetic of :meth:`detector.features._Pooler.intensity`:
+    with numpy's float32 arithmetic of :meth:`detector.tile.features._Pooler.intensity`:
 
     ``z = (image - background) * inv_scale``; the histogram bin
     ``uint8(clip((z + z_range) * bin_scale, 0, n_bins - 1))``; the darkness
@@ -447,7 +447,7 @@ def pairwise_block(a, lo, n):
 @njit(cache=True, nogil=True)
 def haralick_rows(counts, factor, weights, mult):
     """Haralick properties (6, n) of folded symmetric counts ``counts * factor`` (n, n_pairs;
-    ``factor`` per pair, 1 or 2: exact), as :func:`detector._dense.glcm_props_folded`
+    ``factor`` per pair, 1 or 2: exact), as :func:`detector.tile._dense.glcm_props_folded`
     computes them with numpy: each weighted sum adds its terms in pair order from 0.0
     (the order ``np.einsum`` takes for these operands), then the same divisions, in float64."""
     n, n_pairs = counts.shape
@@ -947,7 +947,7 @@ def _col_diff_row(image, g_col, r, out):
 @njit(cache=True, nogil=True)
 def patch_field_at(values, y0, x0, step_y, step_x, ys, xs):
     """Bilinear read of per-patch ``values`` (n_rows, n_cols, k) float32 at pixels (ys, xs),
-    as :meth:`detector.assemble.PatchField.at` computes it with numpy: positions in
+    as :meth:`detector.objects.assemble.PatchField.at` computes it with numpy: positions in
     float32, weights and sums in float64, result float32."""
     n_rows, n_cols, k = values.shape
     n = ys.size

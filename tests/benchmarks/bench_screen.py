@@ -7,7 +7,7 @@ Not a test: run by hand, e.g.
 
 For every size it writes a synthetic single-band GeoTIFF (Mars south polar
 stereographic, 1 m pixels) window by window with
-:func:`detector.raster.write_by_windows`, filled with the demo tiles repeated
+:func:`detector.gis.raster.write_by_windows`, filled with the demo tiles repeated
 (or rendered scenes when no tile set is given), then runs ``frostvane screen``
 on it in a subprocess and measures
 

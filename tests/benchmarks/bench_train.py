@@ -46,7 +46,7 @@ def main():
         print(f"rendered {n_images * tiles_per_image} tiles in {time.perf_counter() - t0:.0f} s (not timed)", flush=True)
     code = (
         "import sys; sys.path.insert(0, %r)\n"
-        "from training.train import TrainConfig, train_model\n"
+        "from training.fitting.train import TrainConfig, train_model\n"
         "card = train_model(%r, %r, TrainConfig(seed=%d, workers=%d), force=True, log=lambda m: print(m, flush=True))\n"
         "import json; print('HELDOUT ' + json.dumps(card['heldout_metrics']))\n"
     ) % (str(ROOT), str(tileset), str(work / "model"), args.seed, args.workers)

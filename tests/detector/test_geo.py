@@ -1,4 +1,4 @@
-"""Tests of detector.geo against map-projection formulas and pyproj."""
+"""Tests of detector.gis.geo against map-projection formulas and pyproj."""
 
 import numpy as np
 import pyproj

@@ -1,4 +1,4 @@
-"""Tests of detector.geojson: RFC 7946 structure, polygon areas, georeferenced output."""
+"""Tests of detector.gis.geojson: RFC 7946 structure, polygon areas, georeferenced output."""
 
 import json
 

@@ -1,4 +1,4 @@
-"""Tests of detector.gpkg and of a screening's GIS files, read back with GDAL (pyogrio) and checked with PROJ."""
+"""Tests of detector.gis.gpkg and of a screening's GIS files, read back with GDAL (pyogrio) and checked with PROJ."""
 
 import json
 

@@ -1,4 +1,4 @@
-"""Tests of detector.raster: window plans, windowed reads, GeoTIFF writing and mosaics."""
+"""Tests of detector.gis.raster: window plans, windowed reads, GeoTIFF writing and mosaics."""
 
 import numpy as np
 import pandas as pd

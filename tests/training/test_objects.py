@@ -52,7 +52,7 @@ def test_a_reading_pointing_the_wrong_way_is_not_right():
 
 
 def test_labels_agree_with_the_evaluation_matching_for_one_reading_per_interpretation():
-    # Reference: training.scoring.match_objects on the same rows (one reading, so one-to-one is trivial).
+    # Reference: training.evaluation.scoring.match_objects on the same rows (one reading, so one-to-one is trivial).
     rng = np.random.default_rng(3)
     for _ in range(20):
         x, y = rng.uniform(80, 120, 2)

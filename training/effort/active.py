@@ -186,8 +186,8 @@ def tiles_to_reach(n, score, target):
 def tiles_needed_interval(n, score, target, *, n_boot=500, seed=0):
     """Labelled tiles at which a fitted curve reaches ``target``, with a residual-bootstrap interval.
 
-    Fits ``1 - score = a * n**-b + c`` (:func:`training.curve.fit_power_law`),
-    solves it for ``target`` (:func:`training.curve.tiles_needed`), then refits
+    Fits ``1 - score = a * n**-b + c`` (:func:`training.effort.curve.fit_power_law`),
+    solves it for ``target`` (:func:`training.effort.curve.tiles_needed`), then refits
     ``n_boot`` times with the residuals resampled to give a 90 % interval.
 
     Parameters

@@ -226,7 +226,7 @@ def learning_curve(tileset_root, *, seed=0, fractions=None, out=None, max_patche
                    log=print):
     """Train on nested image subsets, fit power laws to the held-out errors, estimate tiles needed.
 
-    The held-out images are chosen once (:func:`training.train.split_images`) and
+    The held-out images are chosen once (:func:`training.fitting.train.split_images`) and
     every run is scored on them; the other images are shuffled once and the k-th
     run trains on the first ``sizes[k]`` of them, so the subsets are nested.
 

@@ -25,7 +25,7 @@ images. The same resamples re-route the screened tiles, which gives the
 interval of the classifications left.
 
 The effort left is what the routed tiles still need: ``max(needed - have, 0)``
-classifications per crowd tile (:mod:`training.campaign`).
+classifications per crowd tile (:mod:`training.effort.campaign`).
 """
 
 import json
@@ -380,7 +380,7 @@ def unfamiliar_groups_text(score, shares, cut):
 
     Groups with at least :data:`REASON_MIN_SHARE` of the squared distance are
     named, largest first, each with the score the tile would have without its
-    part (``score * sqrt(1 - share)``, :func:`detector.unfamiliar.unfamiliarity_parts`);
+    part (``score * sqrt(1 - share)``, :func:`detector.inference.unfamiliar.unfamiliarity_parts`);
     the text ends by naming the groups whose removal alone brings the tile
     within the cut, or saying that none does.
 
@@ -593,7 +593,7 @@ def deposit_probability(heldout_p, heldout_has_deposit, p):
 
     A logistic regression of the held-out tiles' 0/1 deposit indicator on
     ``logit(p_deposit)`` with Firth's penalty, held non-decreasing
-    (:mod:`training.presence`, where the choice over the isotonic fit used
+    (:mod:`training.effort.presence`, where the choice over the isotonic fit used
     before is measured).
 
     Parameters
@@ -777,7 +777,7 @@ def _machine_spread(col, held_code, f1_iv, direction_iv):
     """How far the machine's held-out promise can be trusted: an interval, or only a range of few images.
 
     The out-of-bag bootstrap interval needs at least
-    :data:`training.scoring.MIN_IMAGES_FOR_CI` held-out images carrying
+    :data:`training.evaluation.scoring.MIN_IMAGES_FOR_CI` held-out images carrying
     machine tiles; with fewer, the pooled F1 and median direction error of
     each such image are given as their range (min, max), which is no interval
     and says so.
@@ -1001,7 +1001,7 @@ def _check_against_run(screen_dir, path, tiles):
 
 
 def _read_card(model_dir):
-    """The card of a model whose ONNX files and card schema pass :func:`detector.model.load_model`."""
+    """The card of a model whose ONNX files and card schema pass :func:`detector.inference.model.load_model`."""
     from detector.inference.model import load_model
 
     return load_model(model_dir).card
@@ -1049,7 +1049,7 @@ def run_effort(model_dir, screen_dir, *, out=None, campaign=None, recall=DEFAULT
     out : path-like, optional
         Folder for effort.json, routes.csv, effort.png and hours.png; default ``screen_dir``.
     campaign : Campaign, optional
-        Default :class:`training.campaign.Campaign` (30 classifications a tile, none given yet).
+        Default :class:`training.effort.campaign.Campaign` (30 classifications a tile, none given yet).
 
     Returns
     -------
@@ -1112,7 +1112,7 @@ def write_next_tiles(model_dir, effort_dir, tileset_root, *, log=print):
     Returns
     -------
     ranked : DataFrame
-        See :func:`training.active.rank_tiles`.
+        See :func:`training.effort.active.rank_tiles`.
     """
     from detector.tileset import load_tileset
 

@@ -178,7 +178,7 @@ def evaluate_tiles(model_dir, tileset, tile_ids, *, log=print, seed=0, workers=1
     Returns
     -------
     heldout : dict
-        ``scores`` (from :func:`training.scoring.score_catalogs`), ``patch`` (patch
+        ``scores`` (from :func:`training.evaluation.scoring.score_catalogs`), ``patch`` (patch
         metrics), ``per_tile`` (per-tile figures for the effort estimate).
     """
     model = load_model(model_dir)
@@ -305,7 +305,7 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         Number of tiles with the most errors drawn into ``worst_tiles/``.
 
     Besides ``report.json``, ``report.md``, ``detections.csv`` and the plots,
-    the folder gets the error analysis of :func:`training.diagnose.error_breakdown`:
+    the folder gets the error analysis of :func:`training.evaluation.diagnose.error_breakdown`:
     ``errors_consensus.csv`` and ``errors_detections.csv`` (one outcome per
     feature), the "Where features are lost" section of report.md (its numbers
     under ``error_breakdown`` in report.json) and ``worst_tiles/worst_<tile_id>.png``

@@ -1,4 +1,4 @@
-"""Evaluation report: report.json, report.md and PNG plots from :func:`training.scoring.score_catalogs`."""
+"""Evaluation report: report.json, report.md and PNG plots from :func:`training.evaluation.scoring.score_catalogs`."""
 
 import math
 from pathlib import Path
@@ -97,7 +97,7 @@ def headline_table(scores, ceiling=None):
     Parameters
     ----------
     scores : dict
-        Output of :func:`training.scoring.score_catalogs` for the model.
+        Output of :func:`training.evaluation.scoring.score_catalogs` for the model.
     ceiling : dict, optional
         The same for the synthetic noise-free truth scored against its consensus.
 
@@ -442,14 +442,14 @@ def write_report(
     Parameters
     ----------
     scores : dict
-        Output of :func:`training.scoring.score_catalogs` for the model.
+        Output of :func:`training.evaluation.scoring.score_catalogs` for the model.
     out_dir : path-like
         Folder; created if needed. Files are written atomically.
     ceiling : dict, optional
         Scores of the noise-free truth against its consensus.
     pr_curves : mapping, optional
         class -> {precision, recall, average_precision (optional)}, e.g. the
-        ``curves`` of :func:`training.scoring.patch_metrics` with its APs.
+        ``curves`` of :func:`training.evaluation.scoring.patch_metrics` with its APs.
     reliability : mapping, optional
         name -> (y_true, proba): 0/1 outcomes and calibrated probabilities.
     per_image_directions : mapping, optional
@@ -457,9 +457,9 @@ def write_report(
         derived from ``fan_directions`` when that has image_id.
     fan_directions : DataFrame, optional
         Matched fans with consensus_deg, predicted_deg and error_deg (see
-        :func:`training.scoring.matched_fans`), for the error histogram and scatter.
+        :func:`training.evaluation.scoring.matched_fans`), for the error histogram and scatter.
     error_breakdown : dict, optional
-        :meth:`training.diagnose.ErrorBreakdown.to_dict`, optionally with
+        :meth:`training.evaluation.diagnose.ErrorBreakdown.to_dict`, optionally with
         ``worst_tiles`` (records of tile_id, n_lost, n_false and figure, a
         path relative to ``out_dir``): stored in report.json under
         ``error_breakdown`` and shown as the "Where features are lost" section.

@@ -462,9 +462,9 @@ def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
 
     The consensus side is the circular mean of the tile's fans weighted by
     length. The detections' side pools robustly
-    (:func:`detector.detect.tile_direction_stats`), weighting each fan by
+    (:func:`detector.inference.detect.tile_direction_stats`), weighting each fan by
     score x direction confidence x length
-    (:func:`detector.detect.fan_direction_weights`), because a few wrong fans
+    (:func:`detector.inference.detect.fan_direction_weights`), because a few wrong fans
     would otherwise drag the mean; without those columns it is the length-weighted
     robust mean. A tile without any detected fan gets a NaN error.
 

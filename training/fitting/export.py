@@ -11,7 +11,7 @@ def to_onnx_bytes(estimator, n_features):
     """Serialise a fitted classifier (HistGradientBoosting) to ONNX bytes.
 
     Probabilities come out as a plain float tensor (no ZipMap), the form that
-    :mod:`detector.model` reads.
+    :mod:`detector.inference.model` reads.
 
     Parameters
     ----------

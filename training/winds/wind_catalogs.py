@@ -2,7 +2,7 @@
 
 Every reader returns a :class:`FanCatalog`: one row per fan and one row per
 tile, in the same columns whatever the source, so that the statistics of
-:mod:`training.winds` never look at where a catalog came from.
+:mod:`training.winds.winds` never look at where a catalog came from.
 
 ``fans`` columns (:data:`FAN_COLUMNS`)
     ``tile_key`` (unique tile key within the run), ``tile_id``, ``image_id``,

@@ -664,7 +664,7 @@ def analyse_winds(*, crowd=None, machine=(), tiles=None, images=None, model_wind
     tiles : path-like, optional
         Tile set giving regions, Ls and tile sizes of the machine catalog (default: ``crowd``).
     images : path-like, optional
-        Image table (:func:`training.wind_catalogs.read_image_table`).
+        Image table (:func:`training.winds.wind_catalogs.read_image_table`).
     model_winds : path-like, optional
         Model wind table (:func:`read_model_winds`).
     settings : WindSettings, optional
@@ -794,7 +794,7 @@ def write_winds(analysis, out, *, force=False):
     ``agreement_bins.csv`` and ``agreement_images.csv`` (with both catalogs),
     ``model_match.csv`` (with a model table), ``winds.json`` (all of it plus the
     settings and the headline), ``bins.geojson``, ``bins.gpkg`` (located bins
-    only) and the PNG plots of :mod:`training.wind_plots`.
+    only) and the PNG plots of :mod:`training.winds.wind_plots`.
 
     Returns
     -------
