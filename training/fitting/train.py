@@ -86,7 +86,7 @@ class TrainConfig:
     neg_ratio : float, default=3.0
     degrade : bool, default=True
         Photometric augmentation: the turned copies of fitting tiles are also
-        blurred, made noisier and flatter (:data:`training.dataset.DEGRADE_RANGES`),
+        blurred, made noisier and flatter (:data:`training.fitting.dataset.DEGRADE_RANGES`),
         for the patch, orientation and object models alike.
     max_iter : int, default=300
     learning_rate : float, default=0.1
@@ -338,7 +338,7 @@ def fit_unfamiliarity(summaries, *, n_components=8, quantile=0.99, margin=1.25):
     Returns
     -------
     stats : dict
-        JSON-ready; read by :func:`detector.unfamiliar.unfamiliarity_score`.
+        JSON-ready; read by :func:`detector.inference.unfamiliar.unfamiliarity_score`.
     """
     Z = np.asarray(summaries, dtype=np.float64)
     mean = Z.mean(axis=0)
@@ -407,14 +407,114 @@ def _tile_workers(config, log):
 
 
 def _train(tileset_root, out, config, spec, log, started):
-    """The body of :func:`train_model` once the tile loops' workers are known."""
+    """The body of :func:`train_model` once the tile loops' workers are known: its steps in order."""
+    _check_output_parent(out)
+    tileset, split = _load_and_split(tileset_root, config, log)
+    patches = _patch_sets(tileset_root, tileset, split, spec, config, log)
+    patch_model = _fit_patch_classifier(patches, config, log)
+    orientation = _fit_orientation_model(patches, spec, config, log)
+    objects = _fit_object_classifier(tileset, split, patches, patch_model, orientation, spec, config, log)
+    onnx = _export(patches, patch_model, orientation, objects, config, log)
+    card = _model_card(tileset_root, tileset, split, patches, patch_model, orientation, objects, onnx, spec, config)
+    _write_model_folder(out, card, onnx, tileset, split, patches, objects, config, log, started)
+    return card
+
+
+@dataclass(frozen=True)
+class _Split:
+    """The images of each group and their tiles; ``fit_fans`` are the consensus fans of the fitting tiles."""
+
+    fit: list
+    calibration: list
+    holdout: list
+    ids: dict
+    fit_fans: object
+
+
+@dataclass(frozen=True)
+class _Patches:
+    """Fitting and calibration patch sets, the fitting tiles' summaries, rotations drawn per fitting tile."""
+
+    train: object
+    val: object
+    fit_summaries: object
+    per_tile: int
+
+
+@dataclass(frozen=True)
+class _PatchModel:
+    """The patch classifier, its calibration and the calibration scores before and after."""
+
+    classifier: object
+    calibration: object
+    before: dict
+    after: dict
+
+
+@dataclass(frozen=True)
+class _Orientation:
+    """The orientation model, its feature names and their columns, and how many rows it learned from."""
+
+    model: object
+    names: tuple
+    index: np.ndarray
+    n_rows: int
+
+
+@dataclass(frozen=True)
+class _Objects:
+    """The object classifier, the readings it learned from and was stopped on, assembly and direction confidence."""
+
+    model: object
+    fit: object
+    val: object
+    params: object
+    confidence: dict
+    cal_sample: list
+
+
+@dataclass(frozen=True)
+class _Onnx:
+    """The three exported models and the parity of each with its scikit-learn original."""
+
+    detector: bytes
+    orientation: bytes
+    objects: bytes
+    parity: dict
+
+
+def _check_output_parent(out):
+    """Create the model folder's parent; refuse one that cannot be created or written.
+
+    Parameters
+    ----------
+    out : Path
+        The model folder.
+    """
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
     except OSError as err:
         raise DetectorError(f"output folder {str(out)!r} cannot be created: {err.strerror}.") from err
     if not _writable(out.parent):
         raise DetectorError(f"output folder {str(out.parent)!r} is not writable.")
-    # Absolute, as workers in other folders (a Dask cluster's) must find the same images.
+
+
+def _load_and_split(tileset_root, config, log):
+    """Load the tile set and split its images into fit, calibration and held-out groups.
+
+    Parameters
+    ----------
+    tileset_root : path-like
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    tileset : TileSet
+        Loaded from the absolute path, as workers in other folders (a Dask cluster's) must find
+        the same images.
+    split : _Split
+    """
     tileset = load_tileset(Path(tileset_root).absolute(), min_votes=config.min_votes)
     if len(tileset.tiles) == 0:
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
@@ -433,12 +533,31 @@ def _train(tileset_root, out, config, spec, log, started):
             f"the orientation model needs consensus fans."
         )
     log(f"images: fit {len(fit_img)}, calibration {len(cal_img)}, held out {len(hold_img)} ({', '.join(hold_img)})")
+    return tileset, _Split(fit_img, cal_img, hold_img, ids, fit_fans)
 
+
+def _patch_sets(tileset_root, tileset, split, spec, config, log):
+    """Patch features and targets of the fitting tiles (turned copies, sampled) and the calibration tiles.
+
+    Parameters
+    ----------
+    tileset_root : path-like
+        The tile set as given (for messages).
+    tileset : TileSet
+    split : _Split
+    spec : FeatureSpec
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    patches : _Patches
+    """
     per_tile = config.rotations_per_tile
     if per_tile is None:
-        per_tile = len(config.rotations) if len(ids["fit"]) < config.all_rotations_below else 2
-    fit_jobs = rotation_jobs(ids["fit"], config.rotations, per_tile=per_tile, seed=config.seed)
-    train, _, fit_summaries = build_patch_set(tileset, ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
+        per_tile = len(config.rotations) if len(split.ids["fit"]) < config.all_rotations_below else 2
+    fit_jobs = rotation_jobs(split.ids["fit"], config.rotations, per_tile=per_tile, seed=config.seed)
+    train, _, fit_summaries = build_patch_set(tileset, split.ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
                                               seed=config.seed, neg_ratio=config.neg_ratio,
                                               max_patches=config.max_patches, workers=config.workers,
                                               desc="fit features", degrade=config.degrade)
@@ -446,16 +565,33 @@ def _train(tileset_root, out, config, spec, log, started):
     if missing:
         raise TileSetError(
             f"tile set {str(tileset_root)!r} has no {' or '.join(missing)} patches (coverage >= tau {config.tau}) "
-            f"in its fitting images {fit_img!r}; the patch classifier needs every class: add images or hold out others."
+            f"in its fitting images {split.fit!r}; the patch classifier needs every class: add images or hold out "
+            f"others."
         )
     # Calibration wants the true class mix, so its patches are a uniform sample (capped for memory).
-    val, _, _ = build_patch_set(tileset, ids["calibration"], spec, tau=config.tau, rotations=(0,),
+    val, _, _ = build_patch_set(tileset, split.ids["calibration"], spec, tau=config.tau, rotations=(0,),
                                 seed=config.seed + 1, sample=False, keep_tiles=False,
                                 max_patches=config.max_patches, workers=config.workers,
                                 desc="calibration features")
     log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
         f"calibration {len(val)}")
+    return _Patches(train, val, fit_summaries, per_tile)
 
+
+def _fit_patch_classifier(patches, config, log):
+    """Fit the patch classifier (stopped early on the calibration patches) and calibrate it.
+
+    Parameters
+    ----------
+    patches : _Patches
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    patch_model : _PatchModel
+    """
+    train, val = patches.train, patches.val
     classifier = _fit_hgb(train.X, train.cls, val.X, val.cls, config, log=log, what="patch classifier")
     raw_val = classifier.predict_proba(val.X)
     calibration = fit_calibration(raw_val, val.cls)
@@ -463,7 +599,24 @@ def _train(tileset_root, out, config, spec, log, started):
     cal_after = calibration_scores(calibration.apply(raw_val), val.cls)
     log(f"classifier: {classifier.n_iter_} iterations; calibration Brier {cal_before['brier']:.4f} -> "
         f"{cal_after['brier']:.4f}, ECE {cal_before['ece']:.4f} -> {cal_after['ece']:.4f}")
+    return _PatchModel(classifier, calibration, cal_before, cal_after)
 
+
+def _fit_orientation_model(patches, spec, config, log):
+    """Fit the orientation model on the fan patches, each also with its axis flipped.
+
+    Parameters
+    ----------
+    patches : _Patches
+    spec : FeatureSpec
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    orientation : _Orientation
+    """
+    train, val = patches.train, patches.val
     names = orientation_feature_names(spec)
     index = np.array([spec.feature_names.index(n) for n in names])
     fan_fit = (train.cls == 1) & np.isfinite(train.fan_direction_deg)
@@ -473,37 +626,92 @@ def _train(tileset_root, out, config, spec, log, started):
     Xov, yov = orientation_training_set(val.X[fan_val][:, index], val.axis_deg[fan_val],
                                         val.fan_direction_deg[fan_val], names)
     orientation = _fit_hgb(Xo, yo, Xov, yov, config, log=log, what="orientation model")
+    return _Orientation(orientation, names, index, len(yo))
 
-    # The object classifier learns from candidates whose patch maps come from models that
-    # never saw their image (two folds over the fitting images), like new images will.
+
+def _fit_object_classifier(tileset, split, patches, patch_model, orientation, spec, config, log):
+    """Fit the object classifier on out-of-fold candidate readings; stop it on the calibration tiles' readings.
+
+    The object classifier learns from candidates whose patch maps come from models that never saw
+    their image (two folds over the fitting images), like new images will.
+
+    Parameters
+    ----------
+    tileset : TileSet
+    split : _Split
+    patches : _Patches
+    patch_model : _PatchModel
+    orientation : _Orientation
+    spec : FeatureSpec
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    objects : _Objects
+    """
     params = AssemblyParams()
-    cand_fit = _out_of_fold_candidates(tileset, ids, fit_img, train, val, names, index, spec, config, params, log,
-                                       per_tile, classifier.n_iter_)
-    full_patches = _CalibratedPredictor(classifier, calibration)
-    full_polarity = _PolarityPredictor(orientation, index)
-    cal_sample = _tile_sample(ids["calibration"], config.max_candidate_tiles, config.seed + 5)
+    cand_fit = _out_of_fold_candidates(tileset, split.ids, split.fit, patches.train, patches.val, orientation.names,
+                                       orientation.index, spec, config, params, log, patches.per_tile,
+                                       patch_model.classifier.n_iter_)
+    full_patches = _CalibratedPredictor(patch_model.classifier, patch_model.calibration)
+    full_polarity = _PolarityPredictor(orientation.model, orientation.index)
+    cal_sample = _tile_sample(split.ids["calibration"], config.max_candidate_tiles, config.seed + 5)
     cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
-                           workers=config.workers, desc="calibration candidates")
+                             workers=config.workers, desc="calibration candidates")
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
+    return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample)
 
-    det_bytes = to_onnx_bytes(classifier, train.X.shape[1])
-    ori_bytes = to_onnx_bytes(orientation, len(index))
-    obj_bytes = to_onnx_bytes(object_model, cand_fit.F.shape[1])
+
+def _export(patches, patch_model, orientation, objects, config, log):
+    """Export the three models to ONNX and measure each one's parity with scikit-learn.
+
+    Parameters
+    ----------
+    patches : _Patches
+    patch_model : _PatchModel
+    orientation : _Orientation
+    objects : _Objects
+    config : TrainConfig
+    log : callable
+
+    Returns
+    -------
+    onnx : _Onnx
+    """
+    train, index, cand_fit = patches.train, orientation.index, objects.fit
+    det_bytes = to_onnx_bytes(patch_model.classifier, train.X.shape[1])
+    ori_bytes = to_onnx_bytes(orientation.model, len(index))
+    obj_bytes = to_onnx_bytes(objects.model, cand_fit.F.shape[1])
     rng = np.random.default_rng(config.seed)
     probe = train.X[rng.choice(len(train), size=min(2000, len(train)), replace=False)]
     parity = {
-        "detector_max_abs_diff": onnx_parity(det_bytes, classifier, probe),
-        "orientation_max_abs_diff": onnx_parity(ori_bytes, orientation, probe[:, index]),
-        "objects_max_abs_diff": onnx_parity(obj_bytes, object_model, cand_fit.F[:2000]),
+        "detector_max_abs_diff": onnx_parity(det_bytes, patch_model.classifier, probe),
+        "orientation_max_abs_diff": onnx_parity(ori_bytes, orientation.model, probe[:, index]),
+        "objects_max_abs_diff": onnx_parity(obj_bytes, objects.model, cand_fit.F[:2000]),
     }
     log(f"ONNX parity (max abs difference of probabilities): detector {parity['detector_max_abs_diff']:.2e}, "
         f"orientation {parity['orientation_max_abs_diff']:.2e}, objects {parity['objects_max_abs_diff']:.2e}")
+    return _Onnx(det_bytes, ori_bytes, obj_bytes, parity)
 
-    card = {
+
+def _model_card(tileset_root, tileset, split, patches, patch_model, orientation, objects, onnx, spec, config):
+    """The model card before the ONNX files are written and the held-out images are scored.
+
+    Returns
+    -------
+    card : dict
+        Everything but ``files``, ``unfamiliarity``, the tuned ``min_score``, ``assembly_tuning``,
+        the held-out scores and ``training.seconds`` (added by :func:`_write_model_folder`).
+    """
+    train, val, names = patches.train, patches.val, orientation.names
+    classifier, calibration = patch_model.classifier, patch_model.calibration
+    cand_fit, cand_val = objects.fit, objects.val
+    return {
         "format_version": MODEL_FORMAT_VERSION,
         "created_by": "frostvane train",
         "class_names": list(CLASS_NAMES),
@@ -512,50 +720,56 @@ def _train(tileset_root, out, config, spec, log, started):
         "orientation_features": list(names),
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": calibration.temperature, "bias": list(calibration.bias),
-                        "before": cal_before, "after": cal_after, "images": cal_img},
-        "assembly": asdict(params),
+                        "before": patch_model.before, "after": patch_model.after, "images": split.calibration},
+        "assembly": asdict(objects.params),
         "object_features": list(OBJECT_FEATURE_NAMES),
-        "direction_confidence": confidence_fit,
+        "direction_confidence": objects.confidence,
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
             "data_sha256": _data_hash(tileset),
-            "images": {"fit": fit_img, "calibration": cal_img, "holdout": hold_img},
-            "tiles": {k: len(v) for k, v in ids.items()},
+            "images": {"fit": split.fit, "calibration": split.calibration, "holdout": split.holdout},
+            "tiles": {k: len(v) for k, v in split.ids.items()},
             "patches": {"fit": int(len(train)), "fit_by_class": np.bincount(train.cls, minlength=3).tolist(),
-                        "calibration": int(len(val)), "orientation": int(len(yo))},
+                        "calibration": int(len(val)), "orientation": int(orientation.n_rows)},
             "classifier_iterations": int(classifier.n_iter_),
-            "orientation_iterations": int(orientation.n_iter_),
-            "object_iterations": int(object_model.n_iter_),
+            "orientation_iterations": int(orientation.model.n_iter_),
+            "object_iterations": int(objects.model.n_iter_),
             "readings": {"fit": int(len(cand_fit)), "fit_right": int(cand_fit.label.sum()),
                          "calibration": int(len(cand_val))},
-            "onnx_parity": parity,
+            "onnx_parity": onnx.parity,
             "versions": _versions(),
             "seed": config.seed,
             # Prevailing direction of the fitting fans: the one-direction-for-all baseline.
-            "prevailing_deg": float(circular_mean(fit_fans["direction_deg"].to_numpy(float))),
+            "prevailing_deg": float(circular_mean(split.fit_fans["direction_deg"].to_numpy(float))),
         },
     }
+
+
+def _write_model_folder(out, card, onnx, tileset, split, patches, objects, config, log, started):
+    """Write the model folder atomically: the ONNX files, then the card as tuning and held-out scoring complete it.
+
+    Object assembly is tuned on the calibration images, then the held-out images are scored, both
+    through the exported ONNX files exactly as users will run them. ``card`` is completed in place.
+    """
     with atomic_dir(out, replace=True) as tmp:
-        (tmp / DETECTOR_ONNX).write_bytes(det_bytes)
-        (tmp / ORIENTATION_ONNX).write_bytes(ori_bytes)
-        (tmp / OBJECTS_ONNX).write_bytes(obj_bytes)
+        (tmp / DETECTOR_ONNX).write_bytes(onnx.detector)
+        (tmp / ORIENTATION_ONNX).write_bytes(onnx.orientation)
+        (tmp / OBJECTS_ONNX).write_bytes(onnx.objects)
         card["files"] = {name: sha256_file(tmp / name) for name in ONNX_FILES}
+        fit_summaries = patches.fit_summaries
         card["unfamiliarity"] = fit_unfamiliarity(fit_summaries) if len(fit_summaries) >= 3 else None
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
-        # Tune object assembly on the calibration images, then score the held-out images,
-        # both through the exported ONNX files exactly as users will run them.
-        tuning = tune_assembly(tmp, tileset, cal_sample, log=log, workers=config.workers)
+        tuning = tune_assembly(tmp, tileset, objects.cal_sample, log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
-        heldout = evaluate_tiles(tmp, tileset, ids["holdout"], log=log, workers=config.workers)
+        heldout = evaluate_tiles(tmp, tileset, split.ids["holdout"], log=log, workers=config.workers)
         card["heldout_metrics"] = summarise_for_card(heldout)
         card["heldout_tiles"] = heldout["per_tile"]
         _unfamiliarity_from_heldout(card)
         card["training"]["seconds"] = round(time.perf_counter() - started, 1)
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
-    return card
 
 
 def _unfamiliarity_from_heldout(card, pass_share=DEFAULT_PASS_SHARE):
