@@ -2,8 +2,8 @@
 
 An input is either an image file (any raster GDAL reads: PNG, TIFF / GeoTIFF,
 JPEG 2000, ...) or a tile-set folder (one holding ``tiles.csv``). An image is
-cut into tiles by :func:`detector.raster.plan_windows`; each tile is read with
-an overlap margin, screened with :func:`detector.detect.detect_tile`, and only
+cut into tiles by :func:`detector.gis.raster.plan_windows`; each tile is read with
+an overlap margin, screened with :func:`detector.inference.detect.detect_tile`, and only
 the detections whose apex (fans) or centre (spots) lies in the tile's core are
 kept, so no feature is reported twice. A tile-set tile is screened whole and
 keeps its ``tile_id``.
@@ -18,7 +18,7 @@ The screening folder
     spot cover, m^2 (NaN when the scale is unknown). The
     ``unfamiliarity_share_<group>`` columns split the tile's squared
     unfamiliarity distance among the feature groups
-    (:func:`detector.unfamiliar.unfamiliarity_parts`; they sum to 1).
+    (:func:`detector.inference.unfamiliar.unfamiliarity_parts`; they sum to 1).
 ``detections.csv``
     :data:`detector.contract.DETECTION_COLUMNS` in tile px, plus ``image``,
     ``col0`` and ``row0`` (image px of the tile's top-left pixel: image px =
@@ -31,12 +31,12 @@ The screening folder
     GeoPackage with a ``detections`` layer (fan sectors, spot ellipses, every
     column of detections.csv) and a ``tiles`` layer (tile-core footprints with
     every column of tiles.csv and ``covered_fraction``), in the raster's own
-    CRS; images without a CRS in :data:`detector.gpkg.PIXEL_CRS_WKT`. See
+    CRS; images without a CRS in :data:`detector.gis.gpkg.PIXEL_CRS_WKT`. See
     :class:`_GeoContext` for runs mixing CRSs.
 ``detections.geojson``
     Only when some input is georeferenced: its detections in planetocentric
     longitude / latitude (:data:`GEOJSON_COORDINATES`,
-    :func:`detector.geojson.detections_to_geojson`).
+    :func:`detector.gis.geojson.detections_to_geojson`).
 ``quicklook.png``, ``rose.png``
     A downsampled view of every image with its detections, and the fan
     direction distribution of every image (weighted by length).
@@ -82,7 +82,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     Parameters
     ----------
     model_dir : path-like
-        Model folder (see :func:`detector.model.load_model`; its hashes are checked).
+        Model folder (see :func:`detector.inference.model.load_model`; its hashes are checked).
     inputs : path-like or list of path-like
         Image files and / or tile-set folders (with ``tiles.csv``).
     out : path-like
@@ -100,7 +100,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     nodata : float or str, optional
         Value of no-data pixels; ``"none"`` (or NaN) when no value is (NaN
         pixels of float images always are); default the raster's own, else 0
-        (see :func:`detector.raster.nodata_value`).
+        (see :func:`detector.gis.raster.nodata_value`).
     band : int, optional
         1-based band; required for multi-band images.
     min_score : float, optional
@@ -109,7 +109,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
         Show a tqdm progress bar over tiles.
     any_body : bool, default=False
         Accept rasters whose CRS is not on Mars (otherwise refused, see
-        :func:`detector.geo.check_mars_crs`).
+        :func:`detector.gis.geo.check_mars_crs`).
     force : bool, default=False
         Delete whatever ``out`` holds (another run, an unfinished one, other
         files) once the inputs are checked, and screen from scratch.
@@ -127,11 +127,7 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     """
     t_start = time.perf_counter()
     workers = _check_workers(workers)
-    if nodata is not None:
-        from ..gis.raster import nodata_value
-
-        nodata = nodata_value(nodata)
-        nodata = "none" if math.isnan(nodata) else nodata  # NaN is no key for the per-process raster cache
+    nodata = _nodata_key(nodata)
     model_dir = Path(model_dir)
     patch_px = cached_model(model_dir).feature_spec.patch_px  # a bad model fails here, before any write
     tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body,
@@ -146,48 +142,94 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     record = _claim(out, params)
     try:
         journal = _Journal(out)
-        journal.sweep()
-        finished = journal.finished(tasks)
-        n_resumed = len(finished)
-        todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
-        model_arg = str(model_dir.resolve())
-        cluster = {}  # the Dask run says how many workers it had
-        if scheduler:
-            results = _run_dask(todo, model_arg, min_score, scheduler, info=cluster)
-        elif workers > 1 and len(todo) > 1:
-            results = _run_loky(todo, model_arg, min_score, workers)
-        else:
-            results = _run_serial(todo, model_arg, min_score)
-        pixels = 0
-        t_tiles = time.perf_counter()
-        with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
-            for index, entry in results:
-                journal.write(index, entry)  # the entry is not kept: the outputs read the journal
-                pixels += entry["pixels"]
-                bar.update(1)
-        t_tiles = time.perf_counter() - t_tiles
-
+        run = _run_tiles(journal, tasks, model_dir, min_score=min_score, workers=workers, scheduler=scheduler,
+                         progress=progress)
         with _staged(out) as stage:
             totals, per_image, written = _write_outputs(stage, tasks, journal, images, band=band, nodata=nodata)
     except (DetectorError, OSError) as err:
         # Recorded so that a corrected rerun into this folder is not taken for another live run.
         _mark_failed(out, record, err)
         raise
+    summary = _summary(out, run, totals, per_image, time.perf_counter() - t_start, workers)
+    write_json(out / _RUN_FILE, _finite(_run_record(record, params, summary, run, scheduler, min_score, written)),
+               end="\n")
+    return summary
 
-    seconds = time.perf_counter() - t_start
+
+def _nodata_key(nodata):
+    """The ``--nodata`` value as the planner and the per-process raster cache take it (NaN is no key: 'none')."""
+    if nodata is not None:
+        from ..gis.raster import nodata_value
+
+        nodata = nodata_value(nodata)
+        nodata = "none" if math.isnan(nodata) else nodata  # NaN is no key for the per-process raster cache
+    return nodata
+
+
+def _run_tiles(journal, tasks, model_dir, *, min_score, workers, scheduler, progress):
+    """Screen the tiles the journal does not hold yet, serially, in local processes or on a Dask cluster.
+
+    Parameters
+    ----------
+    journal : _Journal
+        Each finished tile is written to it at once and not kept.
+    tasks : list of _TileTask
+    model_dir : Path
+    min_score : float or None
+    workers : int
+    scheduler : str or None
+    progress : bool
+
+    Returns
+    -------
+    run : dict
+        ``n_resumed``, ``n_computed`` (tiles), ``pixels`` screened now, ``tile_seconds`` and ``workers``
+        (the Dask cluster's count when one ran the tiles, else None).
+    """
+    journal.sweep()
+    finished = journal.finished(tasks)
+    n_resumed = len(finished)
+    todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
+    model_arg = str(model_dir.resolve())
+    cluster = {}  # the Dask run says how many workers it had
+    if scheduler:
+        results = _run_dask(todo, model_arg, min_score, scheduler, info=cluster)
+    elif workers > 1 and len(todo) > 1:
+        results = _run_loky(todo, model_arg, min_score, workers)
+    else:
+        results = _run_serial(todo, model_arg, min_score)
+    pixels = 0
+    t_tiles = time.perf_counter()
+    with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
+        for index, entry in results:
+            journal.write(index, entry)  # the entry is not kept: the outputs read the journal
+            pixels += entry["pixels"]
+            bar.update(1)
+    t_tiles = time.perf_counter() - t_tiles
+    return {"n_resumed": n_resumed, "n_computed": len(todo), "pixels": pixels, "tile_seconds": t_tiles,
+            "workers": cluster.get("workers")}
+
+
+def _summary(out, run, totals, per_image, seconds, workers):
+    """The run's :class:`ScreenSummary` from the tile loop's figures and the outputs' totals."""
+    pixels = run["pixels"]
     area, covered = totals.pop("area"), totals.pop("covered")
-    summary = ScreenSummary(
+    return ScreenSummary(
         out=out,
-        n_resumed=n_resumed,
+        n_resumed=run["n_resumed"],
         covered_percent=100.0 * covered / area if area else 0.0,
         megapixels=pixels / 1e6,
         seconds=seconds,
         mpx_per_s=pixels / 1e6 / seconds if seconds > 0 else math.nan,
-        workers=cluster.get("workers", workers),
+        workers=run["workers"] if run["workers"] is not None else workers,
         per_image=per_image,
         **totals,
     )
-    record = {
+
+
+def _run_record(record, params, summary, run, scheduler, min_score, written):
+    """``run.json`` of a complete run: the claim's record, parameters, versions, timing, counts, outputs."""
+    return {
         **{k: v for k, v in record.items() if k != "error"},
         "status": "complete",
         "parameters": params,
@@ -197,14 +239,13 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
             "python": platform.python_version(),
             "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         },
-        "timing": {"seconds": seconds, "tile_seconds": t_tiles, "megapixels": pixels / 1e6,
-                   "mpx_per_s": summary.mpx_per_s, "tiles_resumed": n_resumed, "tiles_computed": len(todo)},
+        "timing": {"seconds": summary.seconds, "tile_seconds": run["tile_seconds"],
+                   "megapixels": run["pixels"] / 1e6, "mpx_per_s": summary.mpx_per_s,
+                   "tiles_resumed": run["n_resumed"], "tiles_computed": run["n_computed"]},
         "counts": {k: getattr(summary, k)
                    for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles")},
         **written,
     }
-    write_json(out / _RUN_FILE, _finite(record), end="\n")
-    return summary
 
 
 @contextlib.contextmanager
