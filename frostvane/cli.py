@@ -12,7 +12,7 @@ from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE
 
-from training.effort.effort import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
+from training.effort.routing import DEFAULT_MAX_DIRECTION_ERROR, DEFAULT_MIN_F1, DEFAULT_RECALL
 
 from training.winds.winds import FRAMES as WIND_FRAMES
 from training.winds.winds import RESAMPLE_UNITS as WIND_RESAMPLE_UNITS

@@ -23,7 +23,7 @@ from training.evaluation.diagnose import (
     plot_error_tiles,
     worst_tiles,
 )
-from training.evaluation.scoring import match_objects
+from training.evaluation.matching import match_objects
 
 
 def _fan(tile, x, y, d=90.0, length=40.0, spread=30.0, votes=5):

@@ -12,19 +12,9 @@ import pytest
 
 from detector.errors import DetectorError
 from training.effort.campaign import Campaign
-from training.effort.effort import (
-    ScreenModelMismatch,
-    check_screen_model,
-    deposit_probability,
-    write_effort_outputs,
-    estimate_effort,
-    machine_threshold,
-    pooled_f1,
-    route_tiles,
-    run_effort,
-    skip_threshold,
-    tile_detection_summary,
-)
+from training.effort.effort import ScreenModelMismatch, check_screen_model, run_effort, write_effort_outputs
+from training.effort.estimate import deposit_probability, estimate_effort
+from training.effort.routing import machine_threshold, pooled_f1, route_tiles, skip_threshold, tile_detection_summary
 
 # --------------------------------------------------------------------------- hand-made tables
 
@@ -455,7 +445,7 @@ def test_machine_spread_is_a_named_range_below_five_images():
     assert spread["f1"] == pytest.approx([0.75, 0.875])
     assert spread["direction_median_deg"] == pytest.approx([5.0, 8.5])
     assert "too few for an interval" in spread["label"]
-    from training.effort.effort import effort_summary
+    from training.effort.estimate import effort_summary
 
     assert "range over the 3 held-out image(s)" in effort_summary(effort)
     # The hand table's own one-tile images: six images carry machine tiles, so the out-of-bag interval stands.

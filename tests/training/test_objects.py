@@ -6,7 +6,7 @@ import pytest
 
 from detector.objects.assemble import HYP_AXIS_FORWARD, HYP_AXIS_REVERSE, HYP_MODES, Candidate
 from training.fitting.objects import LABEL_MAX_DIRECTION_DEG, label_readings
-from training.evaluation.scoring import match_objects
+from training.evaluation.matching import match_objects
 
 
 def _fan(hyp, x, y, direction, length=40.0):
@@ -52,7 +52,7 @@ def test_a_reading_pointing_the_wrong_way_is_not_right():
 
 
 def test_labels_agree_with_the_evaluation_matching_for_one_reading_per_interpretation():
-    # Reference: training.evaluation.scoring.match_objects on the same rows (one reading, so one-to-one is trivial).
+    # Reference: training.evaluation.matching.match_objects on the same rows (one reading, so one-to-one is trivial).
     rng = np.random.default_rng(3)
     for _ in range(20):
         x, y = rng.uniform(80, 120, 2)

@@ -8,7 +8,7 @@ from scipy.spatial import distance
 from sklearn import metrics
 
 from detector.errors import DetectorError
-from training.evaluation import scoring
+from training.evaluation import bootstrap, directions, matching, scoring
 from tests.training._boxes import box_rasteriser
 
 
@@ -30,7 +30,7 @@ def test_two_fans_at_one_vent_pair_by_direction():
     cons = pd.DataFrame([_fan("t", 100, 100, 30.0), _fan("t", 100, 100, 200.0)])
     # Apex jitter puts the 190-degree detection nearer the 30-degree fan; direction must decide.
     det = pd.DataFrame([_fan("t", 101, 100, 35.0), _fan("t", 100.5, 100, 190.0)])
-    pairs = scoring.match_objects(det, cons)
+    pairs = matching.match_objects(det, cons)
     assert _pairs_as_set(pairs) == {(0, 0), (1, 1)}
     assert np.allclose(sorted(pairs["direction_error_deg"]), [5.0, 10.0])
 
@@ -40,21 +40,21 @@ def test_fan_distance_threshold_boundary():
     cons = pd.DataFrame([_fan("t", 0, 0, 90.0, length=20.0), _fan("u", 0, 0, 90.0, length=100.0)])
     on_edge = pd.DataFrame([_fan("t", 12.0, 0, 90.0), _fan("u", 0, 30.0, 90.0)])
     beyond = pd.DataFrame([_fan("t", 12.01, 0, 90.0), _fan("u", 0, 30.01, 90.0)])
-    assert len(scoring.match_objects(on_edge, cons)) == 2
-    assert len(scoring.match_objects(beyond, cons)) == 0
+    assert len(matching.match_objects(on_edge, cons)) == 2
+    assert len(matching.match_objects(beyond, cons)) == 0
 
 
 def test_spot_distance_threshold_boundary():
     # Radius max(10, semi_major): semi-major 6 -> 10 px; 15 -> 15 px.
     cons = pd.DataFrame([_spot("t", 50, 50, semi=6.0), _spot("u", 50, 50, semi=15.0)])
-    assert len(scoring.match_objects(pd.DataFrame([_spot("t", 60, 50), _spot("u", 50, 65)]), cons)) == 2
-    assert len(scoring.match_objects(pd.DataFrame([_spot("t", 60.01, 50), _spot("u", 50, 65.01)]), cons)) == 0
+    assert len(matching.match_objects(pd.DataFrame([_spot("t", 60, 50), _spot("u", 50, 65)]), cons)) == 2
+    assert len(matching.match_objects(pd.DataFrame([_spot("t", 60.01, 50), _spot("u", 50, 65.01)]), cons)) == 0
 
 
 def test_matching_is_one_to_one_and_within_tile_and_kind():
     cons = pd.DataFrame([_fan("t", 10, 10, 0.0), _spot("t", 10, 10), _fan("u", 10, 10, 0.0)])
     det = pd.DataFrame([_fan("t", 10, 10, 0.0), _fan("t", 11, 10, 0.0), _fan("t", 10, 11, 5.0)])
-    pairs = scoring.match_objects(det, cons)
+    pairs = matching.match_objects(det, cons)
     assert len(pairs) == 1
     assert pairs["det_index"].is_unique and pairs["cons_index"].is_unique
     assert pairs.iloc[0]["cons_index"] == 0 and pairs.iloc[0]["det_index"] == 0
@@ -86,7 +86,7 @@ def test_matching_equals_naive_sequential_greedy():
     vents = rng.uniform(0, 100, (8, 2))
     cons = pd.DataFrame([_fan("t", *vents[k % 8], rng.uniform(0, 360), length=rng.uniform(20, 80)) for k in range(30)])
     det = pd.DataFrame([_fan("t", *(vents[k % 8] + rng.normal(0, 3, 2)), rng.uniform(0, 360)) for k in range(28)])
-    assert _pairs_as_set(scoring.match_objects(det, cons)) == _naive_greedy(det, cons)
+    assert _pairs_as_set(matching.match_objects(det, cons)) == _naive_greedy(det, cons)
 
 
 def _tables():
@@ -100,7 +100,7 @@ def _tables():
 
 def test_object_metrics_hand_counts():
     det, cons, tiles = _tables()
-    pairs = scoring.match_objects(det, cons)
+    pairs = matching.match_objects(det, cons)
     m = scoring.object_metrics(det, cons, pairs, tiles)
     assert m["fan"]["n_matched"] == 1 and m["fan"]["n_detected"] == 3 and m["fan"]["n_consensus"] == 3
     assert m["fan"]["precision"] == pytest.approx(1 / 3) and m["fan"]["recall"] == pytest.approx(1 / 3)
@@ -177,14 +177,14 @@ def test_coverage_with_own_masks():
 
 def test_direction_metrics_and_flip_rate():
     errors = np.array([0, 5, 10, 15, 30, 50, 100, 136, 170, 180.0])
-    m = scoring.direction_metrics(errors)
+    m = directions.direction_metrics(errors)
     assert m["flip_rate"] == pytest.approx(0.3)  # 136, 170, 180
     assert m["within_10"] == pytest.approx(0.3) and m["within_20"] == pytest.approx(0.4)
     assert m["median"] == pytest.approx(40.0) and m["p90"] == pytest.approx(np.quantile(errors, 0.9))
     # Flips built from predictions: 180-degree reversals of consensus directions.
     cons = np.array([10.0, 100.0, 250.0, 300.0])
     pred = np.array([190.0, 100.0, 70.0, 305.0])
-    assert scoring.direction_metrics(scoring.direction_errors(pred, cons))["flip_rate"] == pytest.approx(0.5)
+    assert directions.direction_metrics(directions.direction_errors(pred, cons))["flip_rate"] == pytest.approx(0.5)
 
 
 def _fan_catalog(seed=0):
@@ -207,13 +207,13 @@ def _fan_catalog(seed=0):
 
 def test_oracle_polarity_never_worse_than_random():
     det, cons, tiles = _fan_catalog()
-    fans = scoring.matched_fans(det, cons, scoring.match_objects(det, cons), tiles)
-    e = scoring.baseline_errors(fans, cons, tiles, prevailing_deg=45.0, seed=3)
+    fans = directions.matched_fans(det, cons, matching.match_objects(det, cons), tiles)
+    e = directions.baseline_errors(fans, cons, tiles, prevailing_deg=45.0, seed=3)
     assert np.all(e["axis_oracle_polarity"] <= e["axis_random_polarity"] + 1e-9)
     assert np.median(e["axis_oracle_polarity"]) <= np.median(e["axis_random_polarity"])
     # Prevailing baseline is the plain difference to one direction.
-    assert np.allclose(e["prevailing"], scoring.direction_errors(45.0, fans["consensus_deg"]))
-    m = scoring.baseline_metrics(e)
+    assert np.allclose(e["prevailing"], directions.direction_errors(45.0, fans["consensus_deg"]))
+    m = directions.baseline_metrics(e)
     assert m["prevailing"]["skill_median"] == pytest.approx(1 - np.median(e["model"]) / np.median(e["prevailing"]))
 
 
@@ -224,7 +224,7 @@ def test_tile_mean_weights_consensus_by_length_and_pools_detections_robustly():
     # Three detected fans about 90 degrees and one wrong fan pointing the other way.
     det = pd.DataFrame([_fan("t", 10, 10, 80, length=20), _fan("t", 30, 10, 90, length=20),
                         _fan("t", 50, 10, 100, length=20), _fan("t", 70, 10, 200, length=15)])
-    out = scoring.tile_mean_errors(det, cons, tiles)
+    out = directions.tile_mean_errors(det, cons, tiles)
     # Consensus: circular mean weighted by length, sum of (sin, cos) * length by hand.
     cons_mean = np.degrees(np.arctan2(30, 10))
     assert out["consensus_mean_deg"].iloc[0] == pytest.approx(cons_mean)
@@ -239,15 +239,15 @@ def test_bootstrap_deterministic_and_brackets():
     rng = np.random.default_rng(0)
     values = rng.gamma(2.0, 5.0, 200)
     images = rng.integers(0, 20, 200)
-    a = scoring.bootstrap_interval(values, images, "median", n_boot=300, seed=7)
-    b = scoring.bootstrap_interval(values, images, "median", n_boot=300, seed=7)
-    c = scoring.bootstrap_interval(values, images, "median", n_boot=300, seed=8)
+    a = bootstrap.bootstrap_interval(values, images, "median", n_boot=300, seed=7)
+    b = bootstrap.bootstrap_interval(values, images, "median", n_boot=300, seed=7)
+    c = bootstrap.bootstrap_interval(values, images, "median", n_boot=300, seed=8)
     assert a == b and a != c
     assert a[0] < np.median(values) < a[1]
     # Naive oracle: loop over replicates with the same draws.
     draws = np.random.default_rng(7).multinomial(20, np.full(20, 1 / 20), size=300)
     means = [np.sum(d[images] * values) / np.sum(d[images]) for d in draws]
-    assert np.allclose(scoring.bootstrap_interval(values, images, "mean", n_boot=300, seed=7),
+    assert np.allclose(bootstrap.bootstrap_interval(values, images, "mean", n_boot=300, seed=7),
                        np.quantile(means, [0.025, 0.975]))
 
 
@@ -269,7 +269,7 @@ def test_score_catalogs_json_ready_and_errors():
 
 
 def test_bootstrap_of_few_images_is_a_range_not_a_ci():
-    from training.evaluation.scoring import MIN_IMAGES_FOR_CI, bootstrap_interval, interval_kind
+    from training.evaluation.bootstrap import MIN_IMAGES_FOR_CI, bootstrap_interval, interval_kind
 
     # Three images, one value each: a resample of one image drawn three times (probability 1/9 per
     # replicate) gives that image's value, so the range of 1000 resampled means is (1, 3) exactly.

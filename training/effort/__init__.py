@@ -10,8 +10,8 @@ from detector._lazy import lazy_exports
 __getattr__, __dir__ = lazy_exports(__name__, {
     "Campaign": "campaign",
     "read_campaign": "campaign",
-    "estimate_effort": "effort",
-    "route_tiles": "effort",
+    "estimate_effort": "estimate",
+    "route_tiles": "routing",
     "run_effort": "effort",
     "presence_coefficients": "presence",
     "labelling_order_study": "active",

@@ -10,7 +10,7 @@ already have):
 
 * **classifications truly needed** - the classifications left on the tiles that
   hold consensus deposits and are not trusted to the machine (estimate:
-  ``expected_needed`` of :func:`training.effort.effort.estimate_effort`, with its 90 %
+  ``expected_needed`` of :func:`training.effort.estimate.estimate_effort`, with its 90 %
   prediction interval);
 * **hours** - the same in volunteer hours (not counted as a second check);
 * **classifications truly needed on skipped tiles** - what the skip route
@@ -140,7 +140,7 @@ def jeffreys_interval(k, n, level=0.90):
 def machine_measured(detections, consensus, tile_ids):
     """What the machine's catalog holds on some tiles, scored against the hidden consensus.
 
-    The evaluation's own matching (:func:`training.evaluation.scoring.match_objects`),
+    The evaluation's own matching (:func:`training.evaluation.matching.match_objects`),
     summed as on the held-out tiles: pooled object F1 ``2 * matched /
     (detections + consensus features)`` and the median over tiles of each
     tile's median fan direction error (tiles without a matched fan left out).
@@ -158,7 +158,7 @@ def machine_measured(detections, consensus, tile_ids):
         without detections and consensus), ``direction_median_deg`` (None
         without matched fans), ``tiles_with_matched_fans``.
     """
-    from ..evaluation.scoring import match_objects
+    from ..evaluation.matching import match_objects
 
     ids = {str(t) for t in tile_ids}
     det = detections[detections["tile_id"].astype(str).isin(ids)].reset_index(drop=True)
@@ -180,10 +180,10 @@ def route_promises(routed, effort, *, area, n_consensus, machine=None):
     Parameters
     ----------
     routed : DataFrame
-        :func:`training.effort.effort.route_tiles` output (``route``, ``unfamiliar``,
+        :func:`training.effort.routing.route_tiles` output (``route``, ``unfamiliar``,
         ``confidence``, ``n_detections``, ``p_deposit``; ``attrs["thresholds"]``).
     effort : dict
-        :func:`training.effort.effort.estimate_effort` of the same routing.
+        :func:`training.effort.estimate.estimate_effort` of the same routing.
     area, n_consensus : ndarray of shape (n,)
         Consensus deposit area (px) and consensus features of each routed tile.
     machine : dict, optional
@@ -337,7 +337,9 @@ def backtest(model_dir, tileset_root, out, *, campaign=None, states=CAMPAIGN_STA
     from detector.screening.run import screen
     from detector.tileset import load_tileset
 
-    from .effort import _read_screen, estimate_effort, route_tiles
+    from .effort import _read_screen
+    from .estimate import estimate_effort
+    from .routing import route_tiles
 
     started = time.perf_counter()
     campaign = Campaign() if campaign is None else campaign

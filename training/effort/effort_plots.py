@@ -34,7 +34,7 @@ def plot_effort(effort, path):
     Parameters
     ----------
     effort : dict
-        Output of :func:`training.effort.effort.estimate_effort`.
+        Output of :func:`training.effort.estimate.estimate_effort`.
     path : path-like
         PNG to write (atomically).
 

@@ -6,8 +6,8 @@ Names load their module on first use.
 from detector._lazy import lazy_exports
 
 __getattr__, __dir__ = lazy_exports(__name__, {
-    "bootstrap_interval": "scoring",
-    "match_objects": "scoring",
+    "bootstrap_interval": "bootstrap",
+    "match_objects": "matching",
     "score_catalogs": "scoring",
     "evaluate_model": "evaluate",
     "run_on_tiles": "evaluate",

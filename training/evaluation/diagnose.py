@@ -2,7 +2,7 @@
 
 :func:`error_breakdown` gives every consensus feature and every detection
 exactly one outcome, from the object matching of
-:func:`training.evaluation.scoring.match_objects` and the pixel overlap of the features'
+:func:`training.evaluation.matching.match_objects` and the pixel overlap of the features'
 footprints (fan sectors and spot ellipses, rasterised with the geometry of
 :mod:`detector.labels`). It then tallies the outcomes by consensus fan length,
 by votes and by image, and gives the headline shares. :func:`plot_error_tiles`
@@ -22,7 +22,7 @@ from detector.contract import KINDS
 from detector.errors import DetectorError
 from detector.labels import _ellipse_mask, _sector_mask, _window
 
-from .scoring import match_objects
+from .matching import match_objects
 
 __all__ = [
     "CONSENSUS_OUTCOMES",
@@ -102,7 +102,7 @@ def _footprint_pixels(frame, rows, cols):
 
 
 def _match_radius(cons, *, fan_min_px, fan_length_frac, spot_min_px):
-    """Match radius of each consensus feature, px (the radii of :func:`training.evaluation.scoring.match_objects`)."""
+    """Match radius of each consensus feature, px (the radii of :func:`training.evaluation.matching.match_objects`)."""
     fan = cons["kind"].to_numpy() == "fan"
     return np.where(
         fan,
@@ -129,7 +129,7 @@ def footprint_overlaps(detections, consensus, shapes, *, fan_min_px=12.0, fan_le
     shapes : mapping
         tile_id -> (rows, cols) px.
     fan_min_px, fan_length_frac, spot_min_px : float, optional
-        Match radii, as in :func:`training.evaluation.scoring.match_objects`.
+        Match radii, as in :func:`training.evaluation.matching.match_objects`.
 
     Returns
     -------
@@ -262,7 +262,7 @@ class ErrorBreakdown:
         "matched_fans": {"n", quality shares}, "settings": {...}}``; shares
         are fractions, None where there is nothing to share.
     pairs : DataFrame
-        The matched pairs used (see :func:`training.evaluation.scoring.match_objects`).
+        The matched pairs used (see :func:`training.evaluation.matching.match_objects`).
     """
 
     consensus: pd.DataFrame
@@ -331,7 +331,7 @@ def error_breakdown(
     Two features *touch* when they are on the same tile and their footprints
     share at least ``min_overlap_px`` pixels, or the detection's apex (or
     centre) lies within the consensus feature's match radius (the radius of
-    :func:`training.evaluation.scoring.match_objects`: ``max(fan_min_px, fan_length_frac *
+    :func:`training.evaluation.matching.match_objects`: ``max(fan_min_px, fan_length_frac *
     length_px)`` for a fan, ``max(spot_min_px, semi_major_px)`` for a spot).
     A footprint is the fan's circular sector (apex, direction, length,
     spread) or the spot's ellipse, sampled at pixel centres and clipped to
@@ -382,7 +382,7 @@ def error_breakdown(
     tiles : DataFrame
         tile_id, image_id, width and height (px) of every tile the catalogs refer to.
     pairs : DataFrame, optional
-        Output of :func:`training.evaluation.scoring.match_objects` on these two tables
+        Output of :func:`training.evaluation.matching.match_objects` on these two tables
         (index labels); matched here with the radii below when not given.
     min_overlap_px : int, optional
         Smallest number of shared pixels that counts as overlap.
@@ -391,7 +391,7 @@ def error_breakdown(
     length_bins, votes_bins : sequence of float, optional
         Increasing [lo, hi) bin edges of consensus fan ``length_px`` and of ``votes``.
     fan_min_px, fan_length_frac, spot_min_px : float, optional
-        Match radii, as in :func:`training.evaluation.scoring.match_objects`.
+        Match radii, as in :func:`training.evaluation.matching.match_objects`.
 
     Returns
     -------

@@ -19,7 +19,9 @@ from detector.inference.unfamiliar import unfamiliarity_score
 from detector._allocator import reuse_freed_memory
 
 from .diagnose import error_breakdown, write_error_analysis
-from .scoring import match_objects, matched_fans, patch_metrics, score_catalogs
+from .matching import match_objects
+from .directions import matched_fans
+from .scoring import patch_metrics, score_catalogs
 
 __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "summarise_for_card", "evaluate_model",
            "write_detections_csv", "confidence_validation"]

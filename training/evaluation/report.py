@@ -457,7 +457,7 @@ def write_report(
         derived from ``fan_directions`` when that has image_id.
     fan_directions : DataFrame, optional
         Matched fans with consensus_deg, predicted_deg and error_deg (see
-        :func:`training.evaluation.scoring.matched_fans`), for the error histogram and scatter.
+        :func:`training.evaluation.directions.matched_fans`), for the error histogram and scatter.
     error_breakdown : dict, optional
         :meth:`training.evaluation.diagnose.ErrorBreakdown.to_dict`, optionally with
         ``worst_tiles`` (records of tile_id, n_lost, n_false and figure, a

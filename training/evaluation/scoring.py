@@ -1,9 +1,10 @@
 """Scoring of detections against a consensus catalog.
 
-Pure functions over DataFrames and arrays: object matching, object and patch
-metrics, coverage Dice, direction recovery, direction baselines, breakdowns
-and bootstrap intervals over images. :func:`score_catalogs` gathers them into
-one JSON-ready dict; it scores a model's detections, and equally a synthetic
+Pure functions over DataFrames and arrays: object and patch metrics, coverage
+Dice and breakdowns here; object matching (:mod:`.matching`), direction recovery
+and its baselines (:mod:`.directions`) and bootstrap intervals over images
+(:mod:`.bootstrap`) beside it. :func:`score_catalogs` gathers them into one
+JSON-ready dict; it scores a model's detections, and equally a synthetic
 scene's noise-free truth against its consensus (the ceiling).
 
 Angles are degrees clockwise from image up; fan directions in [0, 360),
@@ -14,146 +15,32 @@ import numpy as np
 import pandas as pd
 
 from detector.circstats import grouped_circular_mean
-from detector.inference.detect import fan_direction_weights, tile_direction_stats
 from detector.errors import DetectorError
-from detector.geometry import angular_difference, axial_difference
+from .bootstrap import bootstrap_interval, interval_kind
+from .directions import (
+    baseline_directions,
+    baseline_errors,
+    baseline_metrics,
+    direction_errors,
+    direction_metrics,
+    matched_fans,
+    tile_mean_errors,
+)
+from .matching import _require, match_objects
 
 __all__ = [
-    "match_objects",
-    "candidate_pairs",
     "object_metrics",
     "patch_metrics",
     "dice",
     "coverage_metrics",
-    "direction_errors",
-    "direction_metrics",
-    "tile_mean_errors",
-    "matched_fans",
-    "baseline_directions",
-    "baseline_errors",
-    "baseline_metrics",
     "breakdowns",
-    "bootstrap_interval",
     "score_catalogs",
     "CROWD_VS_EXPERT_DEG",
 ]
 
+
 #: Common practice: the crowd's per-tile mean fan direction and an expert's agree within about 10 degrees.
 CROWD_VS_EXPERT_DEG = 10.0
-
-_PAIR_COLUMNS = ["tile_id", "kind", "det_index", "cons_index", "distance_px", "direction_error_deg"]
-
-
-def _require(df, columns, name):
-    missing = [c for c in columns if c not in df.columns]
-    if missing:
-        raise DetectorError(f"{name} lacks column(s) {', '.join(missing)}.")
-
-
-def candidate_pairs(det, cons, kind, *, fan_min_px=12.0, fan_length_frac=0.3, spot_min_px=10.0):
-    """All detection-consensus pairs of one tile and kind within the match radius of :func:`match_objects`.
-
-    Returns
-    -------
-    pairs : DataFrame
-        det_index, cons_index (index labels), distance_px, direction_error_deg
-        (angular for fans, axial for spots).
-    """
-    dx = det["x_px"].to_numpy(float)[:, None] - cons["x_px"].to_numpy(float)[None, :]
-    dy = det["y_px"].to_numpy(float)[:, None] - cons["y_px"].to_numpy(float)[None, :]
-    dist = np.hypot(dx, dy)
-    if kind == "fan":
-        radius = np.maximum(fan_min_px, fan_length_frac * cons["length_px"].to_numpy(float))
-        ddir = angular_difference(det["direction_deg"].to_numpy(float)[:, None], cons["direction_deg"].to_numpy(float)[None, :])
-    else:
-        radius = np.maximum(spot_min_px, cons["semi_major_px"].to_numpy(float))
-        ddir = axial_difference(det["direction_deg"].to_numpy(float)[:, None], cons["direction_deg"].to_numpy(float)[None, :])
-    i, j = np.nonzero(dist <= radius[None, :] + 1e-9)
-    return pd.DataFrame(
-        {
-            "det_index": det.index.to_numpy()[i],
-            "cons_index": cons.index.to_numpy()[j],
-            "distance_px": dist[i, j],
-            # A missing direction (NaN) ranks after every known one.
-            "direction_error_deg": ddir[i, j],
-        }
-    )
-
-
-def match_objects(
-    detections,
-    consensus,
-    *,
-    fan_min_px=12.0,
-    fan_length_frac=0.3,
-    spot_min_px=10.0,
-    distance_step_px=4.0,
-):
-    """Greedy one-to-one matching of detections to consensus objects.
-
-    Within each tile and kind, a detected fan may match a consensus fan whose
-    apex lies within ``max(fan_min_px, fan_length_frac * length_px)`` of its
-    apex; a detected spot a consensus spot whose centre lies within
-    ``max(spot_min_px, semi_major_px)`` (boundary included). Candidate pairs
-    are ranked by distance rounded to ``distance_step_px``, then by direction
-    difference (angular for fans, axial for spots), then by exact distance, and
-    accepted greedily best first; so fans sharing one vent pair by direction
-    rather than by sub-pixel apex jitter.
-
-    Parameters
-    ----------
-    detections, consensus : DataFrame
-        Contract tables with tile_id, kind, x_px, y_px, direction_deg and, for
-        consensus, length_px (fans) and semi_major_px (spots). Their indexes
-        must be unique; they identify the rows in the result.
-    fan_min_px, fan_length_frac, spot_min_px : float, optional
-        Match radii, px and fraction of the consensus fan length.
-    distance_step_px : float, optional
-        Distances are rounded to this step before ranking, px.
-
-    Returns
-    -------
-    pairs : DataFrame
-        One row per matched pair: tile_id, kind, det_index, cons_index (index
-        labels of the two tables), distance_px, direction_error_deg.
-    """
-    _require(detections, ["tile_id", "kind", "x_px", "y_px", "direction_deg"], "detections")
-    _require(consensus, ["tile_id", "kind", "x_px", "y_px", "direction_deg", "length_px", "semi_major_px"], "consensus")
-    for name, df in (("detections", detections), ("consensus", consensus)):
-        if not df.index.is_unique:
-            raise DetectorError(f"{name} index is not unique; reset it before matching.")
-    det_groups = dict(tuple(detections.groupby(["tile_id", "kind"], sort=False)))
-    parts = []
-    for (tile_id, kind), cons in consensus.groupby(["tile_id", "kind"], sort=False):
-        det = det_groups.get((tile_id, kind))
-        if det is None or kind not in ("fan", "spot"):
-            continue
-        cand = candidate_pairs(
-            det, cons, kind, fan_min_px=fan_min_px, fan_length_frac=fan_length_frac, spot_min_px=spot_min_px
-        )
-        if len(cand):
-            cand.insert(0, "kind", kind)
-            cand.insert(0, "tile_id", tile_id)
-            parts.append(cand)
-    if not parts:
-        return pd.DataFrame({c: pd.Series(dtype=float if "_px" in c or "_deg" in c else object) for c in _PAIR_COLUMNS})
-    cand = pd.concat(parts, ignore_index=True)
-    step = max(float(distance_step_px), 1e-12)
-    cand["_rank_dist"] = np.round(cand["distance_px"] / step)
-    cand["_rank_dir"] = cand["direction_error_deg"].fillna(1e9)
-    cand = cand.sort_values(["_rank_dist", "_rank_dir", "distance_px"], kind="stable").reset_index(drop=True)
-    # Sequential greedy over the ranked list equals repeated rounds of accepting
-    # every pair that is the best remaining one for both its detection and its
-    # consensus object; each round is whole-array and few rounds are needed.
-    # Index labels are unique per table, so they identify objects across tiles too.
-    accepted = []
-    while len(cand):
-        best = ~cand["det_index"].duplicated() & ~cand["cons_index"].duplicated()
-        take = cand[best]
-        accepted.append(take)
-        cand = cand[~cand["det_index"].isin(take["det_index"]) & ~cand["cons_index"].isin(take["cons_index"])]
-    pairs = pd.concat(accepted, ignore_index=True)
-    return pairs[_PAIR_COLUMNS].sort_values(["tile_id", "kind", "distance_px"], kind="stable").reset_index(drop=True)
 
 
 def _prf(tp, n_det, n_cons):
@@ -383,204 +270,6 @@ def _coverage_summary(per_tile):
     }
 
 
-def direction_errors(predicted_deg, consensus_deg):
-    """Angular error between predicted and consensus fan directions, degrees in [0, 180]."""
-    return angular_difference(np.asarray(predicted_deg, dtype=float), np.asarray(consensus_deg, dtype=float))
-
-
-def direction_metrics(errors, *, flip_deg=135.0):
-    """Summary of angular errors.
-
-    Parameters
-    ----------
-    errors : array_like of shape (n,)
-        Degrees in [0, 180]; NaN entries are ignored.
-    flip_deg : float, optional
-        An error above this counts as a polarity flip, degrees.
-
-    Returns
-    -------
-    dict
-        n, median, mean, p90 (degrees), within_10, within_20, within_45 and
-        flip_rate (fractions).
-    """
-    e = np.asarray(errors, dtype=float)
-    e = e[np.isfinite(e)]
-    if e.size == 0:
-        keys = ("median", "mean", "p90", "within_10", "within_20", "within_45", "flip_rate")
-        return {"n": 0, **{k: None for k in keys}}
-    return {
-        "n": int(e.size),
-        "median": float(np.median(e)),
-        "mean": float(e.mean()),
-        "p90": float(np.quantile(e, 0.9)),
-        "within_10": float(np.mean(e <= 10.0)),
-        "within_20": float(np.mean(e <= 20.0)),
-        "within_45": float(np.mean(e <= 45.0)),
-        "flip_rate": float(np.mean(e > flip_deg)),
-    }
-
-
-def matched_fans(detections, consensus, pairs, tiles):
-    """One row per matched fan pair with the values direction scoring needs.
-
-    Returns
-    -------
-    DataFrame
-        tile_id, image_id, det_index, cons_index, predicted_deg, consensus_deg,
-        axis_deg (NaN without that column), length_px (consensus), votes,
-        error_deg.
-    """
-    fp = pairs[pairs["kind"] == "fan"]
-    det = detections.loc[fp["det_index"].to_numpy()]
-    cons = consensus.loc[fp["cons_index"].to_numpy()]
-    image = tiles.set_index("tile_id")["image_id"]
-    out = pd.DataFrame(
-        {
-            "tile_id": fp["tile_id"].to_numpy(),
-            "det_index": fp["det_index"].to_numpy(),
-            "cons_index": fp["cons_index"].to_numpy(),
-            "predicted_deg": det["direction_deg"].to_numpy(float),
-            "consensus_deg": cons["direction_deg"].to_numpy(float),
-            "axis_deg": det["axis_deg"].to_numpy(float) if "axis_deg" in det else np.full(len(fp), np.nan),
-            "length_px": cons["length_px"].to_numpy(float),
-            "votes": cons["votes"].to_numpy(float) if "votes" in cons else np.full(len(fp), np.nan),
-        }
-    )
-    out.insert(1, "image_id", out["tile_id"].map(image).to_numpy())
-    out["error_deg"] = direction_errors(out["predicted_deg"], out["consensus_deg"])
-    return out
-
-
-def _tile_means(df, angle_col, weight_col):
-    labels, mean, _ = grouped_circular_mean(df[angle_col].to_numpy(float), df["tile_id"].to_numpy(), df[weight_col].to_numpy(float))
-    return pd.Series(mean, index=labels)
-
-
-def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
-    """Error of the per-tile mean fan direction, for tiles with at least ``min_fans`` consensus fans.
-
-    The consensus side is the circular mean of the tile's fans weighted by
-    length. The detections' side pools robustly
-    (:func:`detector.inference.detect.tile_direction_stats`), weighting each fan by
-    score x direction confidence x length
-    (:func:`detector.inference.detect.fan_direction_weights`), because a few wrong fans
-    would otherwise drag the mean; without those columns it is the length-weighted
-    robust mean. A tile without any detected fan gets a NaN error.
-
-    Returns
-    -------
-    DataFrame
-        tile_id, image_id, n_consensus_fans, consensus_mean_deg,
-        predicted_mean_deg, error_deg.
-    """
-    cf = consensus[consensus["kind"] == "fan"]
-    counts = cf.groupby("tile_id").size()
-    keep = counts.index[counts >= min_fans]
-    cons_mean = _tile_means(cf[cf["tile_id"].isin(keep)], "direction_deg", "length_px")
-    df_ = detections[(detections["kind"] == "fan") & detections["tile_id"].isin(keep)]
-    pred = {tid: tile_direction_stats(g["direction_deg"].to_numpy(float), fan_direction_weights(g))[0]
-            for tid, g in df_.groupby("tile_id")}
-    pred_mean = pd.Series(pred, dtype=float).reindex(cons_mean.index)
-    image = tiles.set_index("tile_id")["image_id"]
-    out = pd.DataFrame(
-        {
-            "tile_id": cons_mean.index,
-            "image_id": image.reindex(cons_mean.index).to_numpy(),
-            "n_consensus_fans": counts.reindex(cons_mean.index).to_numpy(),
-            "consensus_mean_deg": cons_mean.to_numpy(),
-            "predicted_mean_deg": pred_mean.to_numpy(),
-        }
-    )
-    out["error_deg"] = direction_errors(out["predicted_mean_deg"], out["consensus_mean_deg"])
-    return out
-
-
-def baseline_directions(fans, consensus, tiles, *, prevailing_deg=None, seed=0):
-    """Per-fan directions of the model and of the direction baselines on the matched fans.
-
-    Parameters
-    ----------
-    fans : DataFrame
-        Output of :func:`matched_fans`.
-    consensus, tiles : DataFrame
-        For the per-image oracle: the circular mean (length-weighted) of all
-        consensus fans of each image.
-    prevailing_deg : float, optional
-        One prevailing direction for every fan (e.g. the circular mean of the
-        training fans), degrees.
-    seed : int, optional
-        Seed of the random polarity.
-
-    Returns
-    -------
-    dict of str -> ndarray of shape (n_fans,)
-        Degrees clockwise from up: ``model``; ``axis_random_polarity`` and
-        ``axis_oracle_polarity`` (the detection's axis_deg with a seeded random
-        polarity, or the polarity nearer the consensus) when the detections
-        carry axis_deg; ``prevailing`` when given; ``image_oracle`` (the
-        consensus mean direction of the fan's image).
-    """
-    out = {"model": fans["predicted_deg"].to_numpy(float)}
-    cons_deg = fans["consensus_deg"].to_numpy(float)
-    axis = fans["axis_deg"].to_numpy(float)
-    if np.isfinite(axis).any():
-        rng = np.random.default_rng(seed)
-        out["axis_random_polarity"] = (axis + 180.0 * rng.integers(0, 2, size=axis.size)) % 360.0
-        out["axis_oracle_polarity"] = np.where(angular_difference(axis, cons_deg) <= 90.0, axis, axis + 180.0) % 360.0
-    if prevailing_deg is not None:
-        out["prevailing"] = np.full(cons_deg.shape, float(prevailing_deg) % 360.0)
-    cf = consensus[consensus["kind"] == "fan"]
-    image = tiles.set_index("tile_id")["image_id"]
-    labels, mean, _ = grouped_circular_mean(
-        cf["direction_deg"].to_numpy(float), cf["tile_id"].map(image).to_numpy(), cf["length_px"].to_numpy(float)
-    )
-    out["image_oracle"] = fans["image_id"].map(pd.Series(mean, index=labels)).to_numpy(float)
-    return out
-
-
-def baseline_errors(fans, consensus, tiles, *, prevailing_deg=None, seed=0):
-    """Per-fan angular errors (degrees in [0, 180]) of :func:`baseline_directions`."""
-    cons_deg = fans["consensus_deg"].to_numpy(float)
-    dirs = baseline_directions(fans, consensus, tiles, prevailing_deg=prevailing_deg, seed=seed)
-    return {name: direction_errors(d, cons_deg) for name, d in dirs.items()}
-
-
-def baseline_metrics(errors):
-    """Direction metrics of every baseline and the model's skill relative to each.
-
-    Parameters
-    ----------
-    errors : dict
-        Output of :func:`baseline_errors`.
-
-    Returns
-    -------
-    dict
-        ``{name: {**direction_metrics, skill_median, delta_within_20}}`` with
-        skill_median = 1 - median_model / median_baseline and delta_within_20
-        = model share within 20 degrees minus the baseline's; ``model_better_than_all``.
-    """
-    model = direction_metrics(errors["model"])
-    out = {}
-    better = []
-    for name, e in errors.items():
-        if name == "model":
-            continue
-        m = direction_metrics(e)
-        skill = None
-        if model["median"] is not None and m["median"]:
-            skill = 1.0 - model["median"] / m["median"]
-        delta = None
-        if model["within_20"] is not None and m["within_20"] is not None:
-            delta = model["within_20"] - m["within_20"]
-        m.update(skill_median=skill, delta_within_20=delta)
-        out[name] = m
-        better.append(skill is not None and skill > 0)
-    out["model_better_than_all"] = bool(better) and all(better)
-    return out
-
-
 def _label_order(label):
     """Sort key that puts interval labels such as '[150, 180)' in numeric order, others by name."""
     text = str(label)
@@ -665,101 +354,6 @@ def breakdowns(
             }
         out[col] = group
     return out
-
-
-def _weighted_quantile(values, weights, q):
-    """Quantile of ``values`` per row of ``weights`` (B, n): the smallest value whose cumulative weight reaches q."""
-    order = np.argsort(values, kind="mergesort")
-    v = values[order]
-    w = weights[:, order]
-    cum = np.cumsum(w, axis=1)
-    total = cum[:, -1:]
-    idx = np.argmax(cum >= q * total - 1e-12, axis=1)
-    out = v[idx]
-    out[total[:, 0] <= 0] = np.nan
-    return out
-
-
-#: Fewest images for a bootstrap percentile interval to be called a confidence interval; with fewer,
-#: the resampled statistics take a handful of values and only their full range is reported.
-MIN_IMAGES_FOR_CI = 5
-
-
-def bootstrap_interval(values, image_ids, statistic="median", *, n_boot=1000, seed=0, level=0.95):
-    """Bootstrap interval of a statistic by resampling images with replacement.
-
-    Each replicate draws as many images as there are, with replacement, and
-    recomputes the statistic over the units (fans, tiles) of the drawn images,
-    an image drawn k times counting k times.
-
-    Parameters
-    ----------
-    values : array_like of shape (n,) or (n, m)
-        Per-unit values. For ``"ratio"`` a (n, 2) array of numerator and
-        denominator (e.g. 2 * matches and detections + consensus for F1).
-    image_ids : array_like of shape (n,)
-        Image of each unit.
-    statistic : {"median", "p90", "mean", "ratio"} or callable, optional
-        A callable receives (values, weights) with weights of shape (B, n) and
-        returns B statistics.
-    n_boot : int, optional
-        Number of replicates.
-    seed : int, optional
-        Seed of the resampling (np.random.default_rng).
-    level : float, optional
-        Coverage of the percentile interval.
-
-    Returns
-    -------
-    (low, high) : tuple of float or None
-        The percentile interval; with fewer than :data:`MIN_IMAGES_FOR_CI`
-        images, the full range (min, max) of the resampled statistics, which
-        is no confidence interval and must not be called one.
-    """
-    values = np.asarray(values, dtype=float)
-    image_ids = np.asarray(image_ids)
-    if values.shape[0] != image_ids.size:
-        raise DetectorError(f"values have {values.shape[0]} rows but image_ids have {image_ids.size}.")
-    if values.shape[0] == 0:
-        return None, None
-    finite = np.isfinite(values) if values.ndim == 1 else np.isfinite(values).all(axis=1)
-    values, image_ids = values[finite], image_ids[finite]
-    if values.shape[0] == 0:
-        return None, None
-    labels, inverse = np.unique(image_ids, return_inverse=True)
-    rng = np.random.default_rng(seed)
-    k = labels.size
-    counts = rng.multinomial(k, np.full(k, 1.0 / k), size=n_boot).astype(float)
-    weights = counts[:, inverse]
-    if callable(statistic):
-        stats = np.asarray(statistic(values, weights), dtype=float)
-    elif statistic == "median":
-        stats = _weighted_quantile(values, weights, 0.5)
-    elif statistic == "p90":
-        stats = _weighted_quantile(values, weights, 0.9)
-    elif statistic == "mean":
-        with np.errstate(invalid="ignore", divide="ignore"):
-            stats = weights @ values / weights.sum(axis=1)
-    elif statistic == "ratio":
-        with np.errstate(invalid="ignore", divide="ignore"):
-            stats = (weights @ values[:, 0]) / (weights @ values[:, 1])
-    else:
-        raise DetectorError(f"statistic {statistic!r} is not one of median, p90, mean, ratio or a callable.")
-    stats = stats[np.isfinite(stats)]
-    if stats.size == 0:
-        return None, None
-    if k < MIN_IMAGES_FOR_CI:
-        return float(stats.min()), float(stats.max())
-    alpha = (1.0 - level) / 2.0
-    low, high = np.quantile(stats, [alpha, 1.0 - alpha])
-    return float(low), float(high)
-
-
-def interval_kind(n_images):
-    """What the by-image bootstrap intervals of ``n_images`` images are: a 95 % CI or only a range."""
-    if n_images < MIN_IMAGES_FOR_CI:
-        return f"range of bootstrap resamples ({n_images} image{'s' if n_images != 1 else ''}: too few for a 95 % CI)"
-    return "95 % CI (bootstrap by image)"
 
 
 def _f1_units(detections, consensus, pairs, tiles, kind):

@@ -20,7 +20,7 @@ from detector._allocator import reuse_freed_memory
 
 from .dataset import augmented_tile
 from ..parallel import tile_parallel
-from ..evaluation.scoring import candidate_pairs
+from ..evaluation.matching import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "CONFIDENCE_FEATURES"]
