@@ -124,9 +124,7 @@ def read_image(path, *, band=None):
                     _refuse_palette(path)
                 image = page.asarray()
         else:
-            from PIL import Image
-
-            with Image.open(path) as handle:
+            with _pil_open(path) as handle:
                 _check_size(path, handle.size[::-1])
                 if handle.mode in ("P", "PA"):
                     _refuse_palette(path)
@@ -154,6 +152,25 @@ def read_image(path, *, band=None):
     if image.ndim != 2 or image.size == 0:
         raise ImageError(f"image {str(path)!r} has shape {image.shape}; expected a single-band (M, N) image.")
     return supported_pixels(image, repr(str(path)))
+
+
+@contextlib.contextmanager
+def _pil_open(path):
+    """Pillow's handle of an image, opened without Pillow's decompression-bomb check.
+
+    Pillow warns on opening an image over about 89 Mpx (and refuses one over twice that) with a raw
+    library message; our own limit, :data:`MAX_TILE_PIXELS`, is checked from the header next, before
+    any pixel is decoded, and says what to do instead.
+    """
+    from PIL import Image
+
+    limit = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None
+    try:
+        with Image.open(path) as handle:
+            yield handle
+    finally:
+        Image.MAX_IMAGE_PIXELS = limit
 
 
 def _check_size(path, shape):
@@ -190,9 +207,7 @@ def image_size(path):
             with tifffile.TiffFile(path) as handle:
                 shape = handle.pages[0].shape
             return int(shape[1]), int(shape[0])
-        from PIL import Image
-
-        with Image.open(path) as handle:
+        with _pil_open(path) as handle:
             return int(handle.width), int(handle.height)
     except Exception as err:  # any decoder failure is a corrupt image to the user
         raise ImageError(f"image {str(path)!r} cannot be read: {str(err).rstrip('.')}.") from err

@@ -112,3 +112,32 @@ def test_palette_image_is_refused(tmp_path):
     Image.fromarray(np.zeros((64, 64), np.uint8)).convert("P").save(path)
     with pytest.raises(ImageError, match="indexed.png' is a palette"):
         read_image(path)
+
+
+def _png_header(path, width, height):
+    """A grey 8-bit PNG that declares ``width`` x ``height`` px and holds one row: what a
+    decompression bomb shows before decoding (PNG chunk layout: W3C PNG specification, 2nd ed., 5.3)."""
+    import struct
+    import zlib
+
+    def chunk(kind, data):
+        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+    path.write_bytes(b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", struct.pack(">IIBBBBB", width, height, 8, 0, 0, 0, 0))
+                     + chunk(b"IDAT", zlib.compress(b"\x00" * (width + 1))) + chunk(b"IEND", b""))
+
+
+@pytest.mark.parametrize("side", [12_000, 20_000])  # above Pillow's warning (89 Mpx) and its refusal (179 Mpx)
+def test_decompression_bomb_png_gets_our_message_not_pillows(tmp_path, side):
+    import warnings
+
+    from detector.errors import ImageError
+    from detector.io import image_size, read_image
+
+    path = tmp_path / "bomb.png"
+    _png_header(path, side, side)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # Pillow's DecompressionBombWarning would fail here
+        assert image_size(path) == (side, side)
+        with pytest.raises(ImageError, match=rf"bomb\.png' is {side} x {side} px .*at most 50 Mpx"):
+            read_image(path)
