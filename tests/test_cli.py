@@ -137,3 +137,106 @@ def test_train_with_an_unreachable_scheduler_writes_nothing(tiny_tileset, tmp_pa
     assert len(err) == 1 and err[0].startswith("frostvane: error: Dask scheduler ") and repr(address) in err[0]
     assert "cannot be reached" in err[0]
     assert sorted(tmp_path.rglob("*")) == before
+
+
+def _screen_in_subprocess(image, out, stderr):
+    """``frostvane screen`` of one image with the shipped model, in a new process whose stderr is ``stderr``."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from training.cli import DEFAULT_MODEL
+
+    root = Path(__file__).resolve().parents[1]
+    env = {k: v for k, v in os.environ.items() if k != "TQDM_DISABLE"}
+    env["PYTHONPATH"] = os.pathsep.join([str(root), env.get("PYTHONPATH", "")])
+    return subprocess.run([sys.executable, "-m", "training.cli", "screen", str(DEFAULT_MODEL), str(image), "--out",
+                           str(out)], stdout=subprocess.DEVNULL, stderr=stderr, env=env, cwd=root, timeout=600)
+
+
+def test_progress_bars_are_quiet_when_stderr_is_not_a_terminal(tiny_tileset, tmp_path):
+    import fcntl
+    import os
+    import pty
+    import struct
+    import subprocess
+    import termios
+    import threading
+
+    import pandas as pd
+
+    image = tiny_tileset / pd.read_csv(tiny_tileset / "tiles.csv")["path"].iloc[0]
+    piped = _screen_in_subprocess(image, tmp_path / "piped", subprocess.PIPE)
+    assert piped.returncode == 0, piped.stderr
+    # A pipe or log file gets no bar (tqdm would write 'screen: ... 1/1 ... tile/s' and carriage returns).
+    assert b"\r" not in piped.stderr and b"1/1" not in piped.stderr, piped.stderr
+    # The same run on a terminal (a pseudo-terminal stands in for one) shows its bar. The terminal is
+    # read while the run writes: Linux drops what is unread once the run's side closes.
+    leader, follower = pty.openpty()
+    # tqdm draws nothing on a terminal of zero columns: give it the size of a real one.
+    fcntl.ioctl(follower, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 100, 0, 0))
+    shown = []
+
+    def drain():
+        while True:
+            try:
+                chunk = os.read(leader, 65536)
+            except OSError:  # EIO: the run's side is closed
+                return
+            if not chunk:
+                return
+            shown.append(chunk)
+
+    reader = threading.Thread(target=drain, daemon=True)
+    reader.start()
+    try:
+        on_tty = _screen_in_subprocess(image, tmp_path / "tty", follower)
+    finally:
+        os.close(follower)
+    reader.join(timeout=10)
+    os.close(leader)
+    shown = b"".join(shown)
+    assert on_tty.returncode == 0
+    assert b"screen" in shown and b"1/1" in shown, shown
+
+
+def _readme_screening_columns():
+    """Column names the README documents for the screening folder, and those given with a unit cell.
+
+    Tables list a column per row (first cell) and its unit (second cell); a row may name a family as
+    ``prefix_first``, ``_second``, ...; the tile-set contract above them names the consensus columns
+    that detections share.
+    """
+    import re
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = text[text.index("## The tile-set contract"):text.index("## The evaluation folder")]
+    named, with_unit = set(re.findall(r"`([a-z][a-z0-9_]*)`", section)), set()
+    for row in re.findall(r"^\| (`[^|]+`) \| ([^|]*) \|$", section, flags=re.MULTILINE):
+        names = re.findall(r"`([a-z_][a-z0-9_]*)`", row[0])
+        prefix = names[0].rsplit("_", 1)[0]
+        full = [prefix + n if n.startswith("_") else n for n in names]
+        named.update(full)
+        if row[1].strip():
+            with_unit.update(full)
+    return named, with_unit
+
+
+def test_readme_documents_every_screening_output_column(tiny_tileset, tmp_path):
+    import pandas as pd
+
+    from training.cli import DEFAULT_MODEL
+
+    out = tmp_path / "screen"
+    assert main(["screen", str(DEFAULT_MODEL), str(tiny_tileset), "--out", str(out)]) == 0
+    named, with_unit = _readme_screening_columns()
+    tiles = list(pd.read_csv(out / "tiles.csv", nrows=0).columns)
+    detections = list(pd.read_csv(out / "detections.csv", nrows=0).columns)
+    # Every tiles.csv column has its own table row with a unit or value set.
+    assert [c for c in tiles if c not in with_unit] == []
+    # Every detections.csv column is named (its own row, or a consensus column of the contract).
+    assert [c for c in detections if c not in named] == []
+    assert {"score", "lon_deg", "azimuth_deg"} <= with_unit  # the parser does read the detection table
+
