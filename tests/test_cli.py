@@ -240,3 +240,20 @@ def test_readme_documents_every_screening_output_column(tiny_tileset, tmp_path):
     assert [c for c in detections if c not in named] == []
     assert {"score", "lon_deg", "azimuth_deg"} <= with_unit  # the parser does read the detection table
 
+
+def test_demo_refuses_a_damaged_model_before_writing(tmp_path, capsys):
+    from pathlib import Path
+
+    from training.cli import DEFAULT_MODEL
+
+    model = tmp_path / "model"
+    shutil.copytree(DEFAULT_MODEL, model)
+    card = json.loads((model / "model.json").read_text())
+    card["assembly"]["min_score"] = float("nan")
+    (model / "model.json").write_text(json.dumps(card))  # json writes NaN as the bare token NaN
+    tiles = Path(__file__).resolve().parents[1] / "demo_tiles"
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--tiles", str(tiles), "--model", str(model)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "min_score" in err
+    assert not out.exists()

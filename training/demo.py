@@ -119,10 +119,13 @@ def run_demo(out, *, tiles, model, retrain=False):
 
     started = time.perf_counter()
     out = Path(out)
+    # Bad input (a broken tile set or model card) is refused before anything is written.
+    tileset = load_tileset(tiles)
+    if not retrain and (Path(model) / "model.json").is_file():
+        load_model(model)
     out.mkdir(parents=True, exist_ok=True)
 
     _section("1. validate the demo tile set")
-    tileset = load_tileset(tiles)
     print(format_summary(summarize_tileset(tileset)))
     with_fans = tileset.consensus.groupby("tile_id").size().sort_values(ascending=False).index[:4].tolist()
     overlay = plot_overlay(tileset, with_fans, out / "consensus_overlay.png")

@@ -184,3 +184,12 @@ def test_backtest_refuses_training_images(tmp_path):
     tiles.to_csv(root / "tiles.csv", index=False)
     with pytest.raises(DetectorError, match="never saw"):
         backtest(MODEL_DIR, root, tmp_path / "out", log=lambda *_: None)
+
+
+def test_refused_screening_leaves_no_hidden_copy(tmp_path):
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "tiles", n_images=1, tiles_per_image=1, seed=31, image_prefix="BKT")
+    with pytest.raises(DetectorError, match="workers 0"):
+        backtest(MODEL_DIR, root, tmp_path / "out", workers=0, log=lambda *_: None)
+    assert not (tmp_path / "out").exists()

@@ -351,10 +351,19 @@ def backtest(model_dir, tileset_root, out, *, campaign=None, states=CAMPAIGN_STA
     if overlap:
         raise DetectorError(f"the model was fitted or calibrated on image(s) {overlap[:3]!r} of {str(tileset_root)!r}; "
                             f"a backtest needs images the model never saw.")
-    hidden = _hidden_copy(tileset, out / "hidden")
     screen_dir = out / "screen"
-    log(f"backtest: screening {len(tileset.tiles)} tiles of {str(tileset_root)!r} without their consensus")
-    screen(model_dir, [hidden], screen_dir, workers=workers, progress=False)
+    ours = [p for p in (out / "hidden", screen_dir, out) if not p.exists()]
+    try:
+        hidden = _hidden_copy(tileset, out / "hidden")
+        log(f"backtest: screening {len(tileset.tiles)} tiles of {str(tileset_root)!r} without their consensus")
+        screen(model_dir, [hidden], screen_dir, workers=workers, progress=False)
+    except Exception:
+        # A refused screening (bad --workers, an image it cannot read) leaves no hidden copy behind.
+        import shutil
+
+        for path in ours:
+            shutil.rmtree(path, ignore_errors=True)
+        raise
     tiles, detections = _read_screen(screen_dir)
     routed = route_tiles(tiles, card, detections=detections)
     ids = routed["tile_id"].astype(str)
