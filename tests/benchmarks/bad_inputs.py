@@ -5,13 +5,16 @@ its screening with the shipped ``models/demo``), derives well over a hundred dam
 (tile-set tables, images, pixel types, model cards, screening folders, options, output folders), runs
 the command line on each (a subprocess with a timeout, ``--workers 1``) and sorts every outcome:
 
-- ``clear error``: exit 2, one line on stderr (argparse's usage lines aside) that names what the
-  case expects (the file, row, column or value), no traceback, nothing half-written;
+- ``clear error``: exit 2, no traceback, nothing half-written, and stderr (argparse's usage lines
+  aside) is one ``frostvane...: error:`` line per problem (``validate`` lists every breach of a tile
+  set at once; any other bad input gives one line) naming what the case expects (the file, row,
+  column or value);
 - ``handled``: exit 0 on an input the contract supports (the case says why; some cases also check
   the result, e.g. an int16 image screens exactly like the same numbers in uint16);
 - ``traceback``: "Traceback" in the output, an exit code other than 0 and 2, or a timeout;
 - ``silent``: exit 0 where an error was due, or a handled case whose result check failed;
-- ``unclear error``: exit 2 without exactly one line, or a line not naming what it should;
+- ``unclear error``: exit 2 with a stderr line that is not an error line, or nothing naming what it
+  should;
 - ``half-written``: after an error, the output folder holds outputs it did not hold before, a
   ``run.json`` still "running" or a hidden ``.outputs.*`` stage, or a folder the command was only
   to read (a screening under ``effort``) was changed.
@@ -70,8 +73,8 @@ def error_lines(stderr):
     """The stderr lines a user reads as the error: argparse's usage block and blank lines dropped."""
     lines, in_usage = [], False
     for line in stderr.splitlines():
-        if not line.strip():
-            continue
+        if not line.strip() or line.startswith("frostvane: compiling"):
+            continue  # a fresh machine announces its first compilation once
         if line.startswith("usage: "):
             in_usage = True
             continue
@@ -107,7 +110,7 @@ def half_written(folder, before):
             status = json.loads(run.read_text()).get("status")
         except (ValueError, AttributeError):
             status = None
-        if status == "running":
+        if status == "running" and before.get("run.json") != after.get("run.json"):
             found.append("run.json left 'running'")
     for name, stamp in after.items():
         top = name.split("/")[0]
@@ -117,6 +120,11 @@ def half_written(folder, before):
             found.append(f"{'changed' if name in before else 'new'} {name}")
     found += [f"removed {name}" for name in before if name not in after and not name.startswith(".partial")]
     return found
+
+
+def _plain(text):
+    """Lower case, '-' read as '_': an option and the value it sets name the same thing."""
+    return text.lower().replace("-", "_")
 
 
 @dataclass
@@ -150,21 +158,25 @@ def run_case(ctx, case, folder):
         detail = tb[-1] if tb else f"exit {code}"
     elif code == 2:
         left = [item for w in watch for item in half_written(w, before[w])]
-        missing = [s for s in case.names if s.lower() not in first.lower()]
+        said = _plain("\n".join(lines))
+        missing = [s for s in case.names if _plain(s) not in said]
+        stray = [ln for ln in lines if not ln.startswith("frostvane") or "error:" not in ln]
         if left:
             outcome, detail = "half-written", "; ".join(left[:4])
-        elif len(lines) != 1 or missing:
+        elif not lines or stray or missing:
             outcome = "unclear error"
-            detail = f"{len(lines)} stderr lines" if len(lines) != 1 else f"does not name {missing}"
+            detail = f"not an error line: {stray[0][:120]!r}" if stray else f"does not name {missing}"
         else:
             outcome = "clear error"
+            detail = f"{len(lines)} lines, one per problem" if len(lines) > 1 else ""
     elif case.expected == "error":
         outcome, detail = "silent", "exit 0"
     else:
         wrong = case.check(ctx, folder) if case.check else ""
         outcome, detail = ("silent", wrong) if wrong else ("handled", case.note)
     case.result = {"case": case.name, "command": case.command, "expected": case.expected, "outcome": outcome,
-                   "exit_code": "" if code is None else code, "stderr_first_line": first or detail,
+                   "exit_code": "" if code is None else code, "stderr_lines": len(lines),
+                   "stderr_first_line": first or detail,
                    "detail": detail, "seconds": round(seconds, 1),
                    "argv": " ".join(str(a) for a in spec["argv"]).replace(str(ctx.root), "$TMP")}
     return case.result
@@ -179,6 +191,8 @@ class Context:
     def __init__(self, root):
         self.root = root
         self.syn = root / "syn"
+        self.syn3 = root / "syn3"  # the fewest images training splits (fit, calibration, held out)
+        self.syn7 = root / "syn7"  # the fewest the labelling-order study splits
         self.screening = root / "screening"
         self.tile_png = self.syn / "images" / "SYN_0001_C_T00.png"
         self.nobody = os.geteuid() == 0 and shutil.which("setpriv") is not None
@@ -186,6 +200,8 @@ class Context:
     def prepare(self):
         steps = [
             ["synth", self.syn, "--images", 2, "--tiles-per-image", 2, "--seed", 3],
+            ["synth", self.syn3, "--images", 3, "--tiles-per-image", 1, "--seed", 4],
+            ["synth", self.syn7, "--images", 7, "--tiles-per-image", 1, "--seed", 5],
             ["screen", MODEL, self.syn, "--out", self.screening, "--workers", 1],
         ]
         for argv in steps:
@@ -207,10 +223,10 @@ def read_table(path):
 
 
 def tileset(ctx, folder, *, tiles=None, consensus=None, tiles_text=None, consensus_text=None, image=None,
-            suffix=".png", drop=()):
-    """A copy of the baseline tile set with its tables or its first tile's image replaced."""
+            suffix=".png", drop=(), source=None):
+    """A copy of a baseline tile set (default: the 2 x 2 one) with its tables or its first tile's image replaced."""
     ts = folder / "ts"
-    shutil.copytree(ctx.syn, ts)
+    shutil.copytree(source or ctx.syn, ts)
     for name in drop:
         (ts / name).unlink()
     if image is not None:
@@ -347,11 +363,15 @@ def png_bomb(width, height):
 def sparse_tiff(width, height):
     """A tiled, deflate-compressed TIFF of ``width`` x ``height`` whose blocks are never written (a few kB)."""
     def write(path):
+        import warnings
+
         import rasterio
 
-        with rasterio.open(path, "w", driver="GTiff", width=width, height=height, count=1, dtype="uint8",
-                           tiled=True, blockxsize=512, blockysize=512, compress="deflate", SPARSE_OK="TRUE"):
-            pass
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # no georeferencing: a plain tile
+            with rasterio.open(path, "w", driver="GTiff", width=width, height=height, count=1, dtype="uint8",
+                               tiled=True, blockxsize=512, blockysize=512, compress="deflate", SPARSE_OK="TRUE"):
+                pass
     return write
 
 
@@ -367,20 +387,22 @@ def _ts_case(command, name, extra=(), **kw):
     expected = kw.pop("expected", "error")
     note = kw.pop("note", "")
     check = kw.pop("check", None)
+    timeout = kw.pop("timeout", 240)
+    source = kw.pop("source", "syn3" if command == "train" else "syn")
 
     def build(ctx, d):
-        ts = tileset(ctx, d, **kw)
+        ts = tileset(ctx, d, source=getattr(ctx, source), **kw)
         out = d / "out"
         argv = {
             "validate": ["validate", ts],
             "evaluate": ["evaluate", MODEL, ts, "--out", out, "--workers", 1],
             "train": ["train", ts, "--out", out, "--max-patches", 20000, "--workers", 1],
-            "winds": ["winds", "--crowd", ts, "--out", out, "--bootstrap", 50, "--bootstrap-modes", 20],
+            "winds": ["winds", "--crowd", ts, "--out", out, "--bootstrap", 100, "--bootstrap-modes", 100],
             "screen": ["screen", MODEL, ts, "--out", out, "--workers", 1],
             "backtest": ["backtest", MODEL, ts, "--out", out, "--workers", 1],
         }[command]
         return {"argv": [*argv, *extra], "watch": [out]}
-    return Case(name, command, build, expected, names, check, note)
+    return Case(name, command, build, expected, names, check, note, timeout)
 
 
 def _image_case(command, name, writer, suffix=".png", extra=(), **kw):
@@ -391,7 +413,10 @@ def _image_case(command, name, writer, suffix=".png", extra=(), **kw):
     def build(ctx, d):
         out = d / "out"
         if command == "validate":
-            return {"argv": ["validate", tileset(ctx, d, image=writer, suffix=suffix), *extra]}
+            # The first tile's consensus goes with its image: the image is then the only breach.
+            ts = tileset(ctx, d, image=writer, suffix=suffix,
+                         consensus=lambda df: df[df["tile_id"] != read_table(ctx.syn / "tiles.csv")["tile_id"][0]])
+            return {"argv": ["validate", ts, *extra]}
         image = d / f"BAD_T00{suffix}"
         writer(image)
         return {"argv": ["screen", MODEL, image, "--out", out, "--workers", 1, *extra], "watch": [out]}
@@ -415,6 +440,12 @@ def _same_screening_as(reference_writer, suffix):
     return check
 
 
+def _some_nodata(ctx, d):
+    """'' when the screened tile counts some pixels as no-data (valid_fraction below 1)."""
+    valid = pd.read_csv(d / "out" / "tiles.csv")["valid_fraction"]
+    return "" if (valid < 1).all() else f"valid_fraction {valid.tolist()}: the inf pixels were read as data"
+
+
 def _model_case(command, name, *, card=None, card_text=None, files=None, names=(), expected="error", note=""):
     def build(ctx, d):
         model = model_copy(d, card=card, card_text=card_text, files=files)
@@ -423,7 +454,9 @@ def _model_case(command, name, *, card=None, card_text=None, files=None, names=(
             return {"argv": ["screen", model, ctx.tile_png, "--out", out, "--workers", 1], "watch": [out]}
         if command == "evaluate":
             return {"argv": ["evaluate", model, ctx.syn, "--out", out, "--workers", 1], "watch": [out]}
-        scr = screening_copy(ctx, d)
+        # The screening names the edited card's hash, so that the card's own damage is what effort meets.
+        scr = screening_copy(ctx, d, run=lambda r: r["parameters"].__setitem__(
+            "model_hash", hashlib.sha256((model / "model.json").read_bytes()).hexdigest()))
         return {"argv": ["effort", model, scr, "--out", out], "watch": [out, scr]}
     return Case(name, command, build, expected, names, None, note)
 
@@ -487,10 +520,10 @@ def cases():
     add(_ts_case(v, "tiles.csv empty file", tiles_text="", names=("tiles.csv",)))
     add(_ts_case(v, "tiles.csv header only (no tiles)", tiles_text="tile_id,image_id,path\n", names=("tiles.csv",)))
     add(_ts_case(v, "tiles.csv binary garbage", tiles_text=bytes(range(256)) * 4, names=("tiles.csv",)))
-    add(_ts_case(v, "tiles.csv Latin-1 bytes", tiles_text="tile_id,image_id,path\nT\xe9,I,images/x.png\n".encode("latin-1"),
-                 names=("tiles.csv",)))
-    add(_ts_case(v, "tiles.csv semicolon separated", tiles_text="tile_id;image_id;path\nA;B;images/SYN_0001_C_T00.png\n",
-                 names=("tiles.csv",)))
+    add(_ts_case(v, "tiles.csv Latin-1 bytes", names=("tiles.csv",),
+                 tiles_text="tile_id,image_id,path\nT\xe9,I,images/x.png\n".encode("latin-1")))
+    add(_ts_case(v, "tiles.csv semicolon separated", names=("tiles.csv",),
+                 tiles_text="tile_id;image_id;path\nA;B;images/SYN_0001_C_T00.png\n"))
     for col in ("tile_id", "image_id", "path"):
         add(_ts_case(v, f"tiles.csv lacks column {col}", tiles=drop_column(col), names=(col,)))
     add(_ts_case(v, "tile_id duplicated", tiles=lambda df: pd.concat([df, df.iloc[[0]]]), names=("SYN_0001_C_T00",)))
@@ -520,10 +553,9 @@ def cases():
                  names=("direction_deg",)))
     add(_ts_case(v, "consensus kind 'crater'", consensus=set_cell(0, "kind", "crater"), names=("crater",)))
     add(_ts_case(v, "consensus tile_id unknown", consensus=set_cell(0, "tile_id", "NOPE_T00"), names=("NOPE_T00",)))
-    add(_ts_case(v, "fan direction_deg 360", consensus=set_first("fan", "direction_deg", "360"), names=("direction_deg",)))
-    add(_ts_case(v, "fan direction_deg -1", consensus=set_first("fan", "direction_deg", "-1"), names=("direction_deg",)))
-    add(_ts_case(v, "fan direction_deg NaN", consensus=set_first("fan", "direction_deg", "NaN"), names=("direction_deg",)))
-    add(_ts_case(v, "fan direction_deg abc", consensus=set_first("fan", "direction_deg", "abc"), names=("direction_deg",)))
+    for value in ("360", "-1", "NaN", "abc"):
+        add(_ts_case(v, f"fan direction_deg {value}", consensus=set_first("fan", "direction_deg", value),
+                     names=("direction_deg",)))
     add(_ts_case(v, "fan x_px outside the tile", consensus=set_first("fan", "x_px", "5000"), names=("x_px",)))
     add(_ts_case(v, "fan y_px negative", consensus=set_first("fan", "y_px", "-40"), names=("y_px",)))
     add(_ts_case(v, "fan x_px inf", consensus=set_first("fan", "x_px", "inf"), names=("x_px",)))
@@ -555,7 +587,7 @@ def cases():
         ("int32 beyond 65535", lambda ctx: tiff(px(ctx).astype(np.int32) * 1000), ".tif", "error"),
         ("float32 in [0, 1]", lambda ctx: tiff(px(ctx).astype(np.float32) / 255), ".tif", "handled"),
         ("float32 0-255", lambda ctx: tiff(px(ctx).astype(np.float32)), ".tif", "error"),
-        ("float64 with inf", lambda ctx: tiff(np.where(px(ctx) > 250, np.inf, px(ctx) / 255.0)), ".tif", "error"),
+        ("float64 with inf", lambda ctx: tiff(np.where(px(ctx) > 250, np.inf, px(ctx) / 255.0)), ".tif", "either"),
         ("palette PNG", lambda ctx: png("P", px(ctx)), ".png", "error"),
         ("1-bit PNG", lambda ctx: png("1", px(ctx) > 128), ".png", "error"),
         ("RGB PNG", lambda ctx: png("RGB", np.dstack([px(ctx)] * 3)), ".png", "error"),
@@ -566,7 +598,8 @@ def cases():
         ("decompression-bomb PNG (12000^2)", lambda ctx: png_bomb(12000, 12000), ".png", "error"),
     ]
     for label, make, suffix, expected in images:
-        note = "converted exactly: screens like the same numbers in uint16" if expected == "handled" else ""
+        note = ("converted exactly: screens like the same numbers in uint16" if expected == "handled" else
+                "non-finite pixels are no-data, like NaN" if expected == "either" else "")
         writer = lambda p, make=make: make(current_ctx)(p)  # noqa: E731
         add(_image_case(v, label, writer, suffix, expected=expected, note=note))
         if label.startswith("decompression"):
@@ -574,6 +607,8 @@ def cases():
         check = None
         if expected == "handled" and label.startswith("int"):
             check = _same_screening_as(lambda p: tiff(px(current_ctx).astype(np.uint16) * 128)(p), ".tif")
+        elif label.startswith("float64 with inf"):
+            check = _some_nodata
         add(_image_case("screen", label, writer, suffix, expected=expected, note=note, check=check))
     add(_image_case(v, "sparse TIFF 30720^2 (a few kB)", lambda p: sparse_tiff(30720, 30720)(p), ".tif"))
     add(_image_case(v, "64 x 64 image (one patch)", lambda p: png("L", px(current_ctx)[:64, :64])(p),
@@ -604,7 +639,9 @@ def cases():
     add(_argv_case(s, "--nodata abc", [*base, "--nodata", "abc"], names=("abc",), watch=(out,)))
     add(_argv_case(s, "--nodata none", [*base, "--nodata", "none"], expected="handled", note="no value is no-data",
                    check=lambda ctx, d: "" if '"none"' in (d / "out" / "run.json").read_text() else "not recorded"))
-    add(_argv_case(s, "--tile 10x10", [*base, "--tile", "10x10"], names=("tile",), watch=(out,)))
+    crop = lambda ctx, d: (png("L", px(ctx)[:96, :128])(d / "crop.png"), d / "crop.png")[1]  # noqa: E731
+    add(_argv_case(s, "--tile 10x10 (smaller than a patch)", ["screen", MODEL, crop, "--out", out, "--workers", 1,
+                                                              "--tile", "10x10"], names=("tile",), watch=(out,)))
     add(_argv_case(s, "--tile abc", [*base, "--tile", "abc"], names=("abc",), watch=(out,)))
     add(_argv_case(s, "--tile 0x600", [*base, "--tile", "0x600"], names=("tile",), watch=(out,)))
     add(_argv_case(s, "--overlap -5", [*base, "--overlap", "-5"], names=("overlap",), watch=(out,)))
@@ -773,12 +810,14 @@ def cases():
     add(_ts_case(t, "one image only", tiles=lambda df: df[df["image_id"] == df["image_id"].iloc[0]],
                  consensus=lambda df: df[df["tile_id"].str.startswith("SYN_0001")], names=("image",)))
     add(_ts_case(t, "votes abc", consensus=set_cell(0, "votes", "abc"), names=("votes",)))
-    add(_ts_case(t, "2 images x 2 tiles, --max-patches 20000", expected="either", timeout=400,
+    add(_ts_case(t, "3 images x 1 tile, --max-patches 20000", expected="either", timeout=400,
                  note="a tiny valid set: trains or says why not"))
-    add(_ts_case(t, "--max-patches 0", extra=("--max-patches", "0"), names=("max-patches",)))
+    add(_ts_case(t, "2 images (too few to split)", source="syn", names=("image",)))
+    add(_ts_case(t, "--max-patches 0", extra=("--max-patches", "0"), names=("patches", "0")))
     add(_ts_case(t, "--holdout-fraction 1.5", extra=("--holdout-fraction", "1.5"), names=("holdout",)))
     add(_ts_case(t, "--holdout-images unknown id", extra=("--holdout-images", "NOPE_1"), names=("NOPE_1",)))
-    add(_argv_case(t, "--out non-empty without --force", ["train", syn, "--out", out, "--max-patches", 20000],
+    add(_argv_case(t, "--out non-empty without --force", ["train", lambda ctx, d: ctx.syn3, "--out", out,
+                                                          "--max-patches", 20000],
                    names=("out",), watch=(out,),
                    prep=lambda ctx, d: ((d / "out").mkdir(), (d / "out" / "mine.txt").write_text("keep\n"))))
 
@@ -822,8 +861,8 @@ def cases():
         ctx, d, drop=("consensus.csv",)), "--out", out], names=("consensus",), watch=(out,)))
     add(_argv_case("backtest", "--workers 0", ["backtest", MODEL, syn, "--out", out, "--workers", "0"],
                    names=("workers",), watch=(out,)))
-    add(_argv_case("labelling-order", "--batch 0", ["labelling-order", MODEL, syn, "--out", out, "--batch", "0"],
-                   names=("batch",), watch=(out,)))
+    add(_argv_case("labelling-order", "--batch 0", ["labelling-order", MODEL, lambda ctx, d: ctx.syn7, "--out", out,
+                                                    "--batch", "0"], names=("batch",), watch=(out,), timeout=180))
     add(_argv_case("labelling-order", "too few images for the split", ["labelling-order", MODEL, syn, "--out", out],
                    names=("image",), watch=(out,)))
     add(_argv_case("benchmark", "run: bench folder empty", ["benchmark", "run", MODEL, lambda ctx, d: d / "bench",
@@ -833,8 +872,9 @@ def cases():
                    names=("train-images",), watch=(out,)))
     add(_argv_case("demo", "--tiles missing", ["demo", "--out", out, "--tiles", lambda ctx, d: d / "nothere"],
                    names=("nothere",), watch=(out,)))
-    add(_argv_case("demo", "--model damaged (min_score NaN)", ["demo", "--out", out, "--model", lambda ctx, d: model_copy(
-        d, card=card_set(("assembly", "min_score"), float("nan")))], names=("min_score",), watch=(out,)))
+    nan_card = lambda ctx, d: model_copy(d, card=card_set(("assembly", "min_score"), float("nan")))  # noqa: E731
+    add(_argv_case("demo", "--model damaged (min_score NaN)", ["demo", "--out", out, "--model", nan_card],
+                   names=("min_score",), watch=(out,)))
     return found
 
 
@@ -908,7 +948,7 @@ def main():
                 r = run_case(ctx, case, folder)
             except Exception as err:  # a harness bug in one case must not hide the others
                 r = {"case": case.name, "command": case.command, "expected": case.expected, "outcome": "traceback",
-                     "exit_code": "", "stderr_first_line": f"harness: {type(err).__name__}: {err}",
+                     "exit_code": "", "stderr_lines": 0, "stderr_first_line": f"harness: {type(err).__name__}: {err}",
                      "detail": "harness", "seconds": 0, "argv": ""}
             results.append(r)
             print(f"[{i:3d}/{len(todo)}] {case.command:15s} {case.name[:44]:44s} {r['outcome']:13s} "
@@ -919,7 +959,8 @@ def main():
         else:
             shutil.rmtree(tmp, ignore_errors=True)
     args.out.mkdir(parents=True, exist_ok=True)
-    columns = ["case", "command", "expected", "outcome", "exit_code", "stderr_first_line", "detail", "seconds", "argv"]
+    columns = ["case", "command", "expected", "outcome", "exit_code", "stderr_lines", "stderr_first_line", "detail",
+               "seconds", "argv"]
     with open(args.out / "bad_inputs.csv", "w", newline="", encoding="utf-8") as handle:
         writer = csv.DictWriter(handle, fieldnames=columns)
         writer.writeheader()
