@@ -83,6 +83,17 @@ def _screen(args):
     print(summary.format())
 
 
+def _worker_count(text):
+    """A ``--workers`` value: a whole number >= 1 (joblib would read -1 as every core and 0 as nothing)."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"workers {text!r} must be a whole number >= 1")
+    return value
+
+
 def _add_training_commands(commands):
     synth = commands.add_parser("synth", help="Render an invented synthetic tile set with truth and consensus.")
     synth.add_argument("out", type=Path, help="Folder of the new tile set.")
@@ -106,7 +117,7 @@ def _add_training_commands(commands):
     train.add_argument("--max-patches", type=int, default=300_000, help="Most patches the classifier learns from.")
     train.add_argument("--min-votes", type=int, default=DEFAULT_MIN_VOTES,
                        help="Drop consensus features with fewer votes (common practice: 3).")
-    train.add_argument("--workers", type=int, default=1,
+    train.add_argument("--workers", type=_worker_count, default=1,
                        help="Local worker processes for feature extraction, candidate readings and scoring.")
     train.add_argument("--scheduler", default=None, metavar="ADDRESS",
                        help="Address of a running Dask distributed scheduler (e.g. tcp://10.0.0.5:8786): the same "
@@ -121,7 +132,7 @@ def _add_training_commands(commands):
     evaluate.add_argument("--out", type=Path, required=True, help="Report folder to write.")
     evaluate.add_argument("--min-score", type=float, default=None,
                           help="Smallest detection score kept (default: the model's tuned threshold, else 0.5).")
-    evaluate.add_argument("--workers", type=int, default=1, help="Local worker processes.")
+    evaluate.add_argument("--workers", type=_worker_count, default=1, help="Local worker processes.")
     evaluate.add_argument("--force", action="store_true", help="Replace a non-empty report folder.")
     evaluate.set_defaults(func=_evaluate)
 
@@ -152,7 +163,7 @@ def _add_training_commands(commands):
     backtest.add_argument("tile_set", type=Path, help="Labelled tile set: its consensus is the hidden catalog.")
     backtest.add_argument("--out", type=Path, required=True, help="Folder for the screening and backtest.md / .json.")
     _add_campaign_options(backtest, classifications=False)
-    backtest.add_argument("--workers", type=int, default=1, help="Screening processes.")
+    backtest.add_argument("--workers", type=_worker_count, default=1, help="Screening processes.")
     backtest.add_argument("--seed", type=int, default=0, help="Seed of the campaign states and the bootstrap.")
     backtest.set_defaults(func=_backtest)
 
@@ -166,7 +177,7 @@ def _add_training_commands(commands):
     order.add_argument("--batch", type=int, default=6, help="Pool tiles added before each retraining.")
     order.add_argument("--batches", type=int, default=3, help="Number of batches.")
     order.add_argument("--max-patches", type=int, default=20000, help="Patch cap of each small training run.")
-    order.add_argument("--workers", type=int, default=1, help="Feature extraction processes.")
+    order.add_argument("--workers", type=_worker_count, default=1, help="Feature extraction processes.")
     order.add_argument("--seed", type=int, default=0, help="Seed of the image split and the random order.")
     order.set_defaults(func=_labelling_order)
 
@@ -187,7 +198,7 @@ def _add_training_commands(commands):
     run.add_argument("--out", type=Path, required=True, help="Folder for benchmark.md and benchmark.json.")
     run.add_argument("--min-score", type=float, default=None,
                      help="Smallest detection score kept (default: the model's tuned threshold).")
-    run.add_argument("--workers", type=int, default=2, help="Local worker processes.")
+    run.add_argument("--workers", type=_worker_count, default=2, help="Local worker processes.")
     run.add_argument("--compare", nargs=2, action="append", metavar=("LABEL", "BENCHMARK_JSON"), default=[],
                      help="Set the model columns of an earlier benchmark.json beside this run's.")
     run.add_argument("--force", action="store_true", help="Replace a non-empty output folder.")

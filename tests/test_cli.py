@@ -257,3 +257,16 @@ def test_demo_refuses_a_damaged_model_before_writing(tmp_path, capsys):
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "min_score" in err
     assert not out.exists()
+
+
+def test_workers_must_be_a_whole_number_of_at_least_one(tmp_path, capsys):
+    import pytest
+
+    for command in (["train", "set", "--out", "m"], ["evaluate", "model", "set", "--out", "r"],
+                    ["backtest", "model", "set", "--out", "b"], ["labelling-order", "model", "set", "--out", "o"],
+                    ["benchmark", "run", "model", "bench", "--out", "x"]):
+        for value in ("0", "-1", "two"):
+            with pytest.raises(SystemExit) as info:
+                main([*command, "--workers", value])
+            err = capsys.readouterr().err
+            assert info.value.code == 2 and f"workers {value!r} must be a whole number >= 1" in err, (command, err)

@@ -105,3 +105,13 @@ def test_tiles_needed_interval_recovers_an_exact_curve():
     # A curve that levels off at F1 0.6 never reaches 0.8.
     flat = tiles_needed_interval(n, 1 - (2 * n**-0.5 + 0.4), 0.8, n_boot=20)
     assert flat["tiles"] == np.inf and flat["share_reaching"] == 0.0
+
+
+@pytest.mark.parametrize(("batch", "n_batches", "named"), [(0, 3, "batch 0"), (2, 0, "batches 0"), (1.5, 3, "batch 1.5")])
+def test_order_study_refuses_empty_batches_before_reading(tmp_path, batch, n_batches, named):
+    from detector.errors import DetectorError
+
+    # The tile set does not exist: the counts are checked first, so nothing is read or trained.
+    with pytest.raises(DetectorError, match=rf"^{named} must be a whole number >= 1"):
+        labelling_order_study(tmp_path / "model", tmp_path / "none", tmp_path / "out", batch=batch, n_batches=n_batches)
+    assert not (tmp_path / "out").exists()

@@ -268,6 +268,9 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
 
     from ..fitting.train import TrainConfig, train_model
 
+    for name, value in (("batch", batch), ("batches", n_batches)):
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+            raise DetectorError(f"{name} {value!r} must be a whole number >= 1.")
     started = time.perf_counter()
     root = Path(tileset_root)
     tileset = load_tileset(root)
