@@ -446,6 +446,14 @@ def _some_nodata(ctx, d):
     return "" if (valid < 1).all() else f"valid_fraction {valid.tolist()}: the inf pixels were read as data"
 
 
+def _first_tile_crowd(ctx, d):
+    """'' when effort routed the screening's first tile to the crowd."""
+    routes = pd.read_csv(d / "screening" / "routes.csv", dtype=str, keep_default_na=False)
+    first = read_table(ctx.screening / "tiles.csv")["tile_id"][0]
+    route = routes.loc[routes["tile_id"] == first, "route"].tolist()
+    return "" if route == ["crowd"] else f"tile {first} routed {route}"
+
+
 def _model_case(command, name, *, card=None, card_text=None, files=None, names=(), expected="error", note=""):
     def build(ctx, d):
         model = model_copy(d, card=card, card_text=card_text, files=files)
@@ -461,14 +469,14 @@ def _model_case(command, name, *, card=None, card_text=None, files=None, names=(
     return Case(name, command, build, expected, names, None, note)
 
 
-def _effort_case(name, *, extra=(), names=(), expected="error", note="", files=None, **kw):
+def _effort_case(name, *, extra=(), names=(), expected="error", note="", files=None, check=None, **kw):
     def build(ctx, d):
         scr = screening_copy(ctx, d, **kw)
         if files:
             files(ctx, d)
         argv = ["effort", MODEL, scr, *[a(ctx, d) if callable(a) else a for a in extra]]
-        return {"argv": argv, "watch": [scr]}
-    return Case(name, "effort", build, expected, names, None, note)
+        return {"argv": argv, "watch": [] if expected == "handled" else [scr]}
+    return Case(name, "effort", build, expected, names, check, note)
 
 
 def _argv_case(command, name, argv, *, names=(), expected="error", note="", watch=(), prep=None, nobody=False,
@@ -745,7 +753,8 @@ def cases():
     add(_effort_case("tiles.csv row deleted", tiles=lambda df: df.iloc[1:], names=("tiles.csv",)))
     add(_effort_case("p_deposit 'abc'", tiles=set_cell(0, "p_deposit", "abc"), names=("p_deposit",)))
     add(_effort_case("p_deposit 1.5", tiles=set_cell(0, "p_deposit", "1.5"), names=("p_deposit",)))
-    add(_effort_case("p_deposit empty", tiles=set_cell(0, "p_deposit", ""), names=("p_deposit",)))
+    add(_effort_case("p_deposit empty", tiles=set_cell(0, "p_deposit", ""), expected="either",
+                     note="an unknown p_deposit is never skipped: routed to the crowd", check=_first_tile_crowd))
     add(_effort_case("unfamiliarity -1", tiles=set_cell(0, "unfamiliarity", "-1"), names=("unfamiliarity",)))
     add(_effort_case("tiles.csv lacks p_deposit", tiles=drop_column("p_deposit"), names=("p_deposit",)))
     add(_effort_case("tiles.csv missing", drop=("tiles.csv",), names=("tiles.csv",)))
