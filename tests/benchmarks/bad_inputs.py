@@ -23,8 +23,8 @@ the command line on each (a subprocess with a timeout, ``--workers 1``) and sort
 
 Prints one table per command and the totals, writes ``bad_inputs.csv`` (case, command, expected,
 outcome, exit code, first stderr line) and ``bad_inputs.json`` (the totals) to ``--out``, and exits
-1 when any outcome is a traceback, silent, unclear or half-written. About 8-10 minutes on two shared
-cores. Every read-only case runs as user ``nobody`` when started as root (root ignores permissions).
+1 when any outcome is a traceback, silent, unclear or half-written. About 12 minutes on two shared
+cores, 1-3 of them for the one small training run. Every read-only case runs as user ``nobody`` when started as root (root ignores permissions).
 """
 
 import argparse
@@ -606,7 +606,8 @@ def cases():
         ("decompression-bomb PNG (12000^2)", lambda ctx: png_bomb(12000, 12000), ".png", "error"),
     ]
     for label, make, suffix, expected in images:
-        note = ("converted exactly: screens like the same numbers in uint16" if expected == "handled" else
+        note = ("converted exactly: screens like the same numbers in uint16" if label.startswith("int") else
+                "read as it is (floats in [0, 1] are supported)" if expected == "handled" else
                 "non-finite pixels are no-data, like NaN" if expected == "either" else "")
         writer = lambda p, make=make: make(current_ctx)(p)  # noqa: E731
         add(_image_case(v, label, writer, suffix, expected=expected, note=note))
@@ -852,7 +853,7 @@ def cases():
     add(_argv_case(w, "--model-winds CSV garbage", ["winds", "--crowd", syn, "--model-winds",
                                                     lambda ctx, d: d / "mw.csv", "--out", out],
                    names=("mw.csv",), watch=(out,), prep=lambda ctx, d: (d / "mw.csv").write_text("a;b\n1;2\n")))
-    add(_argv_case(w, "--machine screening with tiles.csv p_deposit abc",
+    add(_argv_case(w, "--machine screening with tiles.csv n_fans abc",
                    ["winds", "--crowd", syn, "--machine", lambda ctx, d: screening_copy(
                        ctx, d, tiles=set_cell(0, "n_fans", "abc")), "--out", out],
                    names=("n_fans",), watch=(out,), expected="either",
