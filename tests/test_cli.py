@@ -146,12 +146,12 @@ def _screen_in_subprocess(image, out, stderr):
     import sys
     from pathlib import Path
 
-    from training.cli import DEFAULT_MODEL
+    from frostvane.cli import DEFAULT_MODEL
 
     root = Path(__file__).resolve().parents[1]
     env = {k: v for k, v in os.environ.items() if k != "TQDM_DISABLE"}
     env["PYTHONPATH"] = os.pathsep.join([str(root), env.get("PYTHONPATH", "")])
-    return subprocess.run([sys.executable, "-m", "training.cli", "screen", str(DEFAULT_MODEL), str(image), "--out",
+    return subprocess.run([sys.executable, "-m", "frostvane.cli", "screen", str(DEFAULT_MODEL), str(image), "--out",
                            str(out)], stdout=subprocess.DEVNULL, stderr=stderr, env=env, cwd=root, timeout=600)
 
 
@@ -227,7 +227,7 @@ def _readme_screening_columns():
 def test_readme_documents_every_screening_output_column(tiny_tileset, tmp_path):
     import pandas as pd
 
-    from training.cli import DEFAULT_MODEL
+    from frostvane.cli import DEFAULT_MODEL
 
     out = tmp_path / "screen"
     assert main(["screen", str(DEFAULT_MODEL), str(tiny_tileset), "--out", str(out)]) == 0
@@ -244,7 +244,7 @@ def test_readme_documents_every_screening_output_column(tiny_tileset, tmp_path):
 def test_demo_refuses_a_damaged_model_before_writing(tmp_path, capsys):
     from pathlib import Path
 
-    from training.cli import DEFAULT_MODEL
+    from frostvane.cli import DEFAULT_MODEL
 
     model = tmp_path / "model"
     shutil.copytree(DEFAULT_MODEL, model)

@@ -54,10 +54,21 @@ OUTCOMES = ("clear error", "handled") + BAD
 # ----------------------------------------------------------------------------- running
 
 
+def _cli_module():
+    """The module of the ``frostvane`` console script, as pyproject.toml declares it."""
+    import tomllib
+
+    scripts = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["project"]["scripts"]
+    return scripts["frostvane"].split(":")[0]
+
+
+CLI_MODULE = _cli_module()
+
+
 def frostvane(argv, *, timeout=240, as_nobody=False, env_extra=None):
     """Run ``frostvane ARGV`` from this source tree; return (exit code, stdout, stderr, seconds)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT), **(env_extra or {})}
-    cmd = [sys.executable, "-m", "training.cli", *map(str, argv)]
+    cmd = [sys.executable, "-m", CLI_MODULE, *map(str, argv)]
     if as_nobody:
         cmd = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", *cmd]
     started = time.perf_counter()
