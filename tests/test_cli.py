@@ -117,6 +117,12 @@ def test_screen_force_replaces_another_run(tmp_path, capsys):
     assert main(base + ["--tile", "128x100", "--force"]) == 0
     assert json.loads((out / "run.json").read_text())["parameters"]["tile"] == [128, 100]
     assert not (out / "notes.txt").exists()
+    # a tile smaller than one patch would hold no patch: refused by name, the earlier run untouched
+    before = (out / "run.json").read_bytes()
+    assert main(base + ["--tile", "10x10", "--force"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("frostvane: error:") == 1 and "tile 10x10 px is smaller" in err, err
+    assert (out / "run.json").read_bytes() == before
 
 
 def test_train_with_an_unreachable_scheduler_writes_nothing(tiny_tileset, tmp_path, monkeypatch, capsys):

@@ -130,6 +130,11 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     nodata = _nodata_key(nodata)
     model_dir = Path(model_dir)
     patch_px = cached_model(model_dir).feature_spec.patch_px  # a bad model fails here, before any write
+    width, height = (int(v) for v in tile)
+    if min(width, height) < patch_px:
+        raise DetectorError(f"tile {width}x{height} px is smaller than the model's {patch_px} px patch: such tiles "
+                            f"hold no whole patch and would be screened as empty; use --tile of at least "
+                            f"{patch_px}x{patch_px} (the default is 800x600).")
     tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body,
                           min_side=patch_px)
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)

@@ -632,7 +632,8 @@ def test_run_effort_updates_the_geopackage_tile_routes(folders):
     np.testing.assert_allclose(back[2][:3], rings[2])
 
 
-@pytest.mark.parametrize("case", ["duplicate", "deleted", "p_deposit_text", "unfinished", "onnx_changed"])
+@pytest.mark.parametrize("case", ["duplicate", "deleted", "p_deposit_text", "unfamiliarity_negative", "unfinished",
+                                  "onnx_changed", "card_heldout_text"])
 def test_effort_refuses_edited_screens_and_models_by_name(folders, case, capsys):
     from frostvane.cli import main
 
@@ -649,8 +650,19 @@ def test_effort_refuses_edited_screens_and_models_by_name(folders, case, capsys)
         tiles.loc[4, "p_deposit"] = "abc"
         tiles.to_csv(screen / "tiles.csv", index=False)
         words = ["row 5", "p_deposit 'abc' is not a number"]
+    elif case == "unfamiliarity_negative":
+        # a distance is never negative (a Mahalanobis-type distance, common practice)
+        tiles.loc[2, "unfamiliarity"] = "-1"
+        tiles.to_csv(screen / "tiles.csv", index=False)
+        words = ["row 3", "unfamiliarity -1"]
     elif case == "unfinished":
         words = ["status 'running'"]
+    elif case == "card_heldout_text":
+        card = json.loads((model / "model.json").read_text())
+        card["heldout_tiles"][1]["p_deposit"] = "x"
+        (model / "model.json").write_text(json.dumps(card))
+        _write_run(screen, model, n_tiles=len(tiles), status="complete")  # the screening names the edited card
+        words = ["heldout_tiles entry 2", "p_deposit 'x'"]
     else:
         (model / "objects.onnx").write_bytes((model / "objects.onnx").read_bytes() + b"\0")
         words = ["objects.onnx", "changed after export"]

@@ -324,6 +324,13 @@ def test_cli_unknown_image_metadata(hand_set, tmp_path, capsys):
     assert code == 2 and len(err) == 1 and "has no region or solar longitude" in err[0]
 
 
+def test_cli_bad_bootstrap_names_the_option(hand_set, tmp_path, capsys):
+    code, err = _run_error(["winds", "--crowd", str(hand_set), "--north-up", "--bootstrap", "-1",
+                            "--out", str(tmp_path / "w")], capsys)
+    assert code == 2 and len(err) == 1 and "--bootstrap" in err[0] and "-1" in err[0], err
+    assert not (tmp_path / "w").exists()
+
+
 def test_settings_validation():
     with pytest.raises(DetectorError, match="weighting 'votes'"):
         WindSettings(weighting="votes")

@@ -71,6 +71,12 @@ def _read_screen(screen_dir):
     if len(wrong):
         row = int(wrong[0])
         raise DetectorError(f"{str(path)!r} row {row + 1}: p_deposit {tiles['p_deposit'].iloc[row]!r} is outside [0, 1].")
+    unf = pd.to_numeric(tiles["unfamiliarity"], errors="coerce")
+    wrong = tiles.index[(unf.isna() & tiles["unfamiliarity"].notna()) | (unf < 0)]
+    if len(wrong):
+        row = int(wrong[0])
+        raise DetectorError(f"{str(path)!r} row {row + 1}: unfamiliarity {tiles['unfamiliarity'].iloc[row]} is not "
+                            f"a distance (a number >= 0).")
     detections = None
     det_path = screen_dir / "detections.csv"
     if det_path.is_file():

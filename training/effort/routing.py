@@ -233,6 +233,16 @@ def _heldout_frame(card):
     out["image_id"] = frame["image_id"].astype(str) if "image_id" in frame.columns else out["tile_id"]
     for column in _HELDOUT_REQUIRED[1:]:
         out[column] = pd.to_numeric(frame[column], errors="coerce").astype(np.float64)
+        text = out[column].isna() & frame[column].notna()
+        if column == "p_deposit":
+            text |= (out[column] < 0) | (out[column] > 1)
+        elif column in ("consensus_px", "n_consensus", "n_detections", "unfamiliarity"):
+            text |= out[column] < 0
+        if text.any():
+            i = int(np.flatnonzero(text.to_numpy())[0])
+            raise DetectorError(f"the model card's heldout_tiles entry {i + 1} (tile {out['tile_id'].iloc[i]!r}) has "
+                                f"{column} {frame[column].iloc[i]!r}, which is not a valid value; the card was "
+                                f"edited or damaged: retrain or restore the model folder.")
     for column in ("consensus_px", "n_consensus", "n_detections"):
         out[column] = out[column].fillna(0.0)
     # The card keeps each tile's F1 = 2 tp / (detections + consensus); tp is a whole count.

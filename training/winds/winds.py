@@ -170,9 +170,9 @@ class WindSettings:
         need(self.weighting in WEIGHTINGS, f"weighting {self.weighting!r} is not one of {list(WEIGHTINGS)}.")
         need(self.resample in RESAMPLE_UNITS, f"resample {self.resample!r} is not one of {list(RESAMPLE_UNITS)}.")
         need(self.frame in FRAMES, f"frame {self.frame!r} is not one of {list(FRAMES)}.")
-        need(isinstance(self.n_boot, int) and self.n_boot >= 100, f"n_boot must be an integer >= 100; got {self.n_boot!r}.")
+        need(isinstance(self.n_boot, int) and self.n_boot >= 100, f"n_boot (--bootstrap) must be an integer >= 100; got {self.n_boot!r}.")
         need(isinstance(self.n_boot_modes, int) and self.n_boot_modes >= 20,
-             f"n_boot_modes must be an integer >= 20; got {self.n_boot_modes!r}.")
+             f"n_boot_modes (--bootstrap-modes) must be an integer >= 20; got {self.n_boot_modes!r}.")
         need(0.5 <= self.level < 1.0, f"level must be in [0.5, 1); got {self.level!r}.")
         need(self.min_fans >= 2, f"min_fans must be at least 2; got {self.min_fans!r}.")
         need(0.0 < self.agree_deg <= 180.0, f"agree_deg must be in (0, 180]; got {self.agree_deg!r}.")
