@@ -1,6 +1,6 @@
 """Compiled description of one dark component: its moments, vents, fan and spot readings.
 
-The loops of :mod:`detector.assemble` written out for numba (CPU, one thread):
+The loops of :mod:`detector.objects.assemble` written out for numba (CPU, one thread):
 each component used to cost some two hundred small numpy calls. Sums use
 numpy's pairwise summation (:func:`psum`, the order of ``np.sum``), quantiles
 numpy's 'linear' rule and histograms its equal-bin rule, so results follow

@@ -1,7 +1,7 @@
 """Dense per-pixel maps of a tile and their pooling into cells and patches.
 
 Every map is computed once per tile; per-``cell_px`` cell sums or histograms
-(one compiled pass over the pixels, :mod:`detector._kernels`) are then pooled
+(one compiled pass over the pixels, :mod:`detector.tile._kernels`) are then pooled
 into patch windows with a summed-area table over the cell grid, so no Python
 loop runs over patches or pixels.
 """

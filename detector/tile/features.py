@@ -1,7 +1,7 @@
 """Patch features of a tile: HOG, GLCM, LBP, intensity, structure tensor, polarity.
 
 A tile is seen as a grid of ``patch_px`` windows every ``stride_px``. Dense
-per-pixel maps are computed once per tile (see :mod:`detector._dense`), summed
+per-pixel maps are computed once per tile (see :mod:`detector.tile._dense`), summed
 per ``cell_px`` cell and pooled into windows with summed-area tables, so the
 cost does not depend on the overlap of windows. The same code serves training
 and detection.

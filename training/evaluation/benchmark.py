@@ -495,7 +495,7 @@ def _dig(node, keys):
 
 
 def error_table(results, *, compare=()):
-    """Markdown table of where features are lost (shares from :func:`training.diagnose.error_breakdown`).
+    """Markdown table of where features are lost (shares from :func:`training.evaluation.diagnose.error_breakdown`).
 
     Columns: the model and the compared runs on the held-out and shifted sets, and the threshold baseline.
     """

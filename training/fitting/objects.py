@@ -1,6 +1,6 @@
 """Training data for the object classifier: labelled readings of dark candidates.
 
-Candidates (dark components, see :mod:`detector.assemble`) are read as fans and
+Candidates (dark components, see :mod:`detector.objects.assemble`) are read as fans and
 as a spot; each reading is labelled by matching it to consensus with the
 evaluation's own matching rules, so the object classifier learns exactly what
 is scored.
@@ -79,7 +79,7 @@ def label_readings(candidates, consensus, tile_id):
 
     Returns
     -------
-    label : ndarray of int, one per reading in the order of :func:`detector.assemble.reading_matrix`
+    label : ndarray of int, one per reading in the order of :func:`detector.objects.assemble.reading_matrix`
     error_deg : ndarray of float
         Direction error of each right fan reading against its consensus fan (NaN for the others).
     """
