@@ -42,8 +42,9 @@ __all__ = [
     "OBJECT_FEATURE_NAMES",
     "local_darkness",
     "upsample_patch_maps",
-    "sector_evidence",
-    "ellipse_evidence",
+    "reading_view",
+    "VIEW_ALONG",
+    "VIEW_ACROSS",
     "PatchField",
     "find_candidates",
     "reading_matrix",
@@ -96,21 +97,10 @@ _READING_FEATURES = (
     "read_fading",
     "read_apex_dark",
     "read_axis_agreement",
-    # the image around the reading, sampled from the darkness map whatever the component holds:
-    # a fan's sector is dark, its flanks and the ground behind its apex are not (see sector_evidence)
-) + (
-    "read_sector_dark",
-    "read_sector_contrast",
-    "read_sector_contrast_darker_flank",
-    "read_sector_back_contrast",
-    "read_sector_tip_drop",
-    "read_sector_near_far",
-    "read_sector_fill",
-    "read_sector_flank_asymmetry",
-    "read_sector_beyond",
-    "read_sector_dark_q25",
-)
-_N_EVIDENCE = 10
+    # the darkness around the reading in its own frame, sampled from the map whatever the component
+    # holds (see reading_view)
+) + tuple(f"read_view_t{i}_s{j}" for i in range(9) for j in range(7)) + ("read_view_scale",)
+_N_EVIDENCE = 64
 #: Features of one reading of a candidate, read by the object classifier, in order.
 OBJECT_FEATURE_NAMES = _COMPONENT_FEATURES + _READING_FEATURES
 
@@ -605,132 +595,81 @@ def _finish_readings(fans):
     return fans
 
 
-#: Fractions of a fan reading's length and of its half-opening at which its sector is sampled.
-_SECTOR_RADII = np.array([0.15, 0.3, 0.45, 0.6, 0.75, 0.9])
-_SECTOR_ANGLES = np.array([-0.8, -0.4, 0.0, 0.4, 0.8])
-#: Darkness (robust z-score) above which a sample counts as dark for ``read_sector_fill``.
-_SECTOR_DARK = 1.5
+#: Where a reading's view samples the darkness: along its direction, in fractions of its length from
+#: its apex (behind the apex, inside, beyond the tip), and across it, in fractions of its half-width.
+VIEW_ALONG = np.array([-0.4, -0.15, 0.1, 0.3, 0.5, 0.7, 0.9, 1.15, 1.4])
+VIEW_ACROSS = np.array([-0.9, -0.55, -0.25, 0.0, 0.25, 0.55, 0.9])
+#: Darkness (robust z-score) below which a view's mean magnitude no longer scales it.
+_VIEW_FLOOR = 0.5
 
 
-def _sample_map(m, xs, ys):
-    """Bilinear values of the map ``m`` at (xs, ys) of any shape, the nearest edge value outside it."""
-    if xs.size == 0:
-        return np.zeros(xs.shape, dtype=np.float64)
-    vals = ndimage.map_coordinates(m, [ys.ravel(), xs.ravel()], order=1, mode="nearest")
-    return vals.reshape(xs.shape).astype(np.float64)
+def reading_view(dark, x, y, direction, length, half_width):
+    """The darkness around each reading, sampled on a grid in the reading's own frame.
 
-
-def sector_evidence(dark, x, y, direction, length, opening):
-    """What the darkness map shows in and around the sector of each fan reading.
-
-    A fan is a dark wedge: its sector is darker than the ground beside it and
-    behind its apex, and it fades at its tip. These values are read from the map
-    itself, not from the component's pixels, so they see what segmentation cut
-    off: a fan's faint continuation, a neighbour beside it, a trough it lies on.
+    A fan is a dark wedge that starts at its apex, widens along its direction
+    and fades at its tip, with brighter ground beside it and behind its apex. The
+    view is that neighbourhood as the reading sees it: 9 x 7 bilinear samples
+    of the darkness map at :data:`VIEW_ALONG` fractions of the length (from 0.4
+    behind the apex to 0.4 beyond the tip) and :data:`VIEW_ACROSS` fractions of
+    the half-width, read from the map itself rather than from the component's
+    pixels, so it sees what segmentation cut off (a faint continuation, a
+    neighbour, the trough a fan lies on). The samples are divided by their mean
+    magnitude (at least 0.5), which is returned too: the pattern does not change
+    with the image's contrast, its strength is a feature of its own.
 
     Parameters
     ----------
     dark : ndarray of shape (M, N), float32
         Darkness map (robust z-score below the local background), lightly smoothed.
-    x, y, direction, length, opening : ndarray of shape (n,)
-        Apex (px), direction (degrees clockwise from up), length (px) and opening
-        (degrees) of each reading.
+    x, y, direction, length, half_width : ndarray of shape (n,)
+        Start (px), direction (degrees clockwise from up), length and half-width
+        (px) of each reading. Lengths below 4 px and half-widths below 3 px are
+        raised to those.
 
     Returns
     -------
-    evidence : ndarray of shape (n, 10), float64
-        In the order of the ``read_sector_*`` object features: mean darkness in
-        the sector; its contrast with the mean of the two flanks and with the
-        darker flank; its contrast with the ground behind the apex; the drop from
-        the sector's outer third to beyond its tip; near half minus far half; the
-        share of sector samples darker than 1.5; the flanks' difference; the
-        darkness beyond the tip; the sector's 25th percentile.
+    view : ndarray of shape (n, 64), float64
+        The 63 scaled samples (along-major: ``view[:, 7 * i + j]`` is along
+        ``VIEW_ALONG[i]``, across ``VIEW_ACROSS[j]``; positive across is to the
+        reading's right) and the scale.
     """
     n = len(x)
-    half = np.clip(np.asarray(opening, float) / 2.0, 8.0, 70.0)[:, None]
     reach = np.maximum(np.asarray(length, float), 4.0)[:, None, None]
-    x3, y3 = np.asarray(x, float)[:, None, None], np.asarray(y, float)[:, None, None]
-    d3 = np.asarray(direction, float)[:, None, None]
-
-    def ring(radii, offsets):
-        # samples at fractions ``radii`` of the length and angular offsets (n, k) from the direction
-        r = reach * np.asarray(radii, float)[None, :, None]
-        a = np.radians(d3 + np.broadcast_to(offsets, (n, np.shape(offsets)[-1]))[:, None, :])
-        return _sample_map(dark, x3 + r * np.sin(a), y3 - r * np.cos(a))
-
-    inner = ring(_SECTOR_RADII, half * _SECTOR_ANGLES[None, :])
-    # the flanks lie one half-opening (at least 15 degrees) outside the sector's edges
-    off = half + np.maximum(half, 15.0)
-    left = ring(_SECTOR_RADII[1:], np.hstack([-off, -off - 10.0]))
-    right = ring(_SECTOR_RADII[1:], np.hstack([off, off + 10.0]))
-    back = ring([0.15, 0.3, 0.45], 180.0 + half * np.array([-0.4, 0.0, 0.4])[None, :])
-    beyond = ring([1.15, 1.3, 1.45], half * np.array([-0.4, 0.0, 0.4])[None, :])
-    d_in, d_left, d_right = inner.mean((1, 2)), left.mean((1, 2)), right.mean((1, 2))
-    d_beyond = beyond.mean((1, 2))
-    return np.stack([
-        d_in,
-        d_in - 0.5 * (d_left + d_right),
-        d_in - np.maximum(d_left, d_right),
-        d_in - back.mean((1, 2)),
-        inner[:, 4:].mean((1, 2)) - d_beyond,
-        inner[:, :3].mean((1, 2)) - inner[:, 3:].mean((1, 2)),
-        (inner > _SECTOR_DARK).mean((1, 2)),
-        np.abs(d_left - d_right),
-        d_beyond,
-        np.percentile(inner.reshape(n, -1), 25, axis=1),
-    ], axis=1).reshape(n, 10)
+    width = np.maximum(np.asarray(half_width, float), 3.0)[:, None, None]
+    u_col, u_row = unit_vector(np.asarray(direction, float))
+    u_col, u_row = u_col[:, None, None], u_row[:, None, None]
+    t = VIEW_ALONG[None, :, None] * reach
+    s = VIEW_ACROSS[None, None, :] * width
+    # the reading's right is its direction turned a quarter clockwise: (-u_row, u_col)
+    xs = np.asarray(x, float)[:, None, None] + t * u_col - s * u_row
+    ys = np.asarray(y, float)[:, None, None] + t * u_row + s * u_col
+    if n == 0:
+        return np.zeros((0, VIEW_ALONG.size * VIEW_ACROSS.size + 1))
+    samples = ndimage.map_coordinates(dark, [ys.ravel(), xs.ravel()], order=1, mode="nearest")
+    samples = samples.reshape(n, -1).astype(np.float64)
+    scale = np.maximum(np.abs(samples).mean(axis=1), _VIEW_FLOOR)
+    return np.hstack([samples / scale[:, None], scale[:, None]])
 
 
-def ellipse_evidence(dark, x, y, axis, semi_major, semi_minor):
-    """The spot readings' counterpart of :func:`sector_evidence`: the ellipse against its surround.
-
-    Returns
-    -------
-    evidence : ndarray of shape (n, 10), float64
-        Mean darkness inside the ellipse; its contrast with a ring at 1.4-1.8
-        semi-axes and with the ring's darkest side; 0; 0; 0; the share of dark
-        samples inside; 0; the ring's darkness; the inside's 25th percentile.
-    """
-    n = len(x)
-    a = np.maximum(np.asarray(semi_major, float), 2.0)[:, None, None]
-    b = np.maximum(np.asarray(semi_minor, float), 2.0)[:, None, None]
-    t = np.linspace(0.0, 2.0 * np.pi, 12, endpoint=False)[None, None, :]
-    ax = np.radians(np.asarray(axis, float))[:, None, None]
-    ca, sa = np.cos(ax), np.sin(ax)
-    x3, y3 = np.asarray(x, float)[:, None, None], np.asarray(y, float)[:, None, None]
-
-    def at(fractions):
-        f = np.asarray(fractions, float)[None, :, None]
-        u, v = a * f * np.cos(t), b * f * np.sin(t)
-        # the major axis runs along unit_vector(axis) = (sin, -cos), the minor across it
-        return _sample_map(dark, x3 + u * sa + v * ca, y3 - u * ca + v * sa)
-
-    inner, ring = at([0.0, 0.35, 0.7]), at([1.4, 1.8])
-    d_in, d_ring = inner.mean((1, 2)), ring.mean((1, 2))
-    zero = np.zeros(n)
-    return np.stack([
-        d_in, d_in - d_ring, d_in - ring.max(2).mean(1), zero, zero, zero,
-        (inner > _SECTOR_DARK).mean((1, 2)), zero, d_ring, np.percentile(inner.reshape(n, -1), 25, axis=1),
-    ], axis=1).reshape(n, 10)
-
-
-def _add_image_evidence(candidates, dark):
-    """Append the sector (fan) and ellipse (spot) evidence to every reading's features, one pass per tile."""
+def _add_views(candidates, dark):
+    """Append every reading's view (:func:`reading_view`) to its features, one map read per tile."""
     if not candidates:
         return candidates
     smooth = _kernels.gaussian(np.ascontiguousarray(dark, dtype=np.float32), 1.0)
-    fans = [f for c in candidates for f in c.fans]
-    if fans:
-        cols = np.array([[f["x_px"], f["y_px"], f["direction_deg"], f["length_px"], f["opening_deg"]]
-                         for f in fans], dtype=float)
-        ev = sector_evidence(smooth, *cols.T)
-        for f, e in zip(fans, ev):
-            f["_features"] = np.concatenate([f["_features"], e.astype(np.float32)])
-    cols = np.array([[c.spot["x_px"], c.spot["y_px"], c.spot["axis_deg"], c.spot["semi_major_px"],
-                      c.spot["semi_minor_px"]] for c in candidates], dtype=float)
-    ev = ellipse_evidence(smooth, *cols.T)
-    for c, e in zip(candidates, ev):
-        c.spot["_features"] = np.concatenate([c.spot["_features"], e.astype(np.float32)])
+    readings = [f for c in candidates for f in c.fans] + [c.spot for c in candidates]
+    geometry = np.empty((len(readings), 5))
+    for i, r in enumerate(readings):
+        if r["kind"] == "fan":
+            half = np.tan(np.radians(np.clip(r["opening_deg"] / 2.0, 8.0, 70.0)))
+            geometry[i] = r["x_px"], r["y_px"], r["direction_deg"], r["length_px"], r["length_px"] * half
+        else:
+            # a spot is seen along its major axis, from one end of the ellipse to the other
+            d_col, d_row = unit_vector(r["axis_deg"])
+            a = r["semi_major_px"]
+            geometry[i] = r["x_px"] - a * d_col, r["y_px"] - a * d_row, r["axis_deg"], 2.0 * a, r["semi_minor_px"]
+    views = reading_view(smooth, *geometry.T).astype(np.float32)
+    for r, v in zip(readings, views):
+        r["_features"] = np.concatenate([r["_features"], v])
     return candidates
 
 
@@ -847,7 +786,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0]
                                      + [0.0] * (len(_READING_FEATURES) - 9 - _N_EVIDENCE), dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
-    return _add_image_evidence(out, dark)
+    return _add_views(out, dark)
 
 
 _FEATURE_DECIMALS = 4
