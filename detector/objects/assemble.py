@@ -123,6 +123,11 @@ class AssemblyParams:
         and renormalised by its own robust spread reaches this: faint, broad
         deposits in noisy or blurred images rarely reach ``seed_k`` at any single
         pixel, but their smoothed darkness stands well above its spread (0: off).
+    deposit_seed : float, default=0.5
+        A component that reaches no darkness seed is also kept when the patch
+        classifier's deposit probability (1 - p_none) reaches this at one of its
+        pixels: a faint fan on a textured or blurred image can stand out to the
+        classifier before its darkness does (0: off).
     grow_k : float, default=1.5
         Darkness down to which a component grows from its seeds (hysteresis),
         measured on the map smoothed by ``grow_smooth_px`` and renormalised by
@@ -149,6 +154,7 @@ class AssemblyParams:
     open_px: int = 5
     seed_k: float = 3.0
     broad_seed_k: float = 4.0
+    deposit_seed: float = 0.5
     grow_k: float = 1.5
     grow_smooth_px: float = 2.5
     min_area_px: int = 15
@@ -715,8 +721,20 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         grow_mask, level, level.dtype.type(params.seed_k))
     if area.size == 0:
         return []
-    # A component is kept when it is large enough and holds a seed (its peak reaches seed_k).
-    keep = np.flatnonzero(seeded & (area >= params.min_area_px)) + 1
+    # A component is kept when it is large enough and holds a seed (its peak reaches seed_k) or,
+    # with deposit_seed, when the patch classifier calls one of its pixels a deposit.
+    big = area >= params.min_area_px
+    if params.deposit_seed > 0:
+        faint = np.flatnonzero(big & ~seeded)
+        if faint.size:
+            spans = [np.arange(start[i], start[i + 1]) for i in faint]
+            at = np.concatenate(spans)
+            p_none = _sample(class_maps, pixel_rows[at], pixel_cols[at])[0]
+            firsts = np.cumsum([0] + [len(sp) for sp in spans[:-1]])
+            deposit = 1.0 - np.minimum.reduceat(p_none, firsts)
+            seeded = seeded.copy()
+            seeded[faint[deposit >= params.deposit_seed]] = True
+    keep = np.flatnonzero(seeded & big) + 1
     maps = [class_maps, polarity_maps] + ([] if axis_maps is None else [axis_maps])
     joint = PatchField.joined(maps)
     parts = []

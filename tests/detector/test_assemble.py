@@ -634,5 +634,32 @@ def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
         found = find_candidates(dark, valid, class_maps, polarity_maps, params=params)
         return max((cover[c.ys, c.xs].sum() for c in found), default=0)
 
-    assert covered(AssemblyParams(broad_seed_k=0.0)) == 0
-    assert covered(AssemblyParams()) > 0.6 * cover.sum()
+    assert covered(AssemblyParams(broad_seed_k=0.0, deposit_seed=0.0)) == 0
+    assert covered(AssemblyParams(deposit_seed=0.0)) > 0.6 * cover.sum()
+
+
+@pytest.mark.parametrize("seed", range(2))
+def test_faint_fan_is_seeded_where_the_classifier_calls_it_a_deposit(seed):
+    # The faint fan above with both darkness seeds off: it is kept only where the patch classifier's
+    # deposit probability (1 - p_none) over some of its pixels reaches deposit_seed.
+    shape = (300, 300)
+    row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, opening_deg=50.0)
+    cover = rasterise_features(pd.DataFrame([row]), shape).fan_cover
+    rng = np.random.default_rng(seed)
+    image = ndimage.gaussian_filter(0.6 + 0.02 * rng.standard_normal(shape) - 0.016 * cover, 1.0)
+    valid = np.ones(shape, bool)
+    dark = local_darkness(image.astype(np.float32), valid)
+    _, polarity_maps = _uniform_maps(shape)
+    quiet = np.empty((3,) + shape, np.float32)
+    quiet[:] = np.array([0.9, 0.05, 0.05], np.float32)[:, None, None]
+    called = quiet.copy()
+    called[0][cover > 0] = 0.3
+    called[1][cover > 0] = 0.6
+
+    def covered(class_maps):
+        found = find_candidates(dark, valid, class_maps, polarity_maps,
+                                params=AssemblyParams(broad_seed_k=0.0, deposit_seed=0.5))
+        return max((cover[c.ys, c.xs].sum() for c in found), default=0)
+
+    assert covered(quiet) == 0
+    assert covered(called) > 0.6 * cover.sum()
