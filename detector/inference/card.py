@@ -107,7 +107,7 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
         if key not in assembly:
             continue  # the code's default applies
         where = f"assembly.{key}"
-        if key == "min_score":
+        if key in ("min_score", "deposit_seed"):  # probabilities
             c.number(where, assembly[key], lo=0.0, hi=1.0)
         elif key in ("seed_k", "broad_seed_k", "grow_k", "grow_smooth_px", "vent_smooth_px",
                      "split_min_separation_deg", "split_min_share"):

@@ -146,6 +146,8 @@ def _drop_objects(card, folder):
         (lambda c, f: c["assembly"].update(min_score=-5), "assembly.min_score"),
         (lambda c, f: c["assembly"].update(min_score="0.3"), "assembly.min_score"),
         (lambda c, f: c["assembly"].update(min_area_px=2.5), "assembly.min_area_px"),
+        (lambda c, f: c["assembly"].update(deposit_seed=1.7), "assembly.deposit_seed"),
+        (lambda c, f: c["assembly"].update(deposit_seed=-0.1), "assembly.deposit_seed"),
         (lambda c, f: c["calibration"].update(bias=[0.0, 0.1]), "calibration.bias"),
         (lambda c, f: c["calibration"].update(temperature=None), "calibration.temperature"),
         (lambda c, f: c.update(class_names=["none", "spot", "fan"]), "class_names"),
