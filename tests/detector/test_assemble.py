@@ -617,18 +617,23 @@ def test_reading_features_have_the_named_length():
     np.testing.assert_array_equal(F[:, hyp_cols].sum(axis=1), (which >= 0).astype(np.float32))
 
 
-@pytest.mark.parametrize("seed", range(4))
-def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
-    # A 60 px fan of 50 deg darkening blurred frost by about three times its pixel noise: no single pixel
-    # reaches seed_k, but its smoothed darkness stands far above the smoothed map's spread.
-    shape = (300, 300)
+def _faint_fan(seed, shape=(300, 300)):
+    """A 60 px fan of 50 deg darkening blurred frost by about three times its pixel noise: its
+    cover, the tile's darkness map and validity."""
     row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, opening_deg=50.0)
     cover = rasterise_features(pd.DataFrame([row]), shape).fan_cover
     rng = np.random.default_rng(seed)
     image = ndimage.gaussian_filter(0.6 + 0.02 * rng.standard_normal(shape) - 0.016 * cover, 1.0)
     valid = np.ones(shape, bool)
-    dark = local_darkness(image.astype(np.float32), valid)
-    class_maps, polarity_maps = _uniform_maps(shape)
+    return cover, local_darkness(image.astype(np.float32), valid), valid
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
+    # No single pixel of the faint fan reaches seed_k, but its smoothed darkness stands far above the
+    # smoothed map's spread.
+    cover, dark, valid = _faint_fan(seed)
+    class_maps, polarity_maps = _uniform_maps(cover.shape)
 
     def covered(params):
         found = find_candidates(dark, valid, class_maps, polarity_maps, params=params)
@@ -642,13 +647,8 @@ def test_faint_broad_fan_is_seeded_on_the_smoothed_darkness(seed):
 def test_faint_fan_is_seeded_where_the_classifier_calls_it_a_deposit(seed):
     # The faint fan above with both darkness seeds off: it is kept only where the patch classifier's
     # deposit probability (1 - p_none) over some of its pixels reaches deposit_seed.
-    shape = (300, 300)
-    row = dict(kind="fan", x_px=100.0, y_px=150.0, direction_deg=90.0, length_px=60.0, opening_deg=50.0)
-    cover = rasterise_features(pd.DataFrame([row]), shape).fan_cover
-    rng = np.random.default_rng(seed)
-    image = ndimage.gaussian_filter(0.6 + 0.02 * rng.standard_normal(shape) - 0.016 * cover, 1.0)
-    valid = np.ones(shape, bool)
-    dark = local_darkness(image.astype(np.float32), valid)
+    cover, dark, valid = _faint_fan(seed)
+    shape = cover.shape
     _, polarity_maps = _uniform_maps(shape)
     quiet = np.empty((3,) + shape, np.float32)
     quiet[:] = np.array([0.9, 0.05, 0.05], np.float32)[:, None, None]
