@@ -77,6 +77,10 @@ _COMPONENT_FEATURES = (
     "obj_n_fans",
     "obj_border",
 )
+#: Where a reading's view samples the darkness: along its direction, in fractions of its length from
+#: its apex (behind the apex, inside, beyond the tip), and across it, in fractions of its half-width.
+VIEW_ALONG = np.array([-0.4, -0.15, 0.1, 0.3, 0.5, 0.7, 0.9, 1.15, 1.4])
+VIEW_ACROSS = np.array([-0.9, -0.55, -0.25, 0.0, 0.25, 0.55, 0.9])
 _READING_FEATURES = (
     "read_is_fan",
     "read_length_px",
@@ -99,8 +103,10 @@ _READING_FEATURES = (
     "read_axis_agreement",
     # the darkness around the reading in its own frame, sampled from the map whatever the component
     # holds (see reading_view)
-) + tuple(f"read_view_t{i}_s{j}" for i in range(9) for j in range(7)) + ("read_view_scale",)
-_N_EVIDENCE = 64
+) + tuple(f"read_view_t{i}_s{j}" for i in range(VIEW_ALONG.size) for j in range(VIEW_ACROSS.size)) + (
+    "read_view_scale",)
+#: Features of a reading's view (the samples and their scale), the last reading features.
+_N_VIEW = VIEW_ALONG.size * VIEW_ACROSS.size + 1
 #: Features of one reading of a candidate, read by the object classifier, in order.
 OBJECT_FEATURE_NAMES = _COMPONENT_FEATURES + _READING_FEATURES
 
@@ -601,10 +607,6 @@ def _finish_readings(fans):
     return fans
 
 
-#: Where a reading's view samples the darkness: along its direction, in fractions of its length from
-#: its apex (behind the apex, inside, beyond the tip), and across it, in fractions of its half-width.
-VIEW_ALONG = np.array([-0.4, -0.15, 0.1, 0.3, 0.5, 0.7, 0.9, 1.15, 1.4])
-VIEW_ACROSS = np.array([-0.9, -0.55, -0.25, 0.0, 0.25, 0.55, 0.9])
 #: Darkness (robust z-score) below which a view's mean magnitude no longer scales it.
 _VIEW_FLOOR = 0.5
 
@@ -640,6 +642,8 @@ def reading_view(dark, x, y, direction, length, half_width):
         reading's right) and the scale.
     """
     n = len(x)
+    if n == 0:
+        return np.zeros((0, _N_VIEW))
     reach = np.maximum(np.asarray(length, float), 4.0)[:, None, None]
     width = np.maximum(np.asarray(half_width, float), 3.0)[:, None, None]
     u_col, u_row = unit_vector(np.asarray(direction, float))
@@ -649,8 +653,6 @@ def reading_view(dark, x, y, direction, length, half_width):
     # the reading's right is its direction turned a quarter clockwise: (-u_row, u_col)
     xs = np.asarray(x, float)[:, None, None] + t * u_col - s * u_row
     ys = np.asarray(y, float)[:, None, None] + t * u_row + s * u_col
-    if n == 0:
-        return np.zeros((0, VIEW_ALONG.size * VIEW_ACROSS.size + 1))
     samples = ndimage.map_coordinates(dark, [ys.ravel(), xs.ravel()], order=1, mode="nearest")
     samples = samples.reshape(n, -1).astype(np.float64)
     scale = np.maximum(np.abs(samples).mean(axis=1), _VIEW_FLOOR)
@@ -727,10 +729,11 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     if params.deposit_seed > 0:
         faint = np.flatnonzero(big & ~seeded)
         if faint.size:
-            spans = [np.arange(start[i], start[i + 1]) for i in faint]
-            at = np.concatenate(spans)
+            # every pixel of the faint components, component after component
+            sizes = start[faint + 1] - start[faint]
+            firsts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+            at = np.arange(sizes.sum()) + np.repeat(start[faint] - firsts, sizes)
             p_none = _sample(class_maps, pixel_rows[at], pixel_cols[at])[0]
-            firsts = np.cumsum([0] + [len(sp) for sp in spans[:-1]])
             deposit = 1.0 - np.minimum.reduceat(p_none, firsts)
             seeded = seeded.copy()
             seeded[faint[deposit >= params.deposit_seed]] = True
@@ -802,7 +805,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         spot = dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
                     semi_minor_px=semi_minor, axis_deg=axis)
         spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0]
-                                     + [0.0] * (len(_READING_FEATURES) - 9 - _N_EVIDENCE), dtype=np.float32)
+                                     + [0.0] * (len(_READING_FEATURES) - 9 - _N_VIEW), dtype=np.float32)
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
     return _add_views(out, dark)
 
