@@ -226,7 +226,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
     candidates = tile_candidates(tile, nodata_mask, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
-    detections, pixels = objects_from_candidates(candidates, model.predict_readings(F), params=params,
+    detections, pixels = objects_from_candidates(candidates, model.score_readings(F, candidates), params=params,
                                                  tile_id=tile_id, direction_confidence=model.direction_confidence(F))
     fan_cover = np.zeros(tile.shape, dtype=bool)
     spot_cover = np.zeros(tile.shape, dtype=bool)

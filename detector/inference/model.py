@@ -2,8 +2,9 @@
 
 A model folder holds ``detector.onnx`` (patch classifier over none / fan / spot),
 ``orientation.onnx`` (fan polarity along the structure-tensor axis),
-``objects.onnx`` (scores each reading of a dark candidate as a fan or a spot)
-and ``model.json``, the model card. Nothing here unpickles anything: the card is
+``objects.onnx`` (scores each reading of a dark candidate as a fan or a spot),
+``context.onnx`` (rescores each reading with its tile's other deposits, see
+:mod:`detector.objects.context`) and ``model.json``, the model card. Nothing here unpickles anything: the card is
 JSON and the models are ONNX graphs.
 """
 
@@ -24,6 +25,7 @@ __all__ = [
     "DETECTOR_ONNX",
     "ORIENTATION_ONNX",
     "OBJECTS_ONNX",
+    "CONTEXT_ONNX",
     "ONNX_FILES",
     "Calibration",
     "Model",
@@ -37,7 +39,8 @@ MODEL_CARD = "model.json"
 DETECTOR_ONNX = "detector.onnx"
 ORIENTATION_ONNX = "orientation.onnx"
 OBJECTS_ONNX = "objects.onnx"
-ONNX_FILES = (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX)
+CONTEXT_ONNX = "context.onnx"
+ONNX_FILES = (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX, CONTEXT_ONNX)
 CLASS_NAMES = ("none", "fan", "spot")
 
 
@@ -101,6 +104,7 @@ class Model:
     _detector: object = field(repr=False, default=None)
     _orientation: object = field(repr=False, default=None)
     _objects: object = field(repr=False, default=None)
+    _context: object = field(repr=False, default=None)
 
     @property
     def assembly(self):
@@ -143,6 +147,21 @@ class Model:
             return F[:, OBJECT_FEATURE_NAMES.index("read_p_fan")].astype(np.float32)
         return _run_proba(self._objects, F)[:, 1]
 
+    def score_readings(self, F, candidates):
+        """Final score of each reading of a tile's candidates, shape (n,).
+
+        The first score (:meth:`predict_readings`) rescored by ``context.onnx``
+        from the reading's features, that score and its tile context
+        (:mod:`detector.objects.context`); the first score alone while training
+        builds the folder.
+        """
+        from ..objects.context import context_matrix, reading_layout
+
+        first = self.predict_readings(F)
+        if self._context is None or len(first) == 0:
+            return first
+        owner, is_fan, direction = reading_layout(candidates)
+        return _run_proba(self._context, context_matrix(F, first, owner, is_fan, direction))[:, 1]
 
     def direction_confidence(self, F):
         """Probability that each fan reading's direction is within the card's error bound, shape (n,).
@@ -190,7 +209,7 @@ def load_model(folder):
     Parameters
     ----------
     folder : path-like
-        Folder with ``model.json``, ``detector.onnx``, ``orientation.onnx`` and ``objects.onnx``.
+        Folder with ``model.json`` and the ONNX files of :data:`ONNX_FILES`.
 
     Returns
     -------
@@ -262,6 +281,14 @@ def load_model(folder):
             f"model {str(folder)!r} scores candidate readings on features that differ from this code's "
             f"(missing {missing!r}, unknown {extra!r}): re-export the model with this version of the code."
         )
+    from ..objects.context import CONTEXT_FEATURE_NAMES
+
+    context = card.get("context_features")
+    if tuple(context or ()) != CONTEXT_FEATURE_NAMES:
+        raise SpecError(
+            f"model {str(folder)!r} rescores readings on tile-context features {context!r}; this code computes "
+            f"{list(CONTEXT_FEATURE_NAMES)!r}: re-export the model with this version of the code."
+        )
     index = {name: i for i, name in enumerate(spec.feature_names)}
     try:
         orientation_index = np.array([index[n] for n in card["orientation_features"]], dtype=np.intp)
@@ -281,6 +308,7 @@ def load_model(folder):
         _detector=_session(folder / DETECTOR_ONNX),
         _orientation=_session(folder / ORIENTATION_ONNX),
         _objects=_session(folder / OBJECTS_ONNX),
+        _context=_session(folder / CONTEXT_ONNX),
     )
 
 

@@ -6,6 +6,7 @@ evaluation's own matching rules, so the object classifier learns exactly what
 is scored.
 """
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -14,6 +15,7 @@ from joblib import delayed
 from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
+from detector.objects.context import context_matrix, reading_layout
 from detector.inference.detect import tile_candidates, tile_maps
 from detector.tile.features import extract_features
 from detector._allocator import reuse_freed_memory
@@ -23,6 +25,7 @@ from ..parallel import tile_parallel
 from ..evaluation.matching import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
+           "context_rows",
            "CONFIDENCE_FEATURES"]
 
 
@@ -39,12 +42,24 @@ class CandidateSet:
     image_id : ndarray of shape (n,), object
     error_deg : ndarray of shape (n,)
         Direction error of a matched fan reading against its consensus fan (NaN otherwise).
+    tile_key : ndarray of shape (n,), object
+        The tile and quarter turn each reading was read on (``"tile_id/k"``): the readings
+        of one key are one tile's, for their tile context (:mod:`detector.objects.context`).
+    owner : ndarray of shape (n,), int
+        The component of each reading within its tile.
+    is_fan : ndarray of shape (n,), bool
+    direction_deg : ndarray of shape (n,)
+        Fan readings' directions (NaN for spot readings).
     """
 
     F: np.ndarray
     label: np.ndarray
     image_id: np.ndarray
-    error_deg: np.ndarray = None
+    error_deg: np.ndarray
+    tile_key: np.ndarray
+    owner: np.ndarray
+    is_fan: np.ndarray
+    direction_deg: np.ndarray
 
     def __len__(self):
         return len(self.label)
@@ -54,9 +69,8 @@ class CandidateSet:
         parts = list(parts)
         if not parts:
             return cls(np.zeros((0, len(OBJECT_FEATURE_NAMES)), np.float32), np.zeros(0, int), np.zeros(0, object),
-                       np.zeros(0))
-        return cls(np.concatenate([p.F for p in parts]), np.concatenate([p.label for p in parts]),
-                   np.concatenate([p.image_id for p in parts]), np.concatenate([p.error_deg for p in parts]))
+                       np.zeros(0), np.zeros(0, object), np.zeros(0, int), np.zeros(0, bool), np.zeros(0))
+        return cls(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in dataclasses.fields(cls)))
 
 
 #: A fan reading teaches "right" only when it also points the consensus fan's way within this angle,
@@ -163,7 +177,7 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
     candidates = tile_candidates(tile, nodata, maps, spec, params)
     F, _, _ = reading_matrix(candidates)
-    return (F, *label_readings(candidates, consensus, tile_id))
+    return (F, *label_readings(candidates, consensus, tile_id), *reading_layout(candidates))
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
@@ -185,9 +199,26 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )
     return CandidateSet.concat(
-        CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object), error)
-        for (t, _), (F, label, error) in zip(jobs, results)
+        CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object), error,
+                     np.full(len(label), f"{t}/{r % 4}", dtype=object), owner, is_fan, direction)
+        for (t, r), (F, label, error, owner, is_fan, direction) in zip(jobs, results)
     )
+
+
+def context_rows(readings, first_score):
+    """The context model's input rows of some readings, given their first scores.
+
+    Parameters
+    ----------
+    readings : CandidateSet
+    first_score : ndarray of shape (len(readings),)
+
+    Returns
+    -------
+    ndarray, see :func:`detector.objects.context.context_matrix`
+    """
+    return context_matrix(readings.F, first_score, readings.owner, readings.is_fan, readings.direction_deg,
+                          group=readings.tile_key)
 
 
 #: Reading features the direction confidence is fitted on.

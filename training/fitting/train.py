@@ -12,6 +12,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
+from detector.objects.context import CONTEXT_FEATURE_NAMES
 from detector.circstats import circular_mean
 from detector.contract import DEFAULT_MIN_VOTES
 from detector.errors import DetectorError, TileSetError
@@ -23,6 +24,7 @@ from detector.inference.model import (
     MODEL_CARD,
     MODEL_FORMAT_VERSION,
     OBJECTS_ONNX,
+    CONTEXT_ONNX,
     ONNX_FILES,
     ORIENTATION_ONNX,
     Calibration,
@@ -35,7 +37,7 @@ from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, un
 from .dataset import build_patch_set, rotation_jobs
 from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
-from .objects import CandidateSet, candidate_set, fit_direction_confidence
+from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence
 from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
@@ -471,15 +473,19 @@ class _Objects:
     params: object
     confidence: dict
     cal_sample: list
+    context: object
+    context_fit_rows: np.ndarray
+    context_crossed: bool
 
 
 @dataclass(frozen=True)
 class _Onnx:
-    """The three exported models and the parity of each with its scikit-learn original."""
+    """The four exported models and the parity of each with its scikit-learn original."""
 
     detector: bytes
     orientation: bytes
     objects: bytes
+    context: bytes
     parity: dict
 
 
@@ -664,7 +670,53 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     confidence_fit = fit_direction_confidence(cand_fit)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
-    return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample)
+    context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
+    return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample, context_model, Z_fit,
+                    crossed)
+
+
+#: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
+CONTEXT_FOLDS = 3
+
+
+def _fit_context_classifier(cand_fit, cand_val, object_model, config, log):
+    """Fit the context model on the fitting readings' out-of-fold first scores; stop it on the calibration readings.
+
+    The first score of a fitting reading comes from an object classifier fitted without its image
+    (:data:`CONTEXT_FOLDS` folds by image, as many iterations as the full one), so the context model
+    learns how far to trust first scores of images the object classifier never saw, as at run time.
+
+    Returns
+    -------
+    model : HistGradientBoostingClassifier
+    Z_fit : ndarray
+        Its fitting rows (for the ONNX parity probe).
+    crossed : bool
+        False when the fitting readings held too few images or classes to cross-fit: their
+        first scores are then in-sample (said in the card).
+    """
+    from sklearn.model_selection import GroupKFold
+
+    first = np.zeros(len(cand_fit), dtype=np.float64)
+    images = np.unique(cand_fit.image_id)
+    crossed = len(images) >= 2 and len(np.unique(cand_fit.label)) == 2
+    if crossed:
+        folds = GroupKFold(n_splits=min(CONTEXT_FOLDS, len(images)))
+        fold_config = replace(config, max_iter=max(1, int(object_model.n_iter_)))
+        for k, (rest, held) in enumerate(folds.split(cand_fit.F, cand_fit.label, cand_fit.image_id)):
+            if len(np.unique(cand_fit.label[rest])) < 2:
+                crossed = False
+                break
+            fold = _fit_hgb(cand_fit.F[rest], cand_fit.label[rest], cand_val.F, cand_val.label, fold_config,
+                            log=log, what=f"fold {k + 1}/{folds.n_splits} object classifier")
+            first[held] = fold.predict_proba(cand_fit.F[held])[:, 1]
+    if not crossed:
+        first = object_model.predict_proba(cand_fit.F)[:, 1] if len(cand_fit) else first
+    Z_fit = context_rows(cand_fit, first)
+    val_first = object_model.predict_proba(cand_val.F)[:, 1] if len(cand_val) else np.zeros(0)
+    Z_val = context_rows(cand_val, val_first)
+    model = _fit_hgb(Z_fit, cand_fit.label, Z_val, cand_val.label, config, log=log, what="context model")
+    return model, Z_fit, crossed
 
 
 def _export(patches, patch_model, orientation, objects, config, log):
@@ -687,16 +739,19 @@ def _export(patches, patch_model, orientation, objects, config, log):
     det_bytes = to_onnx_bytes(patch_model.classifier, train.X.shape[1])
     ori_bytes = to_onnx_bytes(orientation.model, len(index))
     obj_bytes = to_onnx_bytes(objects.model, cand_fit.F.shape[1])
+    ctx_bytes = to_onnx_bytes(objects.context, objects.context_fit_rows.shape[1])
     rng = np.random.default_rng(config.seed)
     probe = train.X[rng.choice(len(train), size=min(2000, len(train)), replace=False)]
     parity = {
         "detector_max_abs_diff": onnx_parity(det_bytes, patch_model.classifier, probe),
         "orientation_max_abs_diff": onnx_parity(ori_bytes, orientation.model, probe[:, index]),
         "objects_max_abs_diff": onnx_parity(obj_bytes, objects.model, cand_fit.F[:2000]),
+        "context_max_abs_diff": onnx_parity(ctx_bytes, objects.context, objects.context_fit_rows[:2000]),
     }
     log(f"ONNX parity (max abs difference of probabilities): detector {parity['detector_max_abs_diff']:.2e}, "
-        f"orientation {parity['orientation_max_abs_diff']:.2e}, objects {parity['objects_max_abs_diff']:.2e}")
-    return _Onnx(det_bytes, ori_bytes, obj_bytes, parity)
+        f"orientation {parity['orientation_max_abs_diff']:.2e}, objects {parity['objects_max_abs_diff']:.2e}, "
+        f"context {parity['context_max_abs_diff']:.2e}")
+    return _Onnx(det_bytes, ori_bytes, obj_bytes, ctx_bytes, parity)
 
 
 def _model_card(tileset_root, tileset, split, patches, patch_model, orientation, objects, onnx, spec, config):
@@ -723,6 +778,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
                         "before": patch_model.before, "after": patch_model.after, "images": split.calibration},
         "assembly": asdict(objects.params),
         "object_features": list(OBJECT_FEATURE_NAMES),
+        "context_features": list(CONTEXT_FEATURE_NAMES),
         "direction_confidence": objects.confidence,
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
@@ -735,6 +791,8 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
             "classifier_iterations": int(classifier.n_iter_),
             "orientation_iterations": int(orientation.model.n_iter_),
             "object_iterations": int(objects.model.n_iter_),
+            "context_iterations": int(objects.context.n_iter_),
+            "context_first_scores": "out of fold" if objects.context_crossed else "in sample",
             "readings": {"fit": int(len(cand_fit)), "fit_right": int(cand_fit.label.sum()),
                          "calibration": int(len(cand_val))},
             "onnx_parity": onnx.parity,
@@ -756,6 +814,7 @@ def _write_model_folder(out, card, onnx, tileset, split, patches, objects, confi
         (tmp / DETECTOR_ONNX).write_bytes(onnx.detector)
         (tmp / ORIENTATION_ONNX).write_bytes(onnx.orientation)
         (tmp / OBJECTS_ONNX).write_bytes(onnx.objects)
+        (tmp / CONTEXT_ONNX).write_bytes(onnx.context)
         card["files"] = {name: sha256_file(tmp / name) for name in ONNX_FILES}
         fit_summaries = patches.fit_summaries
         card["unfamiliarity"] = fit_unfamiliarity(fit_summaries) if len(fit_summaries) >= 3 else None
