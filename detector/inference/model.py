@@ -150,10 +150,12 @@ class Model:
     def score_readings(self, F, candidates):
         """Final score of each reading of a tile's candidates, shape (n,).
 
-        The first score (:meth:`predict_readings`) rescored by ``context.onnx``
-        from the reading's features, that score and its tile context
-        (:mod:`detector.objects.context`); the first score alone while training
-        builds the folder.
+        A fan reading's first score (:meth:`predict_readings`) rescored by
+        ``context.onnx`` from the reading's features, that score and its tile
+        context (:mod:`detector.objects.context`); spot readings keep their first
+        score (the context model did not make spots better on the development sets,
+        and worse on images unlike the training ones). The first score alone while
+        training builds the folder.
         """
         from ..objects.context import context_matrix, reading_layout
 
@@ -161,7 +163,8 @@ class Model:
         if self._context is None or len(first) == 0:
             return first
         owner, is_fan, direction = reading_layout(candidates)
-        return _run_proba(self._context, context_matrix(F, first, owner, is_fan, direction))[:, 1]
+        revised = _run_proba(self._context, context_matrix(F, first, owner, is_fan, direction))[:, 1]
+        return np.where(is_fan, revised, first).astype(np.float32)
 
     def direction_confidence(self, F):
         """Probability that each fan reading's direction is within the card's error bound, shape (n,).

@@ -10,7 +10,7 @@ machine; its start-up is timed apart) and trains the same set with the same seed
 alternating runs, with ``frostvane train --workers 2`` and with ``frostvane train
 --scheduler ADDRESS``, each in a fresh process whose wall time is measured (start-up,
 every stage, the model card). The cluster stays up between its runs, as a standing
-cluster would. Every run must write the same three ONNX files, byte for byte.
+cluster would. Every run must write the same four ONNX files, byte for byte.
 
 The fits (gradient boosting in the training process, the same work on both sides) run
 on ``--fit-threads`` OpenMP threads, 1 by default: on a shared two-core machine two
@@ -34,7 +34,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-ONNX_FILES = ("detector.onnx", "orientation.onnx", "objects.onnx")
+ONNX_FILES = ("detector.onnx", "orientation.onnx", "objects.onnx", "context.onnx")
 
 
 def _frostvane(args, log, env):

@@ -101,6 +101,22 @@ def test_other_feature_parameters_ask_for_re_export(model_copy):
         load_model(model_copy)
 
 
+def test_model_without_tile_context_asks_for_re_export(model_copy):
+    # A model made before the context model existed, or with other context features.
+    _edit_card(model_copy, lambda c: c.pop("context_features"))
+    with pytest.raises(SpecError, match="tile-context features None.*re-export"):
+        load_model(model_copy)
+    _edit_card(model_copy, lambda c: c.update(context_features=["ctx_agree"]))
+    with pytest.raises(SpecError, match=r"\['ctx_agree'\].*re-export"):
+        load_model(model_copy)
+
+
+def test_missing_context_model_is_named(model_copy):
+    (model_copy / "context.onnx").unlink()
+    with pytest.raises(ModelError, match="context.onnx"):
+        load_model(model_copy)
+
+
 def test_model_folder_holds_no_pickles_and_load_never_unpickles(tiny_model, monkeypatch):
     folder, _ = tiny_model
     assert not [p for p in folder.rglob("*") if p.suffix in {".pkl", ".pickle", ".joblib"}]

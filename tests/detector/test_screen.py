@@ -49,8 +49,9 @@ def _build_small_model(folder, seed=0):
     from detector.objects.assemble import AssemblyParams
     from detector.tile.features import extract_features
     from detector.objects.assemble import OBJECT_FEATURE_NAMES
-    from detector.inference.model import (CLASS_NAMES, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION, OBJECTS_ONNX,
-                                ORIENTATION_ONNX, sha256_file)
+    from detector.inference.model import (CLASS_NAMES, CONTEXT_ONNX, DETECTOR_ONNX, MODEL_CARD, MODEL_FORMAT_VERSION,
+                                          OBJECTS_ONNX, ORIENTATION_ONNX, sha256_file)
+    from detector.objects.context import CONTEXT_FEATURE_NAMES
     from detector.tile.spec import POLARITY_ODD_FEATURES, FeatureSpec
     from training.fitting.export import to_onnx_bytes
     from training.synth import render_scene, to_uint8
@@ -77,10 +78,15 @@ def _build_small_model(folder, seed=0):
         F = rng.random((200, len(OBJECT_FEATURE_NAMES)))
         objects = HistGradientBoostingClassifier(max_iter=5, random_state=0).fit(
             F, (F[:, OBJECT_FEATURE_NAMES.index("read_p_fan")] > 0.5).astype(int))
+        # So does the context model: it follows the first score's logit (the column after the object features).
+        Z = rng.normal(size=(200, len(OBJECT_FEATURE_NAMES) + 1 + len(CONTEXT_FEATURE_NAMES)))
+        context = HistGradientBoostingClassifier(max_iter=5, random_state=0).fit(
+            Z, (Z[:, len(OBJECT_FEATURE_NAMES)] > 0).astype(int))
     folder.mkdir(parents=True, exist_ok=True)
     (folder / DETECTOR_ONNX).write_bytes(to_onnx_bytes(detector, X.shape[1]))
     (folder / ORIENTATION_ONNX).write_bytes(to_onnx_bytes(orientation, len(index)))
     (folder / OBJECTS_ONNX).write_bytes(to_onnx_bytes(objects, F.shape[1]))
+    (folder / CONTEXT_ONNX).write_bytes(to_onnx_bytes(context, Z.shape[1]))
     card = {
         "format_version": MODEL_FORMAT_VERSION,
         "class_names": list(CLASS_NAMES),
@@ -90,8 +96,9 @@ def _build_small_model(folder, seed=0):
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": 1.0, "bias": [0.0, 0.0, 0.0]},
         "assembly": asdict(AssemblyParams()),
-        "files": {n: sha256_file(folder / n) for n in (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX)},
+        "files": {n: sha256_file(folder / n) for n in (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX, CONTEXT_ONNX)},
         "object_features": list(OBJECT_FEATURE_NAMES),
+        "context_features": list(CONTEXT_FEATURE_NAMES),
         "unfamiliarity": None,
     }
     (folder / MODEL_CARD).write_text(json.dumps(card))

@@ -2,6 +2,8 @@
 
 import json
 
+import numpy as np
+
 import pandas as pd
 import pytest
 
@@ -66,3 +68,22 @@ def test_error_analysis_files(report, tiny_tileset):
                         | set(det.loc[det["outcome"] != "true", "tile_id"]))
     assert len(figures) == min(6, n_with_errors)
     assert result["error_breakdown"]["worst_tiles"] == errors["worst_tiles"]
+
+
+# The one-standard-error rule (Hastie, Tibshirani and Friedman, The Elements of Statistical Learning,
+# 2nd ed., section 7.10): among candidates whose score is within one standard error of the best, the
+# simplest (here the least strict threshold, listed first) is chosen. Worked by hand below.
+def test_one_standard_error_rule_worked_example():
+    from training.evaluation.evaluate import one_standard_error_choice
+
+    scores = [0.60, 0.635, 0.65, 0.645]
+    # the best candidate's resampled scores: 0.63, 0.65, 0.67 -> standard deviation (ddof=1) 0.02
+    resampled = [np.zeros(3), np.zeros(3), np.array([0.63, 0.65, 0.67]), np.zeros(3)]
+    chosen, best, se = one_standard_error_choice(scores, resampled)
+    assert (chosen, best) == (1, 2)
+    assert se == pytest.approx(0.02)
+    # a tighter spread (0.005) leaves only the best and its neighbour within reach; the first of them wins
+    resampled[2] = np.array([0.645, 0.65, 0.655])
+    assert one_standard_error_choice(scores, resampled)[:2] == (2, 2)
+    # no spread (one image): the plain maximum
+    assert one_standard_error_choice(scores, [np.zeros(1)] * 4) == (2, 2, 0.0)

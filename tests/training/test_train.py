@@ -195,7 +195,7 @@ def test_train_rejects_a_file_as_output_parent(tiny_tileset, tmp_path):
 
 def test_model_card_fields(tiny_model):
     folder, card = tiny_model
-    assert set(card["files"]) == {"detector.onnx", "orientation.onnx", "objects.onnx"}
+    assert set(card["files"]) == {"detector.onnx", "orientation.onnx", "objects.onnx", "context.onnx"}
     assert all(len(h) == 64 for h in card["files"].values())
     assert card["feature_spec"]["version"] >= 1
     for key in ("before", "after"):
@@ -304,7 +304,7 @@ def test_training_on_a_cluster_gives_the_local_model(tmp_path, monkeypatch):
             lines = []
             remote = train_model("set", "cluster", replace(config, scheduler=address), log=lines.append)
             ran = set(cluster.scheduler.task_prefixes)
-    # The same model: the three ONNX files byte for byte (hence the same probabilities on every
+    # The same model: the four ONNX files byte for byte (hence the same probabilities on every
     # tile), and what was computed through them on the cluster (tuning, held-out scores).
     for name in ONNX_FILES:
         assert (tmp_path / "cluster" / name).read_bytes() == (tmp_path / "local" / name).read_bytes(), name

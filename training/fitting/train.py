@@ -822,6 +822,9 @@ def _write_model_folder(out, card, onnx, tileset, split, patches, objects, confi
         tuning = tune_assembly(tmp, tileset, objects.cal_sample, log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
+        card["assembly_tuning_rule"] = {"rule": "least strict within one standard error of the best mean F1",
+                                        "best_min_score": tuning["best_min_score"],
+                                        "standard_error": tuning["standard_error"]}
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         heldout = evaluate_tiles(tmp, tileset, split.ids["holdout"], log=log, workers=config.workers)
         card["heldout_metrics"] = summarise_for_card(heldout)
