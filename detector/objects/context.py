@@ -5,13 +5,14 @@ tile point one way (or two, when the wind turned while they vented) (common
 practice: fans are read as wind vanes for that reason). A fan reading that
 agrees with the confident fans of the *other* dark components of its tile is
 more likely right than one that stands alone, and one that points exactly
-against them more likely runs the wrong way. A tile full of confident fans also
-makes a roundish deposit less likely a spot than a tile of spots does.
+against them more likely runs the wrong way; and a fan reading in a tile of
+spots is less likely right than one in a tile of fans.
 
-The context model (``context.onnx``) rescores every reading from its object
+The context model (``context.onnx``) rescores every fan reading from its object
 features, its first score (``objects.onnx``) and the context features below,
-computed from the first scores of the tile's other components. A reading's own
-component never counts, so a component cannot vouch for itself.
+computed from the first scores of the tile's other components (spot readings
+keep their first score: :meth:`detector.inference.model.Model.score_readings`).
+A reading's own component never counts, so a component cannot vouch for itself.
 """
 
 import numpy as np

@@ -193,18 +193,6 @@ def one_standard_error_choice(scores, resampled):
     return chosen, best, se
 
 
-def _object_f1(detections, consensus):
-    pairs = match_objects(detections.reset_index(drop=True), consensus.reset_index(drop=True))
-    out = {}
-    for kind in ("fan", "spot"):
-        tp = int((pairs["kind"] == kind).sum())
-        n_det = int((detections["kind"] == kind).sum())
-        n_cons = int((consensus["kind"] == kind).sum())
-        out[f"{kind}_f1"] = 2 * tp / (n_det + n_cons) if n_det + n_cons else 1.0
-    out["mean_f1"] = (out["fan_f1"] + out["spot_f1"]) / 2
-    return out
-
-
 def _per_tile_table(run, detections, consensus, tiles, model):
     """Per-tile figures used by the effort estimate (held-out images)."""
     pairs = match_objects(detections.reset_index(drop=True), consensus.reset_index(drop=True))
