@@ -5,6 +5,7 @@ import numpy as np
 from detector.errors import DetectorError
 
 __all__ = [
+    "resample_counts",
     "bootstrap_interval",
     "interval_kind",
     "MIN_IMAGES_FOR_CI",
@@ -22,6 +23,14 @@ def _weighted_quantile(values, weights, q):
     out = v[idx]
     out[total[:, 0] <= 0] = np.nan
     return out
+
+
+def resample_counts(rng, n_groups, n_boot):
+    """How often each of ``n_groups`` groups (images, clusters) is drawn in each of ``n_boot`` resamples
+    with replacement of as many groups as there are: float ndarray of shape (n_boot, n_groups)."""
+    if n_groups == 0:
+        return np.zeros((n_boot, 0))
+    return rng.multinomial(n_groups, np.full(n_groups, 1.0 / n_groups), size=n_boot).astype(float)
 
 
 #: Fewest images for a bootstrap percentile interval to be called a confidence interval; with fewer,
@@ -73,8 +82,7 @@ def bootstrap_interval(values, image_ids, statistic="median", *, n_boot=1000, se
     labels, inverse = np.unique(image_ids, return_inverse=True)
     rng = np.random.default_rng(seed)
     k = labels.size
-    counts = rng.multinomial(k, np.full(k, 1.0 / k), size=n_boot).astype(float)
-    weights = counts[:, inverse]
+    weights = resample_counts(rng, k, n_boot)[:, inverse]
     if callable(statistic):
         stats = np.asarray(statistic(values, weights), dtype=float)
     elif statistic == "median":

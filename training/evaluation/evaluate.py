@@ -18,6 +18,7 @@ from detector.tileset import load_tileset
 from detector.inference.unfamiliar import unfamiliarity_score
 from detector._allocator import reuse_freed_memory
 
+from .bootstrap import resample_counts
 from .diagnose import error_breakdown, write_error_analysis
 from .matching import match_objects
 from .directions import matched_fans
@@ -141,7 +142,7 @@ def tune_assembly(model_dir, tileset, tile_ids, *, log=print, workers=1, seed=0)
 
     cons = {k: per_image(consensus[consensus["kind"] == k]) for k in ("fan", "spot")}
     rng = np.random.default_rng(seed)
-    weights = rng.multinomial(len(images), np.full(len(images), 1.0 / len(images)), size=TUNING_BOOTSTRAP)
+    weights = resample_counts(rng, len(images), TUNING_BOOTSTRAP)
     table, boot = [], []
     det_all = run["detections"]
     for min_score in np.round(np.arange(0.05, 0.9, 0.05), 2):

@@ -58,6 +58,7 @@ from detector.errors import CatalogError, DetectorError
 from detector.geometry import angular_difference
 from detector.io import atomic_dir, write_json
 
+from ..evaluation.bootstrap import resample_counts
 from .wind_catalogs import read_consensus_catalog, read_image_table, read_machine_catalog
 from .wind_catalogs import metadata_from_tileset
 
@@ -266,11 +267,6 @@ def _half_width(low, high, centre):
 # ----------------------------------------------------------------------------- one group
 
 
-def _bootstrap_counts(rng, n_clusters, n_boot):
-    """Multiplicity of every cluster in every replicate: ndarray of shape (n_boot, n_clusters)."""
-    if n_clusters == 0:
-        return np.zeros((n_boot, 0))
-    return rng.multinomial(n_clusters, np.full(n_clusters, 1.0 / n_clusters), size=n_boot).astype(float)
 
 
 def _select_winds(angles, weights, settings, counts_by_fan, rng):
@@ -338,7 +334,7 @@ def _group_summary(fans, tiles, direction_column, settings, rng):
         n_clusters = keys.size
     else:
         cluster, n_clusters = np.arange(n), n
-    counts = _bootstrap_counts(rng, n_clusters, settings.n_boot)
+    counts = resample_counts(rng, n_clusters, settings.n_boot)
     counts_by_fan = counts[:, cluster] if n else np.zeros((settings.n_boot, 0))
     rad = np.radians(angles)
     c_b = counts_by_fan @ (weights * np.cos(rad)) if n else np.full(settings.n_boot, np.nan)
@@ -367,7 +363,7 @@ def _group_summary(fans, tiles, direction_column, settings, rng):
 
     area = tiles["area_px"].to_numpy(dtype=float)
     covered = tiles["covered_px"].to_numpy(dtype=float)
-    tile_counts = _bootstrap_counts(rng, len(tiles), settings.n_boot)
+    tile_counts = resample_counts(rng, len(tiles), settings.n_boot)
     cover_b = (tile_counts @ covered) / np.maximum(tile_counts @ area, 1e-300)
     row["covered_fraction"] = float(covered.sum() / area.sum()) if area.sum() > 0 else np.nan
     row["covered_ci_low"], row["covered_ci_high"] = _quantiles(cover_b, settings.level) if len(tiles) >= 2 else (np.nan,) * 2
