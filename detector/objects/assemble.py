@@ -16,7 +16,8 @@ Every reading gets a feature vector (the component's shape and darkness, the
 patch probabilities under it, the orientation model's polarity vote along the
 reading's direction, and the reading's own geometry); an object classifier
 trained on consensus gives each reading the probability that it is right. A
-component becomes fans or a spot, whichever reading scores higher.
+component keeps the fans of its best-scoring fan interpretation and its spot, each
+when its score clears the threshold: fans growing out of a dark spot are both.
 """
 
 import functools
@@ -890,20 +891,21 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
         pos += len(c.fans) + 1
         best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
         fan_vote_share = best_fan / max(best_fan + spot_score, 1e-9)
-        # One interpretation per component: the one whose kept readings add most score above the threshold.
+        # One interpretation of the component's fans: the one whose kept readings add most score above the
+        # threshold. The spot is decided on its own score: fans often grow out of a dark spot at their
+        # vent, so a component may hold both.
         hyps = np.array([f.get("_hyp", HYP_MODES) for f in c.fans], dtype=int)
         gain = np.maximum(fan_scores - params.min_score, 0.0)
         utility = {h: float(gain[hyps == h].sum()) for h in np.unique(hyps)}
         best_hyp = max(utility, key=lambda h: (utility[h], -h)) if utility else None
-        spot_gain = max(spot_score - params.min_score, 0.0)
-        if best_hyp is not None and utility[best_hyp] > 0 and utility[best_hyp] >= spot_gain:
+        if best_hyp is not None and utility[best_hyp] > 0:
             for f, score, hyp in zip(c.fans, fan_scores, hyps):
                 if hyp == best_hyp and score >= params.min_score:
                     mine = f["_pixels"]
                     rows.append({**_public(f), "score": float(score), "fan_vote_share": fan_vote_share,
                                  "tile_id": tile_id})
                     pixels.append((c.ys[mine], c.xs[mine]))
-        elif spot_score >= params.min_score:
+        if spot_score >= params.min_score:
             rows.append({**_public(c.spot), "direction_confidence": np.nan, "score": spot_score,
                          "fan_vote_share": fan_vote_share, "tile_id": tile_id})
             pixels.append((c.ys, c.xs))

@@ -450,6 +450,20 @@ def test_objects_pick_the_spot_when_it_scores_higher(two_candidates):
     assert objects["direction_confidence"].isna().all()
 
 
+def test_objects_keep_fans_and_spot_of_one_component_when_both_score(two_candidates):
+    # Fans growing out of a dark spot at their vent are mapped as fans and as a spot (common practice in
+    # consensus marking), so a component keeps both when both clear the threshold: the fans of its best
+    # interpretation and its spot, over the whole component.
+    objects, pixels = objects_from_candidates(two_candidates, _scores(two_candidates, 0.9, 0.8))
+    assert (objects["kind"] == "fan").sum() == sum(_modes_fans(c) for c in two_candidates)
+    assert (objects["kind"] == "spot").sum() == len(two_candidates)
+    spots = [p for k, p in zip(objects["kind"], pixels) if k == "spot"]
+    assert sorted(len(ys) for ys, _ in spots) == sorted(len(c.ys) for c in two_candidates)
+    # A spot below the threshold stays out, whatever its fans score.
+    objects, _ = objects_from_candidates(two_candidates, _scores(two_candidates, 0.9, 0.45))
+    assert (objects["kind"] == "spot").sum() == 0
+
+
 def test_objects_respect_min_score(two_candidates):
     scores = _scores(two_candidates, 0.45, 0.2)
     kept, _ = objects_from_candidates(two_candidates, scores, params=AssemblyParams(min_score=0.5))
