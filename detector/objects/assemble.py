@@ -351,7 +351,10 @@ class Candidate:
         The component read as fans (contract fields, plus ``_pixels``, a mask
         over the component's pixels, and ``_features``, the reading's features).
     spot : dict
-        The component read as a spot (contract fields and ``_features``).
+        The component read as one spot (contract fields and ``_features``).
+    vent_spots : list of dict
+        The component read as one spot around each vent (a dark spot with fans growing out of it, or
+        several spots that touch): contract fields, ``_pixels`` and ``_features``.
     """
 
     ys: np.ndarray
@@ -359,6 +362,12 @@ class Candidate:
     features: np.ndarray
     fans: list = field(default_factory=list)
     spot: dict = field(default_factory=dict)
+    vent_spots: list = field(default_factory=list)
+
+    @property
+    def spots(self):
+        """The spot readings: the whole component's, then one per vent."""
+        return [self.spot] + list(self.vent_spots)
 
 
 def grey_opening_square(image, size):
@@ -596,6 +605,48 @@ def _alternative_fans(xs, ys, w, samples, vents_x, vents_y, vent_dark, smooth_at
     return out
 
 
+#: A vent's spot holds the pixels nearest that vent whose darkness is at least this share of the vent's.
+_VENT_SPOT_LEVEL = 0.5
+#: A vent's spot holding at least this share of its component's darkness repeats the component's spot: not read.
+_VENT_SPOT_MAX_SHARE = 0.8
+_READ_INDEX = {name: i for i, name in enumerate(_READING_FEATURES)}
+
+
+def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
+    """The component read as one spot around each vent: the pixels nearest the vent (as in the
+    vent-split fans) that are at least :data:`_VENT_SPOT_LEVEL` as dark as the vent, described by
+    their moments. Vents whose spot would be too small or nearly the whole component are skipped."""
+    if vents_x.size == 0 or xs.size == 0:
+        return []
+    d2 = (xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2
+    vent_of = np.argmin(d2, axis=1)
+    total = float(w.sum())
+    out = []
+    for k in range(vents_x.size):
+        mine = np.flatnonzero(vent_of == k)
+        if mine.size < min_px:
+            continue
+        at_vent = float(w[mine[np.argmin(d2[mine, k])]])
+        core = mine[w[mine] >= _VENT_SPOT_LEVEL * at_vent]
+        share = float(w[core].sum()) / total
+        if core.size < min_px or share >= _VENT_SPOT_MAX_SHARE:
+            continue
+        cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xs[core], ys[core])
+        features = np.zeros(len(_READING_FEATURES) - _N_VIEW, dtype=np.float32)
+        for name, value in (("read_length_px", semi_major), ("read_share", share),
+                            ("read_vent_dark", at_vent), ("read_dark_mean", float(w[core].mean())),
+                            ("read_p_fan", float(np.average(p_spot[core], weights=w[core]))),
+                            ("read_from_vents", 1.0)):
+            features[_READ_INDEX[name]] = value
+        pixels = np.zeros(xs.size, dtype=bool)
+        pixels[core] = True
+        out.append(dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
+                        semi_minor_px=semi_minor, axis_deg=axis, _pixels=pixels, _features=features))
+    for r in out:
+        r["_features"][_READ_INDEX["read_n_siblings"]] = len(out)
+    return out
+
+
 def _finish_readings(fans):
     """Feature vectors of a component's fan readings, once every reading is known."""
     count = {h: sum(1 for f in fans if f["_hyp"] == h) for h in _HYPOTHESES}
@@ -665,7 +716,7 @@ def _add_views(candidates, dark):
     if not candidates:
         return candidates
     smooth = _kernels.gaussian(np.ascontiguousarray(dark, dtype=np.float32), 1.0)
-    readings = [f for c in candidates for f in c.fans] + [c.spot for c in candidates]
+    readings = [r for c in candidates for r in c.fans + c.spots]
     geometry = np.empty((len(readings), 5))
     for i, r in enumerate(readings):
         if r["kind"] == "fan":
@@ -807,7 +858,9 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
                     semi_minor_px=semi_minor, axis_deg=axis)
         spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0]
                                      + [0.0] * (len(_READING_FEATURES) - 9 - _N_VIEW), dtype=np.float32)
-        out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot))
+        vent_spots = _vent_spots(xf, yf, w64, samples[2], (vx + sl[1].start).astype(float),
+                                 (vy + sl[0].start).astype(float), max(3, params.min_area_px // 2))
+        out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot, vent_spots=vent_spots))
     return _add_views(out, dark)
 
 
@@ -815,7 +868,7 @@ _FEATURE_DECIMALS = 4
 
 
 def reading_matrix(candidates):
-    """Feature rows of every reading (each fan reading, then the spot reading, per candidate).
+    """Feature rows of every reading (each fan reading, then the spot readings, per candidate).
 
     Returns
     -------
@@ -824,7 +877,8 @@ def reading_matrix(candidates):
     owner : ndarray of shape (n_readings,), int
         Index of the candidate each reading belongs to.
     which : ndarray of shape (n_readings,), int
-        Index of the fan within its candidate, or -1 for the spot reading.
+        Index of the fan within its candidate; for spot readings -1 - k, the k-th of
+        :attr:`Candidate.spots` (-1 the whole component's spot).
     """
     rows, owner, which = [], [], []
     for i, c in enumerate(candidates):
@@ -832,9 +886,10 @@ def reading_matrix(candidates):
             rows.append(np.concatenate([c.features, f["_features"]]))
             owner.append(i)
             which.append(j)
-        rows.append(np.concatenate([c.features, c.spot["_features"]]))
-        owner.append(i)
-        which.append(-1)
+        for k, spot in enumerate(c.spots):
+            rows.append(np.concatenate([c.features, spot["_features"]]))
+            owner.append(i)
+            which.append(-1 - k)
     F = np.array(rows, dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
     # On a grid of 1e-4, two different values are many float32 steps apart, so a boosted tree's split
     # between them (a float64 midpoint) still separates them once ONNX rounds it to float32.
@@ -851,7 +906,7 @@ def candidate_rows(candidates, tile_id=""):
     rows = []
     for c in candidates:
         rows.extend({**_public(f), "tile_id": tile_id} for f in c.fans)
-        rows.append({**_public(c.spot), "tile_id": tile_id})
+        rows.extend({**_public(r), "tile_id": tile_id} for r in c.spots)
     return pd.DataFrame(rows, columns=OBJECT_COLUMNS[:-3] + ("axis_deg", "direction_confidence"))
 
 
@@ -883,17 +938,19 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
     rows, pixels = [], []
     pos = 0
     for c in candidates:
-        fan_scores = reading_score[pos:pos + len(c.fans)]
-        spot_score = float(reading_score[pos + len(c.fans)])
+        n_fans, spots = len(c.fans), c.spots
+        fan_scores = reading_score[pos:pos + n_fans]
+        spot_scores = reading_score[pos + n_fans:pos + n_fans + len(spots)]
         if direction_confidence is not None:
-            for f, conf in zip(c.fans, direction_confidence[pos:pos + len(c.fans)]):
+            for f, conf in zip(c.fans, direction_confidence[pos:pos + n_fans]):
                 f["direction_confidence"] = float(conf)
-        pos += len(c.fans) + 1
+        pos += n_fans + len(spots)
         best_fan = float(fan_scores.max()) if len(fan_scores) else 0.0
-        fan_vote_share = best_fan / max(best_fan + spot_score, 1e-9)
+        fan_vote_share = best_fan / max(best_fan + float(spot_scores.max()), 1e-9)
         # One interpretation of the component's fans: the one whose kept readings add most score above the
-        # threshold. The spot is decided on its own score: fans often grow out of a dark spot at their
-        # vent, so a component may hold both.
+        # threshold. The spots are decided on their own scores (fans often grow out of a dark spot at
+        # their vent, so a component may hold both): the whole component as one spot, or a spot around
+        # each vent, whichever adds more score above the threshold.
         hyps = np.array([f.get("_hyp", HYP_MODES) for f in c.fans], dtype=int)
         gain = np.maximum(fan_scores - params.min_score, 0.0)
         utility = {h: float(gain[hyps == h].sum()) for h in np.unique(hyps)}
@@ -905,10 +962,14 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
                     rows.append({**_public(f), "score": float(score), "fan_vote_share": fan_vote_share,
                                  "tile_id": tile_id})
                     pixels.append((c.ys[mine], c.xs[mine]))
-        if spot_score >= params.min_score:
-            rows.append({**_public(c.spot), "direction_confidence": np.nan, "score": spot_score,
-                         "fan_vote_share": fan_vote_share, "tile_id": tile_id})
-            pixels.append((c.ys, c.xs))
+        spot_gain = np.maximum(spot_scores - params.min_score, 0.0)
+        chosen = [0] if spot_gain[0] >= spot_gain[1:].sum() else list(range(1, len(spots)))
+        for k in chosen:
+            if spot_scores[k] >= params.min_score:
+                rows.append({**_public(spots[k]), "direction_confidence": np.nan, "score": float(spot_scores[k]),
+                             "fan_vote_share": fan_vote_share, "tile_id": tile_id})
+                mine = spots[k].get("_pixels")
+                pixels.append((c.ys, c.xs) if mine is None else (c.ys[mine], c.xs[mine]))
     frame = pd.DataFrame(rows, columns=OBJECT_COLUMNS)
     frame["votes"] = np.nan
     return frame, pixels

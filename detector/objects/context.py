@@ -127,7 +127,7 @@ def context_matrix(F, score, owner, is_fan, direction_deg, group=None):
 
 def reading_layout(candidates):
     """Owner, kind and direction of every reading of some candidates, in the order of
-    :func:`detector.objects.assemble.reading_matrix` (each fan reading, then the spot reading).
+    :func:`detector.objects.assemble.reading_matrix` (each fan reading, then the spot readings).
 
     Returns
     -------
@@ -142,7 +142,8 @@ def reading_layout(candidates):
             owner.append(i)
             is_fan.append(True)
             direction.append(float(f["direction_deg"]))
-        owner.append(i)
-        is_fan.append(False)
-        direction.append(np.nan)
+        for _ in c.spots:
+            owner.append(i)
+            is_fan.append(False)
+            direction.append(np.nan)
     return np.array(owner, dtype=int), np.array(is_fan, dtype=bool), np.array(direction, dtype=float)

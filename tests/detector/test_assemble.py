@@ -405,7 +405,7 @@ def test_candidate_rows_follow_reading_matrix_order(two_candidates):
     assert len(rows) == len(F) == len(owner) == len(which)
     for i, (o, w) in enumerate(zip(owner, which)):
         c = two_candidates[o]
-        reading = c.spot if w == -1 else c.fans[w]
+        reading = c.spots[-1 - w] if w < 0 else c.fans[w]
         assert rows.loc[i, "kind"] == reading["kind"]
         assert rows.loc[i, "x_px"] == pytest.approx(reading["x_px"])
         assert rows.loc[i, "direction_deg"] == pytest.approx(reading["direction_deg"])
@@ -622,13 +622,77 @@ def test_mass_profile_of_a_sector_darkest_at_its_apex():
     assert back[0] < 0 and back[1] < 0
 
 
+def _disc_scene(centres, radius, *, depth=0.3, seed=3):
+    """Frost with uniformly dark discs, lightly blurred as an orbital camera would."""
+    image = _frost(SHAPE, seed)
+    yy, xx = np.mgrid[: SHAPE[0], : SHAPE[1]]
+    for cx, cy in centres:
+        image[np.hypot(xx - cx, yy - cy) <= radius] -= depth
+    return ndimage.gaussian_filter(image, 1.0)
+
+
+def test_touching_spots_are_read_one_around_each_vent():
+    # Two dark discs of radius 10 px whose rims touch make one component. Read around its vents they are
+    # two spots at the discs' centres, each of semi-axes near 10 px: a uniform disc of radius r has
+    # variance r^2 / 4 along every axis (standard result), so its 2-sigma semi-axes equal r.
+    centres = [(90.0, 110.0), (109.0, 110.0)]
+    candidates = _candidates(_disc_scene(centres, 10.0))
+    assert len(candidates) == 1
+    spots = candidates[0].vent_spots
+    assert len(spots) == 2
+    found = sorted((s["x_px"], s["y_px"]) for s in spots)
+    for (x, y), (cx, cy) in zip(found, centres):
+        assert np.hypot(x - cx, y - cy) <= 2.5
+    for s in spots:
+        assert 6.0 <= s["semi_minor_px"] <= s["semi_major_px"] <= 12.0
+        assert s["_pixels"].sum() < len(candidates[0].xs)
+    # The whole component read as one spot sits between them and is longer than either disc.
+    assert candidates[0].spot["x_px"] == pytest.approx(99.5, abs=2.0)
+    assert candidates[0].spot["semi_major_px"] > 15.0
+
+
+def test_a_lone_spot_is_not_read_twice():
+    # One disc: its vent's spot would be the component's own spot, so no vent spot is read.
+    candidates = _candidates(_disc_scene([(110.0, 110.0)], 10.0))
+    assert len(candidates) == 1 and candidates[0].vent_spots == []
+
+
+def test_a_fan_growing_out_of_a_spot_is_also_read_as_the_spot():
+    # A dark disc of radius 8 px at a fan's apex: one spot is read around the vent, near the apex, and
+    # the whole component's spot lies far down the fan.
+    image = _fan_scene([60.0], spread=30.0)
+    yy, xx = np.mgrid[: SHAPE[0], : SHAPE[1]]
+    image[np.hypot(xx - APEX[0], yy - APEX[1]) <= 8] -= 0.3
+    (candidate,) = _candidates(image)
+    near = [np.hypot(s["x_px"] - APEX[0], s["y_px"] - APEX[1]) for s in candidate.vent_spots]
+    assert len(near) == 1 and near[0] <= 10.0
+    assert np.hypot(candidate.spot["x_px"] - APEX[0], candidate.spot["y_px"] - APEX[1]) > 20.0
+
+
+def test_objects_keep_vent_spots_when_they_outscore_the_whole_component():
+    candidates = _candidates(_disc_scene([(90.0, 110.0), (109.0, 110.0)], 10.0))
+    F, owner, which = reading_matrix(candidates)
+    # the vent spots at 0.8 each outweigh the whole component's spot at 0.9: both are kept, not the whole
+    scores = np.where(which == -1, 0.9, np.where(which < -1, 0.8, 0.0))
+    objects, pixels = objects_from_candidates(candidates, scores)
+    assert list(objects["kind"]) == ["spot", "spot"] and np.allclose(objects["score"], 0.8)
+    assert sum(len(ys) for ys, _ in pixels) < len(candidates[0].xs)
+    # one vent spot at 0.8 against the whole at 0.9: the whole component is the spot
+    scores = np.where(which == -1, 0.9, np.where(which == -2, 0.8, 0.0))
+    objects, pixels = objects_from_candidates(candidates, scores)
+    assert len(objects) == 1 and objects["score"].iloc[0] == pytest.approx(0.9)
+    assert len(pixels[0][0]) == len(candidates[0].xs)
+
+
 def test_reading_features_have_the_named_length():
     candidates = _candidates(_fan_scene([60.0, 200.0], spread=30.0))
     F, _, which = reading_matrix(candidates)
     assert F.shape[1] == len(OBJECT_FEATURE_NAMES)
     hyp_cols = [OBJECT_FEATURE_NAMES.index(n) for n in ("read_from_modes", "read_from_vents", "read_from_axis")]
-    # every fan reading belongs to exactly one interpretation; the spot reading to none
-    np.testing.assert_array_equal(F[:, hyp_cols].sum(axis=1), (which >= 0).astype(np.float32))
+    # every fan reading belongs to exactly one interpretation; the whole component's spot to none, the
+    # spots around its vents to the vents
+    np.testing.assert_array_equal(F[:, hyp_cols].sum(axis=1), (which != -1).astype(np.float32))
+    np.testing.assert_array_equal(F[which < -1, OBJECT_FEATURE_NAMES.index("read_from_vents")], 1.0)
 
 
 def _faint_fan(seed, shape=(300, 300)):

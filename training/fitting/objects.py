@@ -82,8 +82,9 @@ def label_readings(candidates, consensus, tile_id):
     """Label one tile's readings against its consensus features with the evaluation's matching.
 
     The readings of a component come in interpretations (its vents' direction
-    modes, one fan per vent, one fan along its axis either way, a spot), of
-    which detection keeps one. A reading is right when it is matched in the
+    modes, one fan per vent, one fan along its axis either way; one spot, one
+    spot around each vent), of which detection keeps one of fans and one of
+    spots. A reading is right when it is matched in the
     evaluation's greedy one-to-one matching of its own interpretation's readings
     to the tile's consensus: so two readings that split one consensus fan are
     not both right, while each interpretation that would score if chosen is.
@@ -102,10 +103,12 @@ def label_readings(candidates, consensus, tile_id):
     error = np.full(len(readings), np.nan)
     if len(readings) == 0 or consensus.empty:
         return label, error
-    # each reading's component and interpretation, in the order of reading_matrix (the spot reading last: -1)
-    owner = np.array([i for i, c in enumerate(candidates) for _ in range(len(c.fans) + 1)], dtype=np.int64)
-    hyp = np.array([h for c in candidates for h in [f.get("_hyp", 0) for f in c.fans] + [-1]], dtype=np.int64)
-    group = owner * 16 + hyp + 1
+    # each reading's component and interpretation, in the order of reading_matrix (the spot readings last:
+    # -1 the whole component as one spot, -2 the spots around its vents)
+    owner = np.array([i for i, c in enumerate(candidates) for _ in range(len(c.fans) + len(c.spots))], dtype=np.int64)
+    hyp = np.array([h for c in candidates for h in [f.get("_hyp", 0) for f in c.fans] + [-1] + [-2] * len(c.vent_spots)],
+                   dtype=np.int64)
+    group = owner * 16 + hyp + 2
     consensus = consensus.reset_index(drop=True)
     parts = []
     for kind in ("fan", "spot"):
