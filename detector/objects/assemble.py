@@ -10,14 +10,17 @@ patch. Each dark component is read two ways:
   each vent's pixels are split into fans by the modes of their directions seen
   from the vent (several fans often share one vent and point different ways:
   they are split, never merged);
-- as one spot (centre and axes from the pixel moments).
+- as one spot (centre and axes from the pixel moments), or as one spot around
+  each vent (its nearest pixels at least half as dark as the vent): spots that
+  touch, and dark spots with fans growing out of them.
 
 Every reading gets a feature vector (the component's shape and darkness, the
 patch probabilities under it, the orientation model's polarity vote along the
 reading's direction, and the reading's own geometry); an object classifier
 trained on consensus gives each reading the probability that it is right. A
-component keeps the fans of its best-scoring fan interpretation and its spot, each
-when its score clears the threshold: fans growing out of a dark spot are both.
+component keeps the fans of its best-scoring fan interpretation and the spots of
+its best-scoring spot interpretation, each when its score clears the threshold:
+fans growing out of a dark spot are both.
 """
 
 import functools
