@@ -1,12 +1,15 @@
 """Compiled description of one dark component: its moments, vents, fan and spot readings.
 
 The loops of :mod:`detector.objects.assemble` written out for numba (CPU, one thread):
-each component used to cost some two hundred small numpy calls. Sums use
-numpy's pairwise summation (:func:`psum`, the order of ``np.sum``), quantiles
-numpy's 'linear' rule and histograms its equal-bin rule, so results follow
-numpy's to rounding (transcendental functions may differ from numpy's
-vectorised ones in the last bit). Directions are degrees clockwise from image
-up, as in :mod:`detector.geometry`.
+each component used to cost some two hundred small numpy calls, and each of its fan
+readings (:func:`fan_readings`: apex, length, spread, mass profile, the maps' means)
+some sixty more. Sums use numpy's pairwise summation (:func:`psum`, the order of
+``np.sum``), quantiles numpy's 'linear' rule or its partition at a rank, histograms
+its equal-bin rule and the maps' weighted means its BLAS product, so results follow
+numpy's to rounding (transcendental functions may differ from numpy's vectorised
+ones in the last bit: the angles that set a reading's direction are left to numpy's
+``arctan2``). Directions are degrees clockwise from image up, as in
+:mod:`detector.geometry`.
 """
 
 import numpy as np
@@ -14,8 +17,10 @@ from numba import njit
 
 from ..tile._kernels import pairwise_block as _block
 
-__all__ = ["psum", "quantile", "direction_histogram", "circular_smooth", "direction_modes", "axis_moments", "spot_reading", "describe_component",
-           "component_summary", "FAN_FIELDS", "SUMMARY_FIELDS"]
+__all__ = ["psum", "quantile", "lower_quantile", "direction_histogram", "circular_smooth", "direction_modes",
+           "axis_moments", "spot_reading", "describe_component", "component_summary", "fan_geometry",
+           "mass_profile", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS", "READING_FIELDS", "HYP_MODES",
+           "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
 
 _DEG = 180.0 / np.pi
 _RAD = np.pi / 180.0
@@ -479,3 +484,315 @@ def describe_component(xs, ys, lx, ly, w, w32, samples, vx, vy, vent_dark, min_v
         rows[f, 10] = _average(p_fan[mine], wm)
         rows[f, 11] = (0.5 * np.arctan2(s2, c2) * _DEG) % 180.0
     return rows, owner, n_vents
+
+
+#: Interpretations of one component (see :mod:`detector.objects.assemble`): the direction modes of
+#: its vents, each vent as one fan, and the whole component along its principal axis, either way.
+HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE = 0, 1, 2, 3
+
+#: Columns of the fan readings returned by :func:`fan_readings`.
+READING_FIELDS = ("hyp", "x_px", "y_px", "direction_deg", "length_px", "opening_deg", "concentration", "vent_dark",
+                  "share", "dark_mean", "vote", "p_fan", "axis_cos", "axis_sin", "widening", "fading", "apex_dark",
+                  "axis_agreement")
+
+
+@njit(cache=True, nogil=True)
+def lower_quantile(values, q):
+    """The ``q`` quantile of a non-empty 1-D array by the nearest lower rank:
+    ``np.partition(values, k)[k]`` with ``k = int(q * (n - 1))``."""
+    k = int(q * (values.size - 1))
+    return np.partition(values, k)[k]
+
+
+@njit(cache=True, nogil=True)
+def fan_geometry(xs, ys, w, start_x, start_y, direction):
+    """Apex, length, spread and concentration of a fan of pixels (xs, ys) running ``direction`` from a start.
+
+    The apex is pulled back from the start to where the pixels begin along the
+    direction (the first percentile, nearest lower rank), so a start inside the
+    fan still gives the source; the length (px) reaches the 97th percentile of
+    the pixels' distances from it (at least 3), and the spread (degrees, 5 to
+    180) is the opening of a sector of that radius and the pixels' area
+    (L^2 theta / 2). The concentration is the resultant length of the
+    directions of the pixels farther than max(3, a quarter of the farthest)
+    from the apex, weighted by ``w`` times the distance (1 with fewer than 3).
+
+    Returns
+    -------
+    fx, fy, length, spread, concentration : float
+    """
+    n = xs.size
+    rad = direction * _RAD
+    u_col, u_row = np.sin(rad), -np.cos(rad)
+    t = (xs - start_x) * u_col + (ys - start_y) * u_row
+    back = min(lower_quantile(t, 0.01), 0.0)
+    fx, fy = start_x + back * u_col, start_y + back * u_row
+    dx, dy = xs - fx, ys - fy
+    r = np.hypot(dx, dy)
+    length = max(lower_quantile(r, 0.97), 3.0)
+    spread = min(max(2.0 * n / length**2 * _DEG, 5.0), 180.0)
+    limit = max(3.0, 0.25 * r.max())
+    n_far = 0
+    for i in range(n):
+        if r[i] > limit:
+            n_far += 1
+    if n_far < 3:
+        return fx, fy, length, spread, 1.0
+    wr = np.empty(n_far)
+    east = np.empty(n_far)
+    north = np.empty(n_far)
+    k = 0
+    for i in range(n):
+        if r[i] > limit:
+            phi = _direction(dx[i], dy[i]) * _RAD
+            wr[k] = w[i] * r[i]
+            east[k] = wr[k] * np.sin(phi)
+            north[k] = wr[k] * np.cos(phi)
+            k += 1
+    concentration = np.hypot(psum(east), psum(north)) / max(psum(wr), 1e-9)
+    return fx, fy, length, spread, concentration
+
+
+@njit(cache=True, nogil=True)
+def mass_profile(xs, ys, w, fx, fy, direction, length):
+    """How the dark mass runs along a fan reading from its apex (fx, fy): widening, fading and
+    darkness at the apex.
+
+    Returns
+    -------
+    widening : float
+        (far width - near width) / (sum), widths the RMS lateral offsets of the
+        pixels in the far and near thirds of the length; > 0 when the mass
+        widens away from the apex, as a fan does.
+    fading : float
+        (near darkness - far darkness) / (sum); > 0 when the mass is darkest near the apex.
+    apex_dark : float
+        Mean darkness within a sixth of the length (at least 4 px) of the apex over
+        the reading's mean darkness (0 when no pixel is that close).
+    """
+    n = xs.size
+    rad = direction * _RAD
+    u_col, u_row = np.sin(rad), -np.cos(rad)
+    near_end, far_start, close = length / 3.0, 2.0 * length / 3.0, max(length / 6.0, 4.0)
+    s2_near, s2_far = np.empty(n), np.empty(n)
+    w_near, w_far, w_close = np.empty(n), np.empty(n), np.empty(n)
+    n_near = n_far = n_close = 0
+    for i in range(n):
+        dx, dy = xs[i] - fx, ys[i] - fy
+        t = dx * u_col + dy * u_row
+        s = -dx * u_row + dy * u_col
+        if t <= near_end:
+            s2_near[n_near] = s * s
+            w_near[n_near] = w[i]
+            n_near += 1
+        if t >= far_start:
+            s2_far[n_far] = s * s
+            w_far[n_far] = w[i]
+            n_far += 1
+        if np.hypot(dx, dy) <= close:
+            w_close[n_close] = w[i]
+            n_close += 1
+    wn = np.sqrt(psum(s2_near[:n_near]) / n_near) if n_near else 0.0
+    wf = np.sqrt(psum(s2_far[:n_far]) / n_far) if n_far else 0.0
+    dn = psum(w_near[:n_near]) / n_near if n_near else 0.0
+    df = psum(w_far[:n_far]) / n_far if n_far else 0.0
+    mean_dark = max(psum(w) / n, 1e-6)
+    apex_dark = psum(w_close[:n_close]) / n_close / mean_dark if n_close else 0.0
+    return (wf - wn) / max(wf + wn, 1e-6), (dn - df) / max(dn + df, 1e-6), apex_dark
+
+
+@njit(cache=True, nogil=True)
+def _fan_row(row, hyp, xs, ys, w, samples, mine, fx, fy, direction, length, spread, concentration, vent_dark,
+             fan_mass, has_axis):
+    """Fill ``row`` (:data:`READING_FIELDS`) with the fan reading of the pixels ``mine``."""
+    n = xs.size
+    m = 0
+    for i in range(n):
+        if mine[i]:
+            m += 1
+    pxs, pys, pw = np.empty(m), np.empty(m), np.empty(m)
+    ws = np.empty((samples.shape[0], m))
+    k = 0
+    for i in range(n):
+        if mine[i]:
+            pxs[k], pys[k], pw[k] = xs[i], ys[i], w[i]
+            for c in range(samples.shape[0]):
+                ws[c, k] = samples[c, i]
+            k += 1
+    weights = np.maximum(pw, 1e-9)
+    # the maps' means weighted by darkness, by BLAS as numpy's float32 @ float64 product takes them
+    mean = np.dot(ws, weights) / psum(weights)
+    rad = direction * _RAD
+    d_col, d_row = np.sin(rad), -np.cos(rad)
+    # The orientation model's vote along this fan's direction: +1 agrees, -1 opposes.
+    vote = min(max((mean[3] * d_col + mean[4] * d_row) / fan_mass, -1.0), 1.0)
+    agreement = 0.0
+    if has_axis:
+        doubled = (2.0 * direction) * _RAD
+        norm = max(np.hypot(mean[5], mean[6]), 1e-6)
+        agreement = (mean[5] * np.cos(doubled) + mean[6] * np.sin(doubled)) / norm
+    widening, fading, apex_dark = mass_profile(pxs, pys, pw, fx, fy, direction, length)
+    row[0], row[1], row[2], row[3] = hyp, fx, fy, direction % 360.0
+    row[4], row[5], row[6], row[7] = length, spread, concentration, vent_dark
+    row[8], row[9], row[10], row[11] = m / max(n, 1), psum(pw) / m, vote, mean[1]
+    row[12], row[13], row[14], row[15], row[16], row[17] = mean[5], mean[6], widening, fading, apex_dark, agreement
+
+
+@njit(cache=True, nogil=True)
+def _cov2_blas(dx, dy, w):
+    """``np.cov(np.vstack([dx, dy]), aweights=w)`` with numpy's own arithmetic: the
+    centred products summed by BLAS (``np.dot``), as numpy's cov sums them."""
+    n = dx.size
+    w_sum = psum(w)
+    fact = w_sum - psum(w * w) / w_sum
+    x = np.empty((2, n))
+    x[0] = dx - psum(dx * w) / w_sum
+    x[1] = dy - psum(dy * w) / w_sum
+    xw = np.empty((2, n))
+    xw[0] = x[0] * w
+    xw[1] = x[1] * w
+    return np.dot(x, xw.T) * (1.0 / fact)
+
+
+@njit(cache=True, nogil=True)
+def reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y, min_vent_px):
+    """What the directions of a component's vent and axis readings are taken from.
+
+    A vent with at least ``min_vent_px`` pixels (``vent_of``), three of which lie
+    farther than max(3, a quarter of the farthest) from it, is read along the
+    mean direction of those far pixels seen from the vent, weighted by darkness
+    times distance. The whole component is read along its principal axis (the
+    darkness-weighted covariance's major eigenvector, by LAPACK) from its
+    weighted centre. The angles (``phi`` and the ones made from what this
+    returns) are numpy's ``arctan2``, whose vectorised form differs from the C
+    library's in the last bit.
+
+    Parameters
+    ----------
+    xs, ys, w : float64 (n,)
+        Pixels of the component (tile coordinates) and their darkness weights.
+    vent_of : int64 (n,) or (0,)
+        Each pixel's vent (the nearest); empty when the vents are not read.
+    phi : float64 (n,) or (0,)
+        Direction of each pixel seen from its vent, radians clockwise from up.
+    vents_x, vents_y : float64 (n_vents,)
+        Vents in tile coordinates.
+    min_vent_px : int
+
+    Returns
+    -------
+    pulls : float64 (n_vents, 2)
+        Each vent's weighted sums of sin and cos of its far pixels' directions
+        (its direction is ``arctan2(pulls[:, 0], pulls[:, 1])``); NaN for a vent
+        that is not read.
+    axis : float64 (4,)
+        Weighted centre (x, y) and the major axis as (d_col, d_row); NaN for a
+        component of fewer than 3 pixels.
+    """
+    n, n_vents = xs.size, vents_x.size
+    pulls = np.full((n_vents, 2), np.nan)
+    for v in range(n_vents if vent_of.size else 0):
+        idx = np.flatnonzero(vent_of == v)
+        if idx.size < min_vent_px:
+            continue
+        r = np.hypot(xs[idx] - vents_x[v], ys[idx] - vents_y[v])
+        far = r > max(3.0, 0.25 * r.max())
+        n_far = far.sum()
+        if n_far < 3:
+            continue
+        east, north = np.empty(n_far), np.empty(n_far)
+        q = 0
+        for i in range(idx.size):
+            if far[i]:
+                wr = w[idx[i]] * r[i]
+                east[q], north[q] = wr * np.sin(phi[idx[i]]), wr * np.cos(phi[idx[i]])
+                q += 1
+        pulls[v, 0], pulls[v, 1] = psum(east), psum(north)
+    axis = np.full(4, np.nan)
+    if n >= 3:
+        w_sum = psum(w)
+        cx, cy = psum(xs * w) / w_sum, psum(ys * w) / w_sum
+        _, _, ux, uy = _eigh_lapack(_cov2_blas(xs - cx, ys - cy, w))
+        axis[0], axis[1], axis[2], axis[3] = cx, cy, ux, uy
+    return pulls, axis
+
+
+@njit(cache=True, nogil=True)
+def fan_readings(xs, ys, w, w32, samples, modes, owner, vent_of, vents_x, vents_y, vent_directions, vent_dark,
+                 centre_x, centre_y, forward, smooth_box, box_row, box_col, has_axis):
+    """Every fan reading of one component, under each interpretation, with what its features need.
+
+    Parameters
+    ----------
+    xs, ys : float64 (n,)
+        Pixels of the component, tile coordinates.
+    w, w32 : float64 (n,), float32 (n,)
+        Darkness weights.
+    samples : float32 (7, n)
+        Class probabilities (none, fan, spot), polarity vector (d_col, d_row) and
+        doubled-angle axis (cos, sin) at each pixel.
+    modes : float64 (n_modes, >= 7)
+        The readings of :func:`describe_component` (its first seven fields).
+    owner : int64 (n,)
+        Each pixel's mode reading, -1 for none.
+    vent_of : int64 (n,) or (0,)
+        Each pixel's vent; empty when the vents are not read.
+    vents_x, vents_y, vent_directions, vent_dark : float64 (n_vents,)
+        Vents in tile coordinates, strongest first, the direction each is read
+        along (degrees clockwise from up; NaN: not read) and their smoothed darkness.
+    centre_x, centre_y, forward : float
+        Weighted centre of the component and the direction of its principal axis
+        (NaN: no axis readings).
+    smooth_box : float32 (rows, cols)
+        The smoothed darkness over the component's box, whose top-left pixel is
+        (``box_row``, ``box_col``); an axis reading's vent darkness is read there at
+        its apex (nearest pixel, clamped to the box).
+    has_axis : bool
+        Whether samples rows 5-6 hold the structure-tensor axis (else a reading's
+        axis agreement is 0).
+
+    Returns
+    -------
+    readings : float64 (n_readings, len(READING_FIELDS))
+        ``axis_cos`` and ``axis_sin`` are the darkness-weighted means of samples
+        rows 5-6 (the reading's axis is half their angle). The mode readings in
+        order, then one per vent read, then the axis readings (forward, reverse).
+    pixels : bool (n_readings, n)
+        The pixels of each reading.
+    """
+    n = xs.size
+    n_modes, n_vents = modes.shape[0], vents_x.size
+    fan_mass = max(np.float64(_average(samples[1], w32)), 1e-6)
+    readings = np.empty((n_modes + n_vents + 2, len(READING_FIELDS)))
+    pixels = np.zeros((n_modes + n_vents + 2, n), dtype=np.bool_)
+    k = 0
+    for j in range(n_modes):
+        for i in range(n):
+            pixels[k, i] = owner[i] == j
+        _fan_row(readings[k], HYP_MODES, xs, ys, w, samples, pixels[k], modes[j, 0], modes[j, 1], modes[j, 2],
+                 modes[j, 3], modes[j, 4], modes[j, 5], modes[j, 6], fan_mass, has_axis)
+        k += 1
+    for v in range(n_vents if vent_of.size else 0):
+        direction = vent_directions[v]
+        if np.isnan(direction):
+            continue
+        idx = np.flatnonzero(vent_of == v)
+        fx, fy, length, spread, concentration = fan_geometry(xs[idx], ys[idx], w[idx], vents_x[v], vents_y[v],
+                                                             direction)
+        for i in range(n):
+            pixels[k, i] = vent_of[i] == v
+        _fan_row(readings[k], HYP_VENTS, xs, ys, w, samples, pixels[k], fx, fy, direction, length, spread,
+                 concentration, vent_dark[v], fan_mass, has_axis)
+        k += 1
+    if not np.isnan(forward):
+        for hyp in (HYP_AXIS_FORWARD, HYP_AXIS_REVERSE):
+            direction = forward if hyp == HYP_AXIS_FORWARD else (forward + 180.0) % 360.0
+            fx, fy, length, spread, concentration = fan_geometry(xs, ys, w, centre_x, centre_y, direction)
+            # the smoothed darkness at the apex's nearest pixel (halves to even, as Python's round)
+            r = min(max(int(np.rint(fy)) - box_row, 0), smooth_box.shape[0] - 1)
+            c = min(max(int(np.rint(fx)) - box_col, 0), smooth_box.shape[1] - 1)
+            pixels[k, :] = True
+            _fan_row(readings[k], hyp, xs, ys, w, samples, pixels[k], fx, fy, direction, length, spread,
+                     concentration, np.float64(smooth_box[r, c]), fan_mass, has_axis)
+            k += 1
+    return readings[:k], pixels[:k]

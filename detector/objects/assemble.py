@@ -472,140 +472,42 @@ def _vents(smooth_local, mask_local, ly, lx, params):
 #: Interpretations of one component, each a set of fan readings (the spot reading is the last one):
 #: the direction modes of its vents (several fans may share a vent), each vent as one fan, and the
 #: whole component as one fan along its principal axis, running either way.
-HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE = 0, 1, 2, 3
+HYP_MODES, HYP_VENTS = _readings.HYP_MODES, _readings.HYP_VENTS
+HYP_AXIS_FORWARD, HYP_AXIS_REVERSE = _readings.HYP_AXIS_FORWARD, _readings.HYP_AXIS_REVERSE
 _HYPOTHESES = (HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE)
 
 
-def _quantile(values, q):
-    """The ``q`` quantile of a 1-D array by the nearest lower rank (one partition)."""
-    k = int(q * (values.size - 1))
-    return float(np.partition(values, k)[k])
+#: Where each field of a fan reading sits in the rows of :func:`_readings.fan_readings`.
+_FIELD = {name: i for i, name in enumerate(_readings.READING_FIELDS)}
+#: The fields that open a fan reading's features (after the constant 1), in order.
+_BASE_FIELDS = ("length_px", "opening_deg", "share", "vent_dark", "dark_mean", "vote", "p_fan", "concentration")
+#: The fields that close them (after the interpretation's one-hot and count), in order.
+_SHAPE_FIELDS = ("widening", "fading", "apex_dark", "axis_agreement")
 
 
-def _fan_geometry(xs, ys, w, start_x, start_y, direction):
-    """Apex, length, spread and concentration of a fan of pixels (xs, ys) running ``direction`` from a start.
+def _fan_readings(xs, ys, w, w32, samples, modes, owner, vx, vy, vent_dark, smooth, box, params, has_axis, split):
+    """A component's fan readings under every interpretation (modes, then vents when ``split``, then
+    the principal axis either way), as dicts (see :func:`_fan_dicts`).
 
-    The apex is pulled back from the start to where the pixels begin along the
-    direction (the first percentile), so a start inside the fan (a darkness
-    peak moved into the fan by smoothing) still gives the source; the length
-    reaches the 97th percentile of the pixels' distances from it, and the spread
-    is the opening of a sector of that radius and the pixels' area (L^2 theta / 2).
+    The compiled loops of :mod:`detector.objects._readings` read them; the angles
+    that set the vent and axis readings' directions are numpy's (``arctan2``), taken
+    between their two passes.
     """
-    u_col, u_row = unit_vector(direction)
-    t = (xs - start_x) * u_col + (ys - start_y) * u_row
-    back = min(_quantile(t, 0.01), 0.0)
-    fx, fy = start_x + back * u_col, start_y + back * u_row
-    dx, dy = xs - fx, ys - fy
-    r = np.hypot(dx, dy)
-    length = max(_quantile(r, 0.97), 3.0)
-    spread = float(np.clip(np.degrees(2.0 * xs.size / length**2), 5.0, 180.0))
-    far = r > max(3.0, 0.25 * float(r.max()))
-    if far.sum() >= 3:
-        phi = np.radians(direction_deg(dx[far], dy[far]))
-        wr = w[far] * r[far]
-        concentration = float(np.hypot((wr * np.sin(phi)).sum(), (wr * np.cos(phi)).sum()) / max(wr.sum(), 1e-9))
-    else:
-        concentration = 1.0
-    return fx, fy, length, spread, concentration
-
-
-def _mass_profile(xs, ys, w, fx, fy, direction, length):
-    """How the dark mass runs along a fan reading: widening, fading and darkness at the apex.
-
-    Returns
-    -------
-    widening : float
-        (far width - near width) / (sum), widths the RMS lateral offsets of the
-        pixels in the far and near thirds of the length; > 0 when the mass
-        widens away from the apex, as a fan does.
-    fading : float
-        (near darkness - far darkness) / (sum); > 0 when the mass is darkest near the apex.
-    apex_dark : float
-        Mean darkness within a sixth of the length (at least 4 px) of the apex over
-        the reading's mean darkness.
-    """
-    u_col, u_row = unit_vector(direction)
-    dx, dy = xs - fx, ys - fy
-    t = dx * u_col + dy * u_row
-    s = -dx * u_row + dy * u_col
-    near, far = t <= length / 3.0, t >= 2.0 * length / 3.0
-
-    def rms(v):
-        return float(np.sqrt(np.mean(v * v))) if v.size else 0.0
-
-    wn, wf = rms(s[near]), rms(s[far])
-    dn = float(w[near].mean()) if near.any() else 0.0
-    df = float(w[far].mean()) if far.any() else 0.0
-    close = np.hypot(dx, dy) <= max(length / 6.0, 4.0)
-    mean_dark = max(float(w.mean()), 1e-6)
-    apex_dark = float(w[close].mean()) / mean_dark if close.any() else 0.0
-    return (wf - wn) / max(wf + wn, 1e-6), (dn - df) / max(dn + df, 1e-6), apex_dark
-
-
-def _reading_context(samples, w32):
-    """Per-component sums the reading features share: the fan mass of the component."""
-    return max(float(np.average(samples[1], weights=w32)), 1e-6)
-
-
-def _describe_fan(hyp, xs, ys, w, samples, mine, fx, fy, direction, length, spread, concentration, vent_dark,
-                  fan_mass, has_axis, n_total):
-    """A fan reading (contract fields, ``_pixels``, ``_hyp`` and ``_features``) of the pixels ``mine``."""
-    pxs, pys, pw = xs[mine], ys[mine], w[mine]
-    d_col, d_row = unit_vector(direction)
-    ws = samples[:, mine]
-    weights = np.maximum(pw, 1e-9)
-    mean = ws @ weights / weights.sum()
-    vote = float(np.clip((mean[3] * d_col + mean[4] * d_row) / fan_mass, -1.0, 1.0))
-    doubled = np.radians(2.0 * direction)
-    norm = max(float(np.hypot(mean[5], mean[6])), 1e-6)
-    axis_agreement = float((mean[5] * np.cos(doubled) + mean[6] * np.sin(doubled)) / norm) if has_axis else 0.0
-    axis = float((0.5 * np.degrees(np.arctan2(mean[6], mean[5]))) % 180.0) if has_axis else direction % 180.0
-    widening, fading, apex_dark = _mass_profile(pxs, pys, pw, fx, fy, direction, length)
-    share = mine.sum() / max(n_total, 1)
-    reading = dict(kind="fan", x_px=float(fx), y_px=float(fy), direction_deg=float(direction % 360.0),
-                   length_px=float(length), opening_deg=float(spread), _pixels=mine, _hyp=hyp,
-                   direction_confidence=0.5 * (1.0 + vote), axis_deg=axis)
-    reading["_base"] = [1.0, length, spread, share, vent_dark, float(pw.mean()), vote, float(mean[1]),
-                        concentration]
-    reading["_shape"] = [widening, fading, apex_dark, axis_agreement]
-    return reading
-
-
-def _alternative_fans(xs, ys, w, samples, vents_x, vents_y, vent_dark, smooth_at, fan_mass, has_axis,
-                      min_vent_px, split):
-    """Fan readings of the component under the vent and axis interpretations (see :data:`HYP_VENTS`)."""
-    n = xs.size
-    out = []
+    vents_x, vents_y = (vx + box[1].start).astype(float), (vy + box[0].start).astype(float)
     if split:
-        d2 = (xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2
-        vent_of = np.argmin(d2, axis=1)
-        for k in range(vents_x.size):
-            mine = vent_of == k
-            if mine.sum() < min_vent_px:
-                continue
-            dx, dy = xs[mine] - vents_x[k], ys[mine] - vents_y[k]
-            r = np.hypot(dx, dy)
-            far = r > max(3.0, 0.25 * float(r.max()))
-            if far.sum() < 3:
-                continue
-            phi = np.radians(direction_deg(dx[far], dy[far]))
-            wr = w[mine][far] * r[far]
-            direction = float(np.degrees(np.arctan2((wr * np.sin(phi)).sum(), (wr * np.cos(phi)).sum())) % 360.0)
-            geo = _fan_geometry(xs[mine], ys[mine], w[mine], vents_x[k], vents_y[k], direction)
-            out.append(_describe_fan(HYP_VENTS, xs, ys, w, samples, mine, geo[0], geo[1], direction, *geo[2:],
-                                     float(vent_dark[k]), fan_mass, has_axis, n))
-    if n >= 3:
-        cx, cy = np.average(xs, weights=w), np.average(ys, weights=w)
-        cov = np.cov(np.vstack([xs - cx, ys - cy]), aweights=w)
-        _, vecs = np.linalg.eigh(cov)
-        forward = float(direction_deg(vecs[0, 1], vecs[1, 1]))
-        everything = np.ones(n, dtype=bool)
-        for hyp, direction in ((HYP_AXIS_FORWARD, forward), (HYP_AXIS_REVERSE, (forward + 180.0) % 360.0)):
-            geo = _fan_geometry(xs, ys, w, cx, cy, direction)
-            apex_dark = float(smooth_at(geo[0], geo[1]))
-            out.append(_describe_fan(hyp, xs, ys, w, samples, everything, geo[0], geo[1], direction, *geo[2:],
-                                     apex_dark, fan_mass, has_axis, n))
-    return out
+        # each pixel's nearest vent (the first on ties) and its direction from there
+        vent_of = np.argmin((xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2, axis=1)
+        phi = np.radians(direction_deg(xs - vents_x[vent_of], ys - vents_y[vent_of]))
+    else:
+        vent_of, phi = np.empty(0, dtype=np.int64), np.empty(0)
+    pulls, (cx, cy, ux, uy) = _readings.reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y,
+                                                      max(3, params.min_area_px // 2))
+    vent_directions = np.degrees(np.arctan2(pulls[:, 0], pulls[:, 1])) % 360.0
+    forward = float(direction_deg(ux, uy))
+    readings, pixels = _readings.fan_readings(
+        xs, ys, w, w32, samples, modes, owner, vent_of, vents_x, vents_y, vent_directions, vent_dark, cx, cy,
+        forward, smooth[box], box[0].start, box[1].start, has_axis)
+    return _fan_dicts(readings, pixels, has_axis)
 
 
 #: A vent's spot holds the pixels nearest that vent whose darkness is at least this share of the vent's.
@@ -650,16 +552,37 @@ def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
     return out
 
 
-def _finish_readings(fans):
-    """Feature vectors of a component's fan readings, once every reading is known."""
-    count = {h: sum(1 for f in fans if f["_hyp"] == h) for h in _HYPOTHESES}
-    for f in fans:
-        hyp = f["_hyp"]
-        onehot = [float(hyp == HYP_MODES), float(hyp == HYP_VENTS),
-                  float(hyp in (HYP_AXIS_FORWARD, HYP_AXIS_REVERSE))]
-        f["_features"] = np.array(f.pop("_base") + onehot + [float(count[hyp])] + f.pop("_shape"),
-                                  dtype=np.float32)
-    return fans
+def _fan_dicts(readings, pixels, has_axis):
+    """A component's fan readings as dicts from the rows of :func:`_readings.fan_readings`.
+
+    Each holds the contract fields, ``_pixels`` (the reading's mask over the
+    component's pixels), ``_hyp`` (its interpretation) and ``_features``: the
+    constant 1, length, opening, share, vent darkness, mean darkness, polarity
+    vote, fan probability and concentration; the interpretation one-hot (modes,
+    vents, axis) and how many readings it has; widening, fading, apex darkness
+    and axis agreement (float32). ``axis_deg`` (degrees mod 180) is half the
+    angle of the mean doubled-angle axis under the reading, or without axis maps
+    the reading's direction mod 180.
+    """
+    if len(readings) == 0:
+        return []
+    if has_axis:
+        # numpy's arctan2, as the detections' axis has always been taken
+        axis = (0.5 * np.degrees(np.arctan2(readings[:, _FIELD["axis_sin"]], readings[:, _FIELD["axis_cos"]]))) % 180.0
+    else:
+        axis = readings[:, _FIELD["direction_deg"]] % 180.0
+    hyp = readings[:, _FIELD["hyp"]].astype(np.int64)
+    siblings = np.bincount(hyp, minlength=len(_HYPOTHESES))[hyp]
+    features = np.column_stack(
+        [np.ones(len(hyp))] + [readings[:, _FIELD[name]] for name in _BASE_FIELDS]
+        + [hyp == HYP_MODES, hyp == HYP_VENTS, (hyp == HYP_AXIS_FORWARD) | (hyp == HYP_AXIS_REVERSE), siblings]
+        + [readings[:, _FIELD[name]] for name in _SHAPE_FIELDS]).astype(np.float32)
+    fields = zip(hyp.tolist(), *(readings[:, _FIELD[name]].tolist() for name in (
+        "x_px", "y_px", "direction_deg", "length_px", "opening_deg", "vote")), axis.tolist())
+    return [dict(kind="fan", x_px=x, y_px=y, direction_deg=direction, length_px=length, opening_deg=opening,
+                 _pixels=pixels[i], _hyp=h, direction_confidence=0.5 * (1.0 + vote), axis_deg=axis,
+                 _features=features[i])
+            for i, (h, x, y, direction, length, opening, vote, axis) in enumerate(fields)]
 
 
 #: Darkness (robust z-score) below which a view's mean magnitude no longer scales it.
@@ -823,25 +746,8 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
             xf, yf, lx.astype(np.int64), ly.astype(np.int64), w64, w, samples, vx, vy, vent_dark,
             max(3, params.min_area_px // 2), params.split_min_separation_deg, params.split_min_share,
             _MODE_SMOOTHING)
-        has_axis = axis_maps is not None
-        fan_mass = _reading_context(samples, w)
-        fans = []
-        for j, row in enumerate(rows):
-            f = dict(zip(_readings.FAN_FIELDS, (float(v) for v in row)))
-            fans.append(_describe_fan(HYP_MODES, xf, yf, w64, samples, owner == j, f["x_px"], f["y_px"],
-                                      f["direction_deg"], f["length_px"], f["opening_deg"], f["concentration"],
-                                      f["vent_dark"], fan_mass, has_axis, len(xs)))
-        local_smooth = smooth[sl]
-
-        def smooth_at(x, y, _r0=sl[0].start, _c0=sl[1].start, _s=local_smooth):
-            r = min(max(int(round(y)) - _r0, 0), _s.shape[0] - 1)
-            c = min(max(int(round(x)) - _c0, 0), _s.shape[1] - 1)
-            return _s[r, c]
-
-        fans += _alternative_fans(xf, yf, w64, samples, (vx + sl[1].start).astype(float),
-                                  (vy + sl[0].start).astype(float), vent_dark, smooth_at, fan_mass, has_axis,
-                                  max(3, params.min_area_px // 2), split=len(rows) > n_vents)
-        fans = _finish_readings(fans)
+        fans = _fan_readings(xf, yf, w64, w, samples, rows, owner, vx, vy, vent_dark, smooth, sl, params,
+                             axis_maps is not None, split=len(rows) > n_vents)
         ring_sl = tuple(slice(max(q.start - 6, 0), q.stop + 6) for q in sl)
         local = labels[ring_sl] == lab
         ring = _kernels.city_block_ring(local, np.ascontiguousarray(valid[ring_sl]), 5)

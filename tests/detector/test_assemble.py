@@ -15,7 +15,6 @@ from detector.objects.assemble import (
     HYP_AXIS_REVERSE,
     HYP_MODES,
     OBJECT_FEATURE_NAMES,
-    _mass_profile,
     candidate_rows,
     find_candidates,
     grey_opening_square,
@@ -610,7 +609,7 @@ def test_mass_profile_of_a_sector_darkest_at_its_apex():
     cover = rasterise_features(pd.DataFrame([row]), (140, 140)).fan_cover
     ys, xs = np.nonzero(cover)
     w = np.exp(-np.hypot(xs - 60.0, ys - 60.0) / 25.0)
-    widening, fading, apex_dark = _mass_profile(xs.astype(float), ys.astype(float), w, 60.0, 60.0, 135.0, 50.0)
+    widening, fading, apex_dark = _readings.mass_profile(xs.astype(float), ys.astype(float), w, 60.0, 60.0, 135.0, 50.0)
     # A wedge's half-width grows as t tan(h) with pixel density growing as t: the RMS lateral offset of a
     # third [a, b] of its length is tan(h) / sqrt(3) * sqrt((b^4 - a^4) / (2 (b^2 - a^2))), i.e.
     # 0.2357 L for the near third and 0.8498 L for the far one, so (far - near) / (far + near) = 0.566
@@ -618,7 +617,7 @@ def test_mass_profile_of_a_sector_darkest_at_its_apex():
     assert widening == pytest.approx((0.8498 - 0.2357) / (0.8498 + 0.2357), abs=0.05)
     assert fading > 0.3 and apex_dark > 1.0
     far_x, far_y = 60.0 + 50.0 * np.sin(np.radians(135.0)), 60.0 - 50.0 * np.cos(np.radians(135.0))
-    back = _mass_profile(xs.astype(float), ys.astype(float), w, far_x, far_y, 315.0, 50.0)
+    back = _readings.mass_profile(xs.astype(float), ys.astype(float), w, far_x, far_y, 315.0, 50.0)
     assert back[0] < 0 and back[1] < 0
 
 
