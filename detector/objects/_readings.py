@@ -17,7 +17,7 @@ from numba import njit
 
 from ..tile._kernels import pairwise_block as _block
 
-__all__ = ["psum", "quantile", "lower_quantile", "direction_histogram", "circular_smooth", "direction_modes",
+__all__ = ["psum", "quantile", "lower_quantile", "middle_pair", "direction_histogram", "circular_smooth", "direction_modes",
            "axis_moments", "spot_reading", "describe_component", "component_summary", "fan_geometry",
            "mass_profile", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS", "READING_FIELDS", "HYP_MODES",
            "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
@@ -97,6 +97,79 @@ def quantile(values, q):
     t = virtual - lo
     diff = b - a
     return b - diff * (1 - t) if t >= 0.5 else a + diff * t
+
+
+#: Bins of one pass of :func:`middle_pair`'s selection (between the outer two, below and above them).
+_SELECT_BINS = 2048
+
+
+@njit(cache=True, nogil=True)
+def middle_pair(values):
+    """The two middle order statistics of a non-empty 1-D array without NaN: the values
+    of rank ``(n - 1) // 2`` and ``n // 2`` (0-based; equal for odd n), in its dtype.
+
+    The same values as sorting (or ``np.partition`` at both ranks) gives, found by
+    bucketing: the values are counted into equal bins between the 1st and 99th
+    percentiles of a regular sample of them, with one bin below and one above (the
+    bin of a value never decreases as the value grows); only the bins that hold the
+    two ranks are kept, and so on until few values are left, which are sorted. A
+    pass reads what is left twice, where a partition moves every value several times.
+    """
+    k_lo, k_hi = (values.size - 1) // 2, values.size // 2
+    work = values
+    counts = np.zeros(_SELECT_BINS + 2, dtype=np.int64)
+    while True:
+        m = work.size
+        if m <= 256:
+            ordered = np.sort(work)
+            return ordered[k_lo], ordered[k_hi]
+        sample = np.sort(work[::max(m // 512, 1)])
+        lo = np.float64(sample[sample.size // 100])
+        hi = np.float64(sample[sample.size - 1 - sample.size // 100])
+        if not hi > lo:
+            lo, hi = np.float64(work.min()), np.float64(work.max())
+            if not hi > lo:
+                return work[0], work[0]
+        scale = _SELECT_BINS / (hi - lo)
+        counts[:] = 0
+        for i in range(m):
+            x = np.float64(work[i])
+            if x < lo:
+                counts[0] += 1
+            elif x > hi:
+                counts[_SELECT_BINS + 1] += 1
+            else:
+                counts[1 + min(int((x - lo) * scale), _SELECT_BINS - 1)] += 1
+        before = 0
+        b = 0
+        while before + counts[b] <= k_lo:
+            before += counts[b]
+            b += 1
+        b_lo, upto = b, before
+        while upto + counts[b] <= k_hi:
+            upto += counts[b]
+            b += 1
+        b_hi = b
+        kept = upto + counts[b_hi] - before
+        if kept == m:  # the two ranks lie in the outer bins: sort what is left
+            ordered = np.sort(work)
+            return ordered[k_lo], ordered[k_hi]
+        nxt = np.empty(kept, dtype=work.dtype)
+        j = 0
+        for i in range(m):
+            x = np.float64(work[i])
+            if x < lo:
+                b = 0
+            elif x > hi:
+                b = _SELECT_BINS + 1
+            else:
+                b = 1 + min(int((x - lo) * scale), _SELECT_BINS - 1)
+            if b >= b_lo and b <= b_hi:
+                nxt[j] = work[i]
+                j += 1
+        work = nxt
+        k_lo -= before
+        k_hi -= before
 
 
 @njit(cache=True, nogil=True)

@@ -387,18 +387,16 @@ def grey_opening_square(image, size):
 
 
 def _median(v):
-    """``np.median(v)`` of a 1-D array without NaN, to the last bit, by one ``np.partition``.
+    """``np.median(v)`` of a 1-D array without NaN, to the last bit, from its two middle
+    order statistics (:func:`_readings.middle_pair`, compiled selection).
 
-    numpy's median partitions at both middle ranks and at the end (to look for
-    NaN), which costs several times one partition here; the middle pair is
-    averaged as ``np.mean`` does (summed from zero in the array's dtype, divided by 2).
+    The middle pair of an even-sized array is averaged as ``np.mean`` does (summed
+    from zero in the array's dtype, divided by 2).
     """
-    n = v.size
-    h = n // 2
-    part = np.partition(v, h)
-    if n % 2:
-        return np.mean(part[h:h + 1])
-    return np.mean(np.array([part[:h].max(), part[h]], dtype=v.dtype))
+    lower, upper = _readings.middle_pair(v)
+    if v.size % 2:
+        return v.dtype.type(upper)
+    return np.mean(np.array([lower, upper], dtype=v.dtype))
 
 
 #: Every how many valid pixels one enters the robust spread (as good an estimate, several times faster).
@@ -407,7 +405,11 @@ _SPREAD_EVERY = 4
 
 def _robust_spread(values, valid):
     """1.4826 MAD of a map's valid pixels (0 when there are none), from every 4th of them."""
-    return _spread_of_sample(values[valid][::_SPREAD_EVERY])
+    if values.dtype == np.float32:
+        sample = _kernels.valid_sample(values, np.ascontiguousarray(valid, dtype=bool), _SPREAD_EVERY)
+    else:
+        sample = values[valid][::_SPREAD_EVERY]
+    return _spread_of_sample(sample)
 
 
 def _spread_of_sample(v):
@@ -417,21 +419,18 @@ def _spread_of_sample(v):
     return 1.4826 * _median(np.abs(v - _median(v)))
 
 
-def _above_spread(values, valid, threshold):
-    """``_renormalised(values, valid) > threshold`` of a float32 map, by compiled passes."""
+def _above_spread(values, valid, threshold, mad):
+    """``_renormalised(values, valid, mad) > threshold``, by one compiled pass for a float32 map."""
     if values.dtype != np.float32:
-        return _renormalised(values, valid) > threshold
-    valid = np.ascontiguousarray(valid, dtype=bool)
-    mad = _spread_of_sample(_kernels.valid_sample(values, valid, _SPREAD_EVERY))
+        return _renormalised(values, valid, mad) > threshold
     t = np.float32(threshold)
     if not mad > 0:
         return np.full(values.shape, np.float32(0.0) > t)
-    return _kernels.ratio_above(values, valid, np.float32(mad), t)
+    return _kernels.ratio_above(values, np.ascontiguousarray(valid, dtype=bool), np.float32(mad), t)
 
 
-def _renormalised(values, valid):
-    """A map divided by the robust spread (1.4826 MAD) of its valid pixels; 0 off them."""
-    mad = _robust_spread(values, valid)
+def _renormalised(values, valid, mad):
+    """A map divided by ``mad``, the robust spread of its valid pixels (:func:`_robust_spread`); 0 off them."""
     return np.where(valid, values / mad, 0.0) if mad > 0 else np.zeros_like(values)
 
 
@@ -690,11 +689,12 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
     smooth = np.where(valid, _kernels.gaussian(opened, 1.0), 0.0)
     # components grow where the map smoothed by grow_smooth_px, over its robust spread, exceeds grow_k
     grown = _kernels.gaussian(opened, params.grow_smooth_px)
-    grow_mask = _above_spread(grown, valid, params.grow_k)
+    grow_spread = _robust_spread(grown, valid)
+    grow_mask = _above_spread(grown, valid, params.grow_k, grow_spread)
     level = smooth
     if params.broad_seed_k > 0:
         # seeds from the smoothed map too, rescaled so that broad_seed_k there counts as seed_k
-        broad = _renormalised(grown, valid) * np.float32(params.seed_k / params.broad_seed_k)
+        broad = _renormalised(grown, valid, grow_spread) * np.float32(params.seed_k / params.broad_seed_k)
         level = np.maximum(smooth, broad.astype(smooth.dtype))
     # numbered as scipy.ndimage.label numbers them; areas, seeds, boxes and pixels in the same passes
     labels, area, seeded, box, start, pixel_rows, pixel_cols = _kernels.label_components(

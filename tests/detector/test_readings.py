@@ -225,6 +225,32 @@ def test_lower_quantile_is_numpys_partition_at_the_lower_rank(n, q):
     assert _readings.lower_quantile(values, q) == _quantile(values, q)
 
 
+def _selection_cases():
+    rng = np.random.default_rng(3)
+    return {
+        "normal": rng.standard_normal(40001).astype(np.float32),
+        "heavy tails": rng.standard_cauchy(40000).astype(np.float32),
+        "ties": np.round(rng.standard_normal(30000) * 3).astype(np.float32),
+        "one far outlier": np.r_[np.zeros(20000), rng.random(9000) * 1e-3, [1e30]].astype(np.float32),
+        "mostly one value": np.r_[np.full(5000, 2.5), rng.standard_normal(40)].astype(np.float32),
+        "middle in the tail": np.r_[rng.random(600) * 1e6, rng.random(400)].astype(np.float64),
+        "constant": np.ones(3000, np.float32),
+        "strided view": rng.standard_normal(80003)[::4],
+        "just above the sort size": rng.standard_normal(257),
+        "sorted": np.sort(rng.standard_normal(5000)),
+    }
+
+
+@pytest.mark.parametrize("case", list(_selection_cases()))
+def test_middle_pair_is_the_sorted_middle(case):
+    # oracle: numpy's sort; the two middle ranks in the array's own dtype
+    values = _selection_cases()[case]
+    ordered = np.sort(values)
+    lower, upper = _readings.middle_pair(values)
+    assert (lower, upper) == (ordered[(values.size - 1) // 2], ordered[values.size // 2])
+    assert np.asarray(lower, values.dtype) == lower  # exact in the array's dtype
+
+
 @pytest.mark.parametrize("seed", range(6))
 def test_fan_geometry_follows_numpy(seed):
     rng = np.random.default_rng(seed)
