@@ -17,17 +17,16 @@ from numba import njit
 
 from ..tile._kernels import pairwise_block as _block
 
-__all__ = ["psum", "quantile", "lower_quantile", "middle_pair", "direction_histogram", "circular_smooth", "direction_modes",
-           "axis_moments", "spot_reading", "describe_component", "component_summary", "fan_geometry",
-           "mass_profile", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS", "READING_FIELDS", "HYP_MODES",
-           "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
+__all__ = ["psum", "quantile", "lower_quantile", "middle_pair", "direction_histogram", "circular_smooth",
+           "direction_modes", "axis_moments", "spot_reading", "describe_component", "component_summary",
+           "fan_geometry", "mass_profile", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS",
+           "READING_FIELDS", "HYP_MODES", "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
 
 _DEG = 180.0 / np.pi
 _RAD = np.pi / 180.0
 
 #: Columns of the fan rows returned by :func:`describe_component`.
-FAN_FIELDS = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "concentration", "vent_dark",
-              "share", "dark_mean", "vote", "p_fan", "axis_deg")
+FAN_FIELDS = ("x_px", "y_px", "direction_deg", "length_px", "opening_deg", "concentration", "vent_dark")
 
 
 @njit(cache=True, nogil=True)
@@ -477,9 +476,9 @@ def _fans_from_vent(xs, ys, w, ax, ay, min_separation, min_share, smoothing, row
 
 
 @njit(cache=True, nogil=True)
-def describe_component(xs, ys, lx, ly, w, w32, samples, vx, vy, vent_dark, min_vent_px, min_separation,
-                       min_share, smoothing):
-    """The fan readings of one component from its vents.
+def describe_component(xs, ys, lx, ly, w, vx, vy, vent_dark, min_vent_px, min_separation, min_share, smoothing):
+    """The fan readings of one component from its vents, split by the direction modes of each
+    vent's pixels (their features are read by :func:`fan_readings`).
 
     Parameters
     ----------
@@ -487,11 +486,8 @@ def describe_component(xs, ys, lx, ly, w, w32, samples, vx, vy, vent_dark, min_v
         Pixels of the component, tile coordinates.
     lx, ly : int64 (n,)
         The same pixels in the component's box.
-    w, w32 : float64 (n,), float32 (n,)
-        Darkness weights; ``w32`` weighs the float32 maps.
-    samples : float32 (7, n)
-        Class probabilities (none, fan, spot), polarity vector (d_col, d_row) and
-        doubled-angle axis (cos, sin) at each pixel.
+    w : float64 (n,)
+        Darkness weights.
     vx, vy, vent_dark : (n_vents,)
         Vents in the box, strongest first, and their smoothed darkness.
     min_vent_px : int
@@ -537,26 +533,7 @@ def describe_component(xs, ys, lx, ly, w, w32, samples, vx, vy, vent_dark, min_v
             if part_owner[i] >= 0:
                 owner[idx[i]] = n_fans + part_owner[i]
         n_fans += m
-    rows = rows[:n_fans]
-    # averages of float32 maps with float32 weights are taken in float32, as np.average does
-    p_fan = samples[1]
-    fan_mass = max(np.float64(_average(p_fan, w32)), 1e-6)
-    for f in range(n_fans):
-        mine = owner == f
-        wm = w32[mine]
-        d_col, d_row = np.sin(rows[f, 2] * _RAD), -np.cos(rows[f, 2] * _RAD)
-        # The orientation model's vote along this fan's direction: +1 agrees, -1 opposes.
-        vote = (np.float64(_average(samples[3][mine], wm)) * d_col
-                + np.float64(_average(samples[4][mine], wm)) * d_row) / fan_mass
-        vote = min(max(vote, -1.0), 1.0)
-        c2 = np.float64(_average(samples[5][mine], wm))
-        s2 = np.float64(_average(samples[6][mine], wm))
-        rows[f, 7] = mine.sum() / n
-        rows[f, 8] = _mean(wm)
-        rows[f, 9] = vote
-        rows[f, 10] = _average(p_fan[mine], wm)
-        rows[f, 11] = (0.5 * np.arctan2(s2, c2) * _DEG) % 180.0
-    return rows, owner, n_vents
+    return rows[:n_fans], owner, n_vents
 
 
 #: Interpretations of one component (see :mod:`detector.objects.assemble`): the direction modes of
@@ -567,6 +544,12 @@ HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE = 0, 1, 2, 3
 READING_FIELDS = ("hyp", "x_px", "y_px", "direction_deg", "length_px", "opening_deg", "concentration", "vent_dark",
                   "share", "dark_mean", "vote", "p_fan", "axis_cos", "axis_sin", "widening", "fading", "apex_dark",
                   "axis_agreement")
+
+
+#: Columns of :data:`READING_FIELDS` that the features of a fan reading open with, after the constant 1:
+#: length, opening, share, vent darkness, mean darkness, vote, fan probability, concentration.
+_FEATURE_FIELD = np.array([READING_FIELDS.index(name) for name in (
+    "length_px", "opening_deg", "share", "vent_dark", "dark_mean", "vote", "p_fan", "concentration")])
 
 
 @njit(cache=True, nogil=True)
@@ -832,6 +815,8 @@ def fan_readings(xs, ys, w, w32, samples, modes, owner, vent_of, vents_x, vents_
         order, then one per vent read, then the axis readings (forward, reverse).
     pixels : bool (n_readings, n)
         The pixels of each reading.
+    features : float32 (n_readings, 17)
+        The first features of each reading (:func:`_reading_features`).
     """
     n = xs.size
     n_modes, n_vents = modes.shape[0], vents_x.size
@@ -868,4 +853,29 @@ def fan_readings(xs, ys, w, w32, samples, modes, owner, vent_of, vents_x, vents_
             _fan_row(readings[k], hyp, xs, ys, w, samples, pixels[k], fx, fy, direction, length, spread,
                      concentration, np.float64(smooth_box[r, c]), fan_mass, has_axis)
             k += 1
-    return readings[:k], pixels[:k]
+    return readings[:k], pixels[:k], _reading_features(readings[:k])
+
+
+@njit(cache=True, nogil=True)
+def _reading_features(readings):
+    """The first features of each fan reading (the ``read_*`` features before the view), float32:
+    1, length, opening, share, vent darkness, mean darkness, vote, fan probability,
+    concentration, the interpretation one-hot (modes, vents, axis), how many readings
+    the interpretation has, widening, fading, apex darkness and axis agreement."""
+    k = readings.shape[0]
+    siblings = np.zeros(4, dtype=np.int64)
+    for i in range(k):
+        siblings[int(readings[i, 0])] += 1
+    out = np.empty((k, 17), dtype=np.float32)
+    for i in range(k):
+        hyp = int(readings[i, 0])
+        out[i, 0] = 1.0
+        for j in range(8):  # length_px ... concentration, then vent_dark ... p_fan, as the features order them
+            out[i, 1 + j] = readings[i, _FEATURE_FIELD[j]]
+        out[i, 9] = hyp == HYP_MODES
+        out[i, 10] = hyp == HYP_VENTS
+        out[i, 11] = hyp == HYP_AXIS_FORWARD or hyp == HYP_AXIS_REVERSE
+        out[i, 12] = siblings[hyp]
+        for j in range(4):  # widening, fading, apex_dark, axis_agreement
+            out[i, 13 + j] = readings[i, 14 + j]
+    return out

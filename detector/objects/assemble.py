@@ -478,19 +478,20 @@ _HYPOTHESES = (HYP_MODES, HYP_VENTS, HYP_AXIS_FORWARD, HYP_AXIS_REVERSE)
 
 #: Where each field of a fan reading sits in the rows of :func:`_readings.fan_readings`.
 _FIELD = {name: i for i, name in enumerate(_readings.READING_FIELDS)}
-#: The fields that open a fan reading's features (after the constant 1), in order.
-_BASE_FIELDS = ("length_px", "opening_deg", "share", "vent_dark", "dark_mean", "vote", "p_fan", "concentration")
-#: The fields that close them (after the interpretation's one-hot and count), in order.
-_SHAPE_FIELDS = ("widening", "fading", "apex_dark", "axis_agreement")
 
 
 def _fan_readings(xs, ys, w, w32, samples, modes, owner, vx, vy, vent_dark, smooth, box, params, has_axis, split):
     """A component's fan readings under every interpretation (modes, then vents when ``split``, then
-    the principal axis either way), as dicts (see :func:`_fan_dicts`).
+    the principal axis either way), as dicts.
 
-    The compiled loops of :mod:`detector.objects._readings` read them; the angles
-    that set the vent and axis readings' directions are numpy's (``arctan2``), taken
-    between their two passes.
+    Each holds the contract fields, ``_pixels`` (the reading's mask over the
+    component's pixels), ``_hyp`` (its interpretation) and ``_features`` (its first
+    reading features, float32, see :func:`_readings.fan_readings`). ``axis_deg``
+    (degrees mod 180) is half the angle of the mean doubled-angle axis under the
+    reading, or without axis maps the reading's direction mod 180. The compiled
+    loops of :mod:`detector.objects._readings` read them; the angles that set the
+    vent and axis readings' directions are numpy's (``arctan2``), taken between
+    their two passes.
     """
     vents_x, vents_y = (vx + box[1].start).astype(float), (vy + box[0].start).astype(float)
     if split:
@@ -503,10 +504,23 @@ def _fan_readings(xs, ys, w, w32, samples, modes, owner, vx, vy, vent_dark, smoo
                                                       max(3, params.min_area_px // 2))
     vent_directions = np.degrees(np.arctan2(pulls[:, 0], pulls[:, 1])) % 360.0
     forward = float(direction_deg(ux, uy))
-    readings, pixels = _readings.fan_readings(
+    readings, pixels, features = _readings.fan_readings(
         xs, ys, w, w32, samples, modes, owner, vent_of, vents_x, vents_y, vent_directions, vent_dark, cx, cy,
         forward, smooth[box], box[0].start, box[1].start, has_axis)
-    return _fan_dicts(readings, pixels, has_axis)
+    if len(readings) == 0:
+        return []
+    if has_axis:
+        # numpy's arctan2, as the detections' axis has always been taken
+        axis = (0.5 * np.degrees(np.arctan2(readings[:, _FIELD["axis_sin"]], readings[:, _FIELD["axis_cos"]]))) % 180.0
+    else:
+        axis = readings[:, _FIELD["direction_deg"]] % 180.0
+    hyp = readings[:, _FIELD["hyp"]].astype(np.int64)
+    fields = zip(hyp.tolist(), *(readings[:, _FIELD[name]].tolist() for name in (
+        "x_px", "y_px", "direction_deg", "length_px", "opening_deg", "vote")), axis.tolist())
+    return [dict(kind="fan", x_px=x, y_px=y, direction_deg=direction, length_px=length, opening_deg=opening,
+                 _pixels=pixels[i], _hyp=h, direction_confidence=0.5 * (1.0 + vote), axis_deg=axis,
+                 _features=features[i])
+            for i, (h, x, y, direction, length, opening, vote, axis) in enumerate(fields)]
 
 
 #: A vent's spot holds the pixels nearest that vent whose darkness is at least this share of the vent's.
@@ -549,39 +563,6 @@ def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
     for r in out:
         r["_features"][_READ_INDEX["read_n_siblings"]] = len(out)
     return out
-
-
-def _fan_dicts(readings, pixels, has_axis):
-    """A component's fan readings as dicts from the rows of :func:`_readings.fan_readings`.
-
-    Each holds the contract fields, ``_pixels`` (the reading's mask over the
-    component's pixels), ``_hyp`` (its interpretation) and ``_features``: the
-    constant 1, length, opening, share, vent darkness, mean darkness, polarity
-    vote, fan probability and concentration; the interpretation one-hot (modes,
-    vents, axis) and how many readings it has; widening, fading, apex darkness
-    and axis agreement (float32). ``axis_deg`` (degrees mod 180) is half the
-    angle of the mean doubled-angle axis under the reading, or without axis maps
-    the reading's direction mod 180.
-    """
-    if len(readings) == 0:
-        return []
-    if has_axis:
-        # numpy's arctan2, as the detections' axis has always been taken
-        axis = (0.5 * np.degrees(np.arctan2(readings[:, _FIELD["axis_sin"]], readings[:, _FIELD["axis_cos"]]))) % 180.0
-    else:
-        axis = readings[:, _FIELD["direction_deg"]] % 180.0
-    hyp = readings[:, _FIELD["hyp"]].astype(np.int64)
-    siblings = np.bincount(hyp, minlength=len(_HYPOTHESES))[hyp]
-    features = np.column_stack(
-        [np.ones(len(hyp))] + [readings[:, _FIELD[name]] for name in _BASE_FIELDS]
-        + [hyp == HYP_MODES, hyp == HYP_VENTS, (hyp == HYP_AXIS_FORWARD) | (hyp == HYP_AXIS_REVERSE), siblings]
-        + [readings[:, _FIELD[name]] for name in _SHAPE_FIELDS]).astype(np.float32)
-    fields = zip(hyp.tolist(), *(readings[:, _FIELD[name]].tolist() for name in (
-        "x_px", "y_px", "direction_deg", "length_px", "opening_deg", "vote")), axis.tolist())
-    return [dict(kind="fan", x_px=x, y_px=y, direction_deg=direction, length_px=length, opening_deg=opening,
-                 _pixels=pixels[i], _hyp=h, direction_confidence=0.5 * (1.0 + vote), axis_deg=axis,
-                 _features=features[i])
-            for i, (h, x, y, direction, length, opening, vote, axis) in enumerate(fields)]
 
 
 #: Darkness (robust z-score) below which a view's mean magnitude no longer scales it.
@@ -642,16 +623,19 @@ def _add_views(candidates, dark):
         return candidates
     smooth = _kernels.gaussian(np.ascontiguousarray(dark, dtype=np.float32), 1.0)
     readings = [r for c in candidates for r in c.fans + c.spots]
+    is_fan = np.array([r["kind"] == "fan" for r in readings])
     geometry = np.empty((len(readings), 5))
-    for i, r in enumerate(readings):
-        if r["kind"] == "fan":
-            half = np.tan(np.radians(np.clip(r["opening_deg"] / 2.0, 8.0, 70.0)))
-            geometry[i] = r["x_px"], r["y_px"], r["direction_deg"], r["length_px"], r["length_px"] * half
-        else:
-            # a spot is seen along its major axis, from one end of the ellipse to the other
-            d_col, d_row = unit_vector(r["axis_deg"])
-            a = r["semi_major_px"]
-            geometry[i] = r["x_px"] - a * d_col, r["y_px"] - a * d_row, r["axis_deg"], 2.0 * a, r["semi_minor_px"]
+    x, y, direction, length, opening = np.array(
+        [(r["x_px"], r["y_px"], r["direction_deg"], r["length_px"], r["opening_deg"])
+         for r, fan in zip(readings, is_fan) if fan], dtype=float).reshape(-1, 5).T
+    half = np.tan(np.radians(np.clip(opening / 2.0, 8.0, 70.0)))
+    geometry[is_fan] = np.column_stack([x, y, direction, length, length * half])
+    # a spot is seen along its major axis, from one end of the ellipse to the other
+    x, y, axis, a, b = np.array(
+        [(r["x_px"], r["y_px"], r["axis_deg"], r["semi_major_px"], r["semi_minor_px"])
+         for r, fan in zip(readings, is_fan) if not fan], dtype=float).reshape(-1, 5).T
+    d_col, d_row = unit_vector(axis)
+    geometry[~is_fan] = np.column_stack([x - a * d_col, y - a * d_row, axis, 2.0 * a, b])
     views = reading_view(smooth, *geometry.T).astype(np.float32)
     for r, v in zip(readings, views):
         r["_features"] = np.concatenate([r["_features"], v])
@@ -743,7 +727,7 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         minor_var, major_var, skew, widening, asym = _readings.axis_moments(xf, yf, w64, w)
         vx, vy, vent_dark = _vents(smooth[sl], mask_local, ly, lx, params)
         rows, owner, n_vents = _readings.describe_component(
-            xf, yf, lx.astype(np.int64), ly.astype(np.int64), w64, w, samples, vx, vy, vent_dark,
+            xf, yf, lx.astype(np.int64), ly.astype(np.int64), w64, vx, vy, vent_dark,
             max(3, params.min_area_px // 2), params.split_min_separation_deg, params.split_min_share,
             _MODE_SMOOTHING)
         fans = _fan_readings(xf, yf, w64, w, samples, rows, owner, vx, vy, vent_dark, smooth, sl, params,

@@ -207,7 +207,7 @@ def _component(seed, *, n_vents=3, has_axis=True):
     params = AssemblyParams()
     w = w32.astype(np.float64)
     modes, owner, _ = _readings.describe_component(
-        xf, yf, (xs - box[1].start).astype(np.int64), (ys - box[0].start).astype(np.int64), w, w32, samples, vx, vy,
+        xf, yf, (xs - box[1].start).astype(np.int64), (ys - box[0].start).astype(np.int64), w, vx, vy,
         vent_dark, max(3, params.min_area_px // 2), params.split_min_separation_deg, params.split_min_share,
         _MODE_SMOOTHING)
     return dict(xs=xf, ys=yf, w=w, w32=w32, samples=samples, modes=modes, owner=owner, vx=vx, vy=vy,
