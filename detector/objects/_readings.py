@@ -19,7 +19,7 @@ from ..tile._kernels import pairwise_block as _block
 
 __all__ = ["psum", "quantile", "lower_quantile", "middle_pair", "direction_histogram", "circular_smooth",
            "direction_modes", "axis_moments", "spot_reading", "describe_component", "component_summary",
-           "fan_geometry", "mass_profile", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS",
+           "fan_geometry", "mass_profile", "nearest_vents", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS",
            "READING_FIELDS", "HYP_MODES", "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
 
 _DEG = 180.0 / np.pi
@@ -600,10 +600,11 @@ def fan_geometry(xs, ys, w, start_x, start_y, direction):
     k = 0
     for i in range(n):
         if r[i] > limit:
-            phi = _direction(dx[i], dy[i]) * _RAD
+            # the sine and cosine of the pixel's direction from the apex, (d_col, -d_row) / r, without
+            # the angle (the same to rounding: it was taken with arctan2 and turned back)
             wr[k] = w[i] * r[i]
-            east[k] = wr[k] * np.sin(phi)
-            north[k] = wr[k] * np.cos(phi)
+            east[k] = wr[k] * (dx[i] / r[i])
+            north[k] = wr[k] * (-dy[i] / r[i])
             k += 1
     concentration = np.hypot(psum(east), psum(north)) / max(psum(wr), 1e-9)
     return fx, fy, length, spread, concentration
@@ -711,7 +712,33 @@ def _cov2_blas(dx, dy, w):
 
 
 @njit(cache=True, nogil=True)
-def reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y, min_vent_px):
+def nearest_vents(xs, ys, vents_x, vents_y):
+    """Each pixel's nearest vent (the first on ties) and its offset from it.
+
+    Returns
+    -------
+    vent_of : int64 (n,)
+    d_col, minus_d_row : float64 (n,)
+        The offset (x - vent x) and the negated (y - vent y), the arguments of
+        ``arctan2`` for the direction clockwise from up.
+    """
+    n, n_vents = xs.size, vents_x.size
+    vent_of = np.empty(n, dtype=np.int64)
+    d_col, minus_d_row = np.empty(n), np.empty(n)
+    for i in range(n):
+        best, best_d = 0, (xs[i] - vents_x[0]) ** 2 + (ys[i] - vents_y[0]) ** 2
+        for v in range(1, n_vents):
+            d = (xs[i] - vents_x[v]) ** 2 + (ys[i] - vents_y[v]) ** 2
+            if d < best_d:
+                best, best_d = v, d
+        vent_of[i] = best
+        d_col[i] = xs[i] - vents_x[best]
+        minus_d_row[i] = -(ys[i] - vents_y[best])
+    return vent_of, d_col, minus_d_row
+
+
+@njit(cache=True, nogil=True)
+def reading_pulls(xs, ys, w, vent_of, angle, vents_x, vents_y, min_vent_px):
     """What the directions of a component's vent and axis readings are taken from.
 
     A vent with at least ``min_vent_px`` pixels (``vent_of``), three of which lie
@@ -719,7 +746,7 @@ def reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y, min_vent_px):
     mean direction of those far pixels seen from the vent, weighted by darkness
     times distance. The whole component is read along its principal axis (the
     darkness-weighted covariance's major eigenvector, by LAPACK) from its
-    weighted centre. The angles (``phi`` and the ones made from what this
+    weighted centre. The angles (``angle`` and the ones made from what this
     returns) are numpy's ``arctan2``, whose vectorised form differs from the C
     library's in the last bit.
 
@@ -729,8 +756,9 @@ def reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y, min_vent_px):
         Pixels of the component (tile coordinates) and their darkness weights.
     vent_of : int64 (n,) or (0,)
         Each pixel's vent (the nearest); empty when the vents are not read.
-    phi : float64 (n,) or (0,)
-        Direction of each pixel seen from its vent, radians clockwise from up.
+    angle : float64 (n,) or (0,)
+        ``arctan2`` of each pixel's offset from its vent (:func:`nearest_vents`):
+        its direction from the vent, radians clockwise from up, in (-pi, pi].
     vents_x, vents_y : float64 (n_vents,)
         Vents in tile coordinates.
     min_vent_px : int
@@ -760,8 +788,10 @@ def reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y, min_vent_px):
         q = 0
         for i in range(idx.size):
             if far[i]:
+                # degrees in [0, 360) and back, as numpy's direction_deg and radians take them
+                phi = ((angle[idx[i]] * _DEG) % 360.0) * _RAD
                 wr = w[idx[i]] * r[i]
-                east[q], north[q] = wr * np.sin(phi[idx[i]]), wr * np.cos(phi[idx[i]])
+                east[q], north[q] = wr * np.sin(phi), wr * np.cos(phi)
                 q += 1
         pulls[v, 0], pulls[v, 1] = psum(east), psum(north)
     axis = np.full(4, np.nan)

@@ -495,12 +495,12 @@ def _fan_readings(xs, ys, w, w32, samples, modes, owner, vx, vy, vent_dark, smoo
     """
     vents_x, vents_y = (vx + box[1].start).astype(float), (vy + box[0].start).astype(float)
     if split:
-        # each pixel's nearest vent (the first on ties) and its direction from there
-        vent_of = np.argmin((xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2, axis=1)
-        phi = np.radians(direction_deg(xs - vents_x[vent_of], ys - vents_y[vent_of]))
+        # each pixel's nearest vent and its direction from there
+        vent_of, d_col, minus_d_row = _readings.nearest_vents(xs, ys, vents_x, vents_y)
+        angle = np.arctan2(d_col, minus_d_row)
     else:
-        vent_of, phi = np.empty(0, dtype=np.int64), np.empty(0)
-    pulls, (cx, cy, ux, uy) = _readings.reading_pulls(xs, ys, w, vent_of, phi, vents_x, vents_y,
+        vent_of, angle = np.empty(0, dtype=np.int64), np.empty(0)
+    pulls, (cx, cy, ux, uy) = _readings.reading_pulls(xs, ys, w, vent_of, angle, vents_x, vents_y,
                                                       max(3, params.min_area_px // 2))
     vent_directions = np.degrees(np.arctan2(pulls[:, 0], pulls[:, 1])) % 360.0
     forward = float(direction_deg(ux, uy))

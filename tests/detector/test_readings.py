@@ -4,9 +4,9 @@ The reference is the numpy code the readings were computed with before they were
 here verbatim: the apex, length, spread and concentration of a fan of pixels, the mass profile along
 it, its feature row, and the vent and principal-axis interpretations of a component. numpy is the
 oracle (np.partition, np.hypot, the @ product, np.cov, np.linalg.eigh); the compiled loops sum in
-numpy's pairwise order, so most values agree to the last bit. Where the compiled loop takes an angle
-with the C library's atan2 (each pixel's direction in a fan's concentration) numpy's vectorised
-arctan2 may differ in the last bit, hence the relative tolerance of 1e-12.
+numpy's pairwise order, so most values agree to the last bit. A fan's concentration takes the sine and
+cosine of each pixel's direction as its offset over its distance rather than through the angle
+(numpy's arctan2, then sin and cos), which agrees to rounding: hence the relative tolerance of 1e-12.
 """
 
 import numpy as np
@@ -289,6 +289,17 @@ def test_mass_profile_without_near_far_or_close_pixels_is_zero():
     # every pixel in the middle third and beyond the apex radius: widening, fading and apex darkness 0
     xs, ys, w = np.array([0.0, 0.0]), np.array([-50.0, -52.0]), np.ones(2)
     assert _readings.mass_profile(xs, ys, w, 0.0, 0.0, 0.0, 100.0) == (0.0, 0.0, 0.0)
+
+
+def test_nearest_vent_is_numpys_argmin_first_on_ties():
+    rng = np.random.default_rng(4)
+    xs, ys = rng.integers(0, 30, 500).astype(float), rng.integers(0, 30, 500).astype(float)
+    vents_x, vents_y = np.array([10.0, 20.0, 10.0, 15.0]), np.array([10.0, 10.0, 20.0, 15.0])  # many ties
+    vent_of, d_col, minus_d_row = _readings.nearest_vents(xs, ys, vents_x, vents_y)
+    ref = np.argmin((xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2, axis=1)
+    np.testing.assert_array_equal(vent_of, ref)
+    np.testing.assert_array_equal(d_col, xs - vents_x[ref])
+    np.testing.assert_array_equal(minus_d_row, -(ys - vents_y[ref]))
 
 
 @pytest.mark.parametrize("seed", range(5))
