@@ -20,7 +20,7 @@ from ..tile._kernels import pairwise_block as _block
 __all__ = ["psum", "quantile", "lower_quantile", "middle_pair", "direction_histogram", "circular_smooth",
            "direction_modes", "axis_moments", "spot_reading", "describe_component", "component_summary",
            "fan_geometry", "mass_profile", "nearest_vents", "reading_pulls", "fan_readings", "FAN_FIELDS", "SUMMARY_FIELDS",
-           "READING_FIELDS", "HYP_MODES", "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
+           "READING_FIELDS", "vent_spots", "VENT_SPOT_FIELDS", "HYP_MODES", "HYP_VENTS", "HYP_AXIS_FORWARD", "HYP_AXIS_REVERSE"]
 
 _DEG = 180.0 / np.pi
 _RAD = np.pi / 180.0
@@ -909,3 +909,89 @@ def _reading_features(readings):
         for j in range(4):  # widening, fading, apex_dark, axis_agreement
             out[i, 13 + j] = readings[i, 14 + j]
     return out
+
+
+#: Columns of the spot readings returned by :func:`vent_spots`.
+VENT_SPOT_FIELDS = ("x_px", "y_px", "axis_deg", "semi_major_px", "semi_minor_px", "share", "vent_dark", "dark_mean",
+                    "p_spot")
+
+
+@njit(cache=True, nogil=True)
+def vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px, level, max_share):
+    """The component read as one spot around each vent.
+
+    A vent's spot holds the pixels nearest that vent (the first vent on ties)
+    whose darkness is at least ``level`` times the darkness at the vent (at the
+    vent's nearest pixel, the first on ties), described as a uniform ellipse
+    (:func:`spot_reading`). A vent is skipped when it or its spot has fewer than
+    ``min_px`` pixels, or when the spot holds at least ``max_share`` of the
+    component's darkness.
+
+    Parameters
+    ----------
+    xs, ys, w : float64 (n,)
+        Pixels of the component (tile coordinates) and their darkness weights.
+    p_spot : float32 (n,)
+        Spot probability at each pixel.
+    vents_x, vents_y : float64 (n_vents,)
+        Vents in tile coordinates.
+
+    Returns
+    -------
+    spots : float64 (n_spots, len(VENT_SPOT_FIELDS))
+        Centre, axis (degrees mod 180), semi-axes (px), share of the component's
+        darkness, darkness at the vent, mean darkness and darkness-weighted spot
+        probability of each spot.
+    pixels : bool (n_spots, n)
+    """
+    n, n_vents = xs.size, vents_x.size
+    spots = np.empty((n_vents, len(VENT_SPOT_FIELDS)))
+    pixels = np.zeros((n_vents, n), dtype=np.bool_)
+    if n_vents == 0 or n == 0:
+        return spots[:0], pixels[:0]
+    vent_of = np.empty(n, dtype=np.int64)
+    d2 = np.empty(n)
+    for i in range(n):
+        best, best_d = 0, (xs[i] - vents_x[0]) ** 2 + (ys[i] - vents_y[0]) ** 2
+        for v in range(1, n_vents):
+            d = (xs[i] - vents_x[v]) ** 2 + (ys[i] - vents_y[v]) ** 2
+            if d < best_d:
+                best, best_d = v, d
+        vent_of[i] = best
+        d2[i] = best_d
+    total = psum(w)
+    k = 0
+    for v in range(n_vents):
+        mine = np.flatnonzero(vent_of == v)
+        if mine.size < min_px:
+            continue
+        nearest = mine[0]
+        for i in mine:
+            if d2[i] < d2[nearest]:
+                nearest = i
+        at_vent = w[nearest]
+        n_core = 0
+        for i in mine:
+            if w[i] >= level * at_vent:
+                n_core += 1
+        core = np.empty(n_core, dtype=np.int64)
+        q = 0
+        for i in mine:
+            if w[i] >= level * at_vent:
+                core[q] = i
+                q += 1
+        wc = w[core]
+        share = psum(wc) / total
+        if n_core < min_px or share >= max_share:
+            continue
+        cx, cy, axis, semi_major, semi_minor = spot_reading(xs[core], ys[core])
+        weighted = np.empty(n_core)
+        for q in range(n_core):
+            weighted[q] = np.float64(p_spot[core[q]]) * wc[q]
+        spots[k, 0], spots[k, 1], spots[k, 2], spots[k, 3], spots[k, 4] = cx, cy, axis, semi_major, semi_minor
+        spots[k, 5], spots[k, 6], spots[k, 7] = share, at_vent, psum(wc) / n_core
+        spots[k, 8] = psum(weighted) / psum(wc)
+        for i in core:
+            pixels[k, i] = True
+        k += 1
+    return spots[:k], pixels[:k]

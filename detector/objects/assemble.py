@@ -533,35 +533,21 @@ _READ_INDEX = {name: i for i, name in enumerate(_READING_FEATURES)}
 def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
     """The component read as one spot around each vent: the pixels nearest the vent (as in the
     vent-split fans) that are at least :data:`_VENT_SPOT_LEVEL` as dark as the vent, described by
-    their moments. Vents whose spot would be too small or nearly the whole component are skipped."""
-    if vents_x.size == 0 or xs.size == 0:
-        return []
-    d2 = (xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2
-    vent_of = np.argmin(d2, axis=1)
-    total = float(w.sum())
+    their moments (compiled: :func:`_readings.vent_spots`). Vents whose spot would be too small or
+    nearly the whole component are skipped."""
+    spots, pixels = _readings.vent_spots(xs, ys, w, np.ascontiguousarray(p_spot), vents_x, vents_y, min_px,
+                                         _VENT_SPOT_LEVEL, _VENT_SPOT_MAX_SHARE)
     out = []
-    for k in range(vents_x.size):
-        mine = np.flatnonzero(vent_of == k)
-        if mine.size < min_px:
-            continue
-        at_vent = float(w[mine[np.argmin(d2[mine, k])]])
-        core = mine[w[mine] >= _VENT_SPOT_LEVEL * at_vent]
-        share = float(w[core].sum()) / total
-        if core.size < min_px or share >= _VENT_SPOT_MAX_SHARE:
-            continue
-        cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xs[core], ys[core])
+    for row, mine in zip(spots.tolist(), pixels):
+        cx, cy, axis, semi_major, semi_minor, share, at_vent, dark_mean, p_spot_mean = row
         features = np.zeros(len(_READING_FEATURES) - _N_VIEW, dtype=np.float32)
         for name, value in (("read_length_px", semi_major), ("read_share", share),
-                            ("read_vent_dark", at_vent), ("read_dark_mean", float(w[core].mean())),
-                            ("read_p_fan", float(np.average(p_spot[core], weights=w[core]))),
-                            ("read_from_vents", 1.0)):
+                            ("read_vent_dark", at_vent), ("read_dark_mean", dark_mean),
+                            ("read_p_fan", p_spot_mean), ("read_from_vents", 1.0),
+                            ("read_n_siblings", len(spots))):
             features[_READ_INDEX[name]] = value
-        pixels = np.zeros(xs.size, dtype=bool)
-        pixels[core] = True
         out.append(dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
-                        semi_minor_px=semi_minor, axis_deg=axis, _pixels=pixels, _features=features))
-    for r in out:
-        r["_features"][_READ_INDEX["read_n_siblings"]] = len(out)
+                        semi_minor_px=semi_minor, axis_deg=axis, _pixels=mine, _features=features))
     return out
 
 

@@ -18,16 +18,23 @@ from detector.labels import rasterise_features
 from detector.objects import _readings
 from detector.objects.assemble import (
     _HYPOTHESES,
+    _VENT_SPOT_LEVEL,
+    _VENT_SPOT_MAX_SHARE,
     AssemblyParams,
     HYP_AXIS_FORWARD,
     HYP_AXIS_REVERSE,
     HYP_MODES,
     HYP_VENTS,
     _MODE_SMOOTHING,
+    OBJECT_FEATURE_NAMES,
+    _COMPONENT_FEATURES,
     _fan_readings,
+    _vent_spots,
 )
 
 RTOL = 1e-12
+#: Where a reading's own features start in a row of OBJECT_FEATURE_NAMES.
+N_COMPONENT = len(_COMPONENT_FEATURES)
 
 
 # --------------------------------------------------------------------------- numpy reference
@@ -170,6 +177,29 @@ def _reference_readings(component, params, has_axis, split):
                               (c["vy"] + r0).astype(float), c["vent_dark"], smooth_at, fan_mass, has_axis,
                               max(3, params.min_area_px // 2), split)
     return _finish_readings(fans)
+
+
+def _vent_spots_numpy(xs, ys, w, p_spot, vents_x, vents_y, min_px):
+    """The spot around each vent as the numpy code read it: (fields, pixels) per spot."""
+    d2 = (xs[:, None] - vents_x[None, :]) ** 2 + (ys[:, None] - vents_y[None, :]) ** 2
+    vent_of = np.argmin(d2, axis=1)
+    total = float(w.sum())
+    out = []
+    for k in range(vents_x.size):
+        mine = np.flatnonzero(vent_of == k)
+        if mine.size < min_px:
+            continue
+        at_vent = float(w[mine[np.argmin(d2[mine, k])]])
+        core = mine[w[mine] >= _VENT_SPOT_LEVEL * at_vent]
+        share = float(w[core].sum()) / total
+        if core.size < min_px or share >= _VENT_SPOT_MAX_SHARE:
+            continue
+        spot = _readings.spot_reading(xs[core], ys[core])
+        pixels = np.zeros(xs.size, dtype=bool)
+        pixels[core] = True
+        out.append((list(spot) + [share, at_vent, float(w[core].mean()),
+                                  float(np.average(p_spot[core], weights=w[core]))], pixels))
+    return out
 
 
 # --------------------------------------------------------------------------- components
@@ -332,3 +362,26 @@ def test_fan_readings_follow_the_numpy_readings(seed, split, has_axis):
             assert mine[key] == pytest.approx(theirs[key], rel=RTOL, abs=1e-12), key
         assert mine["_features"].dtype == np.float32
         np.testing.assert_allclose(mine["_features"], theirs["_features"], rtol=1e-6, atol=1e-7)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_vent_spots_follow_the_numpy_spots(seed):
+    c = _component(seed, n_vents=2 + seed % 2)
+    box = c["box"]
+    vents_x, vents_y = (c["vx"] + box[1].start).astype(float), (c["vy"] + box[0].start).astype(float)
+    ref = _vent_spots_numpy(c["xs"], c["ys"], c["w"], c["samples"][2], vents_x, vents_y, 7)
+    got = _vent_spots(c["xs"], c["ys"], c["w"], c["samples"][2], vents_x, vents_y, 7)
+    assert len(got) == len(ref) > 0
+    for spot, (fields, pixels) in zip(got, ref):
+        np.testing.assert_array_equal(spot["_pixels"], pixels)
+        mine = [spot[k] for k in ("x_px", "y_px", "axis_deg", "semi_major_px", "semi_minor_px")]
+        features = dict(zip(("read_share", "read_vent_dark", "read_dark_mean", "read_p_fan"), fields[5:]))
+        np.testing.assert_allclose(mine, fields[:5], rtol=RTOL, atol=0)
+        for name, value in features.items():
+            assert spot["_features"][OBJECT_FEATURE_NAMES.index(name) - N_COMPONENT] == np.float32(value), name
+        assert spot["_features"][OBJECT_FEATURE_NAMES.index("read_n_siblings") - N_COMPONENT] == len(ref)
+
+
+def test_no_vent_spot_without_vents():
+    c = _component(0)
+    assert _vent_spots(c["xs"], c["ys"], c["w"], c["samples"][2], np.empty(0), np.empty(0), 7) == []
