@@ -476,6 +476,23 @@ def _fans_from_vent(xs, ys, w, ax, ay, min_separation, min_share, smoothing, row
 
 
 @njit(cache=True, nogil=True)
+def _nearest_vent(xs, ys, vents_x, vents_y):
+    """Each pixel's nearest vent (the first on ties) and its squared distance to it (at least one vent)."""
+    n, n_vents = xs.size, vents_x.size
+    vent_of = np.empty(n, dtype=np.int64)
+    d2 = np.empty(n)
+    for i in range(n):
+        best, best_d = 0, (xs[i] - vents_x[0]) ** 2 + (ys[i] - vents_y[0]) ** 2
+        for v in range(1, n_vents):
+            d = (xs[i] - vents_x[v]) ** 2 + (ys[i] - vents_y[v]) ** 2
+            if d < best_d:
+                best, best_d = v, d
+        vent_of[i] = best
+        d2[i] = best_d
+    return vent_of, d2
+
+
+@njit(cache=True, nogil=True)
 def describe_component(xs, ys, lx, ly, w, vx, vy, vent_dark, min_vent_px, min_separation, min_share, smoothing):
     """The fan readings of one component from its vents, split by the direction modes of each
     vent's pixels (their features are read by :func:`fan_readings`).
@@ -502,14 +519,7 @@ def describe_component(xs, ys, lx, ly, w, vx, vy, vent_dark, min_vent_px, min_se
     """
     n = xs.size
     n_vents = vx.size
-    vent_of = np.empty(n, dtype=np.int64)
-    for i in range(n):
-        best, best_d = 0, (lx[i] - vx[0]) ** 2 + (ly[i] - vy[0]) ** 2
-        for k in range(1, n_vents):
-            d = (lx[i] - vx[k]) ** 2 + (ly[i] - vy[k]) ** 2
-            if d < best_d:
-                best, best_d = k, d
-        vent_of[i] = best
+    vent_of, _ = _nearest_vent(lx, ly, vx, vy)
     rows = np.empty((6 * n_vents + 1, len(FAN_FIELDS)))
     owner = np.full(n, -1, dtype=np.int64)
     n_fans = 0
@@ -722,18 +732,9 @@ def nearest_vents(xs, ys, vents_x, vents_y):
         The offset (x - vent x) and the negated (y - vent y), the arguments of
         ``arctan2`` for the direction clockwise from up.
     """
-    n, n_vents = xs.size, vents_x.size
-    vent_of = np.empty(n, dtype=np.int64)
-    d_col, minus_d_row = np.empty(n), np.empty(n)
-    for i in range(n):
-        best, best_d = 0, (xs[i] - vents_x[0]) ** 2 + (ys[i] - vents_y[0]) ** 2
-        for v in range(1, n_vents):
-            d = (xs[i] - vents_x[v]) ** 2 + (ys[i] - vents_y[v]) ** 2
-            if d < best_d:
-                best, best_d = v, d
-        vent_of[i] = best
-        d_col[i] = xs[i] - vents_x[best]
-        minus_d_row[i] = -(ys[i] - vents_y[best])
+    vent_of, _ = _nearest_vent(xs, ys, vents_x, vents_y)
+    d_col = xs - vents_x[vent_of]
+    minus_d_row = -(ys - vents_y[vent_of])
     return vent_of, d_col, minus_d_row
 
 
@@ -949,16 +950,7 @@ def vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px, level, max_share):
     pixels = np.zeros((n_vents, n), dtype=np.bool_)
     if n_vents == 0 or n == 0:
         return spots[:0], pixels[:0]
-    vent_of = np.empty(n, dtype=np.int64)
-    d2 = np.empty(n)
-    for i in range(n):
-        best, best_d = 0, (xs[i] - vents_x[0]) ** 2 + (ys[i] - vents_y[0]) ** 2
-        for v in range(1, n_vents):
-            d = (xs[i] - vents_x[v]) ** 2 + (ys[i] - vents_y[v]) ** 2
-            if d < best_d:
-                best, best_d = v, d
-        vent_of[i] = best
-        d2[i] = best_d
+    vent_of, d2 = _nearest_vent(xs, ys, vents_x, vents_y)
     total = psum(w)
     k = 0
     for v in range(n_vents):
