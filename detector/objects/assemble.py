@@ -530,6 +530,15 @@ _VENT_SPOT_MAX_SHARE = 0.8
 _READ_INDEX = {name: i for i, name in enumerate(_READING_FEATURES)}
 
 
+def _spot_features(**values):
+    """A spot reading's features before its view: the named reading features, 0 for the rest (a spot
+    reads its semi-major axis as its length and its spot probability in the fan-probability slot)."""
+    features = np.zeros(len(_READING_FEATURES) - _N_VIEW, dtype=np.float32)
+    for name, value in values.items():
+        features[_READ_INDEX[f"read_{name}"]] = value
+    return features
+
+
 def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
     """The component read as one spot around each vent: the pixels nearest the vent (as in the
     vent-split fans) that are at least :data:`_VENT_SPOT_LEVEL` as dark as the vent, described by
@@ -540,12 +549,8 @@ def _vent_spots(xs, ys, w, p_spot, vents_x, vents_y, min_px):
     out = []
     for row, mine in zip(spots.tolist(), pixels):
         cx, cy, axis, semi_major, semi_minor, share, at_vent, dark_mean, p_spot_mean = row
-        features = np.zeros(len(_READING_FEATURES) - _N_VIEW, dtype=np.float32)
-        for name, value in (("read_length_px", semi_major), ("read_share", share),
-                            ("read_vent_dark", at_vent), ("read_dark_mean", dark_mean),
-                            ("read_p_fan", p_spot_mean), ("read_from_vents", 1.0),
-                            ("read_n_siblings", len(spots))):
-            features[_READ_INDEX[name]] = value
+        features = _spot_features(length_px=semi_major, share=share, vent_dark=at_vent, dark_mean=dark_mean,
+                                  p_fan=p_spot_mean, from_vents=1.0, n_siblings=len(spots))
         out.append(dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
                         semi_minor_px=semi_minor, axis_deg=axis, _pixels=mine, _features=features))
     return out
@@ -735,8 +740,8 @@ def find_candidates(dark, valid, class_maps, polarity_maps, *, params=AssemblyPa
         cx, cy, axis, semi_major, semi_minor = _readings.spot_reading(xf, yf)
         spot = dict(kind="spot", x_px=cx, y_px=cy, direction_deg=axis, semi_major_px=semi_major,
                     semi_minor_px=semi_minor, axis_deg=axis)
-        spot["_features"] = np.array([0.0, semi_major, 0.0, 1.0, w_max, w_mean, 0.0, avg_spot, 0.0]
-                                     + [0.0] * (len(_READING_FEATURES) - 9 - _N_VIEW), dtype=np.float32)
+        spot["_features"] = _spot_features(length_px=semi_major, share=1.0, vent_dark=w_max, dark_mean=w_mean,
+                                           p_fan=avg_spot)
         vent_spots = _vent_spots(xf, yf, w64, samples[2], (vx + sl[1].start).astype(float),
                                  (vy + sl[0].start).astype(float), max(3, params.min_area_px // 2))
         out.append(Candidate(ys=ys, xs=xs, features=features, fans=fans, spot=spot, vent_spots=vent_spots))
