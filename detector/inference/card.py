@@ -69,6 +69,30 @@ class _Checker:
         return value
 
 
+def _check_refine_model(c, refine, object_feature_names):
+    """The card's ``refine_model`` (:mod:`detector.objects.refine`): one ridge fit per kind over the
+    code's refinement features, in the code's order, with one row of coefficients per output."""
+    from ..objects.refine import REFINE_FEATURE_NAMES, REFINE_OUTPUTS
+
+    if not isinstance(refine, dict):
+        c.fail("refine_model", refine, "an object or null")
+    used = c.names("refine_model.features", c.get("refine_model.features"))
+    expected = list(object_feature_names) + list(REFINE_FEATURE_NAMES[len(object_feature_names):])
+    if used != expected:
+        c.fail("refine_model.features", used, f"the {len(expected)} refinement features of this code, in order")
+    n = len(used)
+    for kind, outputs in REFINE_OUTPUTS.items():
+        where = f"refine_model.{kind}"
+        c.numbers(f"{where}.mean", c.get(f"{where}.mean"), length=n)
+        c.numbers(f"{where}.scale", c.get(f"{where}.scale"), length=n, lo=0.0, lo_open=True)
+        coef = c.get(f"{where}.coef")
+        if not isinstance(coef, list) or len(coef) != len(outputs):
+            c.fail(f"{where}.coef", coef, f"{len(outputs)} rows of coefficients ({', '.join(outputs)})")
+        for i, row in enumerate(coef):
+            c.numbers(f"{where}.coef[{i}]", row, length=n)
+        c.numbers(f"{where}.intercept", c.get(f"{where}.intercept"), length=len(outputs))
+
+
 def check_card(card, source, *, onnx_files, class_names, object_feature_names, assembly_fields):
     """Check a parsed model card against the schema; raise :class:`ModelError` on the first breach.
 
@@ -138,6 +162,10 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
         c.number("direction_confidence.intercept", c.get("direction_confidence.intercept"))
         c.number("direction_confidence.bound_deg", c.get("direction_confidence.bound_deg"), lo=0.0, lo_open=True,
                  hi=180.0)
+
+    refine = c.get("refine_model", required=False)
+    if refine is not None:
+        _check_refine_model(c, refine, tuple(object_feature_names))
 
     stats = c.get("unfamiliarity", required=False)
     if stats is not None:

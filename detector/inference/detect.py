@@ -15,6 +15,7 @@ from ..objects.assemble import (
     objects_from_candidates,
     reading_matrix,
 )
+from ..objects.refine import apply_refined
 from ..tile.features import _features_of_prepared
 from ..geometry import unit_vector
 from ..tile.spec import patch_axis_deg
@@ -226,7 +227,9 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
     candidates = tile_candidates(tile, nodata_mask, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
-    detections, pixels = objects_from_candidates(candidates, model.score_readings(F, candidates), params=params,
+    scores = model.score_readings(F, candidates)
+    apply_refined(candidates, *model.refine_readings(F, candidates))
+    detections, pixels = objects_from_candidates(candidates, scores, params=params,
                                                  tile_id=tile_id, direction_confidence=model.direction_confidence(F))
     fan_cover = np.zeros(tile.shape, dtype=bool)
     spot_cover = np.zeros(tile.shape, dtype=bool)

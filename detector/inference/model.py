@@ -166,6 +166,18 @@ class Model:
         revised = _run_proba(self._context, context_matrix(F, first, owner, is_fan, direction))[:, 1]
         return np.where(is_fan, revised, first).astype(np.float32)
 
+    def refine_readings(self, F, candidates):
+        """Refined sizes, shape (n, 2), and fan directions, shape (n,), of every reading
+        (:mod:`detector.objects.refine`).
+
+        From the card's ``refine_model`` (plain numbers); a card without one keeps the
+        sizes and directions measured on the dark components.
+        """
+        from ..objects.refine import predict_refined, reading_shapes
+
+        own, direction, is_fan = reading_shapes(candidates)
+        return predict_refined(self.card.get("refine_model"), F, own, direction, is_fan)
+
     def direction_confidence(self, F):
         """Probability that each fan reading's direction is within the card's error bound, shape (n,).
 

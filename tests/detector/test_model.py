@@ -170,6 +170,12 @@ def _drop_objects(card, folder):
         (lambda c, f: c.update(orientation_features="hog_b0_c0_o0"), "orientation_features"),
         (lambda c, f: c.update(direction_confidence={**c["direction_confidence"], "coef": [1.0]}),
          "direction_confidence.coef"),
+        (lambda c, f: c.update(refine_model={**c["refine_model"], "features": c["refine_model"]["features"][::-1]}),
+         "refine_model.features"),
+        (lambda c, f: c.update(refine_model={**c["refine_model"], "fan": {**c["refine_model"]["fan"], "coef": [[1.0]]}}),
+         "refine_model.fan.coef"),
+        (lambda c, f: c.update(refine_model={**c["refine_model"], "spot": {**c["refine_model"]["spot"], "scale": [0.0]}}),
+         "refine_model.spot.scale"),
         (lambda c, f: c.update(unfamiliarity={**c["unfamiliarity"], "threshold": 0.0}), "unfamiliarity.threshold"),
         (lambda c, f: c.update(unfamiliarity={**c["unfamiliarity"], "variances": [1.0]}), "unfamiliarity.variances"),
         (lambda c, f: c["files"].update({"detector.onnx": 12}), "files.detector.onnx"),
@@ -180,7 +186,7 @@ def test_card_breaking_its_schema_is_refused_naming_the_field(model_copy, edit, 
     card = json.loads((model_copy / MODEL_CARD).read_text())
     # A tiny model may lack these optional fits; the shipped model's are well-formed ones to break.
     shipped = json.loads((Path(__file__).resolve().parents[2] / "models" / "demo" / MODEL_CARD).read_text())
-    for key in ("unfamiliarity", "direction_confidence"):
+    for key in ("unfamiliarity", "direction_confidence", "refine_model"):
         card[key] = card.get(key) or shipped[key]
     edit(card, model_copy)
     (model_copy / MODEL_CARD).write_text(json.dumps(card))  # json writes NaN as the bare token NaN

@@ -63,3 +63,82 @@ def test_labels_agree_with_the_evaluation_matching_for_one_reading_per_interpret
         pairs = match_objects(det, CONSENSUS)
         expected = len(pairs) == 1 and pairs["direction_error_deg"].iloc[0] <= LABEL_MAX_DIRECTION_DEG
         assert bool(label[0]) == expected
+
+
+def test_right_readings_carry_their_consensus_sizes_and_turn():
+    fans = [_fan(HYP_MODES, 101.0, 100.0, 92.0, length=25.0), _fan(HYP_MODES, 300.0, 300.0, 10.0)]
+    label, error, truth = label_readings([_candidate(fans, _spot(400.0, 400.0))], CONSENSUS, "t", with_truth=True)
+    assert label.tolist() == [1, 0, 0]
+    # the consensus fan's length and opening, and the turn from 92 deg to its 90 deg (anticlockwise)
+    np.testing.assert_array_equal(truth[0], [40.0, 30.0, -2.0])
+    assert np.isnan(truth[1:]).all()
+    # across north: from 80 deg to 1 deg is a turn of 79 deg anticlockwise, not 281 clockwise
+    fans = [_fan(HYP_MODES, 101.0, 100.0, 80.0)]
+    _, _, truth = label_readings([_candidate(fans, _spot(400.0, 400.0))], CONSENSUS.assign(direction_deg=1.0),
+                                 "t", with_truth=True)
+    assert truth[0, 2] == pytest.approx(-79.0)
+
+
+def _readings_with_sizes(n, rng):
+    from types import SimpleNamespace
+
+    from detector.objects.assemble import OBJECT_FEATURE_NAMES, VIEW_ACROSS
+
+    F = rng.normal(size=(n, len(OBJECT_FEATURE_NAMES))).astype(np.float32)
+    is_fan = np.arange(n) % 2 == 0
+    # fans: length 3-55 px, opening 20-90 deg; spots: semi-minor axis half to all of the semi-major one
+    own = np.exp(rng.uniform(1.0, 4.0, size=(n, 2)))
+    own[is_fan, 1] = rng.uniform(20.0, 90.0, size=is_fan.sum())
+    own[~is_fan, 1] = own[~is_fan, 0] * rng.uniform(0.5, 1.0, size=(~is_fan).sum())
+    true = own * np.where(is_fan[:, None], [1.4, 0.6], [1.1, 0.9])
+    move = np.exp(0.2 * F[:, 0])  # one feature moves a fan's length and a spot's two axes too
+    true[is_fan, 0] *= move[is_fan]
+    true[~is_fan] *= move[~is_fan, None]
+    label = np.ones(n, int)
+    label[::7] = 0
+    true[label == 0] = np.nan
+    # a fan's consensus direction lies 5 deg clockwise of the reading's, plus 5 deg per unit of one view sample
+    view = OBJECT_FEATURE_NAMES.index(f"read_view_t4_s{VIEW_ACROSS.size - 1}")
+    direction = np.where(is_fan, rng.uniform(0.0, 360.0, n), np.nan)
+    turn = np.where(is_fan & (label == 1), 5.0 + 5.0 * F[:, view], np.nan)
+    return SimpleNamespace(F=F, own_size=own, true_size=true, is_fan=is_fan, label=label, direction_deg=direction,
+                           turn_deg=turn)
+
+
+def test_refine_model_matches_least_squares_on_a_known_relation():
+    # Reference: numpy's least squares on the same standardised design (scikit-learn's Ridge with a
+    # penalty small against thousands of rows gives the same coefficients to ~1e-3).
+    from detector.objects.refine import predict_refined, refine_design
+    from training.fitting.objects import fit_refine_model, refine_model_check
+
+    rng = np.random.default_rng(5)
+    readings = _readings_with_sizes(4000, rng)
+    fit = fit_refine_model(readings, alpha=1e-3)
+    rows = (readings.label == 1) & readings.is_fan
+    X = refine_design(readings.F[rows], readings.own_size[rows])
+    mean, scale = X.mean(axis=0), X.std(axis=0)
+    design = np.column_stack([np.ones(rows.sum()), (X - mean) / scale])
+    targets = np.column_stack([np.log(readings.true_size[rows]), readings.turn_deg[rows]])
+    expected, *_ = np.linalg.lstsq(design, targets, rcond=None)
+    np.testing.assert_allclose(fit["fan"]["intercept"], expected[0], atol=1e-3)
+    np.testing.assert_allclose(np.array(fit["fan"]["coef"]).T, expected[1:], atol=1e-3)
+    # the relation is exact, so the refined readings are the consensus ones and the check says so
+    sizes, turned = predict_refined(fit, readings.F, readings.own_size, np.nan_to_num(readings.direction_deg),
+                                    readings.is_fan)
+    right = readings.label == 1
+    np.testing.assert_allclose(sizes[right], readings.true_size[right], rtol=1e-3)
+    expected_direction = (readings.direction_deg[rows] + readings.turn_deg[rows]) % 360.0
+    gap = np.abs((turned[rows] - expected_direction + 180.0) % 360.0 - 180.0)
+    assert gap.max() < 1e-2
+    check = refine_model_check(fit, readings)
+    assert check["fan_length"]["model"] < 1e-3 < check["fan_length"]["measured"]
+    assert check["fan_direction_deg"]["model"] < 1e-2 < check["fan_direction_deg"]["measured"]
+    assert check["spot_semi_minor"]["n"] == int(((readings.label == 1) & ~readings.is_fan).sum())
+
+
+def test_refine_model_needs_right_readings_of_both_kinds():
+    from training.fitting.objects import fit_refine_model
+
+    readings = _readings_with_sizes(100, np.random.default_rng(1))
+    readings.label[~readings.is_fan] = 0
+    assert fit_refine_model(readings) is None

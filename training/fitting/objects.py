@@ -16,6 +16,7 @@ from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
 from detector.objects.context import context_matrix, reading_layout
+from detector.objects.refine import REFINE_FEATURE_NAMES, predict_refined, reading_shapes, refine_design
 from detector.inference.detect import tile_candidates, tile_maps
 from detector.tile.features import extract_features
 from detector._allocator import reuse_freed_memory
@@ -26,7 +27,7 @@ from ..evaluation.matching import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "context_rows",
-           "CONFIDENCE_FEATURES"]
+           "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check"]
 
 
 @dataclass
@@ -50,6 +51,12 @@ class CandidateSet:
     is_fan : ndarray of shape (n,), bool
     direction_deg : ndarray of shape (n,)
         Fan readings' directions (NaN for spot readings).
+    own_size : ndarray of shape (n, 2)
+        Each reading's own two sizes (:data:`detector.objects.refine.SIZE_NAMES`).
+    true_size : ndarray of shape (n, 2)
+        The same sizes of a right reading's consensus feature (NaN for the others).
+    turn_deg : ndarray of shape (n,)
+        Signed angle from a right fan reading's direction to its consensus fan's (NaN for the others).
     """
 
     F: np.ndarray
@@ -60,6 +67,9 @@ class CandidateSet:
     owner: np.ndarray
     is_fan: np.ndarray
     direction_deg: np.ndarray
+    own_size: np.ndarray
+    true_size: np.ndarray
+    turn_deg: np.ndarray
 
     def __len__(self):
         return len(self.label)
@@ -69,7 +79,8 @@ class CandidateSet:
         parts = list(parts)
         if not parts:
             return cls(np.zeros((0, len(OBJECT_FEATURE_NAMES)), np.float32), np.zeros(0, int), np.zeros(0, object),
-                       np.zeros(0), np.zeros(0, object), np.zeros(0, int), np.zeros(0, bool), np.zeros(0))
+                       np.zeros(0), np.zeros(0, object), np.zeros(0, int), np.zeros(0, bool), np.zeros(0),
+                       np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0))
         return cls(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in dataclasses.fields(cls)))
 
 
@@ -78,7 +89,7 @@ class CandidateSet:
 LABEL_MAX_DIRECTION_DEG = 90.0
 
 
-def label_readings(candidates, consensus, tile_id):
+def label_readings(candidates, consensus, tile_id, *, with_truth=False):
     """Label one tile's readings against its consensus features with the evaluation's matching.
 
     The readings of a component come in interpretations (its vents' direction
@@ -97,12 +108,19 @@ def label_readings(candidates, consensus, tile_id):
     label : ndarray of int, one per reading in the order of :func:`detector.objects.assemble.reading_matrix`
     error_deg : ndarray of float
         Direction error of each right fan reading against its consensus fan (NaN for the others).
+    truth : ndarray of shape (n_readings, 3), only ``with_truth``
+        What each right reading's consensus match says of it: its two sizes (length, px, and
+        opening, degrees, of a fan; semi-major and semi-minor axes, px, of a spot) and, for a fan,
+        the signed angle from the reading's direction to the consensus one (degrees, clockwise
+        positive, in [-180, 180)); NaN for the other readings and a spot's angle.
     """
     readings = candidate_rows(candidates, tile_id)
     label = np.zeros(len(readings), dtype=np.int64)
     error = np.full(len(readings), np.nan)
+    truth = np.full((len(readings), 3), np.nan)
+    done = (label, error, truth) if with_truth else (label, error)
     if len(readings) == 0 or consensus.empty:
-        return label, error
+        return done
     # each reading's component and interpretation, in the order of reading_matrix (the spot readings last:
     # -1 the whole component as one spot, -2 the spots around its vents)
     owner = np.array([i for i, c in enumerate(candidates) for _ in range(len(c.fans) + len(c.spots))], dtype=np.int64)
@@ -121,7 +139,7 @@ def label_readings(candidates, consensus, tile_id):
             pairs = pairs[pairs["direction_error_deg"] <= LABEL_MAX_DIRECTION_DEG]
         parts.append(pairs.assign(is_fan=kind == "fan"))
     if not parts:
-        return label, error
+        return done
     pairs = pd.concat(parts, ignore_index=True)
     pairs["group"] = group[pairs["det_index"].to_numpy(int)]
     pairs["rank"] = np.round(pairs["distance_px"] / 4.0)
@@ -134,9 +152,13 @@ def label_readings(candidates, consensus, tile_id):
             continue
         label[d] = 1
         taken.add((g, c))
+        size_columns = ("length_px", "opening_deg") if is_fan else ("semi_major_px", "semi_minor_px")
+        truth[d, :2] = consensus.loc[c, list(size_columns)].to_numpy(float)
         if is_fan:
             error[d] = e
-    return label, error
+            turn = float(consensus.at[c, "direction_deg"]) - float(readings.at[d, "direction_deg"])
+            truth[d, 2] = (turn + 180.0) % 360.0 - 180.0
+    return done
 
 
 def rotate_features(features, shape, quarter_turns):
@@ -180,7 +202,8 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
     candidates = tile_candidates(tile, nodata, maps, spec, params)
     F, _, _ = reading_matrix(candidates)
-    return (F, *label_readings(candidates, consensus, tile_id), *reading_layout(candidates))
+    label, error, truth = label_readings(candidates, consensus, tile_id, with_truth=True)
+    return (F, label, error, *reading_layout(candidates), reading_shapes(candidates)[0], truth[:, :2], truth[:, 2])
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
@@ -203,8 +226,9 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     )
     return CandidateSet.concat(
         CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object), error,
-                     np.full(len(label), f"{t}/{r % 4}", dtype=object), owner, is_fan, direction)
-        for (t, r), (F, label, error, owner, is_fan, direction) in zip(jobs, results)
+                     np.full(len(label), f"{t}/{r % 4}", dtype=object), owner, is_fan, direction, own, true,
+                     turn)
+        for (t, r), (F, label, error, owner, is_fan, direction, own, true, turn) in zip(jobs, results)
     )
 
 
@@ -254,3 +278,86 @@ def fit_direction_confidence(readings, *, bound_deg=20.0, C=1.0):
     return {"features": list(CONFIDENCE_FEATURES), "mean": mean.tolist(), "scale": scale.tolist(),
             "coef": model.coef_[0].tolist(), "intercept": float(model.intercept_[0]), "bound_deg": float(bound_deg),
             "n": int(ok.sum()), "share_within_bound": float(y.mean())}
+
+
+#: Ridge penalty of the refinement model (on standardised inputs; small against the thousands of right
+#: readings of a catalog of a few hundred tiles, so it only tames nearly collinear view samples).
+REFINE_RIDGE_ALPHA = 10.0
+
+#: Turns beyond this (degrees) teach the refinement model as this much: a reading that far off is a
+#: neighbour's or a merged fan's, which no turn mends, and a square loss would follow it.
+REFINE_TURN_CLIP_DEG = 45.0
+
+
+def _right_rows(readings, kind):
+    rows = (readings.label == 1) & (readings.is_fan == (kind == "fan"))
+    rows &= np.isfinite(readings.true_size).all(axis=1) & (readings.true_size > 0).all(axis=1)
+    return rows & np.isfinite(readings.turn_deg) if kind == "fan" else rows
+
+
+def fit_refine_model(readings, *, alpha=REFINE_RIDGE_ALPHA, min_rows=20):
+    """Ridge regressions refining right readings (:mod:`detector.objects.refine`).
+
+    One fit per kind over :data:`detector.objects.refine.REFINE_FEATURE_NAMES`
+    (standardised): the log consensus length and opening of a fan and the signed
+    turn to its consensus direction (clipped to :data:`REFINE_TURN_CLIP_DEG`), the
+    log consensus semi-major and semi-minor axes of a spot. Stored in the model
+    card as plain numbers and evaluated by
+    :meth:`detector.inference.model.Model.refine_readings`.
+
+    Returns
+    -------
+    fit : dict or None
+        None when either kind has fewer than ``min_rows`` right readings.
+    """
+    from sklearn.linear_model import Ridge
+
+    fit = {"features": list(REFINE_FEATURE_NAMES), "alpha": float(alpha)}
+    for kind in ("fan", "spot"):
+        rows = _right_rows(readings, kind)
+        if rows.sum() < min_rows:
+            return None
+        X = refine_design(readings.F[rows], readings.own_size[rows])
+        Y = np.log(readings.true_size[rows])
+        if kind == "fan":
+            turn = np.clip(readings.turn_deg[rows], -REFINE_TURN_CLIP_DEG, REFINE_TURN_CLIP_DEG)
+            Y = np.column_stack([Y, turn])
+        mean, scale = X.mean(axis=0), X.std(axis=0)
+        scale[scale < 1e-9] = 1.0
+        model = Ridge(alpha=alpha).fit((X - mean) / scale, Y)
+        fit[kind] = {"mean": mean.tolist(), "scale": scale.tolist(), "coef": model.coef_.tolist(),
+                     "intercept": model.intercept_.tolist(), "n": int(rows.sum())}
+    return fit
+
+
+def refine_model_check(fit, readings):
+    """How far measured and refined readings lie from consensus, on right readings.
+
+    Returns
+    -------
+    dict
+        Per kind and size the medians of |log(size / consensus size)|, and for fans the
+        median angle to the consensus direction (degrees), ``measured`` and ``model``,
+        with the readings counted.
+    """
+    out = {}
+    if fit is None:
+        return out
+    direction = np.where(readings.is_fan, readings.direction_deg, 0.0)
+    sizes, turned = predict_refined(fit, readings.F, readings.own_size, direction, readings.is_fan)
+    for kind, names in (("fan", ("length", "opening")), ("spot", ("semi_major", "semi_minor"))):
+        rows = _right_rows(readings, kind)
+        if not rows.any():
+            continue
+        true = np.log(readings.true_size[rows])
+        for j, name in enumerate(names):
+            out[f"{kind}_{name}"] = {
+                "measured": float(np.median(np.abs(np.log(np.maximum(readings.own_size[rows, j], 1e-3)) - true[:, j]))),
+                "model": float(np.median(np.abs(np.log(sizes[rows, j]) - true[:, j]))),
+                "n": int(rows.sum())}
+        if kind == "fan":
+            target = direction[rows] + readings.turn_deg[rows]
+            after = np.abs((turned[rows] - target + 180.0) % 360.0 - 180.0)
+            out["fan_direction_deg"] = {"measured": float(np.median(np.abs(readings.turn_deg[rows]))),
+                                        "model": float(np.median(after)), "n": int(rows.sum())}
+    return out

@@ -37,7 +37,8 @@ from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, un
 from .dataset import build_patch_set, rotation_jobs
 from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
-from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence
+from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence, fit_refine_model, \
+    refine_model_check
 from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
@@ -476,6 +477,8 @@ class _Objects:
     context: object
     context_fit_rows: np.ndarray
     context_crossed: bool
+    refine: dict = None
+    refine_check: dict = None
 
 
 @dataclass(frozen=True)
@@ -668,11 +671,16 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
+    refine = fit_refine_model(cand_fit)
+    refine_check = refine_model_check(refine, cand_val)
+    if refine_check:
+        log("right calibration readings against consensus, measured -> refined (median |log size ratio|, "
+            "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in refine_check.items()))
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
     context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
     return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample, context_model, Z_fit,
-                    crossed)
+                    crossed, refine, refine_check)
 
 
 #: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
@@ -780,6 +788,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
         "object_features": list(OBJECT_FEATURE_NAMES),
         "context_features": list(CONTEXT_FEATURE_NAMES),
         "direction_confidence": objects.confidence,
+        "refine_model": objects.refine,
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
@@ -795,6 +804,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
             "context_first_scores": "out of fold" if objects.context_crossed else "in sample",
             "readings": {"fit": int(len(cand_fit)), "fit_right": int(cand_fit.label.sum()),
                          "calibration": int(len(cand_val))},
+            "refine_model_check": objects.refine_check,
             "onnx_parity": onnx.parity,
             "versions": _versions(),
             "seed": config.seed,
