@@ -671,16 +671,32 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
-    refine = fit_refine_model(cand_fit)
-    refine_check = refine_model_check(refine, cand_val)
-    if refine_check:
-        log("right calibration readings against consensus, measured -> refined (median |log size ratio|, "
-            "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in refine_check.items()))
+    refine, refine_check = fit_refine_on_calibration(cand_val, cand_fit, log)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
     context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
     return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample, context_model, Z_fit,
                     crossed, refine, refine_check)
+
+
+def fit_refine_on_calibration(cand_val, cand_fit, log):
+    """The refinement model (:mod:`detector.objects.refine`), fitted on the calibration readings.
+
+    Those are read by the final patch and polarity models on images they were not fitted on, as
+    new images will be; the out-of-fold fitting readings then check it.
+
+    Returns
+    -------
+    fit : dict or None
+    check : dict
+        :func:`training.fitting.objects.refine_model_check` on the fitting readings.
+    """
+    refine = fit_refine_model(cand_val)
+    check = refine_model_check(refine, cand_fit)
+    if check:
+        log("right fitting readings against consensus, measured -> refined (median |log size ratio|, "
+            "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
+    return refine, check
 
 
 #: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
