@@ -94,6 +94,17 @@ def _worker_count(text):
     return value
 
 
+def _repeat_count(text):
+    """A ``--repeats`` value: a whole number >= 1 (each repeat is one seeded split)."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"repeats {text!r} must be a whole number >= 1")
+    return value
+
+
 def _add_training_commands(commands):
     synth = commands.add_parser("synth", help="Render an invented synthetic tile set with truth and consensus.")
     synth.add_argument("out", type=Path, help="Folder of the new tile set.")
@@ -178,7 +189,11 @@ def _add_training_commands(commands):
     order.add_argument("--batches", type=int, default=3, help="Number of batches.")
     order.add_argument("--max-patches", type=int, default=20000, help="Patch cap of each small training run.")
     order.add_argument("--workers", type=_worker_count, default=1, help="Feature extraction processes.")
-    order.add_argument("--seed", type=int, default=0, help="Seed of the image split and the random order.")
+    order.add_argument("--seed", type=int, default=0, help="Seed of the first split and its random order; split i "
+                       "uses seed + i.")
+    order.add_argument("--repeats", type=_repeat_count, default=1,
+                       help="Seeded splits (start, held-out and pool images) the study is repeated over; the "
+                       "intervals need at least 2.")
     order.set_defaults(func=_labelling_order)
 
     bench = commands.add_parser("benchmark", help="Build the fixed benchmark, or score a model on it.")
@@ -337,7 +352,8 @@ def _labelling_order(args):
 
     labelling_order_study(args.model_dir, args.tile_set, args.out, base_images=args.base_images,
                           holdout_images=args.holdout_images, batch=args.batch, n_batches=args.batches,
-                          seed=args.seed, max_patches=args.max_patches, workers=args.workers)
+                          seed=args.seed, repeats=args.repeats, max_patches=args.max_patches,
+                          workers=args.workers)
 
 
 def _benchmark_build(args):

@@ -46,23 +46,22 @@ def test_tiles_to_reach_interpolates():
     assert tiles_to_reach([0, 6, 12], [0.40, 0.50, 0.56], 0.60) is None
 
 
-def test_order_study_orchestration(tmp_path, monkeypatch):
-    """Batches, both orders, shared start and the tiles saved, with training replaced by a known response."""
+def _fake_study(monkeypatch, value):
+    """Replace the model's description and the training by known responses.
+
+    A tile's uncertainty is 0.9 if it is worth ``value`` F1, else 0.1, and all tiles are equally far apart
+    (one-hot descriptions: every distance is sqrt 2, the median, so diversity is 1 for every tile not yet
+    picked): the ranked order takes the valuable tiles first. A trained model scores 0.4 plus the value
+    of its fitting tiles on fan and spot F1.
+    """
     import training.effort.active as active
     import training.fitting.train as train_module
-    from training.synth import synthesize_tileset
 
-    root = synthesize_tileset(tmp_path / "tiles", n_images=8, tiles_per_image=1, seed=4, tile_shape=(64, 96),
-                              image_prefix="ORD")
-    tiles = pd.read_csv(root / "tiles.csv")
-    # A fake "ranking": the pool in reverse id order; a tile is worth 0.02 F1 if its id ends in an odd
-    # digit, else 0. Training is replaced by that sum, so the ranked order (odd first) must win.
-    value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
-
-    def fake_rank(model_dir, tileset_root, tile_ids, log=print):
-        ordered = sorted(tile_ids, key=lambda t: -value[t])
-        return pd.DataFrame({"rank": range(1, len(ordered) + 1), "tile_id": ordered, "uncertainty": 0.5,
-                             "gain": 0.5, "p_deposit": 0.9, "n_detections": 1})
+    def fake_describe(model_dir, tileset_root, tile_ids):
+        ids = list(tile_ids)
+        table = pd.DataFrame({"tile_id": ids, "uncertainty": [0.9 if value[t] else 0.1 for t in ids],
+                              "p_deposit": 0.9, "n_detections": 1})
+        return table, np.eye(len(ids))
 
     calls = []
 
@@ -73,8 +72,21 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
         f1 = 0.4 + sum(value[t] for t in fit)
         return {"heldout_metrics": {"fan_f1": f1, "spot_f1": f1, "fan_direction_median_deg": 12.0}}
 
-    monkeypatch.setattr(active, "rank_tiles", fake_rank)
+    monkeypatch.setattr(active, "describe_tiles", fake_describe)
     monkeypatch.setattr(train_module, "train_model", fake_train)
+    return calls
+
+
+def test_order_study_orchestration(tmp_path, monkeypatch):
+    """Batches, both orders, shared start and the tiles saved, with training replaced by a known response."""
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "tiles", n_images=8, tiles_per_image=1, seed=4, tile_shape=(64, 96),
+                              image_prefix="ORD")
+    tiles = pd.read_csv(root / "tiles.csv")
+    # A tile is worth 0.02 F1 if its id ends in an odd digit, else 0, so the ranked order (odd first) must win.
+    value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
+    calls = _fake_study(monkeypatch, value)
     study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=1,
                                   n_batches=2, seed=0, log=lambda *_: None)
     # Start shared by both orders (trained once), then 1 and 2 pool tiles per order: 5 trainings.
@@ -87,8 +99,136 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
     assert ranked == sorted(ranked)
     saved = study["saved"]["fan_f1"]
     assert saved["ranked_tiles"] <= saved["random_tiles"]
+    # One split: no interval, and the summary says so.
+    assert saved["interval_90"] is None and "one split gives no interval" in study["verdict"]
     assert json.loads((tmp_path / "out" / "labelling_order.json").read_text())["sizes"] == [0, 1, 2]
     assert (tmp_path / "out" / "labelling_order.png").stat().st_size > 1000
+
+
+def test_order_study_repeats_over_seeded_splits(tmp_path, monkeypatch):
+    """Each repeat has its own split and seed; the record holds every split and the paired comparison."""
+    from training.effort.active import study_summary
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "tiles", n_images=9, tiles_per_image=1, seed=4, tile_shape=(64, 96),
+                              image_prefix="REP")
+    tiles = pd.read_csv(root / "tiles.csv")
+    value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
+    calls = _fake_study(monkeypatch, value)
+    study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=2,
+                                  n_batches=2, seed=5, repeats=3, log=lambda *_: None)
+    assert study["seeds"] == [5, 6, 7]
+    assert [run["seed"] for run in study["repeats"]] == [5, 6, 7]
+    # Each split trains once per distinct set of fitting tiles (its start, then each order at 2 and 4 pool
+    # tiles; where both orders picked the same tiles, once), with that split's seed and held-out images.
+    expected = []
+    for r in study["repeats"]:
+        base = [f"{image}_T00" for image in r["images"]["base"]]
+        sets = {frozenset(base + r["order"][name][:k]) for name in ("ranked", "random") for k in (0, 2, 4)}
+        expected += [(r["seed"], tuple(sorted(r["images"]["holdout"])))] * len(sets)
+    assert [(c[1].seed, c[1].holdout_images) for c in calls] == expected
+    assert 9 <= len(calls) <= 15
+    assert len({tuple(r["images"]["holdout"]) for r in study["repeats"]}) > 1
+    # The ranked order never does worse here, so every split saves tiles or ties, and the mean curve
+    # is the mean of the splits' curves.
+    fan = np.array([[p["fan_f1"] for p in r["curves"]["ranked"]] for r in study["repeats"]])
+    assert [p["fan_f1"] for p in study["curves"]["ranked"]] == pytest.approx(fan.mean(axis=0).tolist())
+    saved = study["comparison"]["fan_f1"]["saved"]
+    assert saved["n_more"] == 0 and saved["n_saved"] + saved["n_equal"] == 3
+    assert len(saved["interval_90"]) == 2
+    record = json.loads((tmp_path / "out" / "labelling_order.json").read_text())
+    assert record["verdict"] == study["verdict"] and len(record["repeats"]) == 3
+    text = study_summary(record)
+    assert "over 3 seeded splits (seeds 5 to 7)" in text and "ranked minus random" in text
+
+
+def test_bootstrap_mean_interval_hand_cases_and_scipy():
+    from scipy.stats import bootstrap
+
+    from training.effort.active import bootstrap_mean_interval
+
+    # Two repeats, 1 and 3: a resample's mean is 1 (chance 1/4), 2 (1/2) or 3 (1/4), so the 5th and 95th
+    # percentiles of the resampled means are 1 and 3.
+    assert bootstrap_mean_interval([1.0, 3.0]) == pytest.approx((1.0, 3.0))
+    # Equal repeats leave no spread; one repeat gives no interval.
+    assert bootstrap_mean_interval([2.5, 2.5, 2.5]) == pytest.approx((2.5, 2.5))
+    assert bootstrap_mean_interval([0.4]) is None
+    # Elementwise over columns: the second column is the first plus 1.
+    lo, hi = bootstrap_mean_interval(np.array([[1.0, 2.0], [3.0, 4.0]]))
+    assert lo.tolist() == pytest.approx([1.0, 2.0]) and hi.tolist() == pytest.approx([3.0, 4.0])
+    # Reference: scipy.stats.bootstrap, percentile method, 90 % (Efron and Tibshirani, An Introduction to
+    # the Bootstrap, 1993, ch. 13); the two use different resamples, so they agree to Monte Carlo error.
+    x = np.random.default_rng(3).normal(0.5, 0.1, size=12)
+    ref = bootstrap((x,), np.mean, confidence_level=0.9, method="percentile", n_resamples=20000,
+                    random_state=np.random.default_rng(1)).confidence_interval
+    ours = bootstrap_mean_interval(x, n_boot=20000)
+    assert ours == pytest.approx((ref.low, ref.high), abs=0.004)
+
+
+def test_tiles_saved_hand_cases():
+    from training.effort.active import tiles_saved
+
+    sizes = [0, 6, 12]
+    # Split 1: random ends at 0.56 (reached at 12 tiles); ranked reaches 0.56 halfway from 0.52 at 6 to 0.60
+    # at 12, at 9 tiles: 3 saved. Split 2: ranked 0.50 at 12 never reaches random's 0.56: counted at 12,
+    # 0 saved, censored. Split 3: random 0.40, 0.58, 0.50 reaches its final 0.50 at 6 * 0.10 / 0.18 = 3.33
+    # tiles; ranked 0.40, 0.45, 0.55 at 6 + 6 * 0.05 / 0.10 = 9: 5.67 more.
+    ranked = [[0.40, 0.52, 0.60], [0.40, 0.45, 0.50], [0.40, 0.45, 0.55]]
+    random = [[0.40, 0.50, 0.56], [0.40, 0.50, 0.56], [0.40, 0.58, 0.50]]
+    s = tiles_saved(sizes, ranked, random)
+    assert s["target"] == pytest.approx([0.56, 0.56, 0.50])
+    assert s["random_tiles"] == pytest.approx([12.0, 12.0, 10 / 3])
+    assert s["ranked_tiles"] == pytest.approx([9.0, 12.0, 9.0])
+    assert s["saved"] == pytest.approx([3.0, 0.0, 10 / 3 - 9.0])
+    assert s["censored"] == [False, True, False]
+
+
+def test_compare_orders_hand_case():
+    from training.effort.active import compare_orders
+
+    sizes = [0, 6, 12]
+    ranked = np.array([[0.40, 0.52, 0.60], [0.30, 0.50, 0.60], [0.50, 0.55, 0.62]])
+    random = np.array([[0.40, 0.50, 0.56], [0.30, 0.46, 0.52], [0.50, 0.53, 0.58]])
+    c = compare_orders(sizes, ranked, random)
+    assert c["repeats"] == 3
+    assert c["curves"]["ranked"]["mean"] == pytest.approx([0.40, 0.5233333, 0.6066667])
+    assert c["curves"]["random"]["mean"] == pytest.approx([0.40, 0.4966667, 0.5533333])
+    # Paired differences: 0 at the start, then 0.02 / 0.04 / 0.02 and 0.04 / 0.08 / 0.04.
+    assert c["difference"]["mean"] == pytest.approx([0.0, 0.08 / 3, 0.16 / 3])
+    # Area per split: the mean difference over the two batches: 0.03, 0.06, 0.03.
+    assert c["area"]["per_repeat"] == pytest.approx([0.03, 0.06, 0.03])
+    assert c["area"]["mean"] == pytest.approx(0.04)
+    # A resample of three splits is all 0.03 with chance (2/3)^3 = 0.30 > 0.05: the lower end is 0.03; the
+    # upper end lies between the mean and the largest split.
+    lo, hi = c["area"]["interval_90"]
+    assert lo == pytest.approx(0.03) and 0.04 <= hi <= 0.06
+    # Tiles saved: split 1, ranked reaches 0.56 at 6 + 6 * 0.04 / 0.08 = 9 (random at 12): 3. Split 2, ranked
+    # reaches 0.52 at 6 + 6 * 0.02 / 0.10 = 7.2: 4.8. Split 3, ranked reaches 0.58 at 6 + 6 * 0.03 / 0.07
+    # = 8.571: 3.429.
+    assert c["saved"]["saved"] == pytest.approx([3.0, 4.8, 12 - (6 + 18 / 7)])
+    assert c["saved"]["mean"] == pytest.approx((3.0 + 4.8 + 12 - 6 - 18 / 7) / 3)
+    assert c["saved"]["n_saved"] == 3 and c["saved"]["n_equal"] == 0 and c["saved"]["n_more"] == 0
+    lo, hi = c["saved"]["interval_90"]
+    assert 3.0 - 1e-9 <= lo < c["saved"]["mean"] < hi <= 4.8 + 1e-9
+
+
+def test_saving_words_state_the_verdict():
+    from training.effort.active import saving_words
+
+    def saved(values, interval, censored=None):
+        v = np.asarray(values, dtype=float)
+        return {"saved": list(v), "mean": float(v.mean()), "interval_90": interval,
+                "censored": censored or [False] * len(v), "n_saved": int(np.sum(v > 0)),
+                "n_equal": int(np.sum(v == 0)), "n_more": int(np.sum(v < 0))}
+
+    text = saving_words(saved([3.0, 4.8, 3.4], [3.0, 4.5]))
+    assert text.startswith("fan F1: the ranked order saved 3.7 tiles (90 % interval 3.0 to 4.5) over 3 splits")
+    assert "fewer tiles in 3 of 3" in text
+    text = saving_words(saved([2.0, -1.0, 0.0, 1.0], [-0.5, 1.5], censored=[False, True, False, False]))
+    assert text.startswith("fan F1: no saving shown") and "interval -0.5 to 1.5" in text
+    assert "in 1 the ranked order never reached the target" in text
+    assert "needed 2.0 tiles more" in saving_words(saved([-2.0, -2.0], [-2.0, -2.0]))
+    assert "one split gives no interval" in saving_words(saved([1.5], None))
 
 
 def test_tiles_needed_interval_recovers_an_exact_curve():
@@ -107,11 +247,42 @@ def test_tiles_needed_interval_recovers_an_exact_curve():
     assert flat["tiles"] == np.inf and flat["share_reaching"] == 0.0
 
 
-@pytest.mark.parametrize(("batch", "n_batches", "named"), [(0, 3, "batch 0"), (2, 0, "batches 0"), (1.5, 3, "batch 1.5")])
-def test_order_study_refuses_empty_batches_before_reading(tmp_path, batch, n_batches, named):
+@pytest.mark.parametrize(("batch", "n_batches", "repeats", "named"),
+                         [(0, 3, 1, "batch 0"), (2, 0, 1, "batches 0"), (1.5, 3, 1, "batch 1.5"),
+                          (2, 3, 0, "repeats 0"), (2, 3, True, "repeats True")])
+def test_order_study_refuses_empty_batches_before_reading(tmp_path, batch, n_batches, repeats, named):
     from detector.errors import DetectorError
 
     # The tile set does not exist: the counts are checked first, so nothing is read or trained.
     with pytest.raises(DetectorError, match=rf"^{named} must be a whole number >= 1"):
-        labelling_order_study(tmp_path / "model", tmp_path / "none", tmp_path / "out", batch=batch, n_batches=n_batches)
+        labelling_order_study(tmp_path / "model", tmp_path / "none", tmp_path / "out", batch=batch,
+                              n_batches=n_batches, repeats=repeats)
     assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("value", ["0", "-2", "three"])
+def test_cli_refuses_bad_repeats(tmp_path, capsys, value):
+    from frostvane.cli import main
+
+    # argparse checks the option before anything is read: one error line naming the value, exit 2.
+    with pytest.raises(SystemExit) as info:
+        main(["labelling-order", str(tmp_path / "model"), str(tmp_path / "set"), "--out", str(tmp_path / "o"),
+              "--repeats", value])
+    err = capsys.readouterr().err
+    assert info.value.code == 2
+    assert f"error: argument --repeats: repeats {value!r} must be a whole number >= 1" in err
+    assert not (tmp_path / "o").exists()
+
+
+def test_order_study_refuses_a_split_with_too_small_a_pool(tmp_path, monkeypatch):
+    from detector.errors import DetectorError
+    from training.synth import synthesize_tileset
+
+    root = synthesize_tileset(tmp_path / "tiles", n_images=6, tiles_per_image=1, seed=4, tile_shape=(64, 96),
+                              image_prefix="POOL")
+    calls = _fake_study(monkeypatch, {t: 0.0 for t in pd.read_csv(root / "tiles.csv")["tile_id"]})
+    # 6 images, 2 + 2 outside the pool: 2 pool tiles, and 2 batches of 2 need 4; nothing is trained.
+    with pytest.raises(DetectorError, match=r"the pool of split 1 \(seed 0\) holds 2 tiles; 2 batches of 2 need 4"):
+        labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=2,
+                              n_batches=2, repeats=2, log=lambda *_: None)
+    assert calls == [] and not (tmp_path / "out").exists()
