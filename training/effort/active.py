@@ -458,6 +458,8 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
     from detector.contract import CONSENSUS_FILE, TILES_FILE
     from detector.tileset import load_tileset
 
+    from threadpoolctl import threadpool_limits
+
     from ..fitting.train import TrainConfig, train_model
 
     for name, value in (("batch", batch), ("batches", n_batches), ("repeats", repeats)):
@@ -488,7 +490,10 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
     consensus_raw = pd.read_csv(root / CONSENSUS_FILE, dtype=str, keep_default_na=False)
     sizes = [k * batch for k in range(n_batches + 1)]
     runs = []
-    with tempfile.TemporaryDirectory(prefix="frostvane-order-") as tmp:
+    # One thread per fit: these fits are small (tens of thousands of patches), where OpenMP threads gain
+    # little, and on a machine shared with other work they wait on each other (a fit of the study took
+    # 3x as long with two threads as with one, with the same result, next to another busy process).
+    with tempfile.TemporaryDirectory(prefix="frostvane-order-") as tmp, threadpool_limits(limits=1):
         for r in range(repeats):
             split_seed = seed + r
             images, ids = splits[r]
