@@ -88,7 +88,7 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
     value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
     calls = _fake_study(monkeypatch, value)
     study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=1,
-                                  n_batches=2, seed=0, log=lambda *_: None)
+                                  n_batches=2, seed=0, repeats=1, n_refits=20, log=lambda *_: None)
     # Start shared by both orders (trained once), then 1 and 2 pool tiles per order: 5 trainings.
     assert len(calls) == 5
     assert all(c[1].rotations == (0,) and c[1].max_patches == 20000 for c in calls)
@@ -116,7 +116,7 @@ def test_order_study_repeats_over_seeded_splits(tmp_path, monkeypatch):
     value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
     calls = _fake_study(monkeypatch, value)
     study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=2,
-                                  n_batches=2, seed=5, repeats=3, log=lambda *_: None)
+                                  n_batches=2, seed=5, repeats=3, n_refits=20, log=lambda *_: None)
     assert study["seeds"] == [5, 6, 7]
     assert [run["seed"] for run in study["repeats"]] == [5, 6, 7]
     # Each split trains once per distinct set of fitting tiles (its start, then each order at 2 and 4 pool

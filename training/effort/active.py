@@ -428,7 +428,8 @@ def _whole_number(name, value):
 
 
 def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdout_images=3, batch=4, n_batches=3,
-                          seed=0, repeats=1, max_patches=20000, max_iter=60, workers=1, n_boot=2000, log=print):
+                          seed=0, repeats=4, max_patches=20000, max_iter=60, workers=1, n_boot=2000,
+                          n_refits=500, log=print):
     """Retrain on batches of a pool in ranked and in random order over seeded splits; compare the learning curves.
 
     Repeat ``i`` (of ``repeats``) uses the seed ``seed + i`` for everything:
@@ -441,7 +442,9 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
     held-out images. :func:`compare_orders` then gives, per metric (fan F1 and
     the mean of fan and spot F1), the mean curve of each order with a 90 %
     bootstrap interval over repeats, the paired difference per size, the area
-    between the curves and the tiles saved.
+    between the curves and the tiles saved (``n_boot`` resamples of the
+    splits); the tiles fan F1 >= 0.8 needs come from :func:`tiles_needed_interval`
+    (``n_refits`` residual-bootstrap refits) on every ranked point.
 
     Returns
     -------
@@ -529,7 +532,7 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
                          "curves": curves, "order": {"ranked": orders["ranked"][:sizes[-1]],
                                                      "random": orders["random"][:sizes[-1]]},
                          "ranking": ranking})
-    study = _study_record(model_dir, root, seed, sizes, batch, runs, max_patches, max_iter, n_boot)
+    study = _study_record(model_dir, root, seed, sizes, batch, runs, max_patches, max_iter, n_boot, n_refits)
     study["seconds"] = round(time.perf_counter() - started, 1)
     study = jsonable(study)
     out = Path(out)
@@ -548,7 +551,7 @@ def _metric(points, metric):
     return [p[metric] for p in points]
 
 
-def _study_record(model_dir, root, seed, sizes, batch, runs, max_patches, max_iter, n_boot):
+def _study_record(model_dir, root, seed, sizes, batch, runs, max_patches, max_iter, n_boot, n_refits):
     """The study's record from its splits: per-split curves, their comparison and the mean curves."""
     comparison, saved = {}, {}
     for metric in _METRICS:
@@ -579,7 +582,7 @@ def _study_record(model_dir, root, seed, sizes, batch, runs, max_patches, max_it
         curves[name] = points
     n_all = [run["base_tiles"] + k for run in runs for k in sizes]
     f1_all = [p["fan_f1"] for run in runs for p in run["curves"]["ranked"]]
-    needed = tiles_needed_interval(n_all, f1_all, FAN_F1_TARGET, seed=seed)
+    needed = tiles_needed_interval(n_all, f1_all, FAN_F1_TARGET, n_boot=n_refits, seed=seed)
     n_max = int(np.mean([run["base_tiles"] for run in runs])) + sizes[-1]
     needed["words"] = _needed_words(needed, FAN_F1_TARGET, n_max)
     first = runs[0]
