@@ -169,18 +169,20 @@ def test_tiles_saved_hand_cases():
     from training.effort.active import tiles_saved
 
     sizes = [0, 6, 12]
-    # Split 1: random ends at 0.56 (reached at 12 tiles); ranked reaches 0.56 halfway from 0.52 at 6 to 0.60
-    # at 12, at 9 tiles: 3 saved. Split 2: ranked 0.50 at 12 never reaches random's 0.56: counted at 12,
-    # 0 saved, censored. Split 3: random 0.40, 0.58, 0.50 reaches its final 0.50 at 6 * 0.10 / 0.18 = 3.33
-    # tiles; ranked 0.40, 0.45, 0.55 at 6 + 6 * 0.05 / 0.10 = 9: 5.67 more.
+    # Split 1: the ranked order ends higher, so the target is random's final 0.56 (reached at 12 tiles);
+    # ranked reaches it halfway from 0.52 at 6 to 0.60 at 12, at 9 tiles: 3 saved. Split 2: ranked ends
+    # lower, at 0.50, the target; random reaches 0.50 at 6 tiles, ranked at 12: 6 more. Split 3: random
+    # 0.40, 0.58, 0.50 ends lower; it reaches 0.50 at 6 * 0.10 / 0.18 = 3.33 tiles, ranked 0.40, 0.45,
+    # 0.55 at 6 + 6 * 0.05 / 0.10 = 9: 5.67 more.
     ranked = [[0.40, 0.52, 0.60], [0.40, 0.45, 0.50], [0.40, 0.45, 0.55]]
     random = [[0.40, 0.50, 0.56], [0.40, 0.50, 0.56], [0.40, 0.58, 0.50]]
     s = tiles_saved(sizes, ranked, random)
-    assert s["target"] == pytest.approx([0.56, 0.56, 0.50])
-    assert s["random_tiles"] == pytest.approx([12.0, 12.0, 10 / 3])
+    assert s["target"] == pytest.approx([0.56, 0.50, 0.50])
+    assert s["random_tiles"] == pytest.approx([12.0, 6.0, 10 / 3])
     assert s["ranked_tiles"] == pytest.approx([9.0, 12.0, 9.0])
-    assert s["saved"] == pytest.approx([3.0, 0.0, 10 / 3 - 9.0])
-    assert s["censored"] == [False, True, False]
+    assert s["saved"] == pytest.approx([3.0, -6.0, 10 / 3 - 9.0])
+    # Both orders end below where they started: both reach the target at once, nothing saved.
+    assert tiles_saved(sizes, [[0.5, 0.4, 0.45]], [[0.5, 0.45, 0.4]])["saved"] == [0.0]
 
 
 def test_compare_orders_hand_case():
@@ -215,18 +217,17 @@ def test_compare_orders_hand_case():
 def test_saving_words_state_the_verdict():
     from training.effort.active import saving_words
 
-    def saved(values, interval, censored=None):
+    def saved(values, interval):
         v = np.asarray(values, dtype=float)
-        return {"saved": list(v), "mean": float(v.mean()), "interval_90": interval,
-                "censored": censored or [False] * len(v), "n_saved": int(np.sum(v > 0)),
+        return {"saved": list(v), "mean": float(v.mean()), "interval_90": interval, "n_saved": int(np.sum(v > 0)),
                 "n_equal": int(np.sum(v == 0)), "n_more": int(np.sum(v < 0))}
 
     text = saving_words(saved([3.0, 4.8, 3.4], [3.0, 4.5]))
     assert text.startswith("fan F1: the ranked order saved 3.7 tiles (90 % interval 3.0 to 4.5) over 3 splits")
     assert "fewer tiles in 3 of 3" in text
-    text = saving_words(saved([2.0, -1.0, 0.0, 1.0], [-0.5, 1.5], censored=[False, True, False, False]))
+    text = saving_words(saved([2.0, -1.0, 0.0, 1.0], [-0.5, 1.5]))
     assert text.startswith("fan F1: no saving shown") and "interval -0.5 to 1.5" in text
-    assert "in 1 the ranked order never reached the target" in text
+    assert "fewer tiles in 2 of 4, as many in 1, more in 1" in text
     assert "needed 2.0 tiles more" in saving_words(saved([-2.0, -2.0], [-2.0, -2.0]))
     assert "one split gives no interval" in saving_words(saved([1.5], None))
 
