@@ -228,6 +228,8 @@ def test_saving_words_state_the_verdict():
     text = saving_words(saved([2.0, -1.0, 0.0, 1.0], [-0.5, 1.5]))
     assert text.startswith("fan F1: no saving shown") and "interval -0.5 to 1.5" in text
     assert "fewer tiles in 2 of 4, as many in 1, more in 1" in text
+    text = saving_words(saved([-2.0, 1.0, -1.0], [-2.0, 0.5]))
+    assert text.startswith("fan F1: no saving shown: the ranked order needed 0.7 tiles more on average")
     assert "needed 2.0 tiles more" in saving_words(saved([-2.0, -2.0], [-2.0, -2.0]))
     assert "one split gives no interval" in saving_words(saved([1.5], None))
 

@@ -348,7 +348,8 @@ def saving_words(saved, *, label="fan F1"):
     elif hi < 0:
         head = f"the ranked order needed {-mean:.1f} tiles more ({interval}) over {splits}"
     else:
-        head = f"no saving shown: the ranked order saved {mean:.1f} tiles on average ({interval}) over {splits}"
+        what = f"saved {mean:.1f} tiles" if mean >= 0 else f"needed {-mean:.1f} tiles more"
+        head = f"no saving shown: the ranked order {what} on average ({interval}) over {splits}"
     return f"{label}: {head}; {count}"
 
 
@@ -690,7 +691,7 @@ def plot_order_study(study, path):
         d = comparison["fan_f1"]["difference"]
         for row in d["per_repeat"]:
             ax.plot(sizes, row, "-", color="tab:blue", alpha=0.2, lw=0.8)
-        ax.plot(sizes, d["mean"], "o-", color="tab:blue", label="mean over splits")
+        ax.plot(sizes, d["mean"], "o-", color="tab:blue", label="mean over splits (thin: each split)")
         if d["interval_90"] is not None:
             ax.fill_between(sizes, d["interval_90"][0], d["interval_90"][1], color="tab:blue", alpha=0.2,
                             label="90 % interval of the mean")
