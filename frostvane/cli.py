@@ -184,9 +184,9 @@ def _add_training_commands(commands):
     order.add_argument("tile_set", type=Path, help="Labelled tile set split into start, pool and held-out images.")
     order.add_argument("--out", type=Path, required=True, help="Folder for labelling_order.json and .png.")
     order.add_argument("--base-images", type=int, default=3, help="Images labelled at the start.")
-    order.add_argument("--holdout-images", type=int, default=3, help="Images every run is scored on.")
+    order.add_argument("--holdout-images", type=int, default=6, help="Images every run of a split is scored on.")
     order.add_argument("--batch", type=int, default=6, help="Pool tiles added before each retraining.")
-    order.add_argument("--batches", type=int, default=3, help="Number of batches.")
+    order.add_argument("--batches", type=int, default=2, help="Number of batches.")
     order.add_argument("--max-patches", type=int, default=20000, help="Patch cap of each small training run.")
     order.add_argument("--workers", type=_worker_count, default=1, help="Feature extraction processes.")
     order.add_argument("--seed", type=int, default=0, help="Seed of the first split and its random order; split i "
