@@ -191,7 +191,7 @@ def _add_training_commands(commands):
     order.add_argument("--workers", type=_worker_count, default=1, help="Feature extraction processes.")
     order.add_argument("--seed", type=int, default=0, help="Seed of the first split and its random order; split i "
                        "uses seed + i.")
-    order.add_argument("--repeats", type=_repeat_count, default=4,
+    order.add_argument("--repeats", type=_repeat_count, default=8,
                        help="Seeded splits (start, held-out and pool images) the study is repeated over; the "
                        "intervals need at least 2.")
     order.set_defaults(func=_labelling_order)

@@ -427,7 +427,7 @@ def _whole_number(name, value):
 
 
 def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdout_images=3, batch=4, n_batches=3,
-                          seed=0, repeats=4, max_patches=20000, max_iter=60, workers=1, n_boot=2000,
+                          seed=0, repeats=8, max_patches=20000, max_iter=60, workers=1, n_boot=2000,
                           n_refits=500, log=print):
     """Retrain on batches of a pool in ranked and in random order over seeded splits; compare the learning curves.
 
