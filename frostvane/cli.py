@@ -83,26 +83,23 @@ def _screen(args):
     print(summary.format())
 
 
-def _worker_count(text):
-    """A ``--workers`` value: a whole number >= 1 (joblib would read -1 as every core and 0 as nothing)."""
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"workers {text!r} must be a whole number >= 1")
-    return value
+def _count_of(name):
+    """An option type for a count: a whole number >= 1, refused naming the option otherwise."""
+    def count(text):
+        try:
+            value = int(text)
+        except ValueError:
+            value = 0
+        if value < 1:
+            raise argparse.ArgumentTypeError(f"{name} {text!r} must be a whole number >= 1")
+        return value
+    return count
 
 
-def _repeat_count(text):
-    """A ``--repeats`` value: a whole number >= 1 (each repeat is one seeded split)."""
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"repeats {text!r} must be a whole number >= 1")
-    return value
+#: ``--workers`` (joblib would read -1 as every core and 0 as nothing) and ``--repeats`` (each repeat
+#: is one seeded split).
+_worker_count = _count_of("workers")
+_repeat_count = _count_of("repeats")
 
 
 def _add_training_commands(commands):

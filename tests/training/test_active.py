@@ -77,15 +77,20 @@ def _fake_study(monkeypatch, value):
     return calls
 
 
-def test_order_study_orchestration(tmp_path, monkeypatch):
-    """Batches, both orders, shared start and the tiles saved, with training replaced by a known response."""
+def _odd_tiles_teach(tmp_path, n_images, prefix):
+    """A small invented tile set, and what each tile is worth: 0.02 F1 if its id ends in an odd digit,
+    else 0, so the ranked order (odd first) must win."""
     from training.synth import synthesize_tileset
 
-    root = synthesize_tileset(tmp_path / "tiles", n_images=8, tiles_per_image=1, seed=4, tile_shape=(64, 96),
-                              image_prefix="ORD")
+    root = synthesize_tileset(tmp_path / "tiles", n_images=n_images, tiles_per_image=1, seed=4, tile_shape=(64, 96),
+                              image_prefix=prefix)
     tiles = pd.read_csv(root / "tiles.csv")
-    # A tile is worth 0.02 F1 if its id ends in an odd digit, else 0, so the ranked order (odd first) must win.
-    value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
+    return root, {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
+
+
+def test_order_study_orchestration(tmp_path, monkeypatch):
+    """Batches, both orders, shared start and the tiles saved, with training replaced by a known response."""
+    root, value = _odd_tiles_teach(tmp_path, 8, "ORD")
     calls = _fake_study(monkeypatch, value)
     study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=1,
                                   n_batches=2, seed=0, repeats=1, n_refits=20, log=lambda *_: None)
@@ -108,12 +113,8 @@ def test_order_study_orchestration(tmp_path, monkeypatch):
 def test_order_study_repeats_over_seeded_splits(tmp_path, monkeypatch):
     """Each repeat has its own split and seed; the record holds every split and the paired comparison."""
     from training.effort.active import study_summary
-    from training.synth import synthesize_tileset
 
-    root = synthesize_tileset(tmp_path / "tiles", n_images=9, tiles_per_image=1, seed=4, tile_shape=(64, 96),
-                              image_prefix="REP")
-    tiles = pd.read_csv(root / "tiles.csv")
-    value = {t: (0.02 if int(t.split("_")[1]) % 2 else 0.0) for t in tiles["tile_id"]}
+    root, value = _odd_tiles_teach(tmp_path, 9, "REP")
     calls = _fake_study(monkeypatch, value)
     study = labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=2,
                                   n_batches=2, seed=5, repeats=3, n_refits=20, log=lambda *_: None)
