@@ -217,22 +217,40 @@ def test_oracle_polarity_never_worse_than_random():
     assert m["prevailing"]["skill_median"] == pytest.approx(1 - np.median(e["model"]) / np.median(e["prevailing"]))
 
 
-def test_tile_mean_weights_consensus_by_length_and_pools_detections_robustly():
+def test_tile_mean_pools_both_sides_the_same_way():
     tiles = pd.DataFrame({"tile_id": ["t"], "image_id": ["I"], "width": [100], "height": [100]})
     cons = pd.DataFrame([_fan("t", 10, 10, 0, length=10), _fan("t", 50, 10, 90, length=10),
                          _fan("t", 90, 10, 90, length=20)])
     # Three detected fans about 90 degrees and one wrong fan pointing the other way.
     det = pd.DataFrame([_fan("t", 10, 10, 80, length=20), _fan("t", 30, 10, 90, length=20),
                         _fan("t", 50, 10, 100, length=20), _fan("t", 70, 10, 200, length=15)])
-    out = directions.tile_mean_errors(det, cons, tiles)
-    # Consensus: circular mean weighted by length, sum of (sin, cos) * length by hand.
-    cons_mean = np.degrees(np.arctan2(30, 10))
-    assert out["consensus_mean_deg"].iloc[0] == pytest.approx(cons_mean)
-    # The symmetric cluster's mean is 90; the wrong fan does not move the robust mean.
-    assert out["predicted_mean_deg"].iloc[0] == pytest.approx(90.0, abs=0.5)
-    plain = circmean(np.radians(np.repeat([80, 90, 100, 200], [20, 20, 20, 15])), high=2 * np.pi)  # scipy reference
-    assert abs(np.degrees(plain) - 90.0) > 5.0
-    assert out["error_deg"].iloc[0] == pytest.approx(abs(cons_mean - 90.0), abs=0.5)
+    mean = directions.tile_mean_errors(det, cons, tiles)
+    # "mean": circular means weighted by length on both sides, checked against scipy.stats.circmean
+    # of the angles repeated by their weights.
+    cons_mean = np.degrees(circmean(np.radians(np.repeat([0, 90, 90], [10, 10, 20])), high=2 * np.pi))
+    det_mean = np.degrees(circmean(np.radians(np.repeat([80, 90, 100, 200], [20, 20, 20, 15])), high=2 * np.pi))
+    assert cons_mean == pytest.approx(np.degrees(np.arctan2(30, 10)))  # sum of (sin, cos) * length by hand
+    assert mean["consensus_mean_deg"].iloc[0] == pytest.approx(cons_mean)
+    assert mean["predicted_mean_deg"].iloc[0] == pytest.approx(det_mean)
+    assert mean["error_deg"].iloc[0] == pytest.approx(abs(det_mean - cons_mean))
+    # "prevailing": the robust direction on both sides; the consensus's 0-degree fan and the wrong
+    # detected fan, both more than 45 degrees from the mode, move neither.
+    prev = directions.tile_mean_errors(det, cons, tiles, pooling="prevailing")
+    assert prev["consensus_mean_deg"].iloc[0] == pytest.approx(90.0, abs=0.5)
+    assert prev["predicted_mean_deg"].iloc[0] == pytest.approx(90.0, abs=0.5)
+    assert prev["error_deg"].iloc[0] < 1.0
+    with pytest.raises(ValueError, match="pooling"):
+        directions.tile_mean_errors(det, cons, tiles, pooling="median")
+
+
+def test_tile_mean_of_truth_against_itself_is_zero_for_two_winds():
+    # A tile whose fans follow two winds: scored against itself, either pooling gives no error
+    # (the estimators are the same on both sides).
+    tiles = pd.DataFrame({"tile_id": ["t"], "image_id": ["I"], "width": [100], "height": [100]})
+    cons = pd.DataFrame([_fan("t", 10 * i, 10, d, length=20) for i, d in enumerate([40, 45, 50, 200, 210])])
+    for pooling in directions.TILE_POOLINGS:
+        out = directions.tile_mean_errors(cons, cons, tiles, pooling=pooling)
+        assert out["error_deg"].iloc[0] == pytest.approx(0.0, abs=1e-9)
 
 
 def test_bootstrap_deterministic_and_brackets():

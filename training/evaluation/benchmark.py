@@ -288,6 +288,7 @@ def _headline(scores, breakdown=None):
         "fan_direction_median_deg": per_fan.get("median"), "fan_direction_p90_deg": per_fan.get("p90"),
         "flip_rate": per_fan.get("flip_rate"),
         "tile_mean_direction_median_deg": scores["direction"]["per_tile_mean"].get("median"),
+        "tile_prevailing_direction_median_deg": (scores["direction"].get("per_tile_prevailing") or {}).get("median"),
         "dice_mean": cov.get("dice_mean"), "covered_error_pp_mean": cov.get("covered_error_pp_mean"),
         "n_consensus_fans": obj["fan"]["n_consensus"], "n_consensus_spots": obj["spot"]["n_consensus"],
         "n_detections": scores["counts"]["n_detections"],
@@ -437,6 +438,7 @@ _ROWS = (
      "<= 10 / 30"),
     ("flip rate", ("flip_rate",), "pct", "<= 3 %"),
     ("per-tile mean direction error median, deg", ("tile_mean_direction_median_deg",), "1f", "<= 10"),
+    ("per-tile prevailing direction error median, deg", ("tile_prevailing_direction_median_deg",), "1f", ""),
     ("coverage Dice / covered-fraction error, pp", ("dice_mean", "covered_error_pp_mean"), "pair2", ">= 0.65 / <= 0.8"),
 )
 

@@ -13,6 +13,7 @@ __all__ = [
     "direction_errors",
     "direction_metrics",
     "matched_fans",
+    "TILE_POOLINGS",
     "tile_mean_errors",
     "baseline_directions",
     "baseline_errors",
@@ -89,21 +90,38 @@ def matched_fans(detections, consensus, pairs, tiles):
     return out
 
 
-def _tile_means(df, angle_col, weight_col):
-    labels, mean, _ = grouped_circular_mean(df[angle_col].to_numpy(float), df["tile_id"].to_numpy(), df[weight_col].to_numpy(float))
-    return pd.Series(mean, index=labels)
+#: How a tile's fans are pooled into one direction, the same way on both sides of the comparison.
+TILE_POOLINGS = ("mean", "prevailing")
 
 
-def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
-    """Error of the per-tile mean fan direction, for tiles with at least ``min_fans`` consensus fans.
+def _pooled(df, weights, pooling):
+    """One direction per tile: the weighted circular mean, or the robust prevailing direction."""
+    if pooling == "mean":
+        labels, mean, _ = grouped_circular_mean(df["direction_deg"].to_numpy(float), df["tile_id"].to_numpy(), weights)
+        return pd.Series(mean, index=labels, dtype=float)
+    frame = pd.DataFrame({"tile_id": df["tile_id"].to_numpy(), "d": df["direction_deg"].to_numpy(float), "w": weights})
+    return pd.Series({tid: tile_direction_stats(g["d"].to_numpy(), g["w"].to_numpy())[0]
+                      for tid, g in frame.groupby("tile_id")}, dtype=float)
 
-    The consensus side is the circular mean of the tile's fans weighted by
-    length. The detections' side pools robustly
-    (:func:`detector.inference.detect.tile_direction_stats`), weighting each fan by
-    score x direction confidence x length
-    (:func:`detector.inference.detect.fan_direction_weights`), because a few wrong fans
-    would otherwise drag the mean; without those columns it is the length-weighted
-    robust mean. A tile without any detected fan gets a NaN error.
+
+def tile_mean_errors(detections, consensus, tiles, *, min_fans=3, pooling="mean"):
+    """Error of the per-tile fan direction, for tiles with at least ``min_fans`` consensus fans.
+
+    Both sides pool their fans the same way, so that a tile whose fans follow two
+    winds is not scored on the gap between two estimators (the noise-free truth,
+    scored so, is off by a few degrees, not by the distance between a mean and a
+    mode):
+
+    - ``"mean"``: the weighted circular mean;
+    - ``"prevailing"``: the robust prevailing direction
+      (:func:`detector.inference.detect.tile_direction_stats`, the direction
+      ``screen`` reports per tile), which a minority of stray or second-wind fans
+      does not move.
+
+    Consensus fans weigh their length; detected fans weigh score x direction
+    confidence x length (:func:`detector.inference.detect.fan_direction_weights`;
+    length alone without those columns), the weight ``screen`` gives them. A tile
+    without any detected fan gets a NaN error.
 
     Returns
     -------
@@ -111,14 +129,15 @@ def tile_mean_errors(detections, consensus, tiles, *, min_fans=3):
         tile_id, image_id, n_consensus_fans, consensus_mean_deg,
         predicted_mean_deg, error_deg.
     """
+    if pooling not in TILE_POOLINGS:
+        raise ValueError(f"pooling {pooling!r} is not one of {TILE_POOLINGS}.")
     cf = consensus[consensus["kind"] == "fan"]
     counts = cf.groupby("tile_id").size()
     keep = counts.index[counts >= min_fans]
-    cons_mean = _tile_means(cf[cf["tile_id"].isin(keep)], "direction_deg", "length_px")
+    cf = cf[cf["tile_id"].isin(keep)]
+    cons_mean = _pooled(cf, cf["length_px"].to_numpy(float), pooling).reindex(keep)
     df_ = detections[(detections["kind"] == "fan") & detections["tile_id"].isin(keep)]
-    pred = {tid: tile_direction_stats(g["direction_deg"].to_numpy(float), fan_direction_weights(g))[0]
-            for tid, g in df_.groupby("tile_id")}
-    pred_mean = pd.Series(pred, dtype=float).reindex(cons_mean.index)
+    pred_mean = _pooled(df_, fan_direction_weights(df_), pooling).reindex(cons_mean.index)
     image = tiles.set_index("tile_id")["image_id"]
     out = pd.DataFrame(
         {

@@ -309,6 +309,7 @@ def summarise_for_card(heldout):
         "flip_rate": per_fan.get("flip_rate"),
         "n_matched_fans": per_fan.get("n"),
         "tile_mean_direction_median_deg": s["direction"]["per_tile_mean"].get("median"),
+        "tile_prevailing_direction_median_deg": s["direction"]["per_tile_prevailing"].get("median"),
         "false_per_mpx": s["objects"]["false_per_mpx"]["value"],
         "dice_mean": (s.get("coverage") or {}).get("dice_mean"),
         "covered_error_pp_mean": (s.get("coverage") or {}).get("covered_error_pp_mean"),

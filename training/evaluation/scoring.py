@@ -423,7 +423,7 @@ def score_catalogs(
     Returns
     -------
     dict
-        JSON-ready: objects, direction (per_fan, per_tile_mean), baselines,
+        JSON-ready: objects, direction (per_fan, per_tile_mean, per_tile_prevailing), baselines,
         coverage, breakdowns, intervals (95 % bootstrap over images), reference.
     """
     detections = detections.reset_index(drop=True)
@@ -441,6 +441,7 @@ def score_catalogs(
     objects = object_metrics(detections, consensus, pairs, tiles_wh)
     fans = matched_fans(detections, consensus, pairs, tiles)
     per_tile = tile_mean_errors(detections, consensus, tiles, min_fans=min_tile_fans)
+    per_tile_prevailing = tile_mean_errors(detections, consensus, tiles, min_fans=min_tile_fans, pooling="prevailing")
     errors = baseline_errors(fans, consensus, tiles, prevailing_deg=prevailing_deg, seed=seed)
     baselines = baseline_metrics(errors)
 
@@ -491,9 +492,11 @@ def score_catalogs(
 
     tile_summary = direction_metrics(per_tile["error_deg"])
     tile_summary["n_tiles_without_detected_fans"] = int(per_tile["predicted_mean_deg"].isna().sum())
+    prevailing_summary = direction_metrics(per_tile_prevailing["error_deg"])
     return {
         "objects": objects,
-        "direction": {"per_fan": direction_metrics(fans["error_deg"]), "per_tile_mean": tile_summary},
+        "direction": {"per_fan": direction_metrics(fans["error_deg"]), "per_tile_mean": tile_summary,
+                      "per_tile_prevailing": prevailing_summary},
         "baselines": {"per_fan": baselines, "per_tile_mean_on_matched": tile_baselines,
                       "prevailing_deg": None if prevailing_deg is None else float(prevailing_deg)},
         "coverage": coverage,
