@@ -120,6 +120,8 @@ def test_refine_model_matches_least_squares_on_a_known_relation():
     design = np.column_stack([np.ones(rows.sum()), (X - mean) / scale])
     targets = np.column_stack([np.log(readings.true_size[rows]), readings.turn_deg[rows]])
     expected, *_ = np.linalg.lstsq(design, targets, rcond=None)
+    # the relation is exact: no residual, so the smearing retransformation adds nothing
+    np.testing.assert_allclose(fit["fan"]["smearing_log"], 0.0, atol=1e-3)
     np.testing.assert_allclose(fit["fan"]["intercept"], expected[0], atol=1e-3)
     np.testing.assert_allclose(np.array(fit["fan"]["coef"]).T, expected[1:], atol=1e-3)
     # the relation is exact, so the refined readings are the consensus ones and the check says so
@@ -134,6 +136,28 @@ def test_refine_model_matches_least_squares_on_a_known_relation():
     assert check["fan_length"]["model"] < 1e-3 < check["fan_length"]["measured"]
     assert check["fan_direction_deg"]["model"] < 1e-2 < check["fan_direction_deg"]["measured"]
     assert check["spot_semi_minor"]["n"] == int(((readings.label == 1) & ~readings.is_fan).sum())
+
+
+def test_refine_model_sizes_are_right_on_average_with_log_normal_scatter():
+    # Consensus lengths scatter log-normally about the reading's (sigma 0.5): a fit of log sizes
+    # alone gives exp(E[log L]), short of E[L] by exp(sigma**2 / 2) = 1.133 (the log-normal mean,
+    # a textbook fact); the smearing retransformation (Duan 1983, JASA 78:605) restores the mean.
+    from detector.objects.refine import predict_refined
+    from training.fitting.objects import fit_refine_model
+
+    rng = np.random.default_rng(11)
+    readings = _readings_with_sizes(20000, rng)
+    scatter = np.exp(rng.normal(0.0, 0.5, size=readings.true_size.shape))
+    readings.true_size = readings.true_size * scatter
+    fit = fit_refine_model(readings, alpha=1e-3)
+    assert fit["fan"]["smearing_log"][0] == pytest.approx(0.125, abs=0.02)  # sigma**2 / 2
+    sizes, _ = predict_refined(fit, readings.F, readings.own_size, np.nan_to_num(readings.direction_deg),
+                               readings.is_fan)
+    rows = (readings.label == 1) & readings.is_fan
+    ratio = readings.true_size[rows, 0].sum() / sizes[rows, 0].sum()
+    assert ratio == pytest.approx(1.0, abs=0.03)
+    # without the retransformation the lengths would run short by about the log-normal factor
+    assert ratio * np.exp(fit["fan"]["smearing_log"][0]) == pytest.approx(np.exp(0.125), abs=0.03)
 
 
 def test_refine_model_needs_right_readings_of_both_kinds():
