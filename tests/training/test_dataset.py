@@ -55,26 +55,3 @@ def test_augmented_tile_turns_then_degrades_deterministically():
     b = augmented_tile(tile, "T1", 1)
     np.testing.assert_array_equal(a, b)
     assert a.shape == (50, 40) and not np.array_equal(a, plain)
-
-
-def test_augmented_tile_uses_the_ranges_it_is_given():
-    # The readings' copies use their own (wider) ranges: the same seed per tile and turn, so the copy
-    # equals degrade_tile's with those ranges, and fixed ranges give what scipy's blur gives.
-    import zlib
-
-    from training.fitting.dataset import DEGRADE_RANGES, READING_DEGRADE_RANGES
-
-    rng = np.random.default_rng(6)
-    tile = rng.integers(40, 220, (40, 50)).astype(np.uint8)
-    wide = augmented_tile(tile, "T2", 2, ranges=READING_DEGRADE_RANGES)
-    seed = zlib.crc32(b"T2/2")
-    expected = degrade_tile(np.rot90(tile, -2), np.random.default_rng(seed), ranges=READING_DEGRADE_RANGES)
-    np.testing.assert_array_equal(wide, expected)
-    assert not np.array_equal(wide, augmented_tile(tile, "T2", 2))
-    blur = augmented_tile(tile, "T2", 2, ranges=_fixed(blur=1.3))
-    reference = np.clip(np.round(ndimage.gaussian_filter(np.rot90(tile, -2).astype(np.float32), 1.3)), 1, 255)
-    np.testing.assert_allclose(blur.astype(float), reference, atol=1.0)
-    # the readings' ranges hold the patch models' ones
-    for key, (low, high) in DEGRADE_RANGES.items():
-        wide_low, wide_high = READING_DEGRADE_RANGES[key]
-        assert wide_low <= low and high <= wide_high

@@ -15,8 +15,7 @@ from detector._allocator import reuse_freed_memory
 from ..parallel import tile_parallel
 
 __all__ = ["PatchSet", "TileFeatures", "tile_features", "build_patch_set", "rotate_labels", "rotation_jobs",
-           "degrade_tile", "augmented_tile", "DEGRADE_RANGES",
-           "READING_DEGRADE_RANGES"]
+           "degrade_tile", "augmented_tile", "DEGRADE_RANGES"]
 
 
 @dataclass
@@ -74,12 +73,6 @@ def rotate_labels(masks, quarter_turns):
 #: season other than the catalog's, so the models do not learn one image quality; drawn per copy.
 DEGRADE_RANGES = {"blur_px": (0.0, 1.5), "noise_dn": (0.0, 3.0), "gain": (0.6, 1.0)}
 
-#: Wider ranges for the turned copies the object classifier learns its readings from:
-#: hazier, noisier and flatter images than the patch models' copies. The object classifier decides
-#: what is kept, and trained on the narrow ranges it scored faint, noisy fans low on any image outside
-#: them; the patch models keep the narrow ranges, which served them better (README, "Benchmark").
-READING_DEGRADE_RANGES = {"blur_px": (0.0, 2.5), "noise_dn": (0.0, 5.0), "gain": (0.45, 1.0)}
-
 
 def degrade_tile(tile, rng, *, nodata_value=0, ranges=None):
     """A copy of a tile as another camera or a later season would show it: blurred, noisier, flatter.
@@ -120,10 +113,10 @@ def degrade_tile(tile, rng, *, nodata_value=0, ranges=None):
     return out
 
 
-def augmented_tile(tile, tile_id, rotation, *, degrade=True, nodata_value=0, ranges=None):
+def augmented_tile(tile, tile_id, rotation, *, degrade=True, nodata_value=0):
     """The tile as a training job sees it: turned by ``rotation`` quarter turns clockwise and, for
-    turned copies when ``degrade``, passed through :func:`degrade_tile` (with ``ranges``, default
-    :data:`DEGRADE_RANGES`) with a seed of its own (the same tile and turn always give the same copy)."""
+    turned copies when ``degrade``, passed through :func:`degrade_tile` with a seed of its own
+    (the same tile and turn always give the same copy)."""
     import zlib
 
     if rotation % 4 == 0:
@@ -132,7 +125,7 @@ def augmented_tile(tile, tile_id, rotation, *, degrade=True, nodata_value=0, ran
     if not degrade:
         return turned
     rng = np.random.default_rng(zlib.crc32(f"{tile_id}/{rotation % 4}".encode()))
-    return degrade_tile(turned, rng, nodata_value=nodata_value, ranges=ranges)
+    return degrade_tile(turned, rng, nodata_value=nodata_value)
 
 
 def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15, degrade=False):

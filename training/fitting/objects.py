@@ -21,7 +21,7 @@ from detector.inference.detect import tile_candidates, tile_maps
 from detector.tile.features import extract_features
 from detector._allocator import reuse_freed_memory
 
-from .dataset import READING_DEGRADE_RANGES, augmented_tile
+from .dataset import augmented_tile
 from ..parallel import tile_parallel
 from ..evaluation.matching import candidate_pairs
 
@@ -196,8 +196,7 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
     consensus = tileset.features_of(tile_id)
     if rotation % 4:
         consensus = rotate_features(consensus, tile.shape, rotation)
-        tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value,
-                              ranges=READING_DEGRADE_RANGES)
+        tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value)
     nodata = tile == spec.nodata_value
     X, grid = extract_features(tile, spec, nodata_mask=nodata)
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)

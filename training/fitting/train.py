@@ -89,9 +89,8 @@ class TrainConfig:
     neg_ratio : float, default=3.0
     degrade : bool, default=True
         Photometric augmentation: the turned copies of fitting tiles are also
-        blurred, made noisier and flatter (:data:`training.fitting.dataset.DEGRADE_RANGES`
-        for the patch and orientation models, the wider
-        :data:`training.fitting.dataset.READING_DEGRADE_RANGES` for the object classifier's readings).
+        blurred, made noisier and flatter (:data:`training.fitting.dataset.DEGRADE_RANGES`),
+        for the patch, orientation and object models alike.
     max_iter : int, default=300
     learning_rate : float, default=0.1
     max_leaf_nodes : int, default=31
