@@ -69,17 +69,20 @@ def test_write_report_files_and_json_round_trip(scored, tmp_path):
     assert "common practice" in md
 
 
-def test_report_explains_its_two_per_tile_direction_figures(scored, tmp_path):
-    # The headline's figure (all detected fans, robust weighted mean) and the baseline table's
-    # (matched fans, consensus-length weights on both sides) are different quantities: the
-    # report states both values, on how many tiles, and what each measures.
+def test_report_explains_its_per_tile_direction_figures(scored, tmp_path):
+    # The headline's figure (all detected fans, weighted circular means), the prevailing one (both
+    # sides pooled robustly) and the baseline table's (matched fans, consensus-length weights on
+    # both sides) are different quantities: the report states their values, on how many tiles, and
+    # what each measures.
     s, _, _ = scored
     report.write_report(s, tmp_path / "rep")
     md = (tmp_path / "rep" / "report.md").read_text()
     all_fans = s["direction"]["per_tile_mean"]
+    prevailing = s["direction"]["per_tile_prevailing"]
     matched = s["baselines"]["per_tile_mean_on_matched"]["model"]
-    note = next(line for line in md.splitlines() if line.startswith("Two per-tile direction figures"))
+    note = next(line for line in md.splitlines() if line.startswith("Per-tile direction figures"))
     assert f"{all_fans['median']:.1f} deg median over {all_fans['n']} tiles" in note
+    assert f"prevailing direction error ({prevailing['median']:.1f} deg median)" in note
     assert f"{matched['median']:.1f} deg median over {matched['n']} tiles" in note
     assert "matched fans only" in note and "every fan the model detected" in note
     assert md.index("## Direction baselines") < md.index(note) < md.index("## Breakdowns")

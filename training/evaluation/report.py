@@ -149,16 +149,19 @@ def _baseline_table(scores):
 def _tile_direction_note(scores):
     """Why the headline's per-tile direction error and the baseline table's tile-mean median differ."""
     all_fans = _get(scores, ("direction", "per_tile_mean")) or {}
+    prevailing = _get(scores, ("direction", "per_tile_prevailing")) or {}
     matched = _get(scores, ("baselines", "per_tile_mean_on_matched", "model")) or {}
     no_fans = all_fans.get("n_tiles_without_detected_fans")
     return (
-        f"Two per-tile direction figures, measuring different things: the headline's per-tile mean direction "
+        f"Per-tile direction figures, measuring different things: the headline's per-tile mean direction "
         f"error ({_fmt(all_fans.get('median'), 'deg')} median over {all_fans.get('n', 0)} tiles with at least 3 "
-        f"consensus fans) compares the robust mean of every fan the model detected on a tile, weighted by score x "
-        f"direction confidence x length, with the length-weighted mean of the tile's consensus fans: what a "
-        f"screening reports per tile, so missed, false and duplicated fans move it"
+        f"consensus fans) compares the circular mean of every fan the model detected on a tile, weighted by "
+        f"score x direction confidence x length, with the length-weighted circular mean of the tile's consensus "
+        f"fans, so missed, false and duplicated fans move it"
         + (f" ({no_fans} further tiles of that kind had no detected fan and are left out)" if no_fans else "")
-        + f". The tile-mean column above ({_fmt(matched.get('median'), 'deg')} median over {matched.get('n', 0)} "
+        + f"; the per-tile prevailing direction error ({_fmt(prevailing.get('median'), 'deg')} median) pools "
+        f"both sides robustly instead (the direction a screening reports per tile, which stray fans or a "
+        f"second wind's minority do not move). The tile-mean column above ({_fmt(matched.get('median'), 'deg')} median over {matched.get('n', 0)} "
         f"tiles) uses the matched fans only, both sides weighted by the consensus length, so that only the "
         f"directions differ: it measures how well directions are read, not how well fans are found, and is the "
         f"one the baselines can be set beside. The gap between the two is the cost of detection errors."
