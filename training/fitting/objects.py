@@ -326,12 +326,13 @@ def fit_refine_model(readings, *, alpha=REFINE_RIDGE_ALPHA, min_rows=20):
             Y = np.column_stack([Y, turn])
         mean, scale = X.mean(axis=0), X.std(axis=0)
         scale[scale < 1e-9] = 1.0
-        model = Ridge(alpha=alpha).fit((X - mean) / scale, Y)
+        Z = (X - mean) / scale
+        model = Ridge(alpha=alpha).fit(Z, Y)
         # The fit is of log sizes, so exp(prediction) is a median-like size and areas (length squared
         # times opening) come out short on average. Duan's smearing estimate (Duan 1983, JASA 78:605,
         # "Smearing estimate: a nonparametric retransformation method") retransforms to the mean:
         # the log of the mean of exp(residual) joins each log size's intercept.
-        resid = np.log(readings.true_size[rows]) - model.predict((X - mean) / scale)[:, :2]
+        resid = Y[:, :2] - model.predict(Z)[:, :2]
         smearing = np.log(np.mean(np.exp(resid), axis=0))
         intercept = np.array(model.intercept_, dtype=float)
         intercept[:2] += smearing
