@@ -12,6 +12,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from . import _kernels
+from .noise import noise_sigma, smooth_excess_noise
 from ..errors import ImageError
 
 _U16 = 65535.0
@@ -20,11 +21,15 @@ _U16 = 65535.0
 class Prepared:
     """A tile made ready for the dense maps (see :func:`prepare_tile`)."""
 
-    __slots__ = ("image", "u16", "valid", "has_nodata", "background", "scale", "lo", "hi")
+    __slots__ = ("image", "u16", "valid", "has_nodata", "background", "scale", "lo", "hi", "noise", "smoothed")
 
 
-def prepare_tile(tile, spec, nodata_mask=None):
+def prepare_tile(tile, spec, nodata_mask=None, noise_range=None):
     """Validate a single-band tile, scale it to [0, 1] and find its robust background.
+
+    A tile noisier than ``noise_range.limit`` (a :class:`detector.tile.noise.NoiseRange`, from the
+    model's card) is smoothed (:func:`detector.tile.noise.smooth_excess_noise`) and prepared again
+    as a float tile; without a range, or within it, the tile is prepared as it is.
 
     uint8 tiles are widened to uint16 by ``* 257`` before scaling, so a uint8 tile
     and the same tile as uint16 ``* 257`` give identical features; float tiles are
@@ -36,7 +41,9 @@ def prepare_tile(tile, spec, nodata_mask=None):
         ``image`` float32 (M, N) with no-data pixels set to the background,
         ``u16`` the same on the 16-bit grid, ``valid`` bool (M, N), ``background``
         (median) and ``scale`` (1.4826 MAD, floored at ``spec.min_scale``) in [0, 1]
-        units, ``lo``/``hi`` the ``glcm_range_percentiles`` of valid pixels.
+        units, ``lo``/``hi`` the ``glcm_range_percentiles`` of valid pixels, ``noise``
+        the tile's noise before any smoothing (:func:`detector.tile.noise.noise_sigma`, [0, 1]
+        units) and ``smoothed`` whether it was smoothed.
     """
     tile = np.asarray(tile)
     if tile.ndim != 2 or tile.size == 0:
@@ -94,6 +101,12 @@ def prepare_tile(tile, spec, nodata_mask=None):
         image = np.where(valid, image, np.float32(out.background))
         u16 = np.where(valid, u16, np.uint16(med))
     out.image, out.u16, out.valid, out.has_nodata = image, np.ascontiguousarray(u16), valid, has_nodata
+    out.noise = noise_sigma(image, valid if has_nodata else None)
+    smooth, out.smoothed = smooth_excess_noise(image, out.noise, noise_range, valid if has_nodata else None)
+    if out.smoothed:
+        again = prepare_tile(np.where(valid, smooth, np.float32(np.nan)), spec, nodata_mask=~valid)
+        again.noise, again.smoothed = out.noise, True
+        return again
     return out
 
 

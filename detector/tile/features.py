@@ -152,7 +152,7 @@ def _safe_div(a, b):
     return np.divide(a, b, out=np.zeros(np.broadcast(a, b).shape), where=b > 0)
 
 
-def extract_features(tile, spec=None, *, nodata_mask=None):
+def extract_features(tile, spec=None, *, nodata_mask=None, noise_range=None):
     """Feature matrix of every patch of a tile.
 
     Parameters
@@ -163,6 +163,8 @@ def extract_features(tile, spec=None, *, nodata_mask=None):
         Defaults to ``FeatureSpec()``.
     nodata_mask : ndarray of bool (M, N), optional
         True where there is no data; replaces the ``nodata_value`` test.
+    noise_range : detector.tile.noise.NoiseRange, optional
+        The model's training noise: a noisier tile is smoothed first (as detection does).
 
     Returns
     -------
@@ -176,7 +178,7 @@ def extract_features(tile, spec=None, *, nodata_mask=None):
         The tile is not a non-empty 2-D array of a supported dtype.
     """
     spec = FeatureSpec() if spec is None else spec
-    return _features_of_prepared(_dense.prepare_tile(tile, spec, nodata_mask), spec)
+    return _features_of_prepared(_dense.prepare_tile(tile, spec, nodata_mask, noise_range), spec)
 
 
 def _features_of_prepared(prep, spec):
