@@ -167,6 +167,13 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
     if refine is not None:
         _check_refine_model(c, refine, tuple(object_feature_names))
 
+    noise = c.get("noise", required=False)
+    if noise is not None:
+        if not isinstance(noise, dict):
+            c.fail("noise", noise, "an object or null")
+        limit = c.number("noise.limit", c.get("noise.limit"), lo=0.0, lo_open=True, hi=1.0)
+        c.number("noise.target", c.get("noise.target"), lo=0.0, lo_open=True, hi=limit)
+
     stats = c.get("unfamiliarity", required=False)
     if stats is not None:
         if not isinstance(stats, dict):

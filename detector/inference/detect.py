@@ -49,6 +49,12 @@ class TileResult:
         Share of pixels that are not no-data.
     summary : ndarray of shape (n_features,)
         Mean feature vector over valid patches (for the unfamiliarity score).
+    noise : float
+        The tile's noise before any smoothing (:func:`detector.tile.noise.noise_sigma`), as a
+        fraction of the full grey scale.
+    smoothed : bool
+        Whether the tile was noisier than every fitting tile of the model and so smoothed
+        before its features were computed (:func:`detector.tile.noise.smooth_excess_noise`).
     """
 
     tile_id: str
@@ -62,6 +68,8 @@ class TileResult:
     spot_cover: np.ndarray
     valid_fraction: float
     summary: np.ndarray
+    noise: float = float("nan")
+    smoothed: bool = False
 
     @property
     def p_deposit(self):
@@ -209,7 +217,8 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     min_score : float, optional
         Smallest object score kept; default: the model card's.
     features : tuple (X, grid), optional
-        Precomputed features of this tile with the model's spec.
+        Precomputed features of this tile with the model's spec and noise range
+        (``extract_features(tile, spec, nodata_mask=..., noise_range=model.noise_range)``).
 
     Returns
     -------
@@ -219,7 +228,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     tile = np.asarray(tile)
     if nodata_mask is None:
         nodata_mask = tile == spec.nodata_value
-    prep = _dense.prepare_tile(tile, spec, nodata_mask)
+    prep = _dense.prepare_tile(tile, spec, nodata_mask, model.noise_range)
     X, grid = _features_of_prepared(prep, spec) if features is None else features
     maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
     params = AssemblyParams.from_dict(model.assembly)
@@ -247,4 +256,6 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         spot_cover=spot_cover,
         valid_fraction=float((~np.asarray(nodata_mask, dtype=bool)).mean()),
         summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
+        noise=float(prep.noise),
+        smoothed=bool(prep.smoothed),
     )

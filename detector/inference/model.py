@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import ModelError, SpecError
+from ..tile.noise import NoiseRange
 from ..tile.spec import FEATURE_VERSION, FeatureSpec
 
 __all__ = [
@@ -110,6 +111,12 @@ class Model:
     def assembly(self):
         """Object-assembly parameters stored in the card."""
         return self.card.get("assembly", {})
+
+    @property
+    def noise_range(self):
+        """The fitting tiles' noise (:class:`detector.tile.noise.NoiseRange`); None for a card
+        without it, whose tiles are never smoothed."""
+        return NoiseRange.from_card(self.card.get("noise"))
 
     def predict_raw(self, X):
         """Uncalibrated patch class probabilities from detector.onnx, shape (n, 3)."""

@@ -62,3 +62,20 @@ def test_all_nodata_tile(model_and_tile):
     assert result.p_deposit == 0.0
     assert result.valid_fraction == 0.0
     assert not result.fan_cover.any() and not result.spot_cover.any()
+
+
+def test_a_tile_noisier_than_every_fitting_tile_is_smoothed_and_flagged(model_and_tile):
+    # The card keeps the fitting tiles' noise range; a tile within it is read as it is, the same tile
+    # with white noise well above it (sigma 4 grey levels added) is smoothed first.
+    model, tile, tile_id = model_and_tile
+    limit = model.noise_range.limit
+    assert 0 < model.noise_range.target <= limit < 1
+    plain = detect_tile(model, tile, tile_id=tile_id)
+    assert not plain.smoothed and plain.noise <= limit
+    rng = np.random.default_rng(11)
+    noisy = np.clip(np.rint(tile.astype(float) + rng.normal(0.0, 4.0 * 257 if tile.dtype == np.uint16 else 4.0,
+                                                            tile.shape)), 0, np.iinfo(tile.dtype).max)
+    noisy = noisy.astype(tile.dtype)
+    result = detect_tile(model, noisy, tile_id=tile_id)
+    assert result.smoothed and result.noise > limit
+    assert result.noise == pytest.approx(np.hypot(plain.noise, 4.0 / 255), rel=0.1)  # noises add in variance

@@ -51,16 +51,17 @@ def test_features_on_a_cluster_equal_the_local_ones(tiny_tileset):
     spec = FeatureSpec()
     # Two turns per tile: six jobs, each sampling background with its own seed.
     options = dict(tau=0.05, rotations=(0, 1), seed=4, max_patches=None, degrade=True)
-    local, _, local_summaries = build_patch_set(tileset, ids, spec, workers=1, **options)
+    local, _, local_summaries, local_noise = build_patch_set(tileset, ids, spec, workers=1, **options)
     with LocalCluster(n_workers=2, processes=False, threads_per_worker=1, dashboard_address=None) as cluster:
         with on_cluster(cluster.scheduler_address):
-            remote, _, remote_summaries = build_patch_set(tileset, ids, spec, workers=1, **options)
+            remote, _, remote_summaries, remote_noise = build_patch_set(tileset, ids, spec, workers=1, **options)
         prefixes = set(cluster.scheduler.task_prefixes)
     assert any("_extract_one" in p for p in prefixes), prefixes  # the extraction ran on the cluster
     assert len(remote) == len(local) > 0
     for name in ("X", "cls", "fan_direction_deg", "axis_deg", "fan_cover_share", "image_id", "tile_id", "weight"):
         np.testing.assert_array_equal(getattr(remote, name), getattr(local, name), err_msg=name)
     np.testing.assert_array_equal(remote_summaries, local_summaries)
+    np.testing.assert_array_equal(remote_noise, local_noise)
 
 
 @pytest.mark.parametrize("workers", [1, 2])

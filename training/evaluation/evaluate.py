@@ -37,14 +37,15 @@ def _run_one(model, tileset, tile_id, tau, min_score=None):
     spec = model.feature_spec
     tile = tileset.read_tile(tile_id)
     nodata = tile == spec.nodata_value
-    X, grid = extract_features(tile, spec, nodata_mask=nodata)
+    X, grid = extract_features(tile, spec, nodata_mask=nodata, noise_range=model.noise_range)
     masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
     targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
     result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid), min_score=min_score)
     valid = np.asarray(grid.valid, dtype=bool)
     info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
             "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
-            "shape": tile.shape, "valid_fraction": result.valid_fraction}
+            "shape": tile.shape, "valid_fraction": result.valid_fraction,
+            "noise": result.noise, "smoothed": result.smoothed}
     return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
 
 

@@ -7,7 +7,8 @@ from joblib import delayed
 from tqdm.auto import tqdm
 
 from detector.inference.detect import tile_summary_vector
-from detector.tile.features import extract_features, patch_targets
+from detector.tile import _dense
+from detector.tile.features import _features_of_prepared, patch_targets
 from detector.tile.spec import patch_axis_deg
 from detector.labels import rasterise_features
 from detector._allocator import reuse_freed_memory
@@ -40,6 +41,8 @@ class TileFeatures:
         Mean positive darkness over the window (used to find hard negatives).
     summary : ndarray of shape (n_features,)
         Mean feature vector over the tile's valid patches (before any sampling).
+    noise : float
+        The tile's noise as extracted (:func:`detector.tile.noise.noise_sigma`; a degraded copy's own).
     """
 
     tile_id: str
@@ -54,6 +57,7 @@ class TileFeatures:
     axis_deg: np.ndarray
     patch_darkness: np.ndarray
     summary: np.ndarray
+    noise: float = float("nan")
 
 
 def rotate_labels(masks, quarter_turns):
@@ -152,7 +156,8 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15, degrade=False
     tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value)
     fan, spot, direction = rotate_labels(masks, rotation % 4)
     nodata = tile == spec.nodata_value
-    X, grid = extract_features(tile, spec, nodata_mask=nodata)
+    prep = _dense.prepare_tile(tile, spec, nodata)
+    X, grid = _features_of_prepared(prep, spec)
     targets = patch_targets(grid, fan, spot, direction, tau=tau)
     image_id = str(tileset.tiles.set_index("tile_id").at[tile_id, "image_id"])
     return TileFeatures(
@@ -168,6 +173,7 @@ def tile_features(tileset, tile_id, spec, *, rotation=0, tau=0.15, degrade=False
         axis_deg=np.asarray(patch_axis_deg(X, spec), dtype=np.float32),
         patch_darkness=X[:, spec.feature_names.index("int_dark")].astype(np.float32),
         summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
+        noise=float(prep.noise),
     )
 
 
@@ -281,6 +287,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         Only when ``sample`` is False (kept for reuse by evaluation); else empty.
     summaries : ndarray of shape (n_tiles, n_features)
         Mean feature vector of each unrotated tile (for the unfamiliarity score).
+    noise : ndarray of shape (n_tiles,)
+        Noise of each unrotated tile (for the model's noise range).
     """
     jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     seeds = np.random.SeedSequence(seed).spawn(len(jobs))
@@ -297,7 +305,8 @@ def build_patch_set(tileset, tile_ids, spec, *, tau=0.15, rotations=(0,), seed=0
         keep = _cap(patches.cls, max_patches, rng)
         patches = _take(patches, keep)
     summaries = np.array([tf.summary for tf, _, _ in results if tf.rotation == 0])
-    return patches, ([tf for tf, _, _ in results] if not sample and keep_tiles else []), summaries
+    noise = np.array([tf.noise for tf, _, _ in results if tf.rotation == 0], dtype=np.float64)
+    return patches, ([tf for tf, _, _ in results] if not sample and keep_tiles else []), summaries, noise
 
 
 def _extract_one(tileset, tile_id, spec, rotation, tau, seed_seq, sample, neg_ratio, hard_share, degrade=False):
@@ -314,7 +323,7 @@ def _slim(tf, idx):
     """A TileFeatures holding only the sampled patches (grid dropped)."""
     return TileFeatures(tf.tile_id, tf.image_id, tf.rotation, tf.X[idx], None, tf.cls[idx], tf.fan_cover_share[idx],
                         tf.spot_cover_share[idx], tf.fan_direction_deg[idx], tf.axis_deg[idx], tf.patch_darkness[idx],
-                        tf.summary)
+                        tf.summary, tf.noise)
 
 
 def _concat(parts):

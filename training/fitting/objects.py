@@ -18,7 +18,8 @@ from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, read
 from detector.objects.context import context_matrix, reading_layout
 from detector.objects.refine import REFINE_FEATURE_NAMES, predict_refined, reading_shapes, refine_design
 from detector.inference.detect import tile_candidates, tile_maps
-from detector.tile.features import extract_features
+from detector.tile import _dense
+from detector.tile.features import _features_of_prepared
 from detector._allocator import reuse_freed_memory
 
 from .dataset import augmented_tile
@@ -190,7 +191,8 @@ def rotate_features(features, shape, quarter_turns):
     return out
 
 
-def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0, degrade=False):
+def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, params, rotation=0, degrade=False,
+                   noise_range=None):
     reuse_freed_memory()
     tile = tileset.read_tile(tile_id)
     consensus = tileset.features_of(tile_id)
@@ -198,21 +200,25 @@ def _tile_readings(tileset, tile_id, spec, predict_patches, predict_polarity, pa
         consensus = rotate_features(consensus, tile.shape, rotation)
         tile = augmented_tile(tile, tile_id, rotation, degrade=degrade, nodata_value=spec.nodata_value)
     nodata = tile == spec.nodata_value
-    X, grid = extract_features(tile, spec, nodata_mask=nodata)
+    # A turned copy was degraded on purpose: only the tile as it came is smoothed, as detection would.
+    prep = _dense.prepare_tile(tile, spec, nodata, None if rotation % 4 else noise_range)
+    X, grid = _features_of_prepared(prep, spec)
     maps = tile_maps(X, grid, tile.shape, spec, predict_patches, predict_polarity)
-    candidates = tile_candidates(tile, nodata, maps, spec, params)
+    candidates = tile_candidates(tile, nodata, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
     label, error, truth = label_readings(candidates, consensus, tile_id, with_truth=True)
     return (F, label, error, *reading_layout(candidates), reading_shapes(candidates)[0], truth[:, :2], truth[:, 2])
 
 
 def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, params, *, workers=1,
-                  rotations=(0,), jobs=None, desc="candidates", degrade=False):
+                  rotations=(0,), jobs=None, desc="candidates", degrade=False, noise_range=None):
     """Labelled candidate readings of some tiles under given patch and polarity predictors.
 
     ``rotations`` (quarter turns clockwise) augments the readings: each tile is
     also read turned, with its consensus turned alike. ``jobs`` (pairs of tile id
-    and quarter turns) replaces ``tile_ids`` x ``rotations``.
+    and quarter turns) replaces ``tile_ids`` x ``rotations``. ``noise_range``
+    (:class:`detector.tile.noise.NoiseRange`) smooths unturned tiles noisier than
+    it, as detection does.
 
     Returns
     -------
@@ -221,7 +227,8 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     image = tileset.tiles.set_index("tile_id")["image_id"]
     jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     results = tile_parallel(workers)(
-        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r, degrade)
+        delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r, degrade,
+                                noise_range)
         for tid, r in tqdm(jobs, desc=desc, unit="tile", leave=False)
     )
     return CandidateSet.concat(

@@ -30,6 +30,7 @@ from detector.inference.model import (
     Calibration,
     sha256_file,
 )
+from detector.tile.noise import NOISE_METHOD, NoiseRange
 from detector.tile.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
@@ -436,12 +437,14 @@ class _Split:
 
 @dataclass(frozen=True)
 class _Patches:
-    """Fitting and calibration patch sets, the fitting tiles' summaries, rotations drawn per fitting tile."""
+    """Fitting and calibration patch sets, the fitting tiles' summaries and noise range, rotations drawn
+    per fitting tile."""
 
     train: object
     val: object
     fit_summaries: object
     per_tile: int
+    noise_range: object = None
 
 
 @dataclass(frozen=True)
@@ -566,7 +569,7 @@ def _patch_sets(tileset_root, tileset, split, spec, config, log):
     if per_tile is None:
         per_tile = len(config.rotations) if len(split.ids["fit"]) < config.all_rotations_below else 2
     fit_jobs = rotation_jobs(split.ids["fit"], config.rotations, per_tile=per_tile, seed=config.seed)
-    train, _, fit_summaries = build_patch_set(tileset, split.ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
+    train, _, fit_summaries, fit_noise = build_patch_set(tileset, split.ids["fit"], spec, tau=config.tau, jobs=fit_jobs,
                                               seed=config.seed, neg_ratio=config.neg_ratio,
                                               max_patches=config.max_patches, workers=config.workers,
                                               desc="fit features", degrade=config.degrade)
@@ -578,13 +581,17 @@ def _patch_sets(tileset_root, tileset, split, spec, config, log):
             f"others."
         )
     # Calibration wants the true class mix, so its patches are a uniform sample (capped for memory).
-    val, _, _ = build_patch_set(tileset, split.ids["calibration"], spec, tau=config.tau, rotations=(0,),
+    val, _, _, _ = build_patch_set(tileset, split.ids["calibration"], spec, tau=config.tau, rotations=(0,),
                                 seed=config.seed + 1, sample=False, keep_tiles=False,
                                 max_patches=config.max_patches, workers=config.workers,
                                 desc="calibration features")
     log(f"patches: fit {len(train)} ({np.bincount(train.cls, minlength=3).tolist()} none/fan/spot), "
         f"calibration {len(val)}")
-    return _Patches(train, val, fit_summaries, per_tile)
+    noise_range = NoiseRange.of_tiles(fit_noise)
+    if noise_range is not None:
+        log(f"noise: fitting tiles {255 * np.nanmedian(fit_noise):.2f} grey levels (median); a tile above "
+            f"{255 * noise_range.limit:.2f} is smoothed to {255 * noise_range.target:.2f} before detection")
+    return _Patches(train, val, fit_summaries, per_tile, noise_range)
 
 
 def _fit_patch_classifier(patches, config, log):
@@ -667,7 +674,7 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     full_polarity = _PolarityPredictor(orientation.model, orientation.index)
     cal_sample = _tile_sample(split.ids["calibration"], config.max_candidate_tiles, config.seed + 5)
     cand_val = candidate_set(tileset, cal_sample, spec, full_patches, full_polarity, params,
-                             workers=config.workers, desc="calibration candidates")
+                             workers=config.workers, desc="calibration candidates", noise_range=patches.noise_range)
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
@@ -805,6 +812,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
         "context_features": list(CONTEXT_FEATURE_NAMES),
         "direction_confidence": objects.confidence,
         "refine_model": objects.refine,
+        "noise": _noise_entry(patches.noise_range),
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
@@ -828,6 +836,14 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
             "prevailing_deg": float(circular_mean(split.fit_fans["direction_deg"].to_numpy(float))),
         },
     }
+
+
+def _noise_entry(noise_range):
+    """The card's ``noise``: the fitting tiles' noise range, or None (nothing is ever smoothed)."""
+    if noise_range is None:
+        return None
+    return {"limit": noise_range.limit, "target": noise_range.target,
+            "units": "fraction of the full grey scale (x 255: 8-bit grey levels)", "method": NOISE_METHOD}
 
 
 def _write_model_folder(out, card, onnx, tileset, split, patches, objects, config, log, started):
