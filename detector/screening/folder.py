@@ -29,6 +29,8 @@ TILE_COLUMNS = (
     "valid_fraction",
     "area_m2",
     "covered_m2",
+    "noise_8bit",
+    "smoothed",
 ) + SHARE_COLUMNS
 
 

@@ -467,7 +467,7 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
         groups.setdefault(task.image, []).append(index)
     names = sorted(images)
     figures = _Figures(names, images, use_azimuth="azimuth_deg" in columns)
-    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, area=0.0,
+    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, n_smoothed=0, area=0.0,
                   covered=0.0)
     records = []
 
@@ -494,6 +494,9 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
             totals["n_fans"] += int((detections["kind"] == "fan").sum())
             totals["n_spots"] += int((detections["kind"] == "spot").sum())
             totals["n_deposit_tiles"] += int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum())
+            if "smoothed" in scored.columns:
+                # tiles from an older journal have no value: not smoothed
+                totals["n_smoothed"] += int((pd.to_numeric(scored["smoothed"], errors="coerce").fillna(0) > 0).sum())
             totals["area"] += float((scored["width"] * scored["height"]).sum())
             totals["covered"] += float(
                 ((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
@@ -534,6 +537,8 @@ class ScreenSummary:
     n_fans, n_spots : int
     n_deposit_tiles : int
         Scored tiles with ``p_deposit >= DEPOSIT_THRESHOLD``.
+    n_smoothed : int
+        Scored tiles noisier than every fitting tile of the model, smoothed before detection.
     covered_percent : float
         Fan and spot cover over the scored tiles' area, %.
     megapixels : float
@@ -563,6 +568,7 @@ class ScreenSummary:
     mpx_per_s: float
     workers: int
     per_image: pd.DataFrame = field(repr=False)
+    n_smoothed: int = 0
 
     def format(self, *, max_images=12):
         """The one-screen text summary."""
@@ -572,6 +578,11 @@ class ScreenSummary:
             + f") of {len(self.per_image)} image(s)",
             f"deposits: {self.n_deposit_tiles} tiles with p_deposit >= {DEPOSIT_THRESHOLD}; "
             f"{self.n_fans} fans, {self.n_spots} spots; covered {self.covered_percent:.2f} % of scored area",
+        ]
+        if self.n_smoothed:
+            lines.append(f"noise: {self.n_smoothed} tile(s) noisier than every tile the model was fitted on were "
+                         f"smoothed first; their detections are a guess (tiles.csv: smoothed)")
+        lines += [
             f"throughput: {self.megapixels:.1f} Mpx in {self.seconds:.1f} s = {self.mpx_per_s:.2f} Mpx/s "
             f"({self.workers} worker{'s' if self.workers != 1 else ''})",
         ]

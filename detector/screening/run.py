@@ -15,7 +15,10 @@ The screening folder
     tiles (``frostvane effort`` fills it) and ``"nodata"`` for tiles whose
     core is less than half valid, which are not scored. ``area_m2`` is the
     ground area of the tile's core and ``covered_m2`` that of its fan and
-    spot cover, m^2 (NaN when the scale is unknown). The
+    spot cover, m^2 (NaN when the scale is unknown). ``noise_8bit`` is the
+    tile's noise (:func:`detector.tile.noise.noise_sigma`, in 8-bit grey
+    levels) and ``smoothed`` says it was above the model's fitting tiles' and
+    the tile was smoothed before detection (such tiles are unfamiliar). The
     ``unfamiliarity_share_<group>`` columns split the tile's squared
     unfamiliarity distance among the feature groups
     (:func:`detector.inference.unfamiliar.unfamiliarity_parts`; they sum to 1).
@@ -248,7 +251,8 @@ def _run_record(record, params, summary, run, scheduler, min_score, written):
                    "megapixels": run["pixels"] / 1e6, "mpx_per_s": summary.mpx_per_s,
                    "tiles_resumed": run["n_resumed"], "tiles_computed": run["n_computed"]},
         "counts": {k: getattr(summary, k)
-                   for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles")},
+                   for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles",
+                             "n_smoothed")},
         **written,
     }
 

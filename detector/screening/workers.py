@@ -85,7 +85,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "width": task.width, "height": task.height, "p_deposit": np.nan, "fan_cover": np.nan,
         "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
-        "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan,
+        "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan, "noise_8bit": np.nan, "smoothed": False,
         **dict.fromkeys(SHARE_COLUMNS, np.nan),
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
@@ -158,6 +158,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
         mean_direction_deg=mean_dir,
         direction_scatter_deg=spread,
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
+        noise_8bit=255.0 * result.noise,
+        smoothed=result.smoothed,
     )
     shares = unfamiliarity_parts(model.card.get("unfamiliarity"), result.summary[None, :], model.card["feature_names"])
     row.update(zip(SHARE_COLUMNS, (float(v) for v in shares[0])))

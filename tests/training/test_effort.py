@@ -248,6 +248,30 @@ def test_unfamiliar_reason_names_the_feature_groups():
     assert "feature groups were not recorded" in route_tiles(_screen(), _card())["reason"][6]
 
 
+def test_a_smoothed_tile_is_unfamiliar_whatever_its_features_and_says_why():
+    # s0 (machine) and s4 (skip) were noisier than every fitting tile (limit 2.0 grey levels in the card),
+    # so they were smoothed before detection: neither is trusted to the machine nor skipped.
+    screen = _screen()
+    screen["noise_8bit"] = 1.5
+    screen["smoothed"] = False
+    screen.loc[[0, 4], ["noise_8bit", "smoothed"]] = [[3.2, True], [2.6, True]]
+    card = _card()
+    card["noise"] = {"limit": 2.0 / 255, "target": 1.0 / 255}
+    routed = route_tiles(screen, card)
+    route = dict(zip(routed["tile_id"], routed["route"]))
+    assert route["s0"] == "crowd" and route["s4"] == "crowd"
+    assert routed["unfamiliar"].tolist()[:5] == [True, False, False, False, True]
+    assert routed.loc[0, "reason"] == ("crowd, unfamiliar: noise 3.2 grey levels, above the noisiest fitting tile's "
+                                       "2.0; the model never met such a tile, so it was smoothed before detection "
+                                       "and its detections are not trusted")
+    assert routed.loc[0, "unfamiliarity"] == screen.loc[0, "unfamiliarity"]  # the column is left as measured
+    # The other tiles keep the routes they had (a screen written as CSV gives "True"/"False" too).
+    plain = dict(zip(*route_tiles(_screen(), _card())[["tile_id", "route"]].to_numpy().T))
+    assert all(route[t] == plain[t] for t in route if t not in ("s0", "s4"))
+    screen["smoothed"] = screen["smoothed"].map(str)
+    assert route_tiles(screen, card)["route"].tolist() == routed["route"].tolist()
+
+
 def test_unfamiliar_cut_follows_the_pass_share():
     # pass share 0.8: sorted held-out unfamiliarity 0.3, 0.3, 0.4, 0.4, 0.5, 0.5, 0.6, 0.7, 0.8, 0.9;
     # the 8th smallest (0.7) is the cut, so 8 of 10 pass and h8, h9 would not; s4 (0.6) passes.

@@ -344,6 +344,9 @@ def _screen_arrays(screen):
     nodata = screen["route"].fillna("").astype(str).str.strip().eq("nodata").to_numpy()
     p = pd.to_numeric(screen["p_deposit"], errors="coerce").to_numpy(np.float64)
     unf = pd.to_numeric(screen["unfamiliarity"], errors="coerce").to_numpy(np.float64)
+    # A tile noisier than every fitting tile was smoothed before detection: the model never met
+    # such a tile, so it is unfamiliar whatever its features say.
+    unf = np.where(_smoothed(screen), np.inf, unf)
     if "mean_score" in screen.columns:
         conf = tile_confidence(pd.to_numeric(screen["mean_score"], errors="coerce"))
         n_det = pd.to_numeric(screen.get("n_detections", pd.Series(np.ones(len(screen)))), errors="coerce")
@@ -352,6 +355,13 @@ def _screen_arrays(screen):
         conf = np.zeros(len(screen))
         n_det = np.zeros(len(screen), dtype=np.int64)
     return nodata, p, unf, conf, n_det
+
+
+def _smoothed(screen):
+    """The screen's ``smoothed`` column as bools (all False for screens without it)."""
+    if "smoothed" not in screen.columns:
+        return np.zeros(len(screen), dtype=bool)
+    return screen["smoothed"].astype(str).str.strip().str.lower().isin(("true", "1", "1.0")).to_numpy()
 
 
 def _route_codes(nodata, p, unf, conf, has_det, skip, machine, cut):
@@ -408,16 +418,27 @@ def unfamiliar_groups_text(score, shares, cut):
     return f"share of its squared distance from the training tiles: {parts}; {tail}"
 
 
-def _reasons(code, p, unf, conf, n_det, max_score, *, skip, machine, cut, recall, pass_share, shares=None):
-    """One sentence per tile saying why it took its route."""
+def _reasons(code, p, unf, conf, n_det, max_score, *, skip, machine, cut, recall, pass_share, shares=None,
+             noise=None, noise_limit=None):
+    """One sentence per tile saying why it took its route.
+
+    ``noise`` (8-bit grey levels per tile) and ``noise_limit`` (the card's, same units) word the
+    reason of smoothed tiles, whose unfamiliarity :func:`_screen_arrays` set to infinity.
+    """
+    if noise is None:
+        noise = np.full(len(code), np.nan)
     machine_text = ("no confidence threshold keeps the machine's promise on the held-out tiles" if machine is None
                     else f"below the machine's {machine:.3f}")
     if shares is None:
         shares = np.full((len(code), len(FEATURE_GROUPS)), np.nan)
     out = []
-    for c, pi, ui, ci, ni, mi, si in zip(code, p, unf, conf, n_det, max_score, shares):
+    for c, pi, ui, ci, ni, mi, si, zi in zip(code, p, unf, conf, n_det, max_score, shares, noise):
         if c == _CODE["nodata"]:
             out.append("nodata: under half of the tile's core holds valid pixels")
+        elif ui == np.inf:
+            limit = "" if noise_limit is None else f", above the noisiest fitting tile's {noise_limit:.1f}"
+            out.append(f"crowd, unfamiliar: noise {zi:.1f} grey levels{limit}; the model never met such a tile, "
+                       f"so it was smoothed before detection and its detections are not trusted")
         elif np.isfinite(ui) and ui > cut:
             out.append(f"crowd, unfamiliar: unfamiliarity {ui:.2f} above {cut:.2f}, the value "
                        f"{pass_share:.0%} of held-out tiles stay within; {unfamiliar_groups_text(ui, si, cut)}")
@@ -498,8 +519,12 @@ def route_tiles(screen_tiles_df, card, *, recall=DEFAULT_RECALL, max_direction_e
         if "max_score" in screen.columns else conf
     screen["route"] = np.asarray(ROUTES, dtype=object)[code]
     shares = screen.reindex(columns=list(SHARE_COLUMNS)).apply(pd.to_numeric, errors="coerce").to_numpy(np.float64)
+    noise = (pd.to_numeric(screen["noise_8bit"], errors="coerce").to_numpy(np.float64)
+             if "noise_8bit" in screen.columns else None)
+    noise_limit = (card.get("noise") or {}).get("limit")
     screen["reason"] = _reasons(code, p, unf, conf, n_det, max_score, skip=skip, machine=machine, cut=cut,
-                                recall=recall, pass_share=pass_share, shares=shares)
+                                recall=recall, pass_share=pass_share, shares=shares, noise=noise,
+                                noise_limit=None if noise_limit is None else 255.0 * noise_limit)
     screen["unfamiliar"] = unfamiliar
     screen["confidence"] = conf
     screen["n_detections"] = n_det

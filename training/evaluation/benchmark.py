@@ -326,12 +326,16 @@ def _score_set(name, root, model, *, workers, min_score, log):
     seconds = time.perf_counter() - start
     detections = run["detections"].reset_index(drop=True)
     summaries = np.array([t["summary"] for t in run["per_tile"]])
-    unfamiliar = unfamiliarity_score(model.card.get("unfamiliarity"), summaries) > 1.0
+    # A tile noisier than every fitting tile is smoothed before detection and left to people, like
+    # one whose features are unfamiliar (as frostvane effort routes it).
+    smoothed = np.array([bool(t.get("smoothed", False)) for t in run["per_tile"]], dtype=bool)
+    unfamiliar = (unfamiliarity_score(model.card.get("unfamiliarity"), summaries) > 1.0) | smoothed
     flagged = dict(zip([t["tile_id"] for t in run["per_tile"]], unfamiliar))
     baseline = _threshold_catalog(tileset)
     area_mpx = float((tiles["width"] * tiles["height"]).sum()) / 1e6
     result = {"n_tiles": len(tiles), "n_images": int(tiles["image_id"].nunique()), "area_mpx": area_mpx,
-              "seconds_model": seconds, "unfamiliar_share": float(np.mean(unfamiliar)) if len(unfamiliar) else None}
+              "seconds_model": seconds, "unfamiliar_share": float(np.mean(unfamiliar)) if len(unfamiliar) else None,
+              "smoothed_share": float(np.mean(smoothed)) if len(smoothed) else None}
     if name == "negatives":
         quiet = ~detections["tile_id"].map(flagged).fillna(False).astype(bool)
         kept_area = float((tiles.loc[~tiles["tile_id"].map(flagged).astype(bool), "width"]
@@ -567,6 +571,8 @@ def benchmark_table(results, *, compare=()):
         extra = (f", {m.get('n_consensus_fans')} consensus fans, {m.get('n_consensus_spots')} spots"
                  if set_name != "negatives" and m else "")
         flagged = s.get("unfamiliar_share")
+        smoothed = s.get("smoothed_share")
         counts.append(f"{set_name}: {s.get('n_images')} images, {s.get('n_tiles')} tiles{extra}"
-                      + (f", {100 * flagged:.0f} % of tiles flagged unfamiliar" if flagged is not None else ""))
+                      + (f", {100 * flagged:.0f} % of tiles flagged unfamiliar" if flagged is not None else "")
+                      + (f" ({100 * smoothed:.0f} % smoothed as noisier than the fitting tiles)" if smoothed else ""))
     return "\n".join(lines) + "\n\n" + "; ".join(counts) + "."
