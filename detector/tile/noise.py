@@ -110,16 +110,23 @@ class NoiseRange:
 #: Gaussian widths (px) searched for the smoothing, and the number of halvings of that interval.
 _WIDTHS = (0.25, 4.0)
 _HALVINGS = 8
+#: The width is searched on the tile's central window of this size (px) and a margin of the widest
+#: Gaussian's reach (scipy truncates at 4 widths), then applied to the whole tile once.
+_SEARCH_PX = 256
+_MARGIN_PX = int(np.ceil(4 * _WIDTHS[1])) + 1
 
 
 def smooth_excess_noise(image, sigma, noise_range, valid=None):
     """Smooth a tile noisier than its model's training tiles; others are returned as they are.
 
-    The narrowest Gaussian (:func:`scipy.ndimage.gaussian_filter`, ``mode="reflect"``; its width
-    found by halving 0.25-4 px eight times) whose result's :func:`noise_sigma` is at most the
-    range's target. A Gaussian was chosen over total-variation and non-local-means smoothing on a
-    development set of noisy images (fan and spot F1 alike, directions better): it takes the grain
-    away without turning shading into flat steps that the texture features read as edges.
+    The narrowest Gaussian (:func:`scipy.ndimage.gaussian_filter`, ``mode="reflect"``) that brings
+    the tile's noise down to the range's target: its width is found by halving 0.25-4 px eight
+    times on the tile's central 256 x 256 px window, as the width that lowers that window's
+    :func:`noise_sigma` by the factor ``target / sigma``, and then applied to the whole tile (the
+    search costs a few ms instead of a tenth of a second). A Gaussian was chosen over
+    total-variation and non-local-means smoothing on a development set of noisy images (fan and
+    spot F1 alike, directions better): it takes the grain away without turning shading into flat
+    steps that the texture features read as edges.
 
     Parameters
     ----------
@@ -130,7 +137,7 @@ def smooth_excess_noise(image, sigma, noise_range, valid=None):
     noise_range : NoiseRange or None
         None never smooths.
     valid : ndarray of shape (M, N), bool, optional
-        Pixels holding data (for measuring the smoothed tile's noise).
+        Pixels holding data (for measuring the noise of the search window).
 
     Returns
     -------
@@ -140,14 +147,39 @@ def smooth_excess_noise(image, sigma, noise_range, valid=None):
     if noise_range is None or not np.isfinite(sigma) or sigma <= noise_range.limit:
         return image, False
     image = np.asarray(image, dtype=np.float32)
-    inner = _inner(image.shape, valid)
-    lo, hi = _WIDTHS
-    best = ndi.gaussian_filter(image, hi, mode="reflect")
-    for _ in range(_HALVINGS):
-        mid = 0.5 * (lo + hi)
-        out = ndi.gaussian_filter(image, mid, mode="reflect")
-        if _sigma(out, inner) <= noise_range.target:
-            hi, best = mid, out
+    window, inner = _search_window(image, valid)
+    before = _sigma(window, inner)
+    width = _WIDTHS[1]
+    if np.isfinite(before) and before > 0:
+        goal = before * noise_range.target / sigma
+        lo, hi = _WIDTHS
+        for _ in range(_HALVINGS):
+            mid = 0.5 * (lo + hi)
+            if _sigma(ndi.gaussian_filter(window, mid, mode="reflect"), inner) <= goal:
+                hi = mid
+            else:
+                lo = mid
+        width = hi
+    out = ndi.gaussian_filter(image, width, mode="reflect")
+    return np.clip(out, 0.0, 1.0).astype(np.float32), True
+
+
+def _search_window(image, valid):
+    """The central search window with its margin, and the pixels measured in it (see :func:`_inner`)."""
+    slices, measured = [], []
+    for n in image.shape:
+        size = _SEARCH_PX + 2 * _MARGIN_PX
+        if n <= size:
+            slices.append(slice(0, n))
+            measured.append(slice(1, n - 1))
         else:
-            lo = mid
-    return np.clip(best, 0.0, 1.0).astype(np.float32), True
+            start = (n - size) // 2
+            slices.append(slice(start, start + size))
+            measured.append(slice(_MARGIN_PX, _MARGIN_PX + _SEARCH_PX))
+    window = image[tuple(slices)]
+    inner = np.zeros(window.shape, dtype=bool)
+    inner[tuple(measured)] = True
+    if valid is not None:
+        inner &= ndi.binary_erosion(np.asarray(valid, dtype=bool)[tuple(slices)], structure=np.ones((3, 3), bool),
+                                    border_value=0)
+    return window, inner

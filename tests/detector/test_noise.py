@@ -85,8 +85,10 @@ def test_a_noisier_tile_gets_the_narrowest_gaussian_that_reaches_the_target():
     sigma = noise_sigma(image)
     out, smoothed = smooth_excess_noise(image, sigma, NoiseRange(limit=0.012, target=0.006))
     assert smoothed
-    assert noise_sigma(out) <= 0.006
-    # the library's Gaussian at some width gives the same image, and 0.02 px narrower would miss the target
+    # the width is found on the central 256 px window and applied to the whole tile: the whole
+    # tile's noise lands at the target to within the window's sampling error
+    assert noise_sigma(out) == pytest.approx(0.006, rel=0.1)
+    # the library's Gaussian at some width gives the same image, and 0.03 px narrower would miss the target
     widths = np.arange(0.25, 4.0, 0.001)
     errors = [np.abs(ndi.gaussian_filter(image, w) - out).max() for w in widths[::50]]
     w = widths[::50][int(np.argmin(errors))]
