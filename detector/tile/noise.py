@@ -179,7 +179,5 @@ def _search_window(image, valid):
     window = image[tuple(slices)]
     inner = np.zeros(window.shape, dtype=bool)
     inner[tuple(measured)] = True
-    if valid is not None:
-        inner &= ndi.binary_erosion(np.asarray(valid, dtype=bool)[tuple(slices)], structure=np.ones((3, 3), bool),
-                                    border_value=0)
-    return window, inner
+    with_data = _inner(window.shape, None if valid is None else np.asarray(valid, dtype=bool)[tuple(slices)])
+    return window, inner if with_data is None else inner & with_data
