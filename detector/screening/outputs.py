@@ -581,7 +581,7 @@ class ScreenSummary:
         ]
         if self.n_smoothed:
             lines.append(f"noise: {self.n_smoothed} tile(s) noisier than every tile the model was fitted on were "
-                         f"smoothed first; their detections are a guess (tiles.csv: smoothed)")
+                         f"smoothed first and are left to people (tiles.csv: smoothed)")
         lines += [
             f"throughput: {self.megapixels:.1f} Mpx in {self.seconds:.1f} s = {self.mpx_per_s:.2f} Mpx/s "
             f"({self.workers} worker{'s' if self.workers != 1 else ''})",

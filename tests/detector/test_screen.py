@@ -200,6 +200,36 @@ def test_tileset_input_keeps_tile_ids(model_dir, tmp_path):
     assert summary.per_image["image"].tolist() == sorted(listed["image_id"].unique())
 
 
+def test_noisy_tiles_are_reported_smoothed_and_counted(model_dir, tmp_path):
+    # The second image's tiles get 6 grey levels of white noise, three times the model's limit.
+    from training.synth import synthesize_tileset
+    from detector.inference.model import load_model
+    from detector.tile.noise import noise_sigma
+
+    root = synthesize_tileset(tmp_path / "ts", n_images=2, tiles_per_image=2, seed=4, tile_shape=(192, 256))
+    listed = pd.read_csv(root / "tiles.csv")
+    noisy = listed.loc[listed["image_id"] == listed["image_id"].iloc[-1], "path"]
+    rng = np.random.default_rng(12)
+    for path in noisy:
+        image = np.asarray(Image.open(root / path), dtype=np.float64)
+        # clipped at 1: 0 is the no-data value of these tiles
+        Image.fromarray(np.clip(np.rint(image + rng.normal(0.0, 6.0, image.shape)), 1, 255).astype(np.uint8)).save(
+            root / path)
+    out = tmp_path / "out"
+    summary = screen(model_dir, [root], out, progress=False)
+    tiles = pd.read_csv(out / "tiles.csv").set_index("tile_id")
+    by_path = listed.set_index("tile_id")["path"]
+    limit = 255 * load_model(model_dir).noise_range.limit
+    for tile_id, row in tiles.iterrows():
+        pixels = np.asarray(Image.open(root / by_path[tile_id]), dtype=np.float64)
+        expected = 255 * noise_sigma(pixels / 255, pixels != 0)
+        assert row["noise_8bit"] == pytest.approx(expected, rel=1e-4)
+        assert bool(row["smoothed"]) == (expected > limit)
+    assert tiles["smoothed"].sum() == summary.n_smoothed == len(noisy)
+    assert f"noise: {len(noisy)} tile(s) noisier than every tile the model was fitted on" in summary.format()
+    assert json.loads((out / "run.json").read_text())["counts"]["n_smoothed"] == len(noisy)
+
+
 def test_first_image_without_detections_still_heads_the_outputs(model_dir, tmp_path):
     # Outputs are written image by image; an empty first image must still write the CSV headers.
     root = tmp_path / "ts"
