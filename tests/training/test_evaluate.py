@@ -87,3 +87,25 @@ def test_one_standard_error_rule_worked_example():
     assert one_standard_error_choice(scores, resampled)[:2] == (2, 2)
     # no spread (one image): the plain maximum
     assert one_standard_error_choice(scores, [np.zeros(1)] * 4) == (2, 2, 0.0)
+
+
+def test_noisy_tiles_are_named_in_the_report(tiny_model, tiny_tileset, tmp_path):
+    # One tile copied with 6 grey levels of white noise added (clipped at 1: 0 is no-data) is smoothed
+    # before detection, and the report and the log say so; the clean tiles are not.
+    import shutil
+
+    from PIL import Image
+
+    root = tmp_path / "ts"
+    shutil.copytree(tiny_tileset, root)
+    tiles = pd.read_csv(root / "tiles.csv")
+    noisy_id, path = tiles.loc[0, ["tile_id", "path"]]
+    image = np.asarray(Image.open(root / path), dtype=np.float64)
+    rng = np.random.default_rng(13)
+    Image.fromarray(np.clip(np.rint(image + rng.normal(0.0, 6.0, image.shape)), 1, 255).astype(np.uint8)).save(
+        root / path)
+    lines = []
+    evaluate_model(tiny_model[0], root, tmp_path / "r", min_score=0.3, log=lines.append)
+    meta = json.loads((tmp_path / "r" / "report.json").read_text())["scores"]["meta"]
+    assert meta["tiles_smoothed"] == [noisy_id]
+    assert any(line.startswith(f"note: 1 of the {len(tiles)} tiles are noisier") for line in lines)

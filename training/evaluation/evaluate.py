@@ -413,11 +413,17 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         shown = ", ".join(overlap[:5]) + (f" and {len(overlap) - 5} more" if len(overlap) > 5 else "")
         log(f"warning: {len(overlap)} of the {tiles['image_id'].nunique()} images scored here were used to fit or "
             f"calibrate this model ({shown}); its scores on them are optimistic. Evaluate on images it never saw.")
+    smoothed = sorted(t["tile_id"] for t in run["per_tile"] if t.get("smoothed"))
+    if smoothed:
+        log(f"note: {len(smoothed)} of the {len(tile_ids)} tiles are noisier than every tile this model was fitted "
+            f"on and were smoothed before detection (report.json: meta.tiles_smoothed); in screening they are "
+            f"flagged unfamiliar and left to people.")
     with atomic_dir(out, replace=True) as tmp:
         write_detections_csv(detections, tmp / "detections.csv")
         scores["patch"] = {k: v for k, v in patch.items() if k != "curves"}
         scores["meta"] = {"model": str(Path(model_dir).resolve()), "tileset": str(Path(tileset_root).resolve()),
                           "min_score": min_score, "images_seen_in_training": overlap, "tiles": int(len(tiles)),
+                          "tiles_smoothed": smoothed,
                           **_provenance(model, model_dir, tileset_root)}
         pr_curves = {name: {**patch["curves"][name], "average_precision": patch[name]["average_precision"]}
                      for name in CLASS_NAMES[1:]}
