@@ -6,7 +6,7 @@ See the package notes in :mod:`detector.screening.run` for what each file holds.
 from ..contract import DETECTION_COLUMNS
 from ..inference.unfamiliar import SHARE_COLUMNS
 
-__all__ = ["TILE_COLUMNS", "GEO_COLUMNS", "DETECTION_OUTPUT_COLUMNS", "GEOJSON_COORDINATES", "MIN_VALID_SHARE", "DEPOSIT_THRESHOLD"]
+__all__ = ["smoothed_flags", "TILE_COLUMNS", "GEO_COLUMNS", "DETECTION_OUTPUT_COLUMNS", "GEOJSON_COORDINATES", "MIN_VALID_SHARE", "DEPOSIT_THRESHOLD"]
 
 
 #: Columns of ``tiles.csv``.
@@ -32,6 +32,16 @@ TILE_COLUMNS = (
     "noise_8bit",
     "smoothed",
 ) + SHARE_COLUMNS
+
+
+def smoothed_flags(tiles):
+    """``tiles.csv``'s ``smoothed`` column as bools, read in memory or from the CSV ("True"/"False");
+    all False for a table without it (a screening or journal of an earlier version)."""
+    import numpy as np
+
+    if "smoothed" not in tiles.columns:
+        return np.zeros(len(tiles), dtype=bool)
+    return tiles["smoothed"].astype(str).str.strip().str.lower().isin(("true", "1", "1.0")).to_numpy()
 
 
 #: Columns added to ``detections.csv`` for georeferenced rasters.

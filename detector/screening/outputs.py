@@ -24,6 +24,7 @@ from .folder import (
     GEO_COLUMNS,
     GEOJSON_COORDINATES,
     TILE_COLUMNS,
+    smoothed_flags,
 )
 from .plan import _canvas_step, _image_size, _open, _panel_cap
 from .workers import _core_corners
@@ -494,9 +495,7 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
             totals["n_fans"] += int((detections["kind"] == "fan").sum())
             totals["n_spots"] += int((detections["kind"] == "spot").sum())
             totals["n_deposit_tiles"] += int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum())
-            if "smoothed" in scored.columns:
-                # tiles from an older journal have no value: not smoothed
-                totals["n_smoothed"] += int((pd.to_numeric(scored["smoothed"], errors="coerce").fillna(0) > 0).sum())
+            totals["n_smoothed"] += int(smoothed_flags(scored).sum())
             totals["area"] += float((scored["width"] * scored["height"]).sum())
             totals["covered"] += float(
                 ((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())

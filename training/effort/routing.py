@@ -34,6 +34,7 @@ import pandas as pd
 
 from detector.errors import DetectorError
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, FEATURE_GROUPS, SHARE_COLUMNS, pass_threshold
+from detector.screening.folder import smoothed_flags
 
 
 __all__ = [
@@ -346,7 +347,7 @@ def _screen_arrays(screen):
     unf = pd.to_numeric(screen["unfamiliarity"], errors="coerce").to_numpy(np.float64)
     # A tile noisier than every fitting tile was smoothed before detection: the model never met
     # such a tile, so it is unfamiliar whatever its features say.
-    unf = np.where(_smoothed(screen), np.inf, unf)
+    unf = np.where(smoothed_flags(screen), np.inf, unf)
     if "mean_score" in screen.columns:
         conf = tile_confidence(pd.to_numeric(screen["mean_score"], errors="coerce"))
         n_det = pd.to_numeric(screen.get("n_detections", pd.Series(np.ones(len(screen)))), errors="coerce")
@@ -355,13 +356,6 @@ def _screen_arrays(screen):
         conf = np.zeros(len(screen))
         n_det = np.zeros(len(screen), dtype=np.int64)
     return nodata, p, unf, conf, n_det
-
-
-def _smoothed(screen):
-    """The screen's ``smoothed`` column as bools (all False for screens without it)."""
-    if "smoothed" not in screen.columns:
-        return np.zeros(len(screen), dtype=bool)
-    return screen["smoothed"].astype(str).str.strip().str.lower().isin(("true", "1", "1.0")).to_numpy()
 
 
 def _route_codes(nodata, p, unf, conf, has_det, skip, machine, cut):

@@ -10,7 +10,7 @@ from detector.objects.assemble import OBJECT_COLUMNS
 from detector.contract import DETECTION_COLUMNS, TRUTH_FILE
 from detector.inference.detect import detect_tile
 from detector.errors import DetectorError, TileSetError
-from detector.tile.features import extract_features, patch_targets
+from detector.tile.features import patch_targets
 from detector.io import atomic_dir, atomic_path
 from detector.labels import rasterise_features
 from detector.inference.model import CLASS_NAMES, cached_model, load_model
@@ -37,10 +37,12 @@ def _run_one(model, tileset, tile_id, tau, min_score=None):
     spec = model.feature_spec
     tile = tileset.read_tile(tile_id)
     nodata = tile == spec.nodata_value
-    X, grid = extract_features(tile, spec, nodata_mask=nodata, noise_range=model.noise_range)
+    # detect_tile prepares the tile once (smoothing it when it is noisier than the fitting tiles);
+    # the patch targets need only its grid.
+    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, min_score=min_score)
+    grid = result.grid
     masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
     targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
-    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=(X, grid), min_score=min_score)
     valid = np.asarray(grid.valid, dtype=bool)
     info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
             "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
