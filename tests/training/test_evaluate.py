@@ -71,22 +71,28 @@ def test_error_analysis_files(report, tiny_tileset):
 
 
 # The one-standard-error rule (Hastie, Tibshirani and Friedman, The Elements of Statistical Learning,
-# 2nd ed., section 7.10): among candidates whose score is within one standard error of the best, the
-# simplest (here the least strict threshold, listed first) is chosen. Worked by hand below.
-def test_one_standard_error_rule_worked_example():
-    from training.evaluation.evaluate import one_standard_error_choice
+# 2nd ed., section 7.10): among candidates whose score is within reach of the best, the simplest (here
+# the least strict threshold, listed first) is chosen. The standard error is that of the paired
+# shortfall (both candidates scored on the same resamples). Worked by hand below.
+def test_paired_standard_error_rule_worked_example():
+    from training.evaluation.evaluate import paired_standard_error_choice
 
-    scores = [0.60, 0.635, 0.65, 0.645]
-    # the best candidate's resampled scores: 0.63, 0.65, 0.67 -> standard deviation (ddof=1) 0.02
-    resampled = [np.zeros(3), np.zeros(3), np.array([0.63, 0.65, 0.67]), np.zeros(3)]
-    chosen, best, se = one_standard_error_choice(scores, resampled)
-    assert (chosen, best) == (1, 2)
-    assert se == pytest.approx(0.02)
-    # a tighter spread (0.005) leaves only the best and its neighbour within reach; the first of them wins
-    resampled[2] = np.array([0.645, 0.65, 0.655])
-    assert one_standard_error_choice(scores, resampled)[:2] == (2, 2)
-    # no spread (one image): the plain maximum
-    assert one_standard_error_choice(scores, [np.zeros(1)] * 4) == (2, 2, 0.0)
+    scores = [0.60, 0.625, 0.65, 0.645]
+    best = np.array([0.63, 0.65, 0.67])
+    # candidate 1 moves with the best (resampled shortfalls 0.03, 0.03, 0.03: standard error 0) and falls
+    # 0.025 short: out of reach although the best's own spread (0.02) would have taken it in
+    resampled = [best - 0.05, best - 0.03, best, best - 0.005]
+    chosen, chosen_best, ses = paired_standard_error_choice(scores, resampled, tolerance=0.0)
+    assert (chosen, chosen_best) == (2, 2)
+    assert ses == pytest.approx([0.0, 0.0, 0.0, 0.0])
+    # resampled shortfalls of candidate 1 of 0.0, 0.03, 0.06: standard deviation (ddof=1) 0.03 >= 0.025 -> in reach
+    resampled[1] = best - np.array([0.0, 0.03, 0.06])
+    chosen, _, ses = paired_standard_error_choice(scores, resampled, tolerance=0.0)
+    assert chosen == 1 and ses[1] == pytest.approx(0.03)
+    # a tolerance of 0.05 takes candidate 0 (0.05 short) in whatever its spread
+    assert paired_standard_error_choice(scores, resampled, tolerance=0.05)[0] == 0
+    # no resamples to speak of (one image): the plain maximum
+    assert paired_standard_error_choice(scores, [np.zeros(1)] * 4, tolerance=0.0) == (2, 2, [0.0] * 4)
 
 
 def test_noisy_tiles_are_named_in_the_report(tiny_model, tiny_tileset, tmp_path):

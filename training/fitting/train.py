@@ -864,9 +864,12 @@ def _write_model_folder(out, card, onnx, tileset, split, patches, objects, confi
         tuning = tune_assembly(tmp, tileset, objects.cal_sample, log=log, workers=config.workers)
         card["assembly"]["min_score"] = tuning["min_score"]
         card["assembly_tuning"] = tuning["table"]
-        card["assembly_tuning_rule"] = {"rule": "least strict within one standard error of the best mean F1",
+        card["assembly_tuning_rule"] = {"rule": "least strict whose shortfall from the best mean F1 is within one "
+                                                "paired bootstrap standard error of that shortfall, or within the "
+                                                "tolerance",
                                         "best_min_score": tuning["best_min_score"],
-                                        "standard_error": tuning["standard_error"]}
+                                        "standard_error": tuning["standard_error"],
+                                        "tolerance": tuning["tolerance"]}
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
         heldout = evaluate_tiles(tmp, tileset, split.ids["holdout"], log=log, workers=config.workers)
         card["heldout_metrics"] = summarise_for_card(heldout)
