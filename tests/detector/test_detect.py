@@ -38,6 +38,24 @@ def test_detect_tile_columns_and_ranges(model_and_tile):
     assert result.fan_cover.shape == tile.shape
 
 
+def test_cover_is_the_footprints_of_the_detections(model_and_tile):
+    # A tile's cover is what the benchmark scores: its detections drawn as consensus features are (fan
+    # sectors, spot ellipses), not the dark pixels they came from. The fans' cover is bounded by the
+    # sum of their sector areas, L^2 * opening / 2 with the opening in radians (the area of a circular
+    # sector; overlaps only make the union smaller), and comes close to it.
+    from detector.labels import rasterise_features
+
+    model, tile, tile_id = model_and_tile
+    result = detect_tile(model, tile, tile_id=tile_id, min_score=0.0)
+    drawn = rasterise_features(result.detections, tile.shape)
+    np.testing.assert_array_equal(result.fan_cover, drawn.fan_cover)
+    np.testing.assert_array_equal(result.spot_cover, drawn.spot_cover)
+    fans = result.detections[result.detections["kind"] == "fan"]
+    assert len(fans) > 0
+    sectors = float((fans["length_px"] ** 2 * np.radians(fans["opening_deg"]) / 2).sum())
+    assert 0.5 * sectors < result.fan_cover.sum() <= 1.05 * sectors + 10 * len(fans)
+
+
 def test_detect_tile_is_deterministic(model_and_tile):
     model, tile, tile_id = model_and_tile
     a = detect_tile(model, tile, tile_id=tile_id)
