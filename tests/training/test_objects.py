@@ -166,3 +166,31 @@ def test_refine_model_needs_right_readings_of_both_kinds():
     readings = _readings_with_sizes(100, np.random.default_rng(1))
     readings.label[~readings.is_fan] = 0
     assert fit_refine_model(readings) is None
+
+
+def test_the_turn_is_kept_only_where_it_helps_on_other_readings():
+    # The turn must bring right fans closer to their consensus direction on readings it was not fitted
+    # on. Fitted and checked on readings of the same law it is kept; checked on readings whose turns
+    # follow no feature (a uniform scatter of +-30 deg) it cannot help and is dropped, sizes untouched.
+    from detector.objects.refine import predict_refined
+    from training.fitting.train import fit_refine_checked
+
+    rng = np.random.default_rng(8)
+    fit_readings, same = _readings_with_sizes(3000, rng), _readings_with_sizes(3000, rng)
+    kept, check = fit_refine_checked(fit_readings, same, log=lambda *_: None)
+    assert kept["fan"].get("turn_kept", True)
+    assert check["fan_direction_deg"]["model"] < check["fan_direction_deg"]["measured"]
+
+    other = _readings_with_sizes(3000, rng)
+    right = np.isfinite(other.turn_deg)
+    other.turn_deg[right] = rng.uniform(-30.0, 30.0, right.sum())
+    messages = []
+    dropped, check = fit_refine_checked(fit_readings, other, log=messages.append)
+    assert dropped["fan"]["turn_kept"] is False
+    assert any("turn of fan directions is dropped" in m for m in messages)
+    assert check["fan_direction_deg"]["model"] == check["fan_direction_deg"]["measured"]
+    direction = np.nan_to_num(other.direction_deg)
+    sizes_kept, _ = predict_refined(kept, other.F, other.own_size, direction, other.is_fan)
+    sizes_dropped, turned = predict_refined(dropped, other.F, other.own_size, direction, other.is_fan)
+    np.testing.assert_array_equal(sizes_dropped, sizes_kept)
+    np.testing.assert_allclose(turned[other.is_fan], direction[other.is_fan] % 360.0, atol=1e-9)

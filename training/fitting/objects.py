@@ -16,7 +16,7 @@ from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
 from detector.objects.context import context_matrix, reading_layout
-from detector.objects.refine import REFINE_FEATURE_NAMES, predict_refined, reading_shapes, refine_design
+from detector.objects.refine import REFINE_FEATURE_NAMES, REFINE_OUTPUTS, predict_refined, reading_shapes, refine_design
 from detector.inference.detect import tile_candidates, tile_maps
 from detector.tile import _dense
 from detector.tile.features import _features_of_prepared
@@ -28,7 +28,7 @@ from ..evaluation.matching import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "context_rows",
-           "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check"]
+           "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check", "without_turn"]
 
 
 @dataclass
@@ -346,6 +346,25 @@ def fit_refine_model(readings, *, alpha=REFINE_RIDGE_ALPHA, min_rows=20):
         fit[kind] = {"mean": mean.tolist(), "scale": scale.tolist(), "coef": model.coef_.tolist(),
                      "intercept": intercept.tolist(), "smearing_log": smearing.tolist(), "n": int(rows.sum())}
     return fit
+
+
+def without_turn(fit):
+    """A refinement model (:func:`fit_refine_model`) whose fans keep their measured direction.
+
+    The turn's coefficients and intercept become 0 (so :func:`detector.objects.refine.predict_refined`
+    turns no fan) and ``fit["fan"]["turn_kept"]`` is False; the sizes are untouched. ``fit`` itself is
+    not changed.
+    """
+    if fit is None:
+        return None
+    fan = dict(fit["fan"])
+    j = REFINE_OUTPUTS["fan"].index("turn_deg")
+    coef = [list(row) for row in fan["coef"]]
+    coef[j] = [0.0] * len(coef[j])
+    intercept = list(fan["intercept"])
+    intercept[j] = 0.0
+    fan.update(coef=coef, intercept=intercept, turn_kept=False)
+    return {**fit, "fan": fan}
 
 
 def refine_model_check(fit, readings):

@@ -39,7 +39,7 @@ from .dataset import build_patch_set, rotation_jobs
 from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
 from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence, fit_refine_model, \
-    refine_model_check
+    refine_model_check, without_turn
 from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
@@ -678,7 +678,10 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     object_model = _fit_hgb(cand_fit.F, cand_fit.label, cand_val.F, cand_val.label, config, log=log,
                             what="object classifier")
     confidence_fit = fit_direction_confidence(cand_fit)
-    refine, refine_check = fit_refine_on_calibration(cand_val, cand_fit, log)
+    # The refinement learns from the out-of-fold fitting readings (read by patch models fitted without
+    # their images, about ten times as many right readings as the calibration images give) and is
+    # checked on the calibration readings, read by the final models as new images will be.
+    refine, refine_check = fit_refine_checked(cand_fit, cand_val, log)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
     context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
@@ -686,22 +689,29 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
                     crossed, refine, refine_check)
 
 
-def fit_refine_on_calibration(cand_val, cand_fit, log):
-    """The refinement model (:mod:`detector.objects.refine`), fitted on the calibration readings.
-
-    Those are read by the final patch and polarity models on images they were not fitted on, as
-    new images will be; the out-of-fold fitting readings then check it.
+def fit_refine_checked(fit_readings, check_readings, log):
+    """The refinement model (:mod:`detector.objects.refine`), fitted on some readings and checked on others.
 
     Returns
     -------
     fit : dict or None
+        Without its turn of fan directions (:func:`training.fitting.objects.without_turn`) when the
+        turn does not bring the right check readings closer to their consensus directions (median
+        angle): fitted on a few images the turn can turn right fans away from their consensus, and
+        it must earn its place on readings it was not fitted on.
     check : dict
-        :func:`training.fitting.objects.refine_model_check` on the fitting readings.
+        :func:`training.fitting.objects.refine_model_check` on the check readings.
     """
-    refine = fit_refine_model(cand_val)
-    check = refine_model_check(refine, cand_fit)
+    refine = fit_refine_model(fit_readings)
+    check = refine_model_check(refine, check_readings)
+    turn = check.get("fan_direction_deg")
+    if turn and not turn["model"] < turn["measured"]:
+        log(f"refinement: the turn of fan directions is dropped (median angle to consensus on the check "
+            f"readings {turn['measured']:.2f} deg measured, {turn['model']:.2f} deg turned)")
+        refine = without_turn(refine)
+        check = refine_model_check(refine, check_readings)
     if check:
-        log("right fitting readings against consensus, measured -> refined (median |log size ratio|, "
+        log("right check readings against consensus, measured -> refined (median |log size ratio|, "
             "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
     return refine, check
 
