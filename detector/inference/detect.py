@@ -244,7 +244,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     detections, _ = objects_from_candidates(candidates, scores, params=params,
                                             tile_id=tile_id, direction_confidence=model.direction_confidence(F))
     # Cover is the detections' footprints, not their dark pixels: consensus features are footprints,
-    # and the dark pixels alone fell 2.5 points of cover short of them (README, "Coverage").
+    # and the dark pixels alone fell 2.5 points of cover short of them (README, "Benchmark").
     footprints = rasterise_features(detections, tile.shape)
     fan_cover, spot_cover = footprints.fan_cover, footprints.spot_cover
     return TileResult(
