@@ -19,6 +19,7 @@ from .geometry import angular_difference, direction_deg, unit_vector
 __all__ = [
     "LabelMasks",
     "rasterise_features",
+    "footprint_masks",
     "sector_polygon",
     "ellipse_polygon",
     "coverage_fraction",
@@ -158,27 +159,15 @@ def rasterise_features(features_df, shape):
     sum_col = np.zeros((rows, cols))
     sum_row = np.zeros((rows, cols))
     n_fans = np.zeros((rows, cols), dtype=np.int32)
-    for i, kind in enumerate(kinds):
-        x, y, direction = g["x_px"][i], g["y_px"][i], g["direction_deg"][i]
-        if kind == "fan":
-            length, spread = g["length_px"][i], g["opening_deg"][i]
-            win = _window(x, y, length, rows, cols)
-            if win is None:
-                continue
-            box, dx, dy = win
-            mask = _sector_mask(dx, dy, direction, length, spread)
+    for i, box, mask in _footprints(kinds, g, rows, cols):
+        if kinds[i] == "fan":
             fan_cover[box] |= mask
-            u_col, u_row = unit_vector(direction)
+            u_col, u_row = unit_vector(g["direction_deg"][i])
             sum_col[box] += mask * u_col
             sum_row[box] += mask * u_row
             n_fans[box] += mask
         else:
-            a, b = g["semi_major_px"][i], g["semi_minor_px"][i]
-            win = _window(x, y, max(a, b), rows, cols)
-            if win is None:
-                continue
-            box, dx, dy = win
-            spot_cover[box] |= _ellipse_mask(dx, dy, direction, a, b)
+            spot_cover[box] |= mask
 
     fan_direction = np.full((rows, cols), np.nan, dtype=np.float32)
     resultant = np.hypot(sum_col, sum_row)
@@ -191,6 +180,43 @@ def rasterise_features(features_df, shape):
     label[fan_cover] = LABEL_FAN
     label[spot_cover] = LABEL_SPOT
     return LabelMasks(label=label, fan_cover=fan_cover, spot_cover=spot_cover, fan_direction=fan_direction)
+
+
+def _footprints(kinds, g, rows, cols):
+    """Each feature's footprint inside the tile: ``(i, box, mask)``, a fan's sector or a spot's ellipse
+    on the window ``box`` of the tile; features wholly outside it are left out."""
+    for i, kind in enumerate(kinds):
+        x, y, direction = g["x_px"][i], g["y_px"][i], g["direction_deg"][i]
+        if kind == "fan":
+            length = g["length_px"][i]
+            win = _window(x, y, length, rows, cols)
+            if win is not None:
+                box, dx, dy = win
+                yield i, box, _sector_mask(dx, dy, direction, length, g["opening_deg"][i])
+        else:
+            a, b = g["semi_major_px"][i], g["semi_minor_px"][i]
+            win = _window(x, y, max(a, b), rows, cols)
+            if win is not None:
+                box, dx, dy = win
+                yield i, box, _ellipse_mask(dx, dy, direction, a, b)
+
+
+def footprint_masks(features_df, shape):
+    """The fan and spot footprints of :func:`rasterise_features`, without its labels and directions.
+
+    Returns
+    -------
+    fan_cover, spot_cover : ndarray of shape (rows, cols), bool
+        Equal to ``rasterise_features(features_df, shape)``'s, at a fraction of the cost (no
+        per-pixel direction sums).
+    """
+    rows, cols = _check_shape(shape)
+    kinds, g = _feature_arrays(features_df)
+    fan_cover = np.zeros((rows, cols), dtype=bool)
+    spot_cover = np.zeros((rows, cols), dtype=bool)
+    for i, box, mask in _footprints(kinds, g, rows, cols):
+        (fan_cover if kinds[i] == "fan" else spot_cover)[box] |= mask
+    return fan_cover, spot_cover
 
 
 def sector_polygon(x, y, direction_deg, length_px, opening_deg, *, n=32):

@@ -16,7 +16,7 @@ from ..objects.assemble import (
     reading_matrix,
 )
 from ..objects.refine import apply_refined
-from ..labels import rasterise_features
+from ..labels import footprint_masks
 from ..tile.features import _features_of_prepared
 from ..geometry import unit_vector
 from ..tile.spec import patch_axis_deg
@@ -46,7 +46,7 @@ class TileResult:
         Structure-tensor axis per patch, degrees clockwise from up, mod 180.
     fan_cover, spot_cover : ndarray of shape (M, N), bool
         Footprints of the detected fans (sectors) and spots (ellipses), drawn
-        as consensus features are (:func:`detector.labels.rasterise_features`),
+        as consensus features are (:func:`detector.labels.footprint_masks`),
         so a tile's covered fraction is the one the benchmark scores.
     valid_fraction : float
         Share of pixels that are not no-data.
@@ -245,8 +245,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
                                             tile_id=tile_id, direction_confidence=model.direction_confidence(F))
     # Cover is the detections' footprints, not their dark pixels: consensus features are footprints,
     # and the dark pixels alone fell 2.5 points of cover short of them (README, "Benchmark").
-    footprints = rasterise_features(detections, tile.shape)
-    fan_cover, spot_cover = footprints.fan_cover, footprints.spot_cover
+    fan_cover, spot_cover = footprint_masks(detections, tile.shape)
     return TileResult(
         tile_id=tile_id,
         shape=tile.shape,

@@ -243,3 +243,17 @@ def test_polygons_reject_too_few_vertices():
         sector_polygon(0, 0, 0, 10, 30, n=1)
     with pytest.raises(SpecError):
         ellipse_polygon(0, 0, 0, 10, 3, n=2)
+
+
+def test_footprint_masks_are_the_label_masks_covers():
+    # The screening's cover (footprint_masks) is the one the consensus is scored with (rasterise_features):
+    # overlapping fans and spots, one fan across the tile edge and one spot wholly outside the tile.
+    from detector.labels import footprint_masks
+
+    features = [_fan(CX, CY, 35.0, 60, 40), _fan(CX + 10, CY, 300.0, 45, 70), _fan(5.0, 290.0, 200.0, 50, 30),
+                _spot(CX + 15, CY - 20, 80.0, 18, 9), _spot(-200.0, -200.0, 10.0, 12, 6)]
+    masks = _raster(*features)
+    fan, spot = footprint_masks(pd.DataFrame(features), SHAPE)
+    np.testing.assert_array_equal(fan, masks.fan_cover)
+    np.testing.assert_array_equal(spot, masks.spot_cover)
+    assert fan.any() and spot.any() and (fan & spot).any()
