@@ -173,7 +173,7 @@ def test_the_turn_is_kept_only_where_it_helps_on_other_readings():
     # on. Fitted and checked on readings of the same law it is kept; checked on readings whose turns
     # follow no feature (a uniform scatter of +-30 deg) it cannot help and is dropped, sizes untouched.
     from detector.objects.refine import predict_refined
-    from training.fitting.train import fit_refine_checked
+    from training.fitting.objects import fit_refine_checked
 
     rng = np.random.default_rng(8)
     fit_readings, same = _readings_with_sizes(3000, rng), _readings_with_sizes(3000, rng)

@@ -116,6 +116,12 @@ def _prevailing(model):
 TUNING_BOOTSTRAP = 500
 
 
+#: A shortfall of mean F1 this small is within reach of the best whatever its standard error: the
+#: benchmark reports F1 to two decimals, and with many calibration images the paired standard error
+#: alone shrinks towards 0 and would keep the plain maximum.
+TUNING_TOLERANCE = 0.01
+
+
 def tune_assembly(model_dir, tileset, tile_ids, *, log=print, workers=1, seed=0):
     """Choose the smallest object score kept on some tiles: the least strict threshold whose mean object
     F1 cannot be told from the best.
@@ -177,12 +183,6 @@ def tune_assembly(model_dir, tileset, tile_ids, *, log=print, workers=1, seed=0)
         f"on the calibration images")
     return {"min_score": pick["min_score"], "best_min_score": table[best]["min_score"],
             "standard_error": ses[chosen], "tolerance": TUNING_TOLERANCE, "table": table}
-
-
-#: A shortfall of mean F1 this small is within reach of the best whatever its standard error: the
-#: benchmark reports F1 to two decimals, and with many calibration images the paired standard error
-#: alone shrinks towards 0 and would keep the plain maximum.
-TUNING_TOLERANCE = 0.01
 
 
 def paired_standard_error_choice(scores, resampled, tolerance=TUNING_TOLERANCE):

@@ -28,7 +28,8 @@ from ..evaluation.matching import candidate_pairs
 
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "context_rows",
-           "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check", "without_turn"]
+           "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check", "without_turn",
+           "fit_refine_checked"]
 
 
 @dataclass
@@ -346,6 +347,33 @@ def fit_refine_model(readings, *, alpha=REFINE_RIDGE_ALPHA, min_rows=20):
         fit[kind] = {"mean": mean.tolist(), "scale": scale.tolist(), "coef": model.coef_.tolist(),
                      "intercept": intercept.tolist(), "smearing_log": smearing.tolist(), "n": int(rows.sum())}
     return fit
+
+
+def fit_refine_checked(fit_readings, check_readings, log):
+    """The refinement model (:mod:`detector.objects.refine`), fitted on some readings and checked on others.
+
+    Returns
+    -------
+    fit : dict or None
+        Without its turn of fan directions (:func:`without_turn`) when the
+        turn does not bring the right check readings closer to their consensus directions (median
+        angle): fitted on a few images the turn can turn right fans away from their consensus, and
+        it must earn its place on readings it was not fitted on.
+    check : dict
+        :func:`refine_model_check` on the check readings.
+    """
+    refine = fit_refine_model(fit_readings)
+    check = refine_model_check(refine, check_readings)
+    turn = check.get("fan_direction_deg")
+    if turn and not turn["model"] < turn["measured"]:
+        log(f"refinement: the turn of fan directions is dropped (median angle to consensus on the check "
+            f"readings {turn['measured']:.2f} deg measured, {turn['model']:.2f} deg turned)")
+        refine = without_turn(refine)
+        check = refine_model_check(refine, check_readings)
+    if check:
+        log("right check readings against consensus, measured -> refined (median |log size ratio|, "
+            "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
+    return refine, check
 
 
 def without_turn(fit):

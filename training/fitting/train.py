@@ -38,8 +38,7 @@ from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, un
 from .dataset import build_patch_set, rotation_jobs
 from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
 from .export import onnx_parity, to_onnx_bytes
-from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence, fit_refine_model, \
-    refine_model_check, without_turn
+from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence, fit_refine_checked
 from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
@@ -687,33 +686,6 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
     return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample, context_model, Z_fit,
                     crossed, refine, refine_check)
-
-
-def fit_refine_checked(fit_readings, check_readings, log):
-    """The refinement model (:mod:`detector.objects.refine`), fitted on some readings and checked on others.
-
-    Returns
-    -------
-    fit : dict or None
-        Without its turn of fan directions (:func:`training.fitting.objects.without_turn`) when the
-        turn does not bring the right check readings closer to their consensus directions (median
-        angle): fitted on a few images the turn can turn right fans away from their consensus, and
-        it must earn its place on readings it was not fitted on.
-    check : dict
-        :func:`training.fitting.objects.refine_model_check` on the check readings.
-    """
-    refine = fit_refine_model(fit_readings)
-    check = refine_model_check(refine, check_readings)
-    turn = check.get("fan_direction_deg")
-    if turn and not turn["model"] < turn["measured"]:
-        log(f"refinement: the turn of fan directions is dropped (median angle to consensus on the check "
-            f"readings {turn['measured']:.2f} deg measured, {turn['model']:.2f} deg turned)")
-        refine = without_turn(refine)
-        check = refine_model_check(refine, check_readings)
-    if check:
-        log("right check readings against consensus, measured -> refined (median |log size ratio|, "
-            "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
-    return refine, check
 
 
 #: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
