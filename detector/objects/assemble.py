@@ -54,6 +54,7 @@ __all__ = [
     "reading_matrix",
     "candidate_rows",
     "objects_from_candidates",
+    "share_vent_sources",
 ]
 
 #: Detections carry, for evaluation only, the axis (degrees mod 180) before polarity was chosen.
@@ -158,6 +159,11 @@ class AssemblyParams:
         Smallest distance between two vents of one component, px.
     max_vents : int, default=6
         Most vents read in one component (the darkest).
+    shared_source_px : float, default=12.0
+        Kept fans whose sources all lie within this distance of one another
+        (complete linkage) are one vent's: they start at the score-weighted mean
+        of their sources, px (0: off). Each fan's source is read on its own pixels,
+        which start a few px apart around one vent.
     """
 
     background_px: int = 51
@@ -174,6 +180,7 @@ class AssemblyParams:
     vent_smooth_px: float = 3.0
     vent_min_separation_px: int = 15
     max_vents: int = 6
+    shared_source_px: float = 12.0
 
     @classmethod
     def from_dict(cls, fields):
@@ -856,4 +863,43 @@ def objects_from_candidates(candidates, reading_score, *, params=AssemblyParams(
                 pixels.append((c.ys, c.xs) if mine is None else (c.ys[mine], c.xs[mine]))
     frame = pd.DataFrame(rows, columns=OBJECT_COLUMNS)
     frame["votes"] = np.nan
+    if params.shared_source_px > 0:
+        frame = share_vent_sources(frame, params.shared_source_px)
     return frame, pixels
+
+
+def share_vent_sources(objects, radius_px):
+    """Fans of one vent start at one source.
+
+    Fans whose sources (``x_px``, ``y_px``) all lie within ``radius_px`` of one
+    another (complete linkage, ``scipy.cluster.hierarchy``; boundary excluded) are
+    moved to the mean of their sources weighted by ``score``. Spots and lone fans
+    are left as they are.
+
+    Parameters
+    ----------
+    objects : DataFrame
+        One tile's objects (:data:`OBJECT_COLUMNS`).
+    radius_px : float
+
+    Returns
+    -------
+    objects : DataFrame
+        A copy with the fans' sources shared.
+    """
+    from scipy.cluster.hierarchy import fcluster, linkage
+
+    out = objects.copy()
+    fans = np.flatnonzero((out["kind"] == "fan").to_numpy())
+    if fans.size < 2:
+        return out
+    xy = out[["x_px", "y_px"]].to_numpy(float)[fans]
+    # fcluster cuts at distances <= t; just below the radius keeps the boundary out
+    label = fcluster(linkage(xy, method="complete"), t=np.nextafter(float(radius_px), 0.0), criterion="distance") - 1
+    weight = np.maximum(out["score"].to_numpy(float)[fans], 1e-9)
+    total = np.bincount(label, weight)
+    shared = np.bincount(label)[label] > 1
+    for col, k in (("x_px", 0), ("y_px", 1)):
+        mean = np.bincount(label, weight * xy[:, k]) / total
+        out.loc[out.index[fans[shared]], col] = mean[label[shared]]
+    return out

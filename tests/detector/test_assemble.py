@@ -21,6 +21,7 @@ from detector.objects.assemble import (
     local_darkness,
     objects_from_candidates,
     reading_matrix,
+    share_vent_sources,
     upsample_patch_maps,
 )
 from detector.tile.features import patch_grid
@@ -740,3 +741,62 @@ def test_faint_fan_is_seeded_where_the_classifier_calls_it_a_deposit(seed):
 
     assert covered(quiet) == 0
     assert covered(called) > 0.6 * cover.sum()
+
+
+def _objects(rows):
+    frame = pd.DataFrame(rows)
+    for col in ("direction_deg", "length_px", "opening_deg", "semi_major_px", "semi_minor_px"):
+        frame[col] = frame.get(col, 10.0)
+    return frame
+
+
+def test_fans_of_one_vent_start_at_their_score_weighted_source():
+    objects = _objects([
+        dict(kind="fan", x_px=100.0, y_px=100.0, score=0.9),
+        dict(kind="fan", x_px=106.0, y_px=103.0, score=0.6),
+        dict(kind="fan", x_px=103.0, y_px=94.0, score=0.3),  # all three pairwise within 12 px
+        dict(kind="fan", x_px=150.0, y_px=100.0, score=0.8),  # a vent of its own
+        dict(kind="spot", x_px=101.0, y_px=101.0, score=0.9),  # spots keep their centres
+    ])
+    out = share_vent_sources(objects, 12.0)
+    # hand-worked: x = (0.9*100 + 0.6*106 + 0.3*103) / 1.8, y = (0.9*100 + 0.6*103 + 0.3*94) / 1.8
+    assert out.loc[:2, "x_px"].tolist() == pytest.approx([(90.0 + 63.6 + 30.9) / 1.8] * 3)
+    assert out.loc[:2, "y_px"].tolist() == pytest.approx([(90.0 + 61.8 + 28.2) / 1.8] * 3)
+    assert out.loc[3:, ["x_px", "y_px"]].equals(objects.loc[3:, ["x_px", "y_px"]])
+    assert out.drop(columns=["x_px", "y_px"]).equals(objects.drop(columns=["x_px", "y_px"]))
+    # the input is left as it was
+    assert objects.loc[1, "x_px"] == 106.0
+
+
+def test_shared_sources_do_not_chain_along_a_row_of_vents():
+    # Complete linkage (scipy.cluster.hierarchy): 0-1 and 1-2 lie 10 px apart but 0-2 lie 20 px apart,
+    # so the three never share one source; sources exactly 12 px apart stay apart (boundary excluded).
+    row = _objects([dict(kind="fan", x_px=10.0 * i, y_px=0.0, score=0.5) for i in range(3)])
+    out = share_vent_sources(row, 12.0)
+    assert len(set(zip(out["x_px"], out["y_px"]))) >= 2
+    assert np.ptp(out["x_px"]) > 12.0
+    apart = _objects([dict(kind="fan", x_px=0.0, y_px=0.0, score=0.5), dict(kind="fan", x_px=12.0, y_px=0.0,
+                                                                             score=0.5)])
+    assert share_vent_sources(apart, 12.0)[["x_px"]].equals(apart[["x_px"]])
+
+
+def test_a_shared_source_lets_the_matching_pair_a_vents_fans_by_direction():
+    # Worked example of the matching's rule (distances rounded to 4 px, then direction): two consensus
+    # fans of one vent, pointing 0 and 90 deg, whose sources were marked 6 px apart; two detections
+    # pointing 88 and 2 deg, whose sources were read on their own pixels, each on the other consensus
+    # fan's source. Read apart, each detection is 0 px from the wrong fan and 6 px (the next step but
+    # one) from the right one, so both pair the wrong way. At their shared source, 3 px from both
+    # consensus sources, distances tie and each pairs by direction.
+    from training.evaluation.matching import match_objects
+
+    consensus = pd.DataFrame({"tile_id": "t", "kind": "fan", "x_px": [50.0, 56.0], "y_px": [50.0, 50.0],
+                              "direction_deg": [0.0, 90.0], "length_px": [60.0, 60.0],
+                              "semi_major_px": np.nan})
+    detections = pd.DataFrame({"tile_id": "t", "kind": "fan", "x_px": [50.0, 56.0], "y_px": [50.0, 50.0],
+                               "direction_deg": [88.0, 2.0], "score": [0.9, 0.9]})
+    apart = match_objects(detections, consensus)
+    assert sorted(apart["direction_error_deg"].round(6)) == [88.0, 88.0]
+    shared = share_vent_sources(detections, 12.0)
+    assert shared["x_px"].tolist() == [53.0, 53.0]
+    together = match_objects(shared, consensus)
+    assert sorted(together["direction_error_deg"].round(6)) == [2.0, 2.0]
