@@ -7,7 +7,9 @@ import pandas as pd
 import pytest
 from scipy.stats import entropy
 
-from training.effort.active import greedy_order, labelling_order_study, tile_uncertainty, tiles_to_reach
+from detector.errors import DetectorError
+from training.effort.active import (greedy_order, labelling_order_study, tile_uncertainty, tiles_to_reach,
+                                     uncertain_objects)
 
 
 def test_tile_uncertainty_is_scipy_entropy_normalised():
@@ -21,6 +23,20 @@ def test_tile_uncertainty_is_scipy_entropy_normalised():
     assert tile_uncertainty(np.array([[1.0, 0.0, 0.0]]), [True]) == 0.0
     assert tile_uncertainty(np.full((4, 3), 1 / 3), [True] * 4) == pytest.approx(1.0)
     assert tile_uncertainty(proba, np.zeros(50, bool)) == 0.0
+
+
+def test_uncertain_objects_add_each_readings_scaled_bernoulli_variance():
+    # Hand-worked: 4 s (1 - s) is 1 at s = 0.5, 0.64 at 0.2 and 0.8, 0.36 at 0.9, 0 at 0 and 1.
+    assert uncertain_objects([0.5, 0.2, 0.8, 0.9, 0.0, 1.0]) == pytest.approx(1.0 + 0.64 + 0.64 + 0.36)
+    assert uncertain_objects([]) == 0.0
+    # A tile of many doubtful deposits teaches more than one of a few sure ones, whatever its size.
+    assert uncertain_objects([0.45] * 10) > uncertain_objects([0.97] * 30)
+    # Reference: 4 x the variance of a Bernoulli variable, scipy.stats.bernoulli(s).var() = s (1 - s).
+    from scipy.stats import bernoulli
+    s = np.random.default_rng(1).random(40)
+    assert uncertain_objects(s) == pytest.approx(4.0 * sum(bernoulli(p).var() for p in s))
+    with pytest.raises(DetectorError, match="in \\[0, 1\\]"):
+        uncertain_objects([0.3, 1.2])
 
 
 def test_greedy_order_trades_uncertainty_for_diversity():
@@ -290,3 +306,26 @@ def test_order_study_refuses_a_split_with_too_small_a_pool(tmp_path, monkeypatch
         labelling_order_study("unused", root, tmp_path / "out", base_images=2, holdout_images=2, batch=2,
                               n_batches=2, repeats=2, log=lambda *_: None)
     assert calls == [] and not (tmp_path / "out").exists()
+
+
+def test_describe_tiles_counts_the_uncertain_objects_of_nearly_every_reading(tiny_model, tiny_tileset):
+    # The description reads each tile once at READING_FLOOR: its uncertainty is the uncertain objects of
+    # those readings, its detections those at the model's own threshold (what screening reports).
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
+    from detector.tileset import load_tileset
+    from training.effort.active import READING_FLOOR, describe_tiles
+
+    model_dir, _ = tiny_model
+    tileset = load_tileset(tiny_tileset)
+    ids = list(tileset.tiles["tile_id"][:2])
+    table, vectors = describe_tiles(model_dir, tiny_tileset, ids)
+    model = load_model(model_dir)
+    for row in table.itertuples():
+        tile = tileset.read_tile(row.tile_id)
+        every = detect_tile(model, tile, tile_id=row.tile_id, min_score=READING_FLOOR).detections
+        kept = detect_tile(model, tile, tile_id=row.tile_id).detections
+        assert row.uncertainty == pytest.approx(uncertain_objects(every["score"]))
+        assert row.n_detections == len(kept)
+        assert 0.0 <= row.patch_uncertainty <= 1.0
+    assert vectors.shape[0] == len(ids)

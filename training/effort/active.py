@@ -1,14 +1,17 @@
 """Where the next volunteer hour goes: rank tiles by how much their consensus would teach the model.
 
-A tile teaches the model most when the model is unsure about its patches
-(**uncertainty**: the mean entropy of the calibrated none / fan / spot patch
-probabilities over the tile's valid patches, divided by ``log 3`` so it lies in
-[0, 1]) and when it is unlike the tiles already chosen (**diversity**: the
-distance between tiles' mean feature vectors, standardised by the model's own
-unfamiliarity statistics). :func:`rank_tiles` picks greedily: each next tile
-maximises ``uncertainty * min(1, distance to the nearest tile already picked /
-median distance between tiles)``, the first tile the most uncertain one (the
-uncertainty-times-diversity rule of batch active learning).
+A tile teaches the model most when the model is unsure about the deposits on it
+(**uncertainty**: the tile's uncertain objects, the sum of ``4 s (1 - s)`` over
+the scores ``s`` of the model's readings of it, nearly all kept; a reading the
+model gives even odds counts 1, a sure one or a sure nothing 0) and when it is
+unlike the tiles already chosen (**diversity**: the distance between tiles'
+mean feature vectors, standardised by the model's own unfamiliarity
+statistics). :func:`rank_tiles` picks greedily: each next tile maximises
+``uncertainty * min(1, distance to the nearest tile already picked / median
+distance between tiles)``, the first tile the most uncertain one (the
+uncertainty-times-diversity rule of batch active learning). The mean entropy of
+the patch class probabilities (:func:`tile_uncertainty`) is reported beside it;
+it ranked worse on a development pool (README, "Where the next volunteer hour goes").
 
 :func:`labelling_order_study` checks that this order pays off: starting from a
 few labelled images it adds the pool's tiles in batches, in ranked and in
@@ -34,7 +37,7 @@ from detector.io import atomic_path, write_json
 from .._json import jsonable
 from .._subsets import write_subset
 
-__all__ = ["tile_uncertainty", "greedy_order", "describe_tiles", "rank_described", "rank_tiles",
+__all__ = ["tile_uncertainty", "uncertain_objects", "greedy_order", "describe_tiles", "rank_described", "rank_tiles",
            "labelling_order_study", "study_summary", "tiles_to_reach", "tiles_needed_interval",
            "bootstrap_mean_interval", "tiles_saved", "compare_orders", "saving_words"]
 
@@ -66,13 +69,38 @@ def tile_uncertainty(proba, valid):
     return float(np.mean(h) / math.log(p.shape[1]))
 
 
+#: Readings scored at least this enter a tile's uncertain objects: nearly every reading, so the ones the
+#: model leans against count as well as the ones it keeps.
+READING_FLOOR = 0.02
+
+
+def uncertain_objects(scores):
+    """A tile's uncertain objects: ``sum(4 s (1 - s))`` over its readings' scores.
+
+    Parameters
+    ----------
+    scores : array-like of shape (n,)
+        Probabilities, in [0, 1], that each reading is a right deposit.
+
+    Returns
+    -------
+    uncertain : float
+        0 for no readings or only sure ones (s = 0 or 1); each reading at
+        s = 0.5 adds 1 (``4 s (1 - s)`` is the Bernoulli variance scaled to 1).
+    """
+    s = np.asarray(scores, dtype=np.float64)
+    if s.size and (not np.all(np.isfinite(s)) or s.min() < 0.0 or s.max() > 1.0):
+        raise DetectorError(f"reading scores must lie in [0, 1]; got {s.min()!r} to {s.max()!r}.")
+    return float(np.sum(4.0 * s * (1.0 - s)))
+
+
 def greedy_order(uncertainty, vectors):
     """Order tiles by uncertainty times diversity (greedy, one tile at a time).
 
     Parameters
     ----------
     uncertainty : ndarray of shape (n,)
-        In [0, 1].
+        Non-negative (a tile's uncertain objects, or any measure where more teaches more).
     vectors : ndarray of shape (n, d)
         Standardised tile descriptions; distances are Euclidean.
 
@@ -106,7 +134,7 @@ def greedy_order(uncertainty, vectors):
 
 
 def describe_tiles(model_dir, tileset_root, tile_ids=None):
-    """What a model makes of each tile: its patch uncertainty and its standardised description.
+    """What a model makes of each tile: its uncertain objects, patch uncertainty and standardised description.
 
     Parameters
     ----------
@@ -119,12 +147,16 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     Returns
     -------
     table : DataFrame
-        ``tile_id``, ``uncertainty`` (:func:`tile_uncertainty`), ``p_deposit``, ``n_detections``.
+        ``tile_id``, ``uncertainty`` (:func:`uncertain_objects` of the readings scored at least
+        :data:`READING_FLOOR`), ``patch_uncertainty`` (:func:`tile_uncertainty`), ``p_deposit``,
+        ``n_detections`` (at the model's threshold).
     vectors : ndarray of shape (n, d)
         Each tile's mean feature vector, standardised by the model's unfamiliarity statistics.
     """
     from detector.inference.detect import detect_tile
     from detector.inference.model import load_model
+    from detector.objects.assemble import AssemblyParams
+    from detector.tile.features import extract_features
     from detector.tileset import load_tileset
 
     model = load_model(model_dir)
@@ -135,16 +167,24 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
         raise DetectorError(f"tile(s) {unknown[:3]!r} are not in {str(tileset_root)!r}.")
     stats = model.card.get("unfamiliarity") or {}
     rows, vectors = [], []
+    min_score = AssemblyParams.from_dict(model.assembly).min_score
+    spec = model.feature_spec
     for tile_id in ids:
         tile = tileset.read_tile(tile_id)
-        result = detect_tile(model, tile, tile_id=tile_id)
-        rows.append({"tile_id": tile_id, "uncertainty": tile_uncertainty(result.proba, result.grid.valid),
+        nodata = tile == spec.nodata_value
+        # the features once; the readings at the model's threshold (what screening keeps) and at the floor
+        features = extract_features(tile, spec, nodata_mask=nodata, noise_range=model.noise_range)
+        result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=features)
+        every = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=features,
+                            min_score=min(READING_FLOOR, min_score))
+        rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(every.detections["score"]),
+                     "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
                      "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))})
         vectors.append(result.summary)
     V = np.asarray(vectors, dtype=np.float64).reshape(len(ids), -1)
     if stats and len(V):
         V = (V - np.asarray(stats["mean"])) / np.asarray(stats["scale"])
-    return pd.DataFrame(rows, columns=["tile_id", "uncertainty", "p_deposit", "n_detections"]), V
+    return pd.DataFrame(rows, columns=["tile_id", "uncertainty", "patch_uncertainty", "p_deposit", "n_detections"]), V
 
 
 def rank_described(table, vectors):
@@ -153,8 +193,8 @@ def rank_described(table, vectors):
     Returns
     -------
     ranked : DataFrame
-        ``rank`` (1 = label first), ``tile_id``, ``uncertainty``, ``gain`` (the
-        uncertainty-times-diversity value at its pick), ``p_deposit``, ``n_detections``.
+        ``rank`` (1 = label first), ``tile_id``, ``uncertainty`` (uncertain objects), ``gain`` (the
+        uncertainty-times-diversity value at its pick), then the description's other columns.
     """
     order, gain = greedy_order(table["uncertainty"].to_numpy(), vectors)
     ranked = table.iloc[order].reset_index(drop=True)
@@ -180,7 +220,7 @@ def rank_tiles(model_dir, tileset_root, tile_ids=None, *, log=print):
         See :func:`rank_described`.
     """
     n = "all" if tile_ids is None else len(tile_ids)
-    log(f"ranking {n} tiles by patch uncertainty and diversity")
+    log(f"ranking {n} tiles by uncertain objects and diversity")
     return rank_described(*describe_tiles(model_dir, tileset_root, tile_ids))
 
 
@@ -485,7 +525,7 @@ def labelling_order_study(model_dir, tileset_root, out, *, base_images=3, holdou
     # The model describes every pool tile once; each split ranks its own pool from these descriptions.
     in_a_pool = set().union(*(ids["pool"] for _, ids in splits))
     pool_union = [t for t in tiles["tile_id"] if t in in_a_pool]
-    log(f"describing {len(pool_union)} pool tiles with {str(model_dir)!r} (patch uncertainty and diversity)")
+    log(f"describing {len(pool_union)} pool tiles with {str(model_dir)!r} (uncertain objects and diversity)")
     table, vectors = describe_tiles(model_dir, root, pool_union)
     row_of = {t: i for i, t in enumerate(table["tile_id"])}
     tiles_raw = pd.read_csv(root / TILES_FILE, dtype=str, keep_default_na=False)

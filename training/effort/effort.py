@@ -239,7 +239,7 @@ def write_next_tiles(model_dir, effort_dir, tileset_root, *, log=print):
     with atomic_path(Path(effort_dir) / "next_tiles.csv") as tmp:
         ranked.to_csv(tmp, index=False)
     top = ", ".join(ranked["tile_id"].head(5))
-    log(f"next tiles for volunteers (patch uncertainty x diversity): {top}{' ...' if len(ranked) > 5 else ''}; "
+    log(f"next tiles for volunteers (uncertain objects x diversity): {top}{' ...' if len(ranked) > 5 else ''}; "
         f"wrote {Path(effort_dir) / 'next_tiles.csv'} ({len(ranked)} of {len(crowd)} crowd tiles found in the tile set)")
     return ranked
 
