@@ -58,6 +58,9 @@ class TileResult:
     smoothed : bool
         Whether the tile was noisier than every fitting tile of the model and so smoothed
         before its features were computed (:func:`detector.tile.noise.smooth_excess_noise`).
+    floor_detections : DataFrame or None
+        With ``detect_tile(..., floor_score=f)``: the objects the same readings give when
+        kept down to the score ``f``; otherwise None.
     """
 
     tile_id: str
@@ -73,6 +76,7 @@ class TileResult:
     summary: np.ndarray
     noise: float = float("nan")
     smoothed: bool = False
+    floor_detections: pd.DataFrame = None
 
     @property
     def p_deposit(self):
@@ -206,7 +210,7 @@ def tile_candidates(tile, nodata_mask, maps, spec, params, *, prep=None):
                            axis_maps=maps.axis_maps)
 
 
-def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None):
+def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None, floor_score=None):
     """Screen one tile with a loaded model.
 
     Parameters
@@ -222,6 +226,9 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     features : tuple (X, grid), optional
         Precomputed features of this tile with the model's spec and noise range
         (``extract_features(tile, spec, nodata_mask=..., noise_range=model.noise_range)``).
+    floor_score : float, optional
+        Also keep the same readings down to this score (``floor_detections``), without
+        reading the tile again.
 
     Returns
     -------
@@ -241,8 +248,14 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     F, _, _ = reading_matrix(candidates)
     scores = model.score_readings(F, candidates)
     apply_refined(candidates, *model.refine_readings(F, candidates))
+    confidence = model.direction_confidence(F)
     detections, _ = objects_from_candidates(candidates, scores, params=params,
-                                            tile_id=tile_id, direction_confidence=model.direction_confidence(F))
+                                            tile_id=tile_id, direction_confidence=confidence)
+    floor_detections = None
+    if floor_score is not None:
+        floor_params = AssemblyParams.from_dict({**model.assembly, "min_score": float(floor_score)})
+        floor_detections, _ = objects_from_candidates(candidates, scores, params=floor_params, tile_id=tile_id,
+                                                      direction_confidence=confidence)
     # Cover is the detections' footprints, not their dark pixels: consensus features are footprints,
     # and the dark pixels alone fell 2.5 points of cover short of them (README, "Benchmark").
     fan_cover, spot_cover = footprint_masks(detections, tile.shape)
@@ -260,4 +273,5 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
         noise=float(prep.noise),
         smoothed=bool(prep.smoothed),
+        floor_detections=floor_detections,
     )

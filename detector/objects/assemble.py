@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 from scipy import ndimage
+from scipy.cluster.hierarchy import fcluster, linkage
 
 from ..tile import _kernels
 from . import _readings
@@ -887,8 +888,6 @@ def share_vent_sources(objects, radius_px):
     objects : DataFrame
         A copy with the fans' sources shared.
     """
-    from scipy.cluster.hierarchy import fcluster, linkage
-
     out = objects.copy()
     fans = np.flatnonzero((out["kind"] == "fan").to_numpy())
     if fans.size < 2:

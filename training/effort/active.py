@@ -156,7 +156,6 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     from detector.inference.detect import detect_tile
     from detector.inference.model import load_model
     from detector.objects.assemble import AssemblyParams
-    from detector.tile.features import extract_features
     from detector.tileset import load_tileset
 
     model = load_model(model_dir)
@@ -167,17 +166,11 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
         raise DetectorError(f"tile(s) {unknown[:3]!r} are not in {str(tileset_root)!r}.")
     stats = model.card.get("unfamiliarity") or {}
     rows, vectors = [], []
-    min_score = AssemblyParams.from_dict(model.assembly).min_score
-    spec = model.feature_spec
+    floor = min(READING_FLOOR, AssemblyParams.from_dict(model.assembly).min_score)
     for tile_id in ids:
-        tile = tileset.read_tile(tile_id)
-        nodata = tile == spec.nodata_value
-        # the features once; the readings at the model's threshold (what screening keeps) and at the floor
-        features = extract_features(tile, spec, nodata_mask=nodata, noise_range=model.noise_range)
-        result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=features)
-        every = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, features=features,
-                            min_score=min(READING_FLOOR, min_score))
-        rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(every.detections["score"]),
+        # one reading of the tile: the objects at the model's threshold (what screening keeps) and at the floor
+        result = detect_tile(model, tileset.read_tile(tile_id), tile_id=tile_id, floor_score=floor)
+        rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(result.floor_detections["score"]),
                      "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
                      "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))})
         vectors.append(result.summary)
