@@ -433,7 +433,9 @@ def _fans_from_vent(xs, ys, w, ax, ay, min_separation, min_share, smoothing, row
     wr = w * r
     modes = np.empty(0)
     if far.sum() >= 10:
-        modes = direction_modes(phi[far], wr[far], min_separation, min_share, smoothing, 72)
+        # The modes count each far pixel's darkness, not darkness times distance: a vent's short second
+        # fan then holds its own share beside a long one (each fan's direction below still weighs distance).
+        modes = direction_modes(phi[far], w[far], min_separation, min_share, smoothing, 72)
     if modes.size < 2:
         modes = np.empty(1)
         modes[0] = _circ_mean(phi[far], wr[far]) if far.any() else _circ_mean(phi, w)
