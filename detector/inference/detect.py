@@ -1,6 +1,6 @@
 """Run an exported model on one tile: patch probabilities, polarity, objects, coverage."""
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -243,7 +243,7 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
     params = AssemblyParams.from_dict(model.assembly)
     if min_score is not None:
-        params = AssemblyParams.from_dict({**model.assembly, "min_score": float(min_score)})
+        params = replace(params, min_score=float(min_score))
     candidates = tile_candidates(tile, nodata_mask, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
     scores = model.score_readings(F, candidates)
@@ -253,9 +253,8 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
                                             tile_id=tile_id, direction_confidence=confidence)
     floor_detections = None
     if floor_score is not None:
-        floor_params = AssemblyParams.from_dict({**model.assembly, "min_score": float(floor_score)})
-        floor_detections, _ = objects_from_candidates(candidates, scores, params=floor_params, tile_id=tile_id,
-                                                      direction_confidence=confidence)
+        floor_detections, _ = objects_from_candidates(candidates, scores, params=replace(params, min_score=float(floor_score)),
+                                                      tile_id=tile_id, direction_confidence=confidence)
     # Cover is the detections' footprints, not their dark pixels: consensus features are footprints,
     # and the dark pixels alone fell 2.5 points of cover short of them (README, "Benchmark").
     fan_cover, spot_cover = footprint_masks(detections, tile.shape)
