@@ -40,7 +40,8 @@ def test_evaluate(tiny_model, tiny_tileset, tmp_path, capsys):
     meta = json.loads((out / "report.json").read_text())["scores"]["meta"]
     assert meta["images_seen_in_training"]
     assert meta["model_card_sha256"] == sha256_file(tiny_model[0] / "model.json")
-    assert set(meta["model_files_sha256"]) == {"detector.onnx", "orientation.onnx", "objects.onnx", "context.onnx"}
+    assert set(meta["model_files_sha256"]) == {"detector.onnx", "orientation.onnx", "objects.onnx", "context.onnx"} | (
+        {"turn.onnx"} if json.loads((tiny_model[0] / "model.json").read_text())["refine_turn"] else set())
     assert meta["tileset_sha256"]["tiles.csv"] == sha256_file(tiny_tileset / "tiles.csv")
     assert meta["date_utc"].endswith("Z")
     # Three images are too few for a 95 % CI: the report says range, not CI.

@@ -93,6 +93,24 @@ def _check_refine_model(c, refine, object_feature_names):
         c.numbers(f"{where}.intercept", c.get(f"{where}.intercept"), length=len(outputs))
 
 
+def _check_refine_turn(c, turn, object_feature_names, files):
+    """The card's ``refine_turn`` (:mod:`detector.objects.refine`): a boosted turn of fan directions
+    over the code's refinement features, in ``turn.onnx`` (whose sha256 ``files`` must record)."""
+    from ..objects.refine import REFINE_FEATURE_NAMES
+
+    if not isinstance(turn, dict):
+        c.fail("refine_turn", turn, "an object or null")
+    used = c.names("refine_turn.features", c.get("refine_turn.features"))
+    expected = list(object_feature_names) + list(REFINE_FEATURE_NAMES[len(object_feature_names):])
+    if used != expected:
+        c.fail("refine_turn.features", used, f"the {len(expected)} refinement features of this code, in order")
+    name = c.get("refine_turn.file")
+    if name != "turn.onnx":
+        c.fail("refine_turn.file", name, "'turn.onnx'")
+    if not isinstance(files.get(name), str) or not _HEX64.match(files[name]):
+        c.fail(f"files.{name}", files.get(name), "a sha256 of 64 hex digits")
+
+
 def check_card(card, source, *, onnx_files, class_names, object_feature_names, assembly_fields):
     """Check a parsed model card against the schema; raise :class:`ModelError` on the first breach.
 
@@ -166,6 +184,9 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
     refine = c.get("refine_model", required=False)
     if refine is not None:
         _check_refine_model(c, refine, tuple(object_feature_names))
+    turn = c.get("refine_turn", required=False)
+    if turn is not None:
+        _check_refine_turn(c, turn, tuple(object_feature_names), files)
 
     noise = c.get("noise", required=False)
     if noise is not None:

@@ -28,6 +28,7 @@ __all__ = [
     "OBJECTS_ONNX",
     "CONTEXT_ONNX",
     "ONNX_FILES",
+    "TURN_ONNX",
     "Calibration",
     "Model",
     "load_model",
@@ -42,6 +43,9 @@ ORIENTATION_ONNX = "orientation.onnx"
 OBJECTS_ONNX = "objects.onnx"
 CONTEXT_ONNX = "context.onnx"
 ONNX_FILES = (DETECTOR_ONNX, ORIENTATION_ONNX, OBJECTS_ONNX, CONTEXT_ONNX)
+#: The boosted turn of fan directions (:mod:`detector.objects.refine`); only in a folder whose card
+#: has a ``refine_turn``.
+TURN_ONNX = "turn.onnx"
 CLASS_NAMES = ("none", "fan", "spot")
 
 
@@ -106,6 +110,7 @@ class Model:
     _orientation: object = field(repr=False, default=None)
     _objects: object = field(repr=False, default=None)
     _context: object = field(repr=False, default=None)
+    _turn: object = field(repr=False, default=None)
 
     @property
     def assembly(self):
@@ -178,12 +183,17 @@ class Model:
         (:mod:`detector.objects.refine`).
 
         From the card's ``refine_model`` (plain numbers); a card without one keeps the
-        sizes and directions measured on the dark components.
+        sizes and directions measured on the dark components. Fans are turned by
+        ``turn.onnx`` when the card keeps a boosted turn (``refine_turn``).
         """
-        from ..objects.refine import predict_refined, reading_shapes
+        from ..objects.refine import predict_refined, reading_shapes, refine_design, turn_directions
 
         own, direction, is_fan = reading_shapes(candidates)
-        return predict_refined(self.card.get("refine_model"), F, own, direction, is_fan)
+        sizes, turned = predict_refined(self.card.get("refine_model"), F, own, direction, is_fan)
+        if self._turn is not None and is_fan.any():
+            X = np.ascontiguousarray(refine_design(F, own)[is_fan], dtype=np.float32)
+            turned = turn_directions(turned, is_fan, _run_regression(self._turn, X))
+        return sizes, turned
 
     def direction_confidence(self, F):
         """Probability that each fan reading's direction is within the card's error bound, shape (n,).
@@ -203,6 +213,13 @@ class Model:
         idx = [OBJECT_FEATURE_NAMES.index(n) for n in fit["features"]]
         z = (F[:, idx] - np.asarray(fit["mean"])) / np.asarray(fit["scale"])
         return 1.0 / (1.0 + np.exp(-(z @ np.asarray(fit["coef"]) + float(fit["intercept"]))))
+
+
+def _run_regression(session, X):
+    """The single output of an ONNX regressor, shape (n,), float64."""
+    X = np.ascontiguousarray(X, dtype=np.float32)
+    name = session.get_inputs()[0].name
+    return np.asarray(session.run(None, {name: X})[0], dtype=np.float64).reshape(-1)
 
 
 def _run_proba(session, X):
@@ -269,7 +286,8 @@ def load_model(folder):
     check_card(card, repr(str(card_path)), onnx_files=ONNX_FILES, class_names=CLASS_NAMES,
                object_feature_names=OBJECT_FEATURE_NAMES,
                assembly_fields={f.name: f.type for f in dataclasses.fields(AssemblyParams)})
-    for name in ONNX_FILES:
+    turn_kept = bool(card.get("refine_turn"))
+    for name in ONNX_FILES + ((TURN_ONNX,) if turn_kept else ()):
         path = folder / name
         if not path.is_file():
             raise ModelError(f"model folder {str(folder)!r} lacks {name!r}.")
@@ -331,6 +349,7 @@ def load_model(folder):
         _orientation=_session(folder / ORIENTATION_ONNX),
         _objects=_session(folder / OBJECTS_ONNX),
         _context=_session(folder / CONTEXT_ONNX),
+        _turn=_session(folder / TURN_ONNX) if turn_kept else None,
     )
 
 

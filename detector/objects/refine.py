@@ -22,6 +22,13 @@ regression per kind and output, fitted at training on the right readings
 (those matched to consensus) and stored in the model card as plain numbers
 (``refine_model``). It runs after the readings are scored, so the object and
 context models see the readings as they were measured.
+
+The turn of a fan's direction may instead come from a gradient-boosted regressor
+over the same inputs (``turn.onnx``, described by the card's ``refine_turn``):
+which side of a reading the misplaced mass lies on, and how far, is not a linear
+function of its view. Training keeps whichever turn, none, the ridge's or the
+boosted one, brings the right check readings closest to their consensus direction;
+:func:`turn_directions` applies a boosted turn.
 """
 
 import numpy as np
@@ -29,7 +36,8 @@ import numpy as np
 from .assemble import OBJECT_FEATURE_NAMES
 
 __all__ = ["REFINE_FEATURE_NAMES", "REFINE_OUTPUTS", "SIZE_NAMES", "MAX_FACTOR", "MAX_TURN_DEG",
-           "OPENING_BOUNDS_DEG", "reading_shapes", "refine_design", "predict_refined", "apply_refined"]
+           "OPENING_BOUNDS_DEG", "reading_shapes", "refine_design", "predict_refined", "turn_directions",
+           "apply_refined"]
 
 #: The two sizes of each kind.
 SIZE_NAMES = {"fan": ("length_px", "opening_deg"), "spot": ("semi_major_px", "semi_minor_px")}
@@ -135,6 +143,31 @@ def predict_refined(fit, F, own_sizes, direction_deg, is_fan):
     spots = ~is_fan
     sizes[spots, 1] = np.minimum(sizes[spots, 1], sizes[spots, 0])
     return sizes, direction
+
+
+def turn_directions(direction_deg, is_fan, turn_deg):
+    """Fans' directions turned by a predicted turn, clipped to :data:`MAX_TURN_DEG`.
+
+    Parameters
+    ----------
+    direction_deg : ndarray of shape (n,)
+        Every reading's direction (spots' axes are left as they are).
+    is_fan : ndarray of shape (n,), bool
+    turn_deg : ndarray of shape (n_fans,)
+        The turn of each fan reading in order (degrees, clockwise positive).
+
+    Returns
+    -------
+    ndarray of shape (n,)
+        Fans' directions in [0, 360).
+    """
+    direction = np.asarray(direction_deg, dtype=np.float64).copy()
+    is_fan = np.asarray(is_fan, dtype=bool)
+    turn = np.asarray(turn_deg, dtype=np.float64).reshape(-1)
+    if turn.size != is_fan.sum():
+        raise ValueError(f"{turn.size} turns for {int(is_fan.sum())} fan readings.")
+    direction[is_fan] = (direction[is_fan] + np.clip(turn, -MAX_TURN_DEG, MAX_TURN_DEG)) % 360.0
+    return direction
 
 
 def apply_refined(candidates, sizes, direction_deg):

@@ -207,3 +207,95 @@ def test_card_that_is_not_an_object_is_refused(model_copy, capsys):
     assert main(["screen", str(model_copy), str(model_copy / "none.png"), "--out", str(model_copy / "o")]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "model.json" in err and "Traceback" not in err
+
+
+def _add_boosted_turn(folder, seed=0):
+    """Give a model folder a boosted turn: a regressor fitted on random refinement rows, written to
+    turn.onnx and recorded in the card (``refine_turn`` and ``files``). Returns the regressor."""
+    from sklearn.ensemble import HistGradientBoostingRegressor
+
+    from detector.inference.model import TURN_ONNX, sha256_file
+    from detector.objects.refine import REFINE_FEATURE_NAMES
+    from training.fitting.export import regressor_to_onnx_bytes
+
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(800, len(REFINE_FEATURE_NAMES))).astype(np.float32)
+    y = 40.0 * np.tanh(X[:, 0])  # turns of up to 40 deg, past the clip of 30
+    reg = HistGradientBoostingRegressor(max_iter=40, random_state=0).fit(X, y)
+    (folder / TURN_ONNX).write_bytes(regressor_to_onnx_bytes(reg, X.shape[1]))
+
+    def edit(card):
+        card["refine_turn"] = {"file": TURN_ONNX, "features": list(REFINE_FEATURE_NAMES)}
+        card["files"][TURN_ONNX] = sha256_file(folder / TURN_ONNX)
+
+    _edit_card(folder, edit)
+    return reg
+
+
+def test_onnxruntime_matches_scikit_learn_regression():
+    # As for the classifiers: onnxruntime's predictions of a converted HistGradientBoostingRegressor
+    # agree with scikit-learn's predict to float32 precision (1e-4 of outputs of tens; from memory).
+    from sklearn.ensemble import HistGradientBoostingRegressor
+
+    from training.fitting.export import onnx_regression_parity, regressor_to_onnx_bytes
+
+    rng = np.random.default_rng(12)
+    X = rng.normal(size=(600, 5)).astype(np.float32)
+    y = 30.0 * np.sign(X[:, 0]) + 3.0 * X[:, 1]
+    for loss in ("squared_error", "absolute_error"):
+        reg = HistGradientBoostingRegressor(loss=loss, max_iter=40, random_state=0).fit(X, y)
+        probe = rng.normal(size=(200, 5)).astype(np.float32)
+        assert onnx_regression_parity(regressor_to_onnx_bytes(reg, 5), reg, probe) < 1e-4
+
+
+def test_a_boosted_turn_turns_fans_by_its_clipped_prediction(model_copy):
+    from types import SimpleNamespace
+
+    from detector.objects.assemble import OBJECT_FEATURE_NAMES
+    from detector.objects.refine import MAX_TURN_DEG, refine_design
+
+    reg = _add_boosted_turn(model_copy)
+    model = load_model(model_copy)
+    assert model._turn is not None
+    fans = [dict(kind="fan", direction_deg=d, length_px=30.0, opening_deg=40.0) for d in (0.0, 90.0, 355.0, 200.0)]
+    spot = dict(kind="spot", direction_deg=45.0, semi_major_px=8.0, semi_minor_px=5.0)
+    candidates = [SimpleNamespace(fans=fans[:2], spots=[spot]), SimpleNamespace(fans=fans[2:], spots=[])]
+    F = np.random.default_rng(3).normal(size=(5, len(OBJECT_FEATURE_NAMES))).astype(np.float32)
+    F[:, 0] = [3.0, -3.0, 0.0, 0.2, -0.1]  # the first two fans' turns reach the clip of 30 deg
+    _, turned = model.refine_readings(F, candidates)
+    own = np.array([[30.0, 40.0], [30.0, 40.0], [8.0, 5.0], [30.0, 40.0], [30.0, 40.0]])
+    is_fan = np.array([True, True, False, True, True])
+    measured = np.array([0.0, 90.0, 355.0, 200.0])
+    # the card's ridge refinement turns too; undo it to isolate the boosted turn
+    from detector.objects.refine import predict_refined
+
+    _, ridge = predict_refined(model.card.get("refine_model"), F, own, np.array([0.0, 90.0, 45.0, 355.0, 200.0]),
+                               is_fan)
+    expected_turn = np.clip(reg.predict(refine_design(F, own)[is_fan].astype(np.float32)), -MAX_TURN_DEG,
+                            MAX_TURN_DEG)
+    assert abs(expected_turn[0]) == pytest.approx(MAX_TURN_DEG) and abs(expected_turn[1]) == pytest.approx(MAX_TURN_DEG)
+    gap = (turned[is_fan] - (ridge[is_fan] + expected_turn) + 180.0) % 360.0 - 180.0
+    np.testing.assert_allclose(gap, 0.0, atol=1e-3)
+    assert turned[2] == ridge[2] == 45.0
+    assert not np.allclose(turned[is_fan], measured)
+
+
+def test_a_card_with_a_boosted_turn_needs_its_file(model_copy):
+    from detector.inference.model import TURN_ONNX
+
+    _add_boosted_turn(model_copy)
+    data = bytearray((model_copy / TURN_ONNX).read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    (model_copy / TURN_ONNX).write_bytes(bytes(data))
+    with pytest.raises(ModelError, match=r"turn\.onnx.*sha256"):
+        load_model(model_copy)
+    (model_copy / TURN_ONNX).unlink()
+    with pytest.raises(ModelError, match="lacks 'turn.onnx'"):
+        load_model(model_copy)
+
+
+def test_a_boosted_turn_over_other_features_is_refused_naming_the_field(model_copy):
+    _add_boosted_turn(model_copy)
+    _edit_card(model_copy, lambda c: c["refine_turn"].update(features=c["refine_turn"]["features"][:-1]))
+    with pytest.raises(ModelError, match="refine_turn.features"):
+        load_model(model_copy)

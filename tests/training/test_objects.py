@@ -169,28 +169,78 @@ def test_refine_model_needs_right_readings_of_both_kinds():
 
 
 def test_the_turn_is_kept_only_where_it_helps_on_other_readings():
-    # The turn must bring right fans closer to their consensus direction on readings it was not fitted
-    # on. Fitted and checked on readings of the same law it is kept; checked on readings whose turns
-    # follow no feature (a uniform scatter of +-30 deg) it cannot help and is dropped, sizes untouched.
+    # A turn must bring right fans closer to their consensus direction on readings it was not fitted
+    # on, and of none, the ridge's and the boosted turn the closest (median angle) is kept. Turns of
+    # a linear law: the ridge's is exact and kept. Checked on readings whose turns follow no feature
+    # (a uniform scatter of +-30 deg) neither can help and both are dropped, sizes untouched.
     from detector.objects.refine import predict_refined
     from training.fitting.objects import fit_refine_checked
 
     rng = np.random.default_rng(8)
     fit_readings, same = _readings_with_sizes(3000, rng), _readings_with_sizes(3000, rng)
-    kept, check = fit_refine_checked(fit_readings, same, log=lambda *_: None)
-    assert kept["fan"].get("turn_kept", True)
+    messages = []
+    kept, check, boosted = fit_refine_checked(fit_readings, same, log=messages.append)
+    assert kept["fan"].get("turn_kept", True) and boosted is None
+    assert any("the turn kept: ridge" in m for m in messages)
+    assert check["fan_direction_deg"]["model"] < check["fan_direction_deg"]["boosted"]
     assert check["fan_direction_deg"]["model"] < check["fan_direction_deg"]["measured"]
 
     other = _readings_with_sizes(3000, rng)
     right = np.isfinite(other.turn_deg)
     other.turn_deg[right] = rng.uniform(-30.0, 30.0, right.sum())
     messages = []
-    dropped, check = fit_refine_checked(fit_readings, other, log=messages.append)
-    assert dropped["fan"]["turn_kept"] is False
-    assert any("turn of fan directions is dropped" in m for m in messages)
+    dropped, check, boosted = fit_refine_checked(fit_readings, other, log=messages.append)
+    assert dropped["fan"]["turn_kept"] is False and boosted is None
+    assert any("the turn kept: none" in m for m in messages)
     assert check["fan_direction_deg"]["model"] == check["fan_direction_deg"]["measured"]
     direction = np.nan_to_num(other.direction_deg)
     sizes_kept, _ = predict_refined(kept, other.F, other.own_size, direction, other.is_fan)
     sizes_dropped, turned = predict_refined(dropped, other.F, other.own_size, direction, other.is_fan)
     np.testing.assert_array_equal(sizes_dropped, sizes_kept)
     np.testing.assert_allclose(turned[other.is_fan], direction[other.is_fan] % 360.0, atol=1e-9)
+
+
+def test_a_turn_that_is_a_step_of_one_feature_is_kept_boosted():
+    # Turns of 20 deg to the side where one view sample is positive, 20 deg the other way where it is
+    # negative (which side the mass lies on): a step no straight line fits (the ridge's best line
+    # leaves a median error of several degrees), which trees split exactly. The boosted turn is kept,
+    # the ridge's dropped, and the kept turn brings the check fans within 1 deg of their consensus.
+    from detector.objects.assemble import OBJECT_FEATURE_NAMES, VIEW_ACROSS
+    from detector.objects.refine import predict_refined, refine_design, turn_directions
+    from training.fitting.objects import fit_refine_checked
+
+    rng = np.random.default_rng(9)
+    view = OBJECT_FEATURE_NAMES.index(f"read_view_t4_s{VIEW_ACROSS.size - 1}")
+    fit_readings, check_readings = _readings_with_sizes(4000, rng), _readings_with_sizes(4000, rng)
+    for r in (fit_readings, check_readings):
+        right = np.isfinite(r.turn_deg)
+        r.turn_deg[right] = 20.0 * np.sign(r.F[right, view])
+    messages = []
+    refine, check, boosted = fit_refine_checked(fit_readings, check_readings, log=messages.append, seed=3)
+    assert boosted is not None and refine["fan"]["turn_kept"] is False
+    assert any("the turn kept: boosted" in m for m in messages)
+    assert check["fan_direction_deg"]["model"] == check["fan_direction_deg"]["boosted"] < 1.0
+    assert check["fan_direction_deg"]["measured"] == pytest.approx(20.0)
+    # the ridge's own turn is zero now: predict_refined leaves directions as measured
+    r = check_readings
+    direction = np.nan_to_num(r.direction_deg)
+    _, unturned = predict_refined(refine, r.F, r.own_size, direction, r.is_fan)
+    np.testing.assert_allclose(unturned[r.is_fan], direction[r.is_fan] % 360.0, atol=1e-9)
+    turned = turn_directions(unturned, r.is_fan, boosted.predict(refine_design(r.F, r.own_size)[r.is_fan]))
+    rows = r.is_fan & np.isfinite(r.turn_deg)
+    gap = np.abs((turned[rows] - (direction[rows] + r.turn_deg[rows]) + 180.0) % 360.0 - 180.0)
+    assert np.median(gap) < 1.0
+
+
+def test_turn_directions_clips_the_turn_and_leaves_spots_alone():
+    # Hand-worked: 350 + 25 = 375 -> 15 deg; a 50 deg turn is clipped to MAX_TURN_DEG (30): 10 -> 40;
+    # -40 is clipped to -30: 20 -> 350; the spot's axis (100) is not a direction and stays.
+    from detector.objects.refine import MAX_TURN_DEG, turn_directions
+
+    assert MAX_TURN_DEG == 30.0
+    out = turn_directions(np.array([350.0, 10.0, 100.0, 20.0]), np.array([True, True, False, True]),
+                          np.array([25.0, 50.0, -40.0]))
+    np.testing.assert_allclose(out, [15.0, 40.0, 100.0, 350.0])
+    with pytest.raises(ValueError, match="2 turns for 3 fan readings"):
+        turn_directions(np.array([350.0, 10.0, 100.0, 20.0]), np.array([True, True, False, True]),
+                        np.array([1.0, 2.0]))

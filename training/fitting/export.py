@@ -1,10 +1,10 @@
-"""Export fitted scikit-learn classifiers to ONNX and check parity with onnxruntime."""
+"""Export fitted scikit-learn classifiers and regressors to ONNX and check parity with onnxruntime."""
 
 import numpy as np
 
 from detector.errors import ModelError
 
-__all__ = ["to_onnx_bytes", "onnx_parity"]
+__all__ = ["to_onnx_bytes", "onnx_parity", "regressor_to_onnx_bytes", "onnx_regression_parity"]
 
 
 def to_onnx_bytes(estimator, n_features):
@@ -58,3 +58,49 @@ def onnx_parity(model_bytes, estimator, X):
     X = np.ascontiguousarray(X, dtype=np.float32)
     onnx_proba = session.run(None, {session.get_inputs()[0].name: X})[1]
     return float(np.max(np.abs(onnx_proba - estimator.predict_proba(X)))) if len(X) else 0.0
+
+
+def regressor_to_onnx_bytes(estimator, n_features):
+    """Serialise a fitted regressor (HistGradientBoosting) to ONNX bytes with one float output.
+
+    Parameters
+    ----------
+    estimator : fitted regressor
+    n_features : int
+
+    Returns
+    -------
+    model_bytes : bytes
+    """
+    from skl2onnx import to_onnx
+    from skl2onnx.common.data_types import FloatTensorType
+
+    try:
+        onx = to_onnx(estimator, initial_types=[("X", FloatTensorType([None, int(n_features)]))],
+                      target_opset={"": 17, "ai.onnx.ml": 3})
+    except Exception as err:  # converter failures are environment problems the user must see
+        raise ModelError(
+            f"ONNX export of {type(estimator).__name__} failed: {err} (skl2onnx 1.20 needs protobuf < 5)."
+        ) from err
+    return onx.SerializeToString()
+
+
+def onnx_regression_parity(model_bytes, estimator, X):
+    """Largest absolute difference between onnxruntime's and scikit-learn's predictions of a regressor.
+
+    Parameters
+    ----------
+    model_bytes : bytes
+    estimator : fitted regressor
+    X : ndarray of shape (n, n_features)
+
+    Returns
+    -------
+    max_abs_diff : float
+    """
+    import onnxruntime as ort
+
+    session = ort.InferenceSession(model_bytes, providers=["CPUExecutionProvider"])
+    X = np.ascontiguousarray(X, dtype=np.float32)
+    predicted = np.asarray(session.run(None, {session.get_inputs()[0].name: X})[0], dtype=np.float64).reshape(-1)
+    return float(np.max(np.abs(predicted - estimator.predict(X)))) if len(X) else 0.0

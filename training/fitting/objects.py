@@ -16,7 +16,8 @@ from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
 from detector.objects.context import context_matrix, reading_layout
-from detector.objects.refine import REFINE_FEATURE_NAMES, REFINE_OUTPUTS, predict_refined, reading_shapes, refine_design
+from detector.objects.refine import (REFINE_FEATURE_NAMES, REFINE_OUTPUTS, predict_refined, reading_shapes,
+                                     refine_design, turn_directions)
 from detector.inference.detect import tile_candidates, tile_maps
 from detector.tile import _dense
 from detector.tile.features import _features_of_prepared
@@ -29,7 +30,7 @@ from ..evaluation.matching import candidate_pairs
 __all__ = ["CandidateSet", "LABEL_MAX_DIRECTION_DEG", "label_readings", "candidate_set", "rotate_features", "fit_direction_confidence",
            "context_rows",
            "CONFIDENCE_FEATURES", "fit_refine_model", "refine_model_check", "without_turn",
-           "fit_refine_checked"]
+           "fit_refine_checked", "fit_turn_model", "TURN_MODEL_PARAMS"]
 
 
 @dataclass
@@ -349,31 +350,90 @@ def fit_refine_model(readings, *, alpha=REFINE_RIDGE_ALPHA, min_rows=20):
     return fit
 
 
-def fit_refine_checked(fit_readings, check_readings, log):
+#: The boosted turn of fan directions (:func:`fit_turn_model`): an absolute loss, since a right
+#: reading's turn has heavy tails (a neighbour's pixels), and leaves of at least 40 readings.
+TURN_MODEL_PARAMS = {"loss": "absolute_error", "max_iter": 300, "learning_rate": 0.05, "max_leaf_nodes": 31,
+                     "min_samples_leaf": 40}
+
+
+def fit_turn_model(readings, *, seed=0, min_rows=20):
+    """A gradient-boosted regressor of the turn from a right fan reading's direction to its consensus fan's.
+
+    Over the inputs of the refinement model (:func:`detector.objects.refine.refine_design`), with the
+    targets clipped to :data:`REFINE_TURN_CLIP_DEG` as the ridge's are, and :data:`TURN_MODEL_PARAMS`.
+
+    Returns
+    -------
+    model : HistGradientBoostingRegressor or None
+        None with fewer than ``min_rows`` right fan readings.
+    """
+    from sklearn.ensemble import HistGradientBoostingRegressor
+
+    rows = _right_rows(readings, "fan")
+    if rows.sum() < min_rows:
+        return None
+    X = refine_design(readings.F[rows], readings.own_size[rows]).astype(np.float32)
+    turn = np.clip(readings.turn_deg[rows], -REFINE_TURN_CLIP_DEG, REFINE_TURN_CLIP_DEG)
+    return HistGradientBoostingRegressor(random_state=seed, **TURN_MODEL_PARAMS).fit(X, turn)
+
+
+def _boosted_turn_check(turn_model, readings):
+    """Median angle (degrees) of the right check fans to their consensus after the boosted turn."""
+    rows = _right_rows(readings, "fan")
+    if turn_model is None or not rows.any():
+        return None
+    X = refine_design(readings.F[rows], readings.own_size[rows]).astype(np.float32)
+    direction = readings.direction_deg[rows]
+    turned = turn_directions(direction, np.ones(len(direction), bool), turn_model.predict(X))
+    target = direction + readings.turn_deg[rows]
+    return float(np.median(np.abs((turned - target + 180.0) % 360.0 - 180.0)))
+
+
+def fit_refine_checked(fit_readings, check_readings, log, *, seed=0):
     """The refinement model (:mod:`detector.objects.refine`), fitted on some readings and checked on others.
+
+    The sizes come from the ridge fit. The turn of fan directions is the one of three, none, the
+    ridge's or the boosted one (:func:`fit_turn_model`), that brings the right check readings
+    closest to their consensus directions (median angle): fitted on a few images a turn can turn
+    right fans away from their consensus, and it must earn its place on readings it was not fitted on.
 
     Returns
     -------
     fit : dict or None
-        Without its turn of fan directions (:func:`without_turn`) when the
-        turn does not bring the right check readings closer to their consensus directions (median
-        angle): fitted on a few images the turn can turn right fans away from their consensus, and
-        it must earn its place on readings it was not fitted on.
+        Without the ridge's turn (:func:`without_turn`) unless that turn is kept.
     check : dict
-        :func:`refine_model_check` on the check readings.
+        :func:`refine_model_check` on the check readings, with ``fan_direction_deg.boosted``
+        when a boosted turn was fitted.
+    turn_model : HistGradientBoostingRegressor or None
+        The boosted turn when it is kept.
     """
     refine = fit_refine_model(fit_readings)
     check = refine_model_check(refine, check_readings)
     turn = check.get("fan_direction_deg")
-    if turn and not turn["model"] < turn["measured"]:
-        log(f"refinement: the turn of fan directions is dropped (median angle to consensus on the check "
-            f"readings {turn['measured']:.2f} deg measured, {turn['model']:.2f} deg turned)")
-        refine = without_turn(refine)
-        check = refine_model_check(refine, check_readings)
+    turn_model = fit_turn_model(fit_readings, seed=seed) if refine is not None else None
+    boosted = _boosted_turn_check(turn_model, check_readings)
+    if turn:
+        options = {"none": turn["measured"], "ridge": turn["model"]}
+        if boosted is not None:
+            options["boosted"] = boosted
+        kept = min(options, key=lambda k: (options[k], k != "none"))
+        log("refinement: median angle of the right check fans to consensus, " + ", ".join(
+            f"{k} {v:.2f} deg" for k, v in options.items()) + f"; the turn kept: {kept}")
+        if kept != "ridge":
+            refine = without_turn(refine)
+            check = refine_model_check(refine, check_readings)
+        if boosted is not None:
+            check["fan_direction_deg"]["boosted"] = boosted
+        if kept == "boosted":
+            check["fan_direction_deg"]["model"] = boosted
+        else:
+            turn_model = None
+    else:
+        turn_model = None
     if check:
         log("right check readings against consensus, measured -> refined (median |log size ratio|, "
             "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
-    return refine, check
+    return refine, check, turn_model
 
 
 def without_turn(fit):

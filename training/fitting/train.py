@@ -27,9 +27,11 @@ from detector.inference.model import (
     CONTEXT_ONNX,
     ONNX_FILES,
     ORIENTATION_ONNX,
+    TURN_ONNX,
     Calibration,
     sha256_file,
 )
+from detector.objects.refine import MAX_TURN_DEG, REFINE_FEATURE_NAMES, refine_design
 from detector.tile.noise import NOISE_METHOD, NoiseRange
 from detector.tile.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
@@ -37,8 +39,9 @@ from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, un
 
 from .dataset import build_patch_set, rotation_jobs
 from ..evaluation.evaluate import evaluate_tiles, summarise_for_card, tune_assembly
-from .export import onnx_parity, to_onnx_bytes
-from .objects import CandidateSet, candidate_set, context_rows, fit_direction_confidence, fit_refine_checked
+from .export import onnx_parity, onnx_regression_parity, regressor_to_onnx_bytes, to_onnx_bytes
+from .objects import (REFINE_TURN_CLIP_DEG, TURN_MODEL_PARAMS, CandidateSet, candidate_set, context_rows,
+                      fit_direction_confidence, fit_refine_checked)
 from ..parallel import on_cluster
 
 __all__ = ["TrainConfig", "split_images", "train_model", "fit_calibration", "calibration_scores",
@@ -481,17 +484,19 @@ class _Objects:
     context_crossed: bool
     refine: dict = None
     refine_check: dict = None
+    turn: object = None
 
 
 @dataclass(frozen=True)
 class _Onnx:
-    """The four exported models and the parity of each with its scikit-learn original."""
+    """The exported models and the parity of each with its scikit-learn original."""
 
     detector: bytes
     orientation: bytes
     objects: bytes
     context: bytes
     parity: dict
+    turn: bytes = None
 
 
 def _check_output_parent(out):
@@ -680,12 +685,12 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
     # The refinement learns from the out-of-fold fitting readings (read by patch models fitted without
     # their images, about ten times as many right readings as the calibration images give) and is
     # checked on the calibration readings, read by the final models as new images will be.
-    refine, refine_check = fit_refine_checked(cand_fit, cand_val, log)
+    refine, refine_check, turn_model = fit_refine_checked(cand_fit, cand_val, log, seed=config.seed)
     log(f"objects: {len(cand_fit)} candidate readings ({int(cand_fit.label.sum())} right), "
         f"{object_model.n_iter_} iterations")
     context_model, Z_fit, crossed = _fit_context_classifier(cand_fit, cand_val, object_model, config, log)
     return _Objects(object_model, cand_fit, cand_val, params, confidence_fit, cal_sample, context_model, Z_fit,
-                    crossed, refine, refine_check)
+                    crossed, refine, refine_check, turn_model)
 
 
 #: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
@@ -761,10 +766,16 @@ def _export(patches, patch_model, orientation, objects, config, log):
         "objects_max_abs_diff": onnx_parity(obj_bytes, objects.model, cand_fit.F[:2000]),
         "context_max_abs_diff": onnx_parity(ctx_bytes, objects.context, objects.context_fit_rows[:2000]),
     }
+    turn_bytes = None
+    if objects.turn is not None:
+        turn_rows = refine_design(cand_fit.F[:2000], cand_fit.own_size[:2000])
+        turn_bytes = regressor_to_onnx_bytes(objects.turn, turn_rows.shape[1])
+        parity["turn_max_abs_diff_deg"] = onnx_regression_parity(turn_bytes, objects.turn, turn_rows)
     log(f"ONNX parity (max abs difference of probabilities): detector {parity['detector_max_abs_diff']:.2e}, "
         f"orientation {parity['orientation_max_abs_diff']:.2e}, objects {parity['objects_max_abs_diff']:.2e}, "
-        f"context {parity['context_max_abs_diff']:.2e}")
-    return _Onnx(det_bytes, ori_bytes, obj_bytes, ctx_bytes, parity)
+        f"context {parity['context_max_abs_diff']:.2e}"
+        + (f"; turn {parity['turn_max_abs_diff_deg']:.2e} deg" if turn_bytes else ""))
+    return _Onnx(det_bytes, ori_bytes, obj_bytes, ctx_bytes, parity, turn_bytes)
 
 
 def _model_card(tileset_root, tileset, split, patches, patch_model, orientation, objects, onnx, spec, config):
@@ -794,6 +805,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
         "context_features": list(CONTEXT_FEATURE_NAMES),
         "direction_confidence": objects.confidence,
         "refine_model": objects.refine,
+        "refine_turn": _turn_entry(objects),
         "noise": _noise_entry(patches.noise_range),
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
@@ -820,6 +832,16 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
     }
 
 
+def _turn_entry(objects):
+    """The card's ``refine_turn``: what ``turn.onnx`` reads and how it was fitted, or None (no boosted turn)."""
+    if objects.turn is None:
+        return None
+    return {"file": TURN_ONNX, "features": list(REFINE_FEATURE_NAMES), "params": dict(TURN_MODEL_PARAMS),
+            "target_clip_deg": REFINE_TURN_CLIP_DEG, "max_turn_deg": MAX_TURN_DEG,
+            "n": int(np.sum((objects.fit.label == 1) & objects.fit.is_fan & np.isfinite(objects.fit.turn_deg))),
+            "iterations": int(objects.turn.n_iter_)}
+
+
 def _noise_entry(noise_range):
     """The card's ``noise``: the fitting tiles' noise range, or None (nothing is ever smoothed)."""
     if noise_range is None:
@@ -839,7 +861,11 @@ def _write_model_folder(out, card, onnx, tileset, split, patches, objects, confi
         (tmp / ORIENTATION_ONNX).write_bytes(onnx.orientation)
         (tmp / OBJECTS_ONNX).write_bytes(onnx.objects)
         (tmp / CONTEXT_ONNX).write_bytes(onnx.context)
-        card["files"] = {name: sha256_file(tmp / name) for name in ONNX_FILES}
+        names = ONNX_FILES
+        if onnx.turn is not None:
+            (tmp / TURN_ONNX).write_bytes(onnx.turn)
+            names = ONNX_FILES + (TURN_ONNX,)
+        card["files"] = {name: sha256_file(tmp / name) for name in names}
         fit_summaries = patches.fit_summaries
         card["unfamiliarity"] = fit_unfamiliarity(fit_summaries) if len(fit_summaries) >= 3 else None
         (tmp / MODEL_CARD).write_text(json.dumps(card, indent=1))
