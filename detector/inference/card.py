@@ -69,18 +69,26 @@ class _Checker:
         return value
 
 
+def _refinement_features(c, where, entry, object_feature_names):
+    """``entry`` (the card's ``where``) is an object whose ``features`` are the code's refinement
+    features in order; returns them."""
+    from ..objects.refine import REFINE_FEATURE_NAMES
+
+    if not isinstance(entry, dict):
+        c.fail(where, entry, "an object or null")
+    used = c.names(f"{where}.features", c.get(f"{where}.features"))
+    expected = list(object_feature_names) + list(REFINE_FEATURE_NAMES[len(object_feature_names):])
+    if used != expected:
+        c.fail(f"{where}.features", used, f"the {len(expected)} refinement features of this code, in order")
+    return used
+
+
 def _check_refine_model(c, refine, object_feature_names):
     """The card's ``refine_model`` (:mod:`detector.objects.refine`): one ridge fit per kind over the
     code's refinement features, in the code's order, with one row of coefficients per output."""
-    from ..objects.refine import REFINE_FEATURE_NAMES, REFINE_OUTPUTS
+    from ..objects.refine import REFINE_OUTPUTS
 
-    if not isinstance(refine, dict):
-        c.fail("refine_model", refine, "an object or null")
-    used = c.names("refine_model.features", c.get("refine_model.features"))
-    expected = list(object_feature_names) + list(REFINE_FEATURE_NAMES[len(object_feature_names):])
-    if used != expected:
-        c.fail("refine_model.features", used, f"the {len(expected)} refinement features of this code, in order")
-    n = len(used)
+    n = len(_refinement_features(c, "refine_model", refine, object_feature_names))
     for kind, outputs in REFINE_OUTPUTS.items():
         where = f"refine_model.{kind}"
         c.numbers(f"{where}.mean", c.get(f"{where}.mean"), length=n)
@@ -96,14 +104,7 @@ def _check_refine_model(c, refine, object_feature_names):
 def _check_refine_turn(c, turn, object_feature_names, files):
     """The card's ``refine_turn`` (:mod:`detector.objects.refine`): a boosted turn of fan directions
     over the code's refinement features, in ``turn.onnx`` (whose sha256 ``files`` must record)."""
-    from ..objects.refine import REFINE_FEATURE_NAMES
-
-    if not isinstance(turn, dict):
-        c.fail("refine_turn", turn, "an object or null")
-    used = c.names("refine_turn.features", c.get("refine_turn.features"))
-    expected = list(object_feature_names) + list(REFINE_FEATURE_NAMES[len(object_feature_names):])
-    if used != expected:
-        c.fail("refine_turn.features", used, f"the {len(expected)} refinement features of this code, in order")
+    _refinement_features(c, "refine_turn", turn, object_feature_names)
     name = c.get("refine_turn.file")
     if name != "turn.onnx":
         c.fail("refine_turn.file", name, "'turn.onnx'")
