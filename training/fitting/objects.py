@@ -410,9 +410,10 @@ def fit_refine_checked(fit_readings, check_readings, log, *, seed=0):
     refine = fit_refine_model(fit_readings)
     check = refine_model_check(refine, check_readings)
     turn = check.get("fan_direction_deg")
-    turn_model = fit_turn_model(fit_readings, seed=seed) if refine is not None else None
-    boosted = _boosted_turn_check(turn_model, check_readings)
+    turn_model = None
     if turn:
+        boosted_model = fit_turn_model(fit_readings, seed=seed)
+        boosted = _boosted_turn_check(boosted_model, check_readings)
         options = {"none": turn["measured"], "ridge": turn["model"]}
         if boosted is not None:
             options["boosted"] = boosted
@@ -426,10 +427,7 @@ def fit_refine_checked(fit_readings, check_readings, log, *, seed=0):
             check["fan_direction_deg"]["boosted"] = boosted
         if kept == "boosted":
             check["fan_direction_deg"]["model"] = boosted
-        else:
-            turn_model = None
-    else:
-        turn_model = None
+            turn_model = boosted_model
     if check:
         log("right check readings against consensus, measured -> refined (median |log size ratio|, "
             "direction deg): " + ", ".join(f"{k} {v['measured']:.2f} -> {v['model']:.2f}" for k, v in check.items()))
