@@ -348,3 +348,31 @@ def test_training_on_a_cluster_gives_the_local_model(tmp_path, monkeypatch):
 def test_config_refuses_a_scheduler_that_is_no_address(scheduler):
     with pytest.raises(DetectorError, match=f"scheduler must be a Dask scheduler address.*got {scheduler!r}"):
         TrainConfig(scheduler=scheduler)
+
+
+def test_a_kept_boosted_turn_is_exported_with_its_card_entry_and_loaded(tiny_tileset, tmp_path, monkeypatch):
+    # The tiny tile set has too few right readings for a refinement of its own, so training is handed
+    # a boosted turn as kept: the folder must then hold turn.onnx with its sha256 and the card's
+    # refine_turn, the export's parity in degrees, and load with the turn in use.
+    import sklearn.ensemble  # noqa: F401  (the OpenMP runtime loads with it; limit after)
+    from sklearn.ensemble import HistGradientBoostingRegressor
+    from threadpoolctl import threadpool_limits
+
+    import training.fitting.train as train_module
+    from detector.inference.model import TURN_ONNX, load_model, sha256_file
+    from detector.objects.refine import REFINE_FEATURE_NAMES
+    from tests.conftest import TINY_CONFIG
+
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(400, len(REFINE_FEATURE_NAMES))).astype(np.float32)
+    turn = HistGradientBoostingRegressor(max_iter=20, random_state=0).fit(X, 20.0 * np.tanh(X[:, 0]))
+    monkeypatch.setattr(train_module, "fit_refine_checked", lambda fit, check, log, seed=0: (None, {}, turn))
+    with threadpool_limits(limits=1):
+        card = train_model(tiny_tileset, tmp_path / "model", TINY_CONFIG, force=True, log=lambda s: None)
+    folder = tmp_path / "model"
+    assert card["refine_turn"]["file"] == TURN_ONNX
+    assert card["refine_turn"]["features"] == list(REFINE_FEATURE_NAMES)
+    assert card["files"][TURN_ONNX] == sha256_file(folder / TURN_ONNX)
+    assert card["training"]["onnx_parity"]["turn_max_abs_diff_deg"] < 1e-3
+    model = load_model(folder)
+    assert model._turn is not None
