@@ -191,8 +191,7 @@ class Model:
         own, direction, is_fan = reading_shapes(candidates)
         sizes, turned = predict_refined(self.card.get("refine_model"), F, own, direction, is_fan)
         if self._turn is not None and is_fan.any():
-            X = np.ascontiguousarray(refine_design(F, own)[is_fan], dtype=np.float32)
-            turned = turn_directions(turned, is_fan, _run_regression(self._turn, X))
+            turned = turn_directions(turned, is_fan, _run_regression(self._turn, refine_design(F, own)[is_fan]))
         return sizes, turned
 
     def direction_confidence(self, F):
@@ -215,19 +214,19 @@ class Model:
         return 1.0 / (1.0 + np.exp(-(z @ np.asarray(fit["coef"]) + float(fit["intercept"]))))
 
 
+def _run(session, X):
+    """Every output of an ONNX model on the float32 rows ``X``."""
+    return session.run(None, {session.get_inputs()[0].name: np.ascontiguousarray(X, dtype=np.float32)})
+
+
 def _run_regression(session, X):
     """The single output of an ONNX regressor, shape (n,), float64."""
-    X = np.ascontiguousarray(X, dtype=np.float32)
-    name = session.get_inputs()[0].name
-    return np.asarray(session.run(None, {name: X})[0], dtype=np.float64).reshape(-1)
+    return np.asarray(_run(session, X)[0], dtype=np.float64).reshape(-1)
 
 
 def _run_proba(session, X):
-    X = np.ascontiguousarray(X, dtype=np.float32)
-    name = session.get_inputs()[0].name
-    outputs = session.run(None, {name: X})
     # skl2onnx with zipmap disabled: [labels, probabilities]
-    return np.asarray(outputs[1], dtype=np.float32)
+    return np.asarray(_run(session, X)[1], dtype=np.float32)
 
 
 def _session(path):
