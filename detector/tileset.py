@@ -94,6 +94,11 @@ class TileSet:
         """Read a tile's image as a 2-D array of shape (height, width), its own dtype."""
         return read_image(self.tile_path(tile_id))
 
+    def metres_per_px(self, tile_id):
+        """A tile's ground scale from ``tiles.csv`` (NaN when the column or the value is absent)."""
+        row = self._tile_row(tile_id)
+        return float(row["metres_per_px"]) if "metres_per_px" in row.index else float("nan")
+
     def features_of(self, tile_id):
         """Consensus features of one tile (possibly none), in file order."""
         self._tile_row(tile_id)

@@ -196,6 +196,15 @@ def check_card(card, source, *, onnx_files, class_names, object_feature_names, a
         limit = c.number("noise.limit", c.get("noise.limit"), lo=0.0, lo_open=True, hi=1.0)
         c.number("noise.target", c.get("noise.target"), lo=0.0, lo_open=True, hi=limit)
 
+    scale = c.get("pixel_scale", required=False)
+    if scale is not None:
+        if not isinstance(scale, dict):
+            c.fail("pixel_scale", scale, "an object or null")
+        lo = c.number("pixel_scale.min", c.get("pixel_scale.min"), lo=0.0, lo_open=True)
+        hi = c.number("pixel_scale.max", c.get("pixel_scale.max"), lo=lo)
+        c.number("pixel_scale.metres_per_px", c.get("pixel_scale.metres_per_px"), lo=lo, hi=hi)
+        c.number("pixel_scale.tolerance", c.get("pixel_scale.tolerance"), lo=0.0)
+
     stats = c.get("unfamiliarity", required=False)
     if stats is not None:
         if not isinstance(stats, dict):

@@ -17,6 +17,7 @@ from ..objects.assemble import (
 )
 from ..objects.refine import apply_refined
 from ..labels import footprint_masks
+from ..tile.scale import frame_factors, resample_tile, to_tile_frame
 from ..tile.features import _features_of_prepared
 from ..geometry import unit_vector
 from ..tile.spec import patch_axis_deg
@@ -61,6 +62,12 @@ class TileResult:
     floor_detections : DataFrame or None
         With ``detect_tile(..., floor_score=f)``: the objects the same readings give when
         kept down to the score ``f``; otherwise None.
+    read_shape : tuple of int
+        (rows, cols) of the frame the tile was read in: its own ``shape`` unless its ground
+        scale lay outside the model's (:mod:`detector.tile.scale`) and it was resampled. The
+        detections and covers are in the tile's own pixels; ``grid``, ``proba``, ``polarity``
+        and ``axis_deg`` are in the read frame (:meth:`grid_xy` gives the patch centres in
+        the tile's own pixels).
     """
 
     tile_id: str
@@ -77,6 +84,25 @@ class TileResult:
     noise: float = float("nan")
     smoothed: bool = False
     floor_detections: pd.DataFrame = None
+    read_shape: tuple = None
+
+    def __post_init__(self):
+        if self.read_shape is None:
+            self.read_shape = tuple(self.shape)
+
+    @property
+    def resampled(self):
+        """Whether the tile was read at another pixel scale than its own."""
+        return tuple(self.read_shape) != tuple(self.shape)
+
+    def grid_xy(self):
+        """Patch centres (x, y) in the tile's own pixels (origin at the centre of the top-left pixel)."""
+        x = np.asarray(self.grid.x_px, dtype=float)
+        y = np.asarray(self.grid.y_px, dtype=float)
+        if not self.resampled:
+            return x, y
+        fx, fy = frame_factors(self.shape, self.read_shape)
+        return (x + 0.5) / fx - 0.5, (y + 0.5) / fy - 0.5
 
     @property
     def p_deposit(self):
@@ -210,7 +236,8 @@ def tile_candidates(tile, nodata_mask, maps, spec, params, *, prep=None):
                            axis_maps=maps.axis_maps)
 
 
-def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None, floor_score=None):
+def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None, floor_score=None,
+                metres_per_px=None):
     """Screen one tile with a loaded model.
 
     Parameters
@@ -229,6 +256,11 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     floor_score : float, optional
         Also keep the same readings down to this score (``floor_detections``), without
         reading the tile again.
+    metres_per_px : float, optional
+        The tile's ground scale. A tile outside the range of the model's fitting tiles
+        (:class:`detector.tile.scale.PixelScale`) is resampled to their median scale before it is
+        read; the detections and covers come back in the tile's own pixels. None (or a card
+        without a scale) reads the tile as it is.
 
     Returns
     -------
@@ -238,6 +270,13 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     tile = np.asarray(tile)
     if nodata_mask is None:
         nodata_mask = tile == spec.nodata_value
+    scale = model.pixel_scale
+    zoom = scale.zoom(metres_per_px) if scale is not None else 1.0
+    if zoom != 1.0:
+        if features is not None:
+            raise ValueError("features were computed on the tile as it is, but its scale asks for resampling.")
+        return _detect_resampled(model, tile, nodata_mask, zoom, tile_id=tile_id, min_score=min_score,
+                                 floor_score=floor_score)
     prep = _dense.prepare_tile(tile, spec, nodata_mask, model.noise_range)
     X, grid = _features_of_prepared(prep, spec) if features is None else features
     maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
@@ -274,3 +313,17 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         smoothed=bool(prep.smoothed),
         floor_detections=floor_detections,
     )
+
+
+def _detect_resampled(model, tile, nodata_mask, zoom, **kw):
+    """:func:`detect_tile` on the tile resampled ``zoom`` times, its objects and covers back in its own pixels."""
+    read, read_nodata = resample_tile(tile, nodata_mask, zoom)
+    result = detect_tile(model, read, nodata_mask=read_nodata, **kw)
+    fx, fy = frame_factors(tile.shape, read.shape)
+    result.detections = to_tile_frame(result.detections, fx, fy)
+    if result.floor_detections is not None:
+        result.floor_detections = to_tile_frame(result.floor_detections, fx, fy)
+    result.fan_cover, result.spot_cover = footprint_masks(result.detections, tile.shape)
+    result.shape, result.read_shape = tuple(tile.shape), tuple(read.shape)
+    result.valid_fraction = float((~np.asarray(nodata_mask, dtype=bool)).mean())
+    return result

@@ -17,6 +17,7 @@ import numpy as np
 
 from ..errors import ModelError, SpecError
 from ..tile.noise import NoiseRange
+from ..tile.scale import PixelScale
 from ..tile.spec import FEATURE_VERSION, FeatureSpec
 
 __all__ = [
@@ -122,6 +123,12 @@ class Model:
         """The fitting tiles' noise (:class:`detector.tile.noise.NoiseRange`); None for a card
         without it, whose tiles are never smoothed."""
         return NoiseRange.from_card(self.card.get("noise"))
+
+    @property
+    def pixel_scale(self):
+        """The fitting tiles' ground scale (:class:`detector.tile.scale.PixelScale`); None for a card
+        without it, whose tiles are always read as they are."""
+        return PixelScale.from_card(self.card.get("pixel_scale"))
 
     def predict_raw(self, X):
         """Uncalibrated patch class probabilities from detector.onnx, shape (n, 3)."""

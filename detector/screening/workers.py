@@ -86,6 +86,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
         "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan, "noise_8bit": np.nan, "smoothed": False,
+        "read_zoom": 1.0,
         **dict.fromkeys(SHARE_COLUMNS, np.nan),
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
@@ -96,7 +97,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
         entry.update(tile=row, detections=_empty_detections())
         return index, entry
 
-    result = detect_tile(model, array, tile_id=task.tile_id, nodata_mask=mask, min_score=min_score)
+    result = detect_tile(model, array, tile_id=task.tile_id, nodata_mask=mask, min_score=min_score,
+                         metres_per_px=_ground_scale(task, georef))
     det = result.detections.reset_index(drop=True)
     x = pd.to_numeric(det["x_px"], errors="coerce").to_numpy(dtype=float) - dx
     y = pd.to_numeric(det["y_px"], errors="coerce").to_numpy(dtype=float) - dy
@@ -138,8 +140,8 @@ def _screen_tile(index, task, model_dir, min_score=None):
     det["area_m2"] = _detection_areas_m2(det, task, georef)
 
     valid_patch = np.asarray(result.grid.valid, dtype=bool)
-    px = np.asarray(result.grid.x_px, dtype=float) - dx
-    py = np.asarray(result.grid.y_px, dtype=float) - dy
+    gx, gy = result.grid_xy()
+    px, py = gx - dx, gy - dy
     in_core = valid_patch & (px >= -0.5) & (px < task.width - 0.5) & (py >= -0.5) & (py < task.height - 0.5)
     if in_core.any():
         p_deposit = float(np.max(1.0 - result.proba[in_core, 0]))
@@ -160,12 +162,24 @@ def _screen_tile(index, task, model_dir, min_score=None):
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
         noise_8bit=255.0 * result.noise,
         smoothed=result.smoothed,
+        read_zoom=result.read_shape[1] / result.shape[1],
     )
     shares = unfamiliarity_parts(model.card.get("unfamiliarity"), result.summary[None, :], model.card["feature_names"])
     row.update(zip(SHARE_COLUMNS, (float(v) for v in shares[0])))
     row["covered_m2"] = (row["fan_cover"] + row["spot_cover"]) * row["area_m2"]
     entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
     return index, entry
+
+
+def _ground_scale(task, georef):
+    """A tile's m/px: tiles.csv's ``metres_per_px``, else its file's projected pixel size, else NaN
+    (a geographic CRS has no single one; the tile is then read at its own scale)."""
+    if np.isfinite(task.metres_per_px) or georef is None:
+        return task.metres_per_px
+    try:
+        return float(georef.metres_per_px)
+    except DetectorError:
+        return float("nan")
 
 
 def _core_area_m2(task, georef):

@@ -287,6 +287,7 @@ def test_outputs_have_the_documented_columns(png_run):
     tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
     assert tuple(tiles.columns) == TILE_COLUMNS
     assert set(tiles["route"]) <= {"", "nodata"}
+    assert (tiles["read_zoom"] == 1.0).all()  # a PNG has no ground scale: read as it is
     det = pd.read_csv(out / "detections.csv")
     assert tuple(det.columns) == DETECTION_COLUMNS + ("image", "col0", "row0", "area_m2")
     assert set(det["kind"]) <= {"fan", "spot"}
@@ -841,3 +842,39 @@ def test_stale_output_stage_of_a_killed_run_is_removed(model_dir, png_image, png
     (stale / "tiles.csv").write_text("half")
     screen(model_dir, [png_image], out, tile=TILE, progress=False)
     assert not stale.exists()
+
+
+def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale(model_dir, tmp_path):
+    # The model's fitting tiles were 0.25 m/px; these tiles say 0.5 m/px (binned 2 x 2), so each is read
+    # resampled to twice its size and its detections come back in its own pixels.
+    from training.synth import synthesize_tileset
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
+    from detector.tile.scale import PixelScale
+
+    folder = tmp_path / "model"
+    shutil.copytree(model_dir, folder)
+    card = json.loads((folder / "model.json").read_text())
+    card["pixel_scale"] = PixelScale(0.25, 0.25, 0.25, 0.15).to_card()
+    (folder / "model.json").write_text(json.dumps(card))
+    root = synthesize_tileset(tmp_path / "ts", n_images=1, tiles_per_image=2, seed=4, tile_shape=(192, 256))
+    listed = pd.read_csv(root / "tiles.csv")
+    listed["metres_per_px"] = 0.5
+    listed.to_csv(root / "tiles.csv", index=False)
+    out = tmp_path / "out"
+    screen(folder, [root], out, progress=False)
+    detections = pd.read_csv(out / "detections.csv")
+    tiles = pd.read_csv(out / "tiles.csv").set_index("tile_id")
+    model = load_model(folder)
+    for tile_id, path in zip(listed["tile_id"], listed["path"]):
+        tile = np.asarray(Image.open(root / path))
+        result = detect_tile(model, tile, tile_id=tile_id, metres_per_px=0.5)
+        assert result.resampled and result.read_shape == (384, 512)
+        mine = detections[detections["tile_id"] == tile_id].reset_index(drop=True)
+        assert len(mine) == len(result.detections)
+        np.testing.assert_allclose(mine["x_px"], result.detections["x_px"].to_numpy(float), atol=1e-6)
+        np.testing.assert_allclose(mine["length_px"], result.detections["length_px"].to_numpy(float), atol=1e-6)
+        assert tiles.loc[tile_id, "fan_cover"] == pytest.approx(result.fan_cover_fraction)
+        assert tiles.loc[tile_id, "p_deposit"] == pytest.approx(result.p_deposit)
+        assert tiles.loc[tile_id, "read_zoom"] == 2.0
+    assert len(detections) > 0

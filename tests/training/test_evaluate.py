@@ -115,3 +115,52 @@ def test_noisy_tiles_are_named_in_the_report(tiny_model, tiny_tileset, tmp_path)
     meta = json.loads((tmp_path / "r" / "report.json").read_text())["scores"]["meta"]
     assert meta["tiles_smoothed"] == [noisy_id]
     assert any(line.startswith(f"note: 1 of the {len(tiles)} tiles are noisier") for line in lines)
+
+
+def test_tiles_of_another_ground_scale_are_scored_in_the_frame_they_were_read_in(tiny_model, tiny_tileset, tmp_path):
+    # The tiny tile set binned 2 x 2 (its consensus halved), said to be 0.5 m/px, scored by the tiny model
+    # told it was fitted at 0.25 m/px: each tile is read at twice its size. The patch targets then come from
+    # the consensus drawn in that frame, so as many patches hold fans as in the full-resolution tiles.
+    import shutil
+
+    from PIL import Image
+
+    from detector.inference.detect import detect_tile
+    from detector.inference.model import load_model
+    from detector.tile.scale import PixelScale, to_tile_frame
+    from detector.tileset import load_tileset
+    from training.evaluation.evaluate import run_on_tiles
+
+    folder = tmp_path / "model"
+    shutil.copytree(tiny_model[0], folder)
+    card = json.loads((folder / "model.json").read_text())
+    card["pixel_scale"] = PixelScale(0.25, 0.25, 0.25, 0.15).to_card()
+    (folder / "model.json").write_text(json.dumps(card))
+    full_root, root = tmp_path / "full", tmp_path / "binned"
+    shutil.copytree(tiny_tileset, full_root)
+    shutil.copytree(tiny_tileset, root)
+    tiles = pd.read_csv(root / "tiles.csv")
+    for path in tiles["path"]:
+        a = np.asarray(Image.open(root / path), dtype=np.float64)
+        a = a[: a.shape[0] // 2 * 2, : a.shape[1] // 2 * 2].reshape(a.shape[0] // 2, 2, a.shape[1] // 2, 2).mean(axis=(1, 3))
+        Image.fromarray(np.clip(np.rint(a), 1, 255).astype(np.uint8)).save(root / path)
+    for name, mpp in (("binned", 0.5), ("full", 0.25)):
+        t = tiles.assign(metres_per_px=mpp)
+        t.to_csv(tmp_path / name / "tiles.csv", index=False)
+    consensus = pd.read_csv(root / "consensus.csv")
+    to_tile_frame(consensus, 2.0, 2.0).to_csv(root / "consensus.csv", index=False)
+
+    model = load_model(folder)
+    ids = tiles["tile_id"].tolist()
+    binned = run_on_tiles(model, load_tileset(root), ids)
+    full = run_on_tiles(model, load_tileset(full_root), ids)
+    n_fan_binned, n_fan_full = int(np.sum(binned["patch_true"] == 1)), int(np.sum(full["patch_true"] == 1))
+    assert n_fan_full > 0, (n_fan_binned, n_fan_full)
+    assert abs(n_fan_binned - n_fan_full) <= 0.15 * n_fan_full
+    assert len(binned["patch_true"]) == pytest.approx(len(full["patch_true"]), rel=0.05)
+    ts = load_tileset(root)
+    first = detect_tile(model, ts.read_tile(ids[0]), tile_id=ids[0], metres_per_px=0.5).detections
+    mine = binned["detections"][binned["detections"]["tile_id"] == ids[0]]
+    np.testing.assert_allclose(mine["x_px"].to_numpy(float), first["x_px"].to_numpy(float))
+    shape = ts.read_tile(ids[0]).shape
+    assert binned["detections"]["x_px"].between(-0.5, shape[1] - 0.5).all()

@@ -11,6 +11,7 @@ from detector.contract import DETECTION_COLUMNS, TRUTH_FILE
 from detector.inference.detect import detect_tile
 from detector.errors import DetectorError, TileSetError
 from detector.tile.features import patch_targets
+from detector.tile.scale import frame_factors, to_read_frame
 from detector.io import atomic_dir, atomic_path
 from detector.labels import rasterise_features
 from detector.inference.model import CLASS_NAMES, cached_model, load_model
@@ -39,9 +40,14 @@ def _run_one(model, tileset, tile_id, tau, min_score=None):
     nodata = tile == spec.nodata_value
     # detect_tile prepares the tile once (smoothing it when it is noisier than the fitting tiles);
     # the patch targets need only its grid.
-    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, min_score=min_score)
+    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, min_score=min_score,
+                         metres_per_px=tileset.metres_per_px(tile_id))
     grid = result.grid
-    masks = rasterise_features(tileset.features_of(tile_id), tile.shape)
+    # The patch grid is in the frame the tile was read in (resampled when its scale is not the model's).
+    features = tileset.features_of(tile_id)
+    if result.resampled:
+        features = to_read_frame(features, *frame_factors(tile.shape, result.read_shape))
+    masks = rasterise_features(features, result.read_shape)
     targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
     valid = np.asarray(grid.valid, dtype=bool)
     info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,

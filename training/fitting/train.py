@@ -9,6 +9,7 @@ from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 from scipy.optimize import minimize
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
@@ -33,6 +34,7 @@ from detector.inference.model import (
 )
 from detector.objects.refine import MAX_TURN_DEG, REFINE_FEATURE_NAMES, refine_design
 from detector.tile.noise import NOISE_METHOD, NoiseRange
+from detector.tile.scale import PixelScale
 from detector.tile.spec import POLARITY_ODD_FEATURES, SIGNED_HIST_PREFIX, FeatureSpec
 from detector.tileset import load_tileset
 from detector.inference.unfamiliar import DEFAULT_PASS_SHARE, pass_threshold, unfamiliarity_distance
@@ -807,6 +809,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
         "refine_model": objects.refine,
         "refine_turn": _turn_entry(objects),
         "noise": _noise_entry(patches.noise_range),
+        "pixel_scale": _scale_entry(tileset, split.ids["fit"]),
         "training": {
             "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(config).items()},
             "tileset": str(tileset_root),
@@ -840,6 +843,16 @@ def _turn_entry(objects):
             "target_clip_deg": REFINE_TURN_CLIP_DEG, "max_turn_deg": MAX_TURN_DEG,
             "n": int(np.sum((objects.fit.label == 1) & objects.fit.is_fan & np.isfinite(objects.fit.turn_deg))),
             "iterations": int(objects.turn.n_iter_)}
+
+
+def _scale_entry(tileset, fit_ids):
+    """The card's ``pixel_scale``: the fitting tiles' ground scale, or None when tiles.csv gives none
+    (every tile is then read at its own scale)."""
+    if "metres_per_px" not in tileset.tiles:
+        return None
+    scale = tileset.tiles.set_index("tile_id").loc[list(fit_ids), "metres_per_px"]
+    found = PixelScale.of_tiles(pd.to_numeric(scale, errors="coerce").to_numpy(dtype=float))
+    return None if found is None else found.to_card()
 
 
 def _noise_entry(noise_range):
