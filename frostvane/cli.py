@@ -27,6 +27,11 @@ DEFAULT_MODEL = Path(__file__).resolve().parent.parent / "models" / "demo"
 DEFAULT_DEMO_TILES = Path(__file__).resolve().parent.parent / "demo_tiles"
 
 
+_AT_MODEL_SCALE_HELP = ("Read a tile whose metres_per_px (tiles.csv, or a projected raster's pixel size) lies "
+                        "outside the ground scale of the model's fitting tiles resampled to it, e.g. a 2 x 2 binned "
+                        "image with a model of full-resolution tiles (default: every tile as it is).")
+
+
 def _image_list(text):
     return tuple(part.strip() for part in text.split(",") if part.strip())
 
@@ -64,6 +69,7 @@ def _add_detector_commands(commands):
                         help="Screen a raster whose CRS is not on Mars (refused otherwise).")
     screen.add_argument("--force", action="store_true",
                         help="Discard what the output folder holds (another or unfinished run) and start afresh.")
+    screen.add_argument("--at-model-scale", action="store_true", help=_AT_MODEL_SCALE_HELP)
     screen.set_defaults(func=_screen)
 
 
@@ -79,7 +85,7 @@ def _screen(args):
 
     summary = screen(args.model_dir, args.inputs, args.out, tile=tuple(args.tile), overlap=args.overlap,
                      workers=args.workers, scheduler=args.scheduler, nodata=args.nodata, band=args.band,
-                     any_body=args.any_body, force=args.force)
+                     any_body=args.any_body, force=args.force, at_model_scale=args.at_model_scale)
     print(summary.format())
 
 
@@ -142,6 +148,7 @@ def _add_training_commands(commands):
                           help="Smallest detection score kept (default: the model's tuned threshold, else 0.5).")
     evaluate.add_argument("--workers", type=_worker_count, default=1, help="Local worker processes.")
     evaluate.add_argument("--force", action="store_true", help="Replace a non-empty report folder.")
+    evaluate.add_argument("--at-model-scale", action="store_true", help=_AT_MODEL_SCALE_HELP)
     evaluate.set_defaults(func=_evaluate)
 
     effort = commands.add_parser("effort", help="Route screened tiles and estimate the volunteer effort left.")
@@ -313,7 +320,7 @@ def _evaluate(args):
     from training.evaluation.evaluate import evaluate_model
 
     evaluate_model(args.model_dir, args.tile_set, args.out, min_score=args.min_score, force=args.force,
-                   workers=args.workers)
+                   workers=args.workers, at_model_scale=args.at_model_scale)
     print(f"report: {args.out / 'report.md'}")
 
 

@@ -1,5 +1,6 @@
 """Session fixtures shared by the test modules: a tiny synthetic tile set and a model trained on it."""
 
+import pandas as pd
 import pytest
 from threadpoolctl import threadpool_limits
 
@@ -21,7 +22,13 @@ def _quiet(_line):
 def tiny_tileset(tmp_path_factory):
     """Root of a synthetic tile set of 3 images x 1 tile (tiles.csv, consensus.csv, truth.csv, images/)."""
     root = tmp_path_factory.mktemp("tiny") / "tileset"
-    return synthesize_tileset(root, n_images=TINY_IMAGES, tiles_per_image=TINY_TILES_PER_IMAGE, seed=TINY_SEED)
+    synthesize_tileset(root, n_images=TINY_IMAGES, tiles_per_image=TINY_TILES_PER_IMAGE, seed=TINY_SEED)
+    # The generator draws each image's metres_per_px at random but its fans in pixels; here the tiles share
+    # one ground scale, as a real catalog's do, so that no tile is read at another scale than its own
+    # (tests of reading tiles at the model's scale set their scales themselves).
+    tiles = pd.read_csv(root / "tiles.csv")
+    tiles.assign(metres_per_px=0.25).to_csv(root / "tiles.csv", index=False)
+    return root
 
 
 @pytest.fixture(scope="session")

@@ -31,6 +31,7 @@ TILE_COLUMNS = (
     "covered_m2",
     "noise_8bit",
     "smoothed",
+    "scale_zoom",
     "read_zoom",
 ) + SHARE_COLUMNS
 

@@ -77,7 +77,7 @@ def _version():
         return "unknown"
 
 
-def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
+def _parameters(model_dir, inputs, *, tile, overlap, nodata, band, at_model_scale=False):
     from ..inference.model import MODEL_CARD, sha256_file
 
     return {
@@ -89,6 +89,8 @@ def _parameters(model_dir, inputs, *, tile, overlap, nodata, band):
         "overlap": int(overlap),
         "nodata": _nodata_record(nodata),
         "band": None if band is None else int(band),
+        # only when asked, so that folders of runs without it keep their parameters
+        **({"at_model_scale": True} if at_model_scale else {}),
     }
 
 

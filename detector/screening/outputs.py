@@ -468,7 +468,7 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
         groups.setdefault(task.image, []).append(index)
     names = sorted(images)
     figures = _Figures(names, images, use_azimuth="azimuth_deg" in columns)
-    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, n_smoothed=0, area=0.0,
+    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, n_smoothed=0, n_resampled=0, n_off_scale=0, area=0.0,
                   covered=0.0)
     records = []
 
@@ -496,6 +496,11 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
             totals["n_spots"] += int((detections["kind"] == "spot").sum())
             totals["n_deposit_tiles"] += int((scored["p_deposit"] >= DEPOSIT_THRESHOLD).sum())
             totals["n_smoothed"] += int(smoothed_flags(scored).sum())
+            if "read_zoom" in scored:  # journals of earlier versions lack it
+                asked = pd.to_numeric(scored["scale_zoom"], errors="coerce").to_numpy(dtype=float)
+                read = pd.to_numeric(scored["read_zoom"], errors="coerce").to_numpy(dtype=float)
+                totals["n_resampled"] += int(np.sum(read != 1.0))
+                totals["n_off_scale"] += int(np.sum((asked != 1.0) & (read == 1.0)))
             totals["area"] += float((scored["width"] * scored["height"]).sum())
             totals["covered"] += float(
                 ((scored["fan_cover"] + scored["spot_cover"]) * scored["width"] * scored["height"]).sum())
@@ -538,6 +543,11 @@ class ScreenSummary:
         Scored tiles with ``p_deposit >= DEPOSIT_THRESHOLD``.
     n_smoothed : int
         Scored tiles noisier than every fitting tile of the model, smoothed before detection.
+    n_resampled : int
+        Scored tiles whose ground scale lay outside the model's and that were read resampled to it.
+    n_off_scale : int
+        Scored tiles whose ground scale lay outside the model's but that were read as they are
+        (without ``at_model_scale``).
     covered_percent : float
         Fan and spot cover over the scored tiles' area, %.
     megapixels : float
@@ -568,6 +578,8 @@ class ScreenSummary:
     workers: int
     per_image: pd.DataFrame = field(repr=False)
     n_smoothed: int = 0
+    n_resampled: int = 0
+    n_off_scale: int = 0
 
     def format(self, *, max_images=12):
         """The one-screen text summary."""
@@ -581,6 +593,13 @@ class ScreenSummary:
         if self.n_smoothed:
             lines.append(f"noise: {self.n_smoothed} tile(s) noisier than every tile the model was fitted on were "
                          f"smoothed first and are left to people (tiles.csv: smoothed)")
+        if self.n_resampled:
+            lines.append(f"scale: {self.n_resampled} tile(s) finer or coarser on the ground than the model's fitting "
+                         f"tiles were read resampled to their scale (tiles.csv: read_zoom)")
+        if self.n_off_scale:
+            lines.append(f"scale: {self.n_off_scale} tile(s) are finer or coarser on the ground than the model's "
+                         f"fitting tiles and were read as they are (tiles.csv: scale_zoom); --at-model-scale reads "
+                         f"them at the model's scale")
         lines += [
             f"throughput: {self.megapixels:.1f} Mpx in {self.seconds:.1f} s = {self.mpx_per_s:.2f} Mpx/s "
             f"({self.workers} worker{'s' if self.workers != 1 else ''})",

@@ -33,6 +33,7 @@ class _TileTask:
     row0: float
     canvas_step: int = 0  # every how many px its file is sampled for the quick-look (0: no panel)
     metres_per_px: float = math.nan  # ground sampling distance of a tile without georeferencing (tiles.csv)
+    at_model_scale: bool = False  # read a tile outside the model's ground scale resampled to it
 
     tile_id = property(lambda self: self.window.tile_id)
     image = property(lambda self: self.window.image)

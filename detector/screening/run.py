@@ -79,7 +79,7 @@ __all__ = ["screen"]
 
 
 def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, scheduler=None, nodata=None,
-           band=None, min_score=None, progress=True, any_body=False, force=False):
+           band=None, min_score=None, progress=True, any_body=False, force=False, at_model_scale=False):
     """Screen images or tile sets with a model and write the screening folder.
 
     Parameters
@@ -116,6 +116,11 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     force : bool, default=False
         Delete whatever ``out`` holds (another run, an unfinished one, other
         files) once the inputs are checked, and screen from scratch.
+    at_model_scale : bool, default=False
+        Read each tile whose ground scale (``metres_per_px`` of a tile set, or a projected
+        raster's pixel size) lies outside the model's fitting tiles' resampled to it
+        (:mod:`detector.tile.scale`); by default every tile is read as it is and such tiles
+        are only counted (``scale_zoom`` in ``tiles.csv``).
 
     Returns
     -------
@@ -140,8 +145,13 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
                             f"{patch_px}x{patch_px} (the default is 800x600).")
     tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body,
                           min_side=patch_px)
+    if at_model_scale:
+        from dataclasses import replace
+
+        tasks = [replace(t, at_model_scale=True) for t in tasks]
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
-    params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band)
+    params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band,
+                         at_model_scale=at_model_scale)
     out = Path(out)
     if force and out.is_dir():
         import shutil
@@ -252,7 +262,7 @@ def _run_record(record, params, summary, run, scheduler, min_score, written):
                    "tiles_resumed": run["n_resumed"], "tiles_computed": run["n_computed"]},
         "counts": {k: getattr(summary, k)
                    for k in ("n_tiles", "n_scored", "n_nodata", "n_fans", "n_spots", "n_deposit_tiles",
-                             "n_smoothed")},
+                             "n_smoothed", "n_resampled", "n_off_scale")},
         **written,
     }
 

@@ -86,7 +86,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         "spot_cover": np.nan, "n_fans": 0, "mean_direction_deg": np.nan, "direction_scatter_deg": np.nan,
         "unfamiliarity": np.nan, "route": "", "n_spots": 0, "valid_fraction": valid_share,
         "area_m2": _core_area_m2(task, georef), "covered_m2": np.nan, "noise_8bit": np.nan, "smoothed": False,
-        "read_zoom": 1.0,
+        "scale_zoom": 1.0, "read_zoom": 1.0,
         **dict.fromkeys(SHARE_COLUMNS, np.nan),
     }
     entry = {"tile_id": task.tile_id, "georeferenced": georef is not None, "pixels": task.width * task.height}
@@ -97,8 +97,9 @@ def _screen_tile(index, task, model_dir, min_score=None):
         entry.update(tile=row, detections=_empty_detections())
         return index, entry
 
+    scale = _ground_scale(task, georef)
     result = detect_tile(model, array, tile_id=task.tile_id, nodata_mask=mask, min_score=min_score,
-                         metres_per_px=_ground_scale(task, georef))
+                         metres_per_px=scale if task.at_model_scale else None)
     det = result.detections.reset_index(drop=True)
     x = pd.to_numeric(det["x_px"], errors="coerce").to_numpy(dtype=float) - dx
     y = pd.to_numeric(det["y_px"], errors="coerce").to_numpy(dtype=float) - dy
@@ -162,6 +163,7 @@ def _screen_tile(index, task, model_dir, min_score=None):
         unfamiliarity=float(unfamiliarity_score(model.card.get("unfamiliarity"), result.summary[None, :])[0]),
         noise_8bit=255.0 * result.noise,
         smoothed=result.smoothed,
+        scale_zoom=model.pixel_scale.zoom(scale) if model.pixel_scale is not None else 1.0,
         read_zoom=result.read_shape[1] / result.shape[1],
     )
     shares = unfamiliarity_parts(model.card.get("unfamiliarity"), result.summary[None, :], model.card["feature_names"])

@@ -37,6 +37,8 @@ def test_of_tiles_keeps_median_and_range_and_skips_unknown_scales():
     (0.30 * 1.15, 1.0),          # the coarsest tile read as it is
     (0.5, 0.5 / 0.26),           # binned 2 x 2: each pixel read as 1.92
     (0.1, 0.1 / 0.26),           # finer than every fitting tile: shrunk
+    (1.03, 1.03 / 0.26), (0.066, 0.066 / 0.26),  # nearly four times the median either way (a 4 x 4 binning): still resampled
+    (1.05, 1.0), (10.0, 1.0), (0.06, 1.0),  # further off, another camera: read as it is
     (None, 1.0), (np.nan, 1.0), (0.0, 1.0), (-0.5, 1.0),  # unknown scale: as it is
 ])
 def test_zoom_reads_tiles_outside_the_range_at_the_median_scale(metres_per_px, zoom):

@@ -287,7 +287,7 @@ def test_outputs_have_the_documented_columns(png_run):
     tiles = pd.read_csv(out / "tiles.csv", keep_default_na=False)
     assert tuple(tiles.columns) == TILE_COLUMNS
     assert set(tiles["route"]) <= {"", "nodata"}
-    assert (tiles["read_zoom"] == 1.0).all()  # a PNG has no ground scale: read as it is
+    assert (tiles["read_zoom"] == 1.0).all() and (tiles["scale_zoom"] == 1.0).all()  # a PNG has no ground scale
     det = pd.read_csv(out / "detections.csv")
     assert tuple(det.columns) == DETECTION_COLUMNS + ("image", "col0", "row0", "area_m2")
     assert set(det["kind"]) <= {"fan", "spot"}
@@ -844,9 +844,10 @@ def test_stale_output_stage_of_a_killed_run_is_removed(model_dir, png_image, png
     assert not stale.exists()
 
 
-def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale(model_dir, tmp_path):
-    # The model's fitting tiles were 0.25 m/px; these tiles say 0.5 m/px (binned 2 x 2), so each is read
-    # resampled to twice its size and its detections come back in its own pixels.
+def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale_when_asked(model_dir, tmp_path):
+    # The model's fitting tiles were 0.25 m/px; these tiles say 0.5 m/px (binned 2 x 2). Screened as they
+    # are, they are counted as off the model's scale; with at_model_scale each is read resampled to twice
+    # its size and its detections come back in its own pixels.
     from training.synth import synthesize_tileset
     from detector.inference.detect import detect_tile
     from detector.inference.model import load_model
@@ -861,8 +862,16 @@ def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale(model_dir
     listed = pd.read_csv(root / "tiles.csv")
     listed["metres_per_px"] = 0.5
     listed.to_csv(root / "tiles.csv", index=False)
+    plain = screen(folder, [root], tmp_path / "plain", progress=False)
+    assert (plain.n_resampled, plain.n_off_scale) == (0, 2)
+    assert "--at-model-scale reads them at the model's scale" in plain.format()
+    plain_tiles = pd.read_csv(tmp_path / "plain" / "tiles.csv")
+    assert (plain_tiles["scale_zoom"] == 2.0).all() and (plain_tiles["read_zoom"] == 1.0).all()
     out = tmp_path / "out"
-    screen(folder, [root], out, progress=False)
+    summary = screen(folder, [root], out, progress=False, at_model_scale=True)
+    assert (summary.n_resampled, summary.n_off_scale) == (2, 0)
+    assert "scale: 2 tile(s) finer or coarser on the ground" in summary.format()
+    assert json.loads((out / "run.json").read_text())["counts"]["n_resampled"] == 2
     detections = pd.read_csv(out / "detections.csv")
     tiles = pd.read_csv(out / "tiles.csv").set_index("tile_id")
     model = load_model(folder)

@@ -152,8 +152,10 @@ def test_tiles_of_another_ground_scale_are_scored_in_the_frame_they_were_read_in
 
     model = load_model(folder)
     ids = tiles["tile_id"].tolist()
-    binned = run_on_tiles(model, load_tileset(root), ids)
-    full = run_on_tiles(model, load_tileset(full_root), ids)
+    binned = run_on_tiles(model, load_tileset(root), ids, at_model_scale=True)
+    full = run_on_tiles(model, load_tileset(full_root), ids, at_model_scale=True)
+    as_is = run_on_tiles(model, load_tileset(root), ids)
+    assert len(as_is["patch_true"]) < 0.3 * len(binned["patch_true"])  # read at its own, quarter size
     n_fan_binned, n_fan_full = int(np.sum(binned["patch_true"] == 1)), int(np.sum(full["patch_true"] == 1))
     assert n_fan_full > 0, (n_fan_binned, n_fan_full)
     assert abs(n_fan_binned - n_fan_full) <= 0.15 * n_fan_full

@@ -169,8 +169,7 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     floor = min(READING_FLOOR, AssemblyParams.from_dict(model.assembly).min_score)
     for tile_id in ids:
         # one reading of the tile: the objects at the model's threshold (what screening keeps) and at the floor
-        result = detect_tile(model, tileset.read_tile(tile_id), tile_id=tile_id, floor_score=floor,
-                             metres_per_px=tileset.metres_per_px(tile_id))
+        result = detect_tile(model, tileset.read_tile(tile_id), tile_id=tile_id, floor_score=floor)
         rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(result.floor_detections["score"]),
                      "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
                      "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))})

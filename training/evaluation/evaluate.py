@@ -30,7 +30,7 @@ __all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "paired_standard_e
            "write_detections_csv", "confidence_validation"]
 
 
-def _run_one(model, tileset, tile_id, tau, min_score=None):
+def _run_one(model, tileset, tile_id, tau, min_score=None, at_model_scale=False):
     """Detections and patch targets of one labelled tile (``model`` is a Model or a model folder)."""
     reuse_freed_memory()
     if not hasattr(model, "feature_spec"):
@@ -41,7 +41,7 @@ def _run_one(model, tileset, tile_id, tau, min_score=None):
     # detect_tile prepares the tile once (smoothing it when it is noisier than the fitting tiles);
     # the patch targets need only its grid.
     result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, min_score=min_score,
-                         metres_per_px=tileset.metres_per_px(tile_id))
+                         metres_per_px=tileset.metres_per_px(tile_id) if at_model_scale else None)
     grid = result.grid
     # The patch grid is in the frame the tile was read in (resampled when its scale is not the model's).
     features = tileset.features_of(tile_id)
@@ -57,7 +57,8 @@ def _run_one(model, tileset, tile_id, tau, min_score=None):
     return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
 
 
-def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1, min_score=None):
+def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1, min_score=None,
+                 at_model_scale=False):
     """Detections and patch-level targets of the model on labelled tiles.
 
     Parameters
@@ -74,6 +75,9 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
         same absolute paths.
     min_score : float, optional
         Smallest object score kept; default the model card's.
+    at_model_scale : bool, default=False
+        Pass each tile's ``metres_per_px`` to :func:`detector.inference.detect.detect_tile`, so that a
+        tile outside the model's ground scale is read resampled to it.
 
     Returns
     -------
@@ -91,9 +95,10 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
     iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False, disable=None)  # None: quiet off a terminal
     if workers > 1 or current_cluster() is not None:
         folder = str(Path(model.folder).absolute())  # workers may run in another folder
-        results = tile_parallel(workers)(delayed(_run_one)(folder, tileset, tid, tau, min_score) for tid in iterator)
+        results = tile_parallel(workers)(delayed(_run_one)(folder, tileset, tid, tau, min_score, at_model_scale)
+                                         for tid in iterator)
     else:
-        results = [_run_one(model, tileset, tid, tau, min_score) for tid in iterator]
+        results = [_run_one(model, tileset, tid, tau, min_score, at_model_scale) for tid in iterator]
     frames = [r[0] for r in results if len(r[0])]
     detections = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=OBJECT_COLUMNS)
     return {
@@ -375,7 +380,7 @@ def _provenance(model, model_dir, tileset_root):
 
 
 def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None, force=False, seed=0, log=print,
-                   workers=1, n_worst=6):
+                   workers=1, n_worst=6, at_model_scale=False):
     """``frostvane evaluate``: score a model on every tile of a labelled tile set; write the report.
 
     Parameters
@@ -392,6 +397,9 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         Score only these images of the tile set (e.g. the model's held-out images).
     n_worst : int, optional
         Number of tiles with the most errors drawn into ``worst_tiles/``.
+    at_model_scale : bool, default=False
+        Read each tile whose ``metres_per_px`` lies outside the model's fitting tiles' ground scale
+        resampled to it (:mod:`detector.tile.scale`); by default every tile is read as it is.
 
     Besides ``report.json``, ``report.md``, ``detections.csv`` and the plots,
     the folder gets the error analysis of :func:`training.evaluation.diagnose.error_breakdown`:
@@ -425,7 +433,8 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
     if len(tileset.tiles) == 0:
         raise TileSetError(f"tile set {str(tileset_root)!r} has no tiles.")
     tile_ids = tileset.tiles["tile_id"].tolist()
-    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate", workers=workers, min_score=min_score)
+    run = run_on_tiles(model, tileset, tile_ids, desc="evaluate", workers=workers, min_score=min_score,
+                       at_model_scale=at_model_scale)
     detections = run["detections"].reset_index(drop=True)
     tiles = tileset.tiles
     scores = score_catalogs(detections, tileset.consensus, tiles, prevailing_deg=_prevailing(model), seed=seed)
