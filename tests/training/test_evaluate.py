@@ -166,3 +166,8 @@ def test_tiles_of_another_ground_scale_are_scored_in_the_frame_they_were_read_in
     np.testing.assert_allclose(mine["x_px"].to_numpy(float), first["x_px"].to_numpy(float))
     shape = ts.read_tile(ids[0]).shape
     assert binned["detections"]["x_px"].between(-0.5, shape[1] - 0.5).all()
+    lines = []
+    evaluate_model(folder, root, tmp_path / "r", at_model_scale=True, log=lines.append)
+    meta = json.loads((tmp_path / "r" / "report.json").read_text())["scores"]["meta"]
+    assert meta["at_model_scale"] and meta["tiles_read_at_model_scale"] == sorted(ids)
+    assert any(line.startswith(f"note: {len(ids)} of the {len(ids)} tiles lie outside") for line in lines)

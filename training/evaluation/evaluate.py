@@ -53,7 +53,7 @@ def _run_one(model, tileset, tile_id, tau, min_score=None, at_model_scale=False)
     info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
             "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
             "shape": tile.shape, "valid_fraction": result.valid_fraction,
-            "noise": result.noise, "smoothed": result.smoothed}
+            "noise": result.noise, "smoothed": result.smoothed, "resampled": result.resampled}
     return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
 
 
@@ -459,12 +459,17 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         log(f"note: {len(smoothed)} of the {len(tile_ids)} tiles are noisier than every tile this model was fitted "
             f"on and were smoothed before detection (report.json: meta.tiles_smoothed); in screening they are "
             f"flagged unfamiliar and left to people.")
+    resampled = sorted(t["tile_id"] for t in run["per_tile"] if t.get("resampled"))
+    if resampled:
+        log(f"note: {len(resampled)} of the {len(tile_ids)} tiles lie outside the ground scale of this model's "
+            f"fitting tiles and were read resampled to it (report.json: meta.tiles_read_at_model_scale).")
     with atomic_dir(out, replace=True) as tmp:
         write_detections_csv(detections, tmp / "detections.csv")
         scores["patch"] = {k: v for k, v in patch.items() if k != "curves"}
         scores["meta"] = {"model": str(Path(model_dir).resolve()), "tileset": str(Path(tileset_root).resolve()),
                           "min_score": min_score, "images_seen_in_training": overlap, "tiles": int(len(tiles)),
-                          "tiles_smoothed": smoothed,
+                          "tiles_smoothed": smoothed, "at_model_scale": bool(at_model_scale),
+                          "tiles_read_at_model_scale": resampled,
                           **_provenance(model, model_dir, tileset_root)}
         pr_curves = {name: {**patch["curves"][name], "average_precision": patch[name]["average_precision"]}
                      for name in CLASS_NAMES[1:]}
