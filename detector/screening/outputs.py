@@ -468,8 +468,8 @@ def _write_outputs(stage, tasks, journal, images, *, band, nodata):
         groups.setdefault(task.image, []).append(index)
     names = sorted(images)
     figures = _Figures(names, images, use_azimuth="azimuth_deg" in columns)
-    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, n_smoothed=0, n_resampled=0, n_off_scale=0, area=0.0,
-                  covered=0.0)
+    totals = dict(n_tiles=0, n_scored=0, n_nodata=0, n_fans=0, n_spots=0, n_deposit_tiles=0, n_smoothed=0,
+                  n_resampled=0, n_off_scale=0, area=0.0, covered=0.0)
     records = []
 
     def image_chunks(tiles_out, detections_out):

@@ -64,6 +64,7 @@ import math
 import os
 import platform
 import time
+from dataclasses import replace
 from pathlib import Path
 
 from ..inference.model import cached_model
@@ -146,8 +147,6 @@ def screen(model_dir, inputs, out, *, tile=(800, 600), overlap=32, workers=1, sc
     tasks, images = _plan(inputs, tile=tile, overlap=overlap, nodata=nodata, band=band, any_body=any_body,
                           min_side=patch_px)
     if at_model_scale:
-        from dataclasses import replace
-
         tasks = [replace(t, at_model_scale=True) for t in tasks]
     inputs = [inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs)
     params = _parameters(model_dir, inputs, tile=tile, overlap=overlap, nodata=nodata, band=band,

@@ -9,7 +9,6 @@ from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 from scipy.optimize import minimize
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, AssemblyParams
@@ -848,10 +847,7 @@ def _turn_entry(objects):
 def _scale_entry(tileset, fit_ids):
     """The card's ``pixel_scale``: the fitting tiles' ground scale, or None when tiles.csv gives none
     (every tile is then read at its own scale)."""
-    if "metres_per_px" not in tileset.tiles:
-        return None
-    scale = tileset.tiles.set_index("tile_id").loc[list(fit_ids), "metres_per_px"]
-    found = PixelScale.of_tiles(pd.to_numeric(scale, errors="coerce").to_numpy(dtype=float))
+    found = PixelScale.of_tiles([tileset.metres_per_px(tile_id) for tile_id in fit_ids])
     return None if found is None else found.to_card()
 
 
