@@ -1,0 +1,145 @@
+"""Which of the shifted settings costs a model what: one generator factor shifted at a time.
+
+Not a test: run by hand, e.g.
+
+    python tests/benchmarks/shift_factors.py models/demo --out out/shift_factors
+    python tests/benchmarks/shift_factors.py MODEL --out DIR --images 16 --any-score
+
+The benchmark's shifted set moves every setting at once (terrain, deposit contrast, image gain, blur,
+noise, the mix of fan kinds), so its table says how much a model loses, not why. This script renders,
+from one seed, a set of nominal scenes, one set per group of settings in which only that group takes
+the shifted profile's values (``training.synth.SCENE_PROFILES``) and one with all of them, then scores the model on each with
+``frostvane evaluate`` at its own threshold. With ``--any-score`` every set is scored again with every
+candidate kept (``--min-score 0``): a consensus fan matched there but not at the threshold was found
+and scored too low, one missed there was never found.
+
+Every setting in which the two profiles differ belongs to exactly one group (checked before anything
+is rendered), so a change to the profiles cannot slip past it. The sets are rendered with their own
+image prefix (``FX...``) and seed, never the benchmark's. Writes ``factors.md`` and ``factors.json``
+under ``--out``; the last line printed is one JSON object.
+"""
+
+import argparse
+import dataclasses
+import json
+import sys
+import time
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[2]
+
+#: Settings shifted together, by what they stand for; "nominal" shifts none.
+GROUPS = {
+    "nominal": (),
+    "terrain": ("polygon_probability", "polygon_cover", "polygon_cell_px", "polygon_trough_px", "polygon_depth",
+                "araneiform_share", "araneiform_bare_per_mpx", "troughs_per_mpx", "rough_patches_per_mpx",
+                "craters_per_mpx", "vent_on_trough_share", "spot_with_fans_share"),
+    "deposit contrast": ("fan_contrast", "faint_contrast", "broad_fan_contrast"),
+    "image gain": ("gain", "level", "faint_gain", "faint_level"),
+    "blur": ("blur_sigma_px",),
+    "noise": ("noise_dn",),
+    "fan mix": ("short_fan_share", "short_fan_px", "broad_fan_share", "broad_fan_length_px",
+                "broad_fan_opening_deg"),
+}
+
+
+def _check_groups(nominal, shifted):
+    fields = [f.name for f in dataclasses.fields(nominal)]
+    grouped = [name for names in GROUPS.values() for name in names]
+    unknown = sorted(set(grouped) - set(fields))
+    differ = [name for name in fields if getattr(nominal, name) != getattr(shifted, name)]
+    loose = [name for name in differ if name not in grouped]
+    if unknown or loose or len(grouped) != len(set(grouped)):
+        sys.exit(f"shift_factors: settings groups out of date (unknown {unknown}, ungrouped {loose}); edit GROUPS.")
+    return differ
+
+
+def _row(report_dir):
+    r = json.loads((report_dir / "report.json").read_text())
+    objects, direction = r["scores"]["objects"], r["scores"]["direction"]
+    lost = r["error_breakdown"]["headline"]["consensus"]
+    coverage = r["scores"].get("coverage") or {}
+    return {
+        "fan_f1": objects["fan"]["f1"], "fan_precision": objects["fan"]["precision"],
+        "fan_recall": objects["fan"]["recall"], "spot_f1": objects["spot"]["f1"],
+        "direction_median_deg": direction["per_fan"]["median"], "direction_p90_deg": direction["per_fan"]["p90"],
+        "tile_mean_median_deg": direction["per_tile_mean"]["median"], "dice": coverage.get("dice_mean"),
+        "n_fans": lost["fan"]["n"], "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
+        "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"],
+    }
+
+
+def _fmt(v, digits=3):
+    return "" if v is None else f"{v:.{digits}f}"
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("model", help="model folder")
+    parser.add_argument("--out", required=True, help="output folder (replaced)")
+    parser.add_argument("--images", type=int, default=16, help="images per set (4 tiles each)")
+    parser.add_argument("--seed", type=int, default=9090)
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--any-score", action="store_true", help="also score with every candidate kept")
+    args = parser.parse_args(argv)
+    sys.path.insert(0, str(REPO))
+    from training.synth import SCENE_PROFILES, synthesize_tileset
+    from training.evaluation.evaluate import evaluate_model
+
+    nominal, shifted = SCENE_PROFILES["nominal"], SCENE_PROFILES["shifted"]
+    differ = _check_groups(nominal, shifted)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    rows, started = {}, time.perf_counter()
+    plan = list(GROUPS.items()) + [("all together", tuple(differ))]
+    for k, (group, names) in enumerate(plan):
+        moved = [n for n in names if n in differ]
+        if group != "nominal" and not moved:
+            continue
+        settings = dataclasses.replace(nominal, **{n: getattr(shifted, n) for n in moved})
+        slug = group.replace(" ", "_")
+        root = out / "sets" / slug
+        print(f"[{k + 1}/{len(plan)}] {group}: rendering {args.images} images ({', '.join(moved) or 'nothing shifted'})",
+              flush=True)
+        synthesize_tileset(root, n_images=args.images, tiles_per_image=4, seed=args.seed, settings=settings,
+                           image_prefix="FX" + "".join(w[0] for w in group.split()).upper(), force=True)
+        evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers, log=lambda *a: None)
+        rows[group] = {"settings": moved, "threshold": _row(out / "reports" / slug)}
+        if args.any_score:
+            evaluate_model(args.model, root, out / "reports" / f"{slug}_any", force=True, workers=args.workers,
+                           min_score=0.0, log=lambda *a: None)
+            rows[group]["any_score"] = _row(out / "reports" / f"{slug}_any")
+        print(f"    fan F1 {rows[group]['threshold']['fan_f1']:.3f}, {time.perf_counter() - started:.0f} s", flush=True)
+
+    base = rows["nominal"]["threshold"]
+    lines = [
+        "# Shifted settings one group at a time\n",
+        f"Model `{args.model}`; {args.images} images of 4 tiles per set, seed {args.seed}; scored at the model's "
+        "threshold. Change = against the nominal set of the same seed.\n",
+        "| shifted group | fan F1 (P / R) | change | spot F1 | change | direction median / p90 | per-tile mean | "
+        "Dice | fans missed | spots missed |" + (" fans matched, any score | spots matched, any score |"
+                                                 if args.any_score else ""),
+        "| --- " * (10 + 2 * args.any_score) + "|",
+    ]
+    for group, entry in rows.items():
+        r = entry["threshold"]
+        line = (f"| {group} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
+                f"{r['fan_f1'] - base['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - base['spot_f1']:+.3f} | "
+                f"{_fmt(r['direction_median_deg'], 1)} / {_fmt(r['direction_p90_deg'], 1)} | "
+                f"{_fmt(r['tile_mean_median_deg'], 1)} | {_fmt(r['dice'], 2)} | {100 * r['fans_missed']:.0f} % | "
+                f"{100 * r['spots_missed']:.0f} % |")
+        if args.any_score:
+            a = entry["any_score"]
+            line += f" {100 * a['fans_matched']:.0f} % | {100 * a['spots_matched']:.0f} % |"
+        lines.append(line)
+    table = "\n".join(lines) + "\n"
+    (out / "factors.md").write_text(table)
+    summary = {"model": str(args.model), "images": args.images, "seed": args.seed,
+               "seconds": round(time.perf_counter() - started, 1), "groups": rows}
+    (out / "factors.json").write_text(json.dumps(summary, indent=1) + "\n")
+    print(table)
+    print(json.dumps({g: round(e["threshold"]["fan_f1"], 4) for g, e in rows.items()}))
+
+
+if __name__ == "__main__":
+    main()
