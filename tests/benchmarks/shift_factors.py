@@ -74,17 +74,30 @@ def _fmt(v, digits=3):
 
 
 def main(argv=None):
+    sys.path.insert(0, str(REPO))
+    from detector.errors import DetectorError
+
+    try:
+        _run(argv)
+    except DetectorError as err:  # a missing model, a model of another version, a bad folder
+        print(f"shift_factors: {err}", file=sys.stderr)
+        sys.exit(2)
+
+
+def _run(argv):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("model", help="model folder")
-    parser.add_argument("--out", required=True, help="output folder (replaced)")
-    parser.add_argument("--images", type=int, default=16, help="images per set (4 tiles each)")
+    parser.add_argument("--out", required=True, help="output folder (its sets and reports are overwritten)")
+    parser.add_argument("--images", type=int, default=16, help="images per set (4 tiles each), >= 1")
     parser.add_argument("--seed", type=int, default=9090)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--any-score", action="store_true", help="also score with every candidate kept")
     args = parser.parse_args(argv)
-    sys.path.insert(0, str(REPO))
+    from detector.inference.model import load_model
     from training.synth import SCENE_PROFILES, synthesize_tileset
     from training.evaluation.evaluate import evaluate_model
+
+    load_model(args.model)  # refused here, before anything is rendered, if it cannot be read
 
     nominal, shifted = SCENE_PROFILES["nominal"], SCENE_PROFILES["shifted"]
     differ = _check_groups(nominal, shifted)
@@ -102,7 +115,7 @@ def main(argv=None):
         print(f"[{k + 1}/{len(plan)}] {group}: rendering {args.images} images ({', '.join(moved) or 'nothing shifted'})",
               flush=True)
         synthesize_tileset(root, n_images=args.images, tiles_per_image=4, seed=args.seed, settings=settings,
-                           image_prefix="FX" + "".join(w[0] for w in group.split()).upper(), force=True)
+                           image_prefix="FX_" + slug.upper(), force=True)
         evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers, log=lambda *a: None)
         rows[group] = {"settings": moved, "threshold": _row(out / "reports" / slug)}
         if args.any_score:
