@@ -54,19 +54,13 @@ def _check_groups(nominal, shifted):
     return differ
 
 
-def _row(report_dir):
-    r = json.loads((report_dir / "report.json").read_text())
-    objects, direction = r["scores"]["objects"], r["scores"]["direction"]
-    lost = r["error_breakdown"]["headline"]["consensus"]
-    coverage = r["scores"].get("coverage") or {}
-    return {
-        "fan_f1": objects["fan"]["f1"], "fan_precision": objects["fan"]["precision"],
-        "fan_recall": objects["fan"]["recall"], "spot_f1": objects["spot"]["f1"],
-        "direction_median_deg": direction["per_fan"]["median"], "direction_p90_deg": direction["per_fan"]["p90"],
-        "tile_mean_median_deg": direction["per_tile_mean"]["median"], "dice": coverage.get("dice_mean"),
-        "n_fans": lost["fan"]["n"], "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
-        "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"],
-    }
+def _row(report):
+    """The benchmark's figures of one report (``training.evaluation.benchmark._headline``) and its lost shares."""
+    from training.evaluation.benchmark import _headline
+
+    lost = report["error_breakdown"]["headline"]["consensus"]
+    return {**_headline(report["scores"]), "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
+            "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"]}
 
 
 def _fmt(v, digits=3):
@@ -116,12 +110,13 @@ def _run(argv):
               flush=True)
         synthesize_tileset(root, n_images=args.images, tiles_per_image=4, seed=args.seed, settings=settings,
                            image_prefix="FX_" + slug.upper(), force=True)
-        evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers, log=lambda *a: None)
-        rows[group] = {"settings": moved, "threshold": _row(out / "reports" / slug)}
+        report = evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers,
+                                log=lambda *a: None)
+        rows[group] = {"settings": moved, "threshold": _row(report)}
         if args.any_score:
-            evaluate_model(args.model, root, out / "reports" / f"{slug}_any", force=True, workers=args.workers,
-                           min_score=0.0, log=lambda *a: None)
-            rows[group]["any_score"] = _row(out / "reports" / f"{slug}_any")
+            report = evaluate_model(args.model, root, out / "reports" / f"{slug}_any", force=True,
+                                    workers=args.workers, min_score=0.0, log=lambda *a: None)
+            rows[group]["any_score"] = _row(report)
         print(f"    fan F1 {rows[group]['threshold']['fan_f1']:.3f}, {time.perf_counter() - started:.0f} s", flush=True)
 
     base = rows["nominal"]["threshold"]
@@ -138,8 +133,8 @@ def _run(argv):
         r = entry["threshold"]
         line = (f"| {group} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
                 f"{r['fan_f1'] - base['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - base['spot_f1']:+.3f} | "
-                f"{_fmt(r['direction_median_deg'], 1)} / {_fmt(r['direction_p90_deg'], 1)} | "
-                f"{_fmt(r['tile_mean_median_deg'], 1)} | {_fmt(r['dice'], 2)} | {100 * r['fans_missed']:.0f} % | "
+                f"{_fmt(r['fan_direction_median_deg'], 1)} / {_fmt(r['fan_direction_p90_deg'], 1)} | "
+                f"{_fmt(r['tile_mean_direction_median_deg'], 1)} | {_fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
                 f"{100 * r['spots_missed']:.0f} % |")
         if args.any_score:
             a = entry["any_score"]
