@@ -95,15 +95,6 @@ def _fmt(v, digits=1):
     return "" if v is None else f"{v:.{digits}f}"
 
 
-def _row(report):
-    from training.evaluation.benchmark import _headline
-
-    lost = report["error_breakdown"]["headline"]["consensus"]
-    smoothed = report["scores"]["meta"].get("tiles_smoothed", [])
-    return {**_headline(report["scores"]), "fans_missed": lost["fan"]["missed"],
-            "tiles_smoothed": len(smoothed), "tiles": report["scores"]["meta"]["tiles"]}
-
-
 def main(argv=None):
     sys.path.insert(0, str(REPO))
     from detector.errors import DetectorError
@@ -127,6 +118,7 @@ def _run(argv):
         parser.error(f"--images must be at least 1; got {args.images}.")
     from detector.inference.model import load_model
     from training.synth import SCENE_PROFILES, synthesize_tileset
+    from training.evaluation.benchmark import report_figures
     from training.evaluation.evaluate import evaluate_model
 
     load_model(args.model)  # refused here, before anything is rendered, if it cannot be read
@@ -145,7 +137,7 @@ def _run(argv):
             perturb_tileset(base, root, name, seed=args.seed + k)
         report = evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers,
                                 log=lambda *a: None)
-        rows[name] = _row(report)
+        rows[name] = report_figures(report)
         print(f"[{k + 1}/{len(IMAGE_VARIANTS)}] {name}: fan F1 {rows[name]['fan_f1']:.3f}, "
               f"{time.perf_counter() - started:.0f} s", flush=True)
 

@@ -54,15 +54,6 @@ def _check_groups(nominal, shifted):
     return differ
 
 
-def _row(report):
-    """The benchmark's figures of one report (``training.evaluation.benchmark._headline``) and its lost shares."""
-    from training.evaluation.benchmark import _headline
-
-    lost = report["error_breakdown"]["headline"]["consensus"]
-    return {**_headline(report["scores"]), "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
-            "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"]}
-
-
 def _fmt(v, digits=3):
     return "" if v is None else f"{v:.{digits}f}"
 
@@ -89,6 +80,7 @@ def _run(argv):
     args = parser.parse_args(argv)
     from detector.inference.model import load_model
     from training.synth import SCENE_PROFILES, synthesize_tileset
+    from training.evaluation.benchmark import report_figures
     from training.evaluation.evaluate import evaluate_model
 
     load_model(args.model)  # refused here, before anything is rendered, if it cannot be read
@@ -112,11 +104,11 @@ def _run(argv):
                            image_prefix="FX_" + slug.upper(), force=True)
         report = evaluate_model(args.model, root, out / "reports" / slug, force=True, workers=args.workers,
                                 log=lambda *a: None)
-        rows[group] = {"settings": moved, "threshold": _row(report)}
+        rows[group] = {"settings": moved, "threshold": report_figures(report)}
         if args.any_score:
             report = evaluate_model(args.model, root, out / "reports" / f"{slug}_any", force=True,
                                     workers=args.workers, min_score=0.0, log=lambda *a: None)
-            rows[group]["any_score"] = _row(report)
+            rows[group]["any_score"] = report_figures(report)
         print(f"    fan F1 {rows[group]['threshold']['fan_f1']:.3f}, {time.perf_counter() - started:.0f} s", flush=True)
 
     base = rows["nominal"]["threshold"]

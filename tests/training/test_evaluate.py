@@ -41,6 +41,22 @@ def test_truth_ceiling_present(report, tiny_tileset):
     assert result["ceiling"] is not None
 
 
+def test_report_figures_agree_with_the_written_report(report):
+    from training.evaluation.benchmark import report_figures
+
+    out, result = report
+    figures = report_figures(result)
+    written = json.loads((out / "report.json").read_text())
+    det = pd.read_csv(out / "detections.csv")
+    assert figures["n_detections"] == len(det)
+    assert figures["tiles"] == written["scores"]["meta"]["tiles"]
+    assert 0 <= figures["tiles_smoothed"] <= figures["tiles"]
+    n_fans = figures["n_consensus_fans"]
+    if n_fans:  # matched fans over consensus fans is the fan recall (the same matching)
+        assert figures["fans_matched"] == pytest.approx(figures["fan_recall"], abs=1e-9)
+        assert 0.0 <= figures["fans_matched"] + figures["fans_missed"] <= 1.0 + 1e-9
+
+
 def test_bad_min_score(tiny_model, tiny_tileset, tmp_path):
     with pytest.raises(DetectorError, match="min-score"):
         evaluate_model(tiny_model[0], tiny_tileset, tmp_path / "r", min_score=1.5, log=lambda s: None)

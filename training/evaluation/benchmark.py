@@ -43,6 +43,7 @@ __all__ = [
     "run_benchmark",
     "benchmark_table",
     "error_table",
+    "report_figures",
 ]
 
 #: The held-out sets of a benchmark, in table order.
@@ -296,6 +297,28 @@ def _headline(scores, breakdown=None):
     if breakdown is not None:
         out["lost"] = breakdown
     return out
+
+
+def report_figures(report):
+    """The benchmark's figures of one ``evaluate_model`` result, with where its consensus features went.
+
+    Parameters
+    ----------
+    report : dict
+        What :func:`training.evaluation.evaluate.evaluate_model` returns.
+
+    Returns
+    -------
+    dict
+        The headline figures (as in ``benchmark.json``), the shares of consensus fans and spots
+        matched and missed (``fans_matched``, ``fans_missed``, ``spots_matched``, ``spots_missed``),
+        and ``tiles`` and ``tiles_smoothed`` (noisier than the model's range, smoothed first).
+    """
+    lost = report["error_breakdown"]["headline"]["consensus"]
+    meta = report["scores"]["meta"]
+    return {**_headline(report["scores"]), "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
+            "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"],
+            "tiles": meta["tiles"], "tiles_smoothed": len(meta.get("tiles_smoothed", []))}
 
 
 def _error_shares(detections, consensus, tiles):
