@@ -147,8 +147,8 @@ def _run(argv):
         f"Model `{args.model}`; {args.images} nominal images of 4 tiles, seed {args.seed}, each copy with only its "
         "images perturbed; scored at the model's threshold. Change = against the images as rendered.\n",
         "| variant | stands for | fan F1 (P / R) | change | spot F1 | change | direction median / p90 | "
-        "per-tile mean | Dice | fans missed | tiles smoothed |",
-        "| --- " * 11 + "|",
+        "per-tile mean | Dice | fans missed | tiles smoothed | tiles flagged unfamiliar |",
+        "| --- " * 12 + "|",
     ]
     for name, r in rows.items():
         lines.append(
@@ -156,7 +156,7 @@ def _run(argv):
             f"{r['fan_f1'] - ref['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - ref['spot_f1']:+.3f} | "
             f"{_fmt(r['fan_direction_median_deg'])} / {_fmt(r['fan_direction_p90_deg'])} | "
             f"{_fmt(r['tile_mean_direction_median_deg'])} | {_fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
-            f"{r['tiles_smoothed']} of {r['tiles']} |")
+            f"{r['tiles_smoothed']} of {r['tiles']} | {r['tiles_unfamiliar']} of {r['tiles']} |")
     table = "\n".join(lines) + "\n"
     (out / "image_variants.md").write_text(table)
     summary = {"model": str(args.model), "images": args.images, "seed": args.seed,

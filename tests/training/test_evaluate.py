@@ -50,11 +50,31 @@ def test_report_figures_agree_with_the_written_report(report):
     det = pd.read_csv(out / "detections.csv")
     assert figures["n_detections"] == len(det)
     assert figures["tiles"] == written["scores"]["meta"]["tiles"]
-    assert 0 <= figures["tiles_smoothed"] <= figures["tiles"]
+    assert 0 <= figures["tiles_smoothed"] <= figures["tiles_unfamiliar"] <= figures["tiles"]
+    meta = written["scores"]["meta"]
+    assert set(meta["tiles_smoothed"]) <= set(meta["tiles_unfamiliar"])
     n_fans = figures["n_consensus_fans"]
     if n_fans:  # matched fans over consensus fans is the fan recall (the same matching)
         assert figures["fans_matched"] == pytest.approx(figures["fan_recall"], abs=1e-9)
         assert 0.0 <= figures["fans_matched"] + figures["fans_missed"] <= 1.0 + 1e-9
+
+
+def test_unfamiliar_flags_follow_the_card_and_the_smoothing():
+    from types import SimpleNamespace
+
+    from training.evaluation.evaluate import unfamiliar_flags
+
+    # Four features, two principal components (variances 1 and 4), residual scale 2, threshold 1: the
+    # unfamiliarity is a Mahalanobis distance over the components plus the residual's, over the threshold.
+    stats = {"mean": [0.0] * 4, "scale": [1.0] * 4, "components": [[1.0, 0, 0, 0], [0, 1.0, 0, 0]],
+             "variances": [1.0, 4.0], "resid_scale": 2.0, "threshold": 1.0}
+    near, far = np.zeros(4), np.array([30.0, 0.0, 0.0, 0.0])
+    per_tile = [{"summary": near, "smoothed": False}, {"summary": far, "smoothed": False},
+                {"summary": near, "smoothed": True}]
+    assert unfamiliar_flags(SimpleNamespace(card={"unfamiliarity": stats}), per_tile).tolist() == [False, True, True]
+    # A card without statistics flags only the smoothed tiles.
+    assert unfamiliar_flags(SimpleNamespace(card={}), per_tile).tolist() == [False, False, True]
+    assert unfamiliar_flags(SimpleNamespace(card={}), []).shape == (0,)
 
 
 def test_bad_min_score(tiny_model, tiny_tileset, tmp_path):

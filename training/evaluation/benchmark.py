@@ -312,13 +312,15 @@ def report_figures(report):
     dict
         The headline figures (as in ``benchmark.json``), the shares of consensus fans and spots
         matched and missed (``fans_matched``, ``fans_missed``, ``spots_matched``, ``spots_missed``),
-        and ``tiles`` and ``tiles_smoothed`` (noisier than the model's range, smoothed first).
+        and ``tiles``, ``tiles_smoothed`` (noisier than the model's range, smoothed first) and
+        ``tiles_unfamiliar`` (left to people by screening, the smoothed ones among them).
     """
     lost = report["error_breakdown"]["headline"]["consensus"]
     meta = report["scores"]["meta"]
     return {**_headline(report["scores"]), "fans_matched": lost["fan"]["matched"], "fans_missed": lost["fan"]["missed"],
             "spots_matched": lost["spot"]["matched"], "spots_missed": lost["spot"]["missed"],
-            "tiles": meta["tiles"], "tiles_smoothed": len(meta.get("tiles_smoothed", []))}
+            "tiles": meta["tiles"], "tiles_smoothed": len(meta.get("tiles_smoothed", [])),
+            "tiles_unfamiliar": len(meta.get("tiles_unfamiliar", []))}
 
 
 def _error_shares(detections, consensus, tiles):
@@ -336,9 +338,8 @@ def _error_shares(detections, consensus, tiles):
 def _score_set(name, root, model, *, workers, min_score, log):
     """Model, threshold baseline and truth ceiling on one set."""
     from detector.tileset import load_tileset
-    from detector.inference.unfamiliar import unfamiliarity_score
 
-    from .evaluate import run_on_tiles
+    from .evaluate import run_on_tiles, unfamiliar_flags
     from .scoring import score_catalogs
 
     tileset = load_tileset(root, min_votes=int(model.card["training"]["config"]["min_votes"]))
@@ -348,11 +349,10 @@ def _score_set(name, root, model, *, workers, min_score, log):
     run = run_on_tiles(model, tileset, tile_ids, desc=name, workers=workers, min_score=min_score)
     seconds = time.perf_counter() - start
     detections = run["detections"].reset_index(drop=True)
-    summaries = np.array([t["summary"] for t in run["per_tile"]])
     # A tile noisier than every fitting tile is smoothed before detection and left to people, like
     # one whose features are unfamiliar (as frostvane effort routes it).
     smoothed = np.array([bool(t.get("smoothed", False)) for t in run["per_tile"]], dtype=bool)
-    unfamiliar = (unfamiliarity_score(model.card.get("unfamiliarity"), summaries) > 1.0) | smoothed
+    unfamiliar = unfamiliar_flags(model, run["per_tile"])
     flagged = dict(zip([t["tile_id"] for t in run["per_tile"]], unfamiliar))
     baseline = _threshold_catalog(tileset)
     area_mpx = float((tiles["width"] * tiles["height"]).sum()) / 1e6

@@ -25,7 +25,7 @@ from .matching import match_objects
 from .directions import matched_fans
 from .scoring import patch_metrics, score_catalogs
 
-__all__ = ["run_on_tiles", "evaluate_tiles", "tune_assembly", "paired_standard_error_choice", "summarise_for_card",
+__all__ = ["run_on_tiles", "unfamiliar_flags", "evaluate_tiles", "tune_assembly", "paired_standard_error_choice", "summarise_for_card",
            "evaluate_model",
            "write_detections_csv", "confidence_validation"]
 
@@ -230,6 +230,27 @@ def paired_standard_error_choice(scores, resampled, tolerance=TUNING_TOLERANCE):
     reach = np.maximum(np.asarray(ses), tolerance)
     chosen = int(np.flatnonzero(scores >= scores[best] - reach)[0])
     return chosen, best, ses
+
+
+def unfamiliar_flags(model, per_tile):
+    """Which tiles screening leaves to people as unlike the model's fitting tiles, shape (n,), bool.
+
+    A tile is unfamiliar when its feature summary lies beyond the card's unfamiliarity threshold
+    (:func:`detector.inference.unfamiliar.unfamiliarity_score` above 1) or it was noisier than every
+    fitting tile and smoothed before detection. A card without unfamiliarity statistics flags only
+    the smoothed tiles.
+
+    Parameters
+    ----------
+    model : detector.inference.model.Model
+    per_tile : list of dict
+        :func:`run_on_tiles`'s ``per_tile`` (``summary``, ``smoothed``).
+    """
+    if not per_tile:
+        return np.zeros(0, dtype=bool)
+    summaries = np.array([t["summary"] for t in per_tile])
+    smoothed = np.array([bool(t.get("smoothed", False)) for t in per_tile], dtype=bool)
+    return (unfamiliarity_score(model.card.get("unfamiliarity"), summaries) > 1.0) | smoothed
 
 
 def _per_tile_table(run, detections, consensus, tiles, model):
@@ -459,7 +480,11 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         log(f"note: {len(smoothed)} of the {len(tile_ids)} tiles are noisier than every tile this model was fitted "
             f"on and were smoothed before detection (report.json: meta.tiles_smoothed); in screening they are "
             f"flagged unfamiliar and left to people.")
+    unfamiliar = sorted(t["tile_id"] for t, u in zip(run["per_tile"], unfamiliar_flags(model, run["per_tile"])) if u)
     resampled = sorted(t["tile_id"] for t in run["per_tile"] if t.get("resampled"))
+    if len(unfamiliar) > len(smoothed):
+        log(f"note: {len(unfamiliar)} of the {len(tile_ids)} tiles (the smoothed ones among them) are unlike this "
+            f"model's fitting tiles (report.json: meta.tiles_unfamiliar); screening leaves them to people.")
     if resampled:
         log(f"note: {len(resampled)} of the {len(tile_ids)} tiles lie outside the ground scale of this model's "
             f"fitting tiles and were read resampled to it (report.json: meta.tiles_read_at_model_scale).")
@@ -468,7 +493,8 @@ def evaluate_model(model_dir, tileset_root, out, *, min_score=None, images=None,
         scores["patch"] = {k: v for k, v in patch.items() if k != "curves"}
         scores["meta"] = {"model": str(Path(model_dir).resolve()), "tileset": str(Path(tileset_root).resolve()),
                           "min_score": min_score, "images_seen_in_training": overlap, "tiles": int(len(tiles)),
-                          "tiles_smoothed": smoothed, "at_model_scale": bool(at_model_scale),
+                          "tiles_smoothed": smoothed, "tiles_unfamiliar": unfamiliar,
+                          "at_model_scale": bool(at_model_scale),
                           "tiles_read_at_model_scale": resampled,
                           **_provenance(model, model_dir, tileset_root)}
         pr_curves = {name: {**patch["curves"][name], "average_precision": patch[name]["average_precision"]}
