@@ -25,8 +25,8 @@ from .matching import match_objects
 from .directions import matched_fans
 from .scoring import patch_metrics, score_catalogs
 
-__all__ = ["run_on_tiles", "unfamiliar_flags", "evaluate_tiles", "tune_assembly", "paired_standard_error_choice", "summarise_for_card",
-           "evaluate_model",
+__all__ = ["run_on_tiles", "unfamiliar_flags", "evaluate_tiles", "tune_assembly", "paired_standard_error_choice",
+           "summarise_for_card", "evaluate_model",
            "write_detections_csv", "confidence_validation"]
 
 
@@ -233,7 +233,7 @@ def paired_standard_error_choice(scores, resampled, tolerance=TUNING_TOLERANCE):
 
 
 def unfamiliar_flags(model, per_tile):
-    """Which tiles screening leaves to people as unlike the model's fitting tiles, shape (n,), bool.
+    """Which tiles are flagged unfamiliar, and so left to people, shape (n,), bool.
 
     A tile is unfamiliar when its feature summary lies beyond the card's unfamiliarity threshold
     (:func:`detector.inference.unfamiliar.unfamiliarity_score` above 1) or it was noisier than every
