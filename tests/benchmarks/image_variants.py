@@ -18,7 +18,6 @@ model on each with ``frostvane evaluate`` at its own threshold. Writes ``image_v
 ``image_variants.json`` under ``--out``; the last line printed is one JSON object.
 """
 
-import argparse
 import json
 import shutil
 import sys
@@ -91,28 +90,17 @@ def perturb_tileset(src, dst, variant, *, seed=0):
         skio.imsave(path, out, check_contrast=False)
 
 
-def _fmt(v, digits=1):
-    return "" if v is None else f"{v:.{digits}f}"
-
-
 def main(argv=None):
     sys.path.insert(0, str(REPO))
-    from detector.errors import DetectorError
+    from tests.benchmarks.quality import run_reporting_errors
 
-    try:
-        _run(argv)
-    except DetectorError as err:  # a missing model, a model of another version, a bad folder
-        print(f"image_variants: {err}", file=sys.stderr)
-        sys.exit(2)
+    run_reporting_errors("image_variants", _run, argv)
 
 
 def _run(argv):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("model", help="model folder")
-    parser.add_argument("--out", required=True, help="output folder (its sets and reports are overwritten)")
-    parser.add_argument("--images", type=int, default=16, help="images per set (4 tiles each), >= 1")
-    parser.add_argument("--seed", type=int, default=9191)
-    parser.add_argument("--workers", type=int, default=2)
+    from tests.benchmarks.quality import fmt, quality_parser
+
+    parser = quality_parser(__doc__.splitlines()[0], seed=9191)
     args = parser.parse_args(argv)
     if args.images < 1:
         parser.error(f"--images must be at least 1; got {args.images}.")
@@ -154,8 +142,8 @@ def _run(argv):
         lines.append(
             f"| {name} | {IMAGE_VARIANTS[name][0]} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
             f"{r['fan_f1'] - ref['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - ref['spot_f1']:+.3f} | "
-            f"{_fmt(r['fan_direction_median_deg'])} / {_fmt(r['fan_direction_p90_deg'])} | "
-            f"{_fmt(r['tile_mean_direction_median_deg'])} | {_fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
+            f"{fmt(r['fan_direction_median_deg'], 1)} / {fmt(r['fan_direction_p90_deg'], 1)} | "
+            f"{fmt(r['tile_mean_direction_median_deg'], 1)} | {fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
             f"{r['tiles_smoothed']} of {r['tiles']} | {r['tiles_unfamiliar']} of {r['tiles']} |")
     table = "\n".join(lines) + "\n"
     (out / "image_variants.md").write_text(table)

@@ -19,7 +19,6 @@ image prefix (``FX...``) and seed, never the benchmark's. Writes ``factors.md`` 
 under ``--out``; the last line printed is one JSON object.
 """
 
-import argparse
 import dataclasses
 import json
 import sys
@@ -54,28 +53,17 @@ def _check_groups(nominal, shifted):
     return differ
 
 
-def _fmt(v, digits=3):
-    return "" if v is None else f"{v:.{digits}f}"
-
-
 def main(argv=None):
     sys.path.insert(0, str(REPO))
-    from detector.errors import DetectorError
+    from tests.benchmarks.quality import run_reporting_errors
 
-    try:
-        _run(argv)
-    except DetectorError as err:  # a missing model, a model of another version, a bad folder
-        print(f"shift_factors: {err}", file=sys.stderr)
-        sys.exit(2)
+    run_reporting_errors("shift_factors", _run, argv)
 
 
 def _run(argv):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("model", help="model folder")
-    parser.add_argument("--out", required=True, help="output folder (its sets and reports are overwritten)")
-    parser.add_argument("--images", type=int, default=16, help="images per set (4 tiles each), >= 1")
-    parser.add_argument("--seed", type=int, default=9090)
-    parser.add_argument("--workers", type=int, default=2)
+    from tests.benchmarks.quality import fmt, quality_parser
+
+    parser = quality_parser(__doc__.splitlines()[0], seed=9090)
     parser.add_argument("--any-score", action="store_true", help="also score with every candidate kept")
     args = parser.parse_args(argv)
     from detector.inference.model import load_model
@@ -125,8 +113,8 @@ def _run(argv):
         r = entry["threshold"]
         line = (f"| {group} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
                 f"{r['fan_f1'] - base['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - base['spot_f1']:+.3f} | "
-                f"{_fmt(r['fan_direction_median_deg'], 1)} / {_fmt(r['fan_direction_p90_deg'], 1)} | "
-                f"{_fmt(r['tile_mean_direction_median_deg'], 1)} | {_fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
+                f"{fmt(r['fan_direction_median_deg'], 1)} / {fmt(r['fan_direction_p90_deg'], 1)} | "
+                f"{fmt(r['tile_mean_direction_median_deg'], 1)} | {fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
                 f"{100 * r['spots_missed']:.0f} % |")
         if args.any_score:
             a = entry["any_score"]

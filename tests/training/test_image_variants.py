@@ -1,9 +1,6 @@
 """The image-variants script: what its perturbations do to a tile set, checked against the noise
 estimate's own theory."""
 
-import importlib.util
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 import pytest
@@ -11,15 +8,7 @@ from scipy import ndimage as ndi
 from skimage import io as skio
 
 from detector.tile.noise import noise_sigma
-
-_SCRIPT = Path(__file__).resolve().parents[1] / "benchmarks" / "image_variants.py"
-
-
-def _script():
-    spec = importlib.util.spec_from_file_location("image_variants", _SCRIPT)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
+from tests.benchmarks import image_variants as script
 
 
 def test_correlated_noise_reads_as_little_white_noise():
@@ -28,7 +17,6 @@ def test_correlated_noise_reads_as_little_white_noise():
     # of width s passes the mask as white noise filtered by (mask * Gaussian), whose response has the
     # standard deviation ||mask * g||_2 times the white noise's; the estimate is that over 6 (a normal
     # variable's mean absolute value is sqrt(2 / pi) of its standard deviation).
-    script = _script()
     rng = np.random.default_rng(0)
     flat = np.full((400, 400), 128.0)
     white = script.IMAGE_VARIANTS["white, 3 grey levels"][1](flat, rng) - flat
@@ -47,7 +35,6 @@ def test_correlated_noise_reads_as_little_white_noise():
 
 
 def test_perturbed_copy_keeps_labels_types_and_no_data(tmp_path):
-    script = _script()
     src = tmp_path / "src"
     (src / "images").mkdir(parents=True)
     rng = np.random.default_rng(1)
@@ -70,7 +57,6 @@ def test_perturbed_copy_keeps_labels_types_and_no_data(tmp_path):
 
 
 def test_a_model_that_cannot_be_read_stops_before_rendering(tmp_path, capsys):
-    script = _script()
     with pytest.raises(SystemExit) as stop:
         script.main([str(tmp_path / "no_model"), "--out", str(tmp_path / "out")])
     assert stop.value.code == 2
