@@ -22,7 +22,7 @@ from ..tile.features import _features_of_prepared
 from ..geometry import unit_vector
 from ..tile.spec import patch_axis_deg
 
-__all__ = ["TileResult", "TileMaps", "detect_tile", "tile_maps", "tile_candidates", "tile_summary_vector",
+__all__ = ["TileResult", "TileMaps", "detect_tile", "detect_block", "tile_maps", "tile_candidates", "tile_summary_vector",
            "fan_direction_weights", "tile_direction_stats"]
 
 
@@ -238,7 +238,7 @@ def tile_candidates(tile, nodata_mask, maps, spec, params, *, prep=None):
 
 def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, features=None, floor_score=None,
                 metres_per_px=None):
-    """Screen one tile with a loaded model.
+    """Screen one tile with a loaded model, the tile alone in its context block.
 
     Parameters
     ----------
@@ -265,18 +265,75 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
     Returns
     -------
     result : TileResult
+
+    See Also
+    --------
+    detect_block : the tiles of one context block together, as screening and evaluation read them.
     """
+    return detect_block(model, [tile], tile_ids=[tile_id], nodata_masks=[nodata_mask], min_score=min_score,
+                        features=[features], floor_score=floor_score, metres_per_px=[metres_per_px])[0]
+
+
+def detect_block(model, tiles, *, tile_ids=None, nodata_masks=None, min_score=None, features=None,
+                 floor_score=None, metres_per_px=None):
+    """Screen the tiles of one context block (:mod:`detector.objects.context`) with a loaded model.
+
+    Every tile is read first (features, patch maps, dark components and the first score of each
+    reading); then the fan readings of all of them are rescored with their tile and block
+    context, and each tile's objects are assembled. Arguments are as in :func:`detect_tile`,
+    given per tile as sequences (``None`` for the defaults).
+
+    Returns
+    -------
+    list of TileResult
+        One per tile, in order.
+    """
+    n = len(tiles)
+
+    def each(values):
+        return [None] * n if values is None else list(values)
+
+    tile_ids = [""] * n if tile_ids is None else [str(t) for t in tile_ids]
+    reads = [_read_tile(model, tile, tile_id=tid, nodata_mask=mask, min_score=min_score, features=feat,
+                        metres_per_px=mpp)
+             for tile, tid, mask, feat, mpp in zip(tiles, tile_ids, each(nodata_masks), each(features),
+                                                    each(metres_per_px))]
+    scores = model.score_block([r.F for r in reads], [r.candidates for r in reads], [r.first for r in reads])
+    return [_finish_tile(model, r, s, floor_score) for r, s in zip(reads, scores)]
+
+
+@dataclass
+class _TileRead:
+    """A tile read up to the first scores of its readings (the first stage of :func:`detect_block`)."""
+
+    tile_id: str
+    shape: tuple
+    read_shape: tuple
+    valid_fraction: float
+    summary: np.ndarray
+    grid: object
+    maps: TileMaps
+    params: AssemblyParams
+    candidates: list
+    F: np.ndarray
+    first: np.ndarray
+    noise: float
+    smoothed: bool
+
+
+def _read_tile(model, tile, *, tile_id, nodata_mask, min_score, features, metres_per_px):
     spec = model.feature_spec
     tile = np.asarray(tile)
     if nodata_mask is None:
         nodata_mask = tile == spec.nodata_value
+    own_shape = tuple(tile.shape)
+    valid_fraction = float((~np.asarray(nodata_mask, dtype=bool)).mean())
     scale = model.pixel_scale
     zoom = scale.zoom(metres_per_px) if scale is not None else 1.0
     if zoom != 1.0:
         if features is not None:
             raise ValueError("features were computed on the tile as it is, but its scale asks for resampling.")
-        return _detect_resampled(model, tile, nodata_mask, zoom, tile_id=tile_id, min_score=min_score,
-                                 floor_score=floor_score)
+        tile, nodata_mask = resample_tile(tile, nodata_mask, zoom)
     prep = _dense.prepare_tile(tile, spec, nodata_mask, model.noise_range)
     X, grid = _features_of_prepared(prep, spec) if features is None else features
     maps = tile_maps(X, grid, tile.shape, spec, model.predict_patches, model.predict_polarity)
@@ -285,45 +342,43 @@ def detect_tile(model, tile, *, tile_id="", nodata_mask=None, min_score=None, fe
         params = replace(params, min_score=float(min_score))
     candidates = tile_candidates(tile, nodata_mask, maps, spec, params, prep=prep)
     F, _, _ = reading_matrix(candidates)
-    scores = model.score_readings(F, candidates)
+    summary = tile_summary_vector(X, np.asarray(grid.valid, dtype=bool))
+    return _TileRead(tile_id, own_shape, tuple(tile.shape), valid_fraction, summary, grid, maps, params, candidates, F,
+                     model.predict_readings(F), float(prep.noise), bool(prep.smoothed))
+
+
+def _finish_tile(model, read, scores, floor_score):
+    candidates, F, params = read.candidates, read.F, read.params
     apply_refined(candidates, *model.refine_readings(F, candidates))
     confidence = model.direction_confidence(F)
     detections, _ = objects_from_candidates(candidates, scores, params=params,
-                                            tile_id=tile_id, direction_confidence=confidence)
+                                            tile_id=read.tile_id, direction_confidence=confidence)
     floor_detections = None
     if floor_score is not None:
         floor_detections, _ = objects_from_candidates(candidates, scores, params=replace(params, min_score=float(floor_score)),
-                                                      tile_id=tile_id, direction_confidence=confidence)
+                                                      tile_id=read.tile_id, direction_confidence=confidence)
+    if read.read_shape != read.shape:
+        fx, fy = frame_factors(read.shape, read.read_shape)
+        detections = to_tile_frame(detections, fx, fy)
+        if floor_detections is not None:
+            floor_detections = to_tile_frame(floor_detections, fx, fy)
     # Cover is the detections' footprints, not their dark pixels: consensus features are footprints,
     # and the dark pixels alone fell 2.5 points of cover short of them (README, "Benchmark").
-    fan_cover, spot_cover = footprint_masks(detections, tile.shape)
+    fan_cover, spot_cover = footprint_masks(detections, read.shape)
     return TileResult(
-        tile_id=tile_id,
-        shape=tile.shape,
+        tile_id=read.tile_id,
+        shape=read.shape,
         detections=detections,
-        grid=grid,
-        proba=maps.proba,
-        polarity=maps.polarity,
-        axis_deg=maps.axis_deg,
+        grid=read.grid,
+        proba=read.maps.proba,
+        polarity=read.maps.polarity,
+        axis_deg=read.maps.axis_deg,
         fan_cover=fan_cover,
         spot_cover=spot_cover,
-        valid_fraction=float((~np.asarray(nodata_mask, dtype=bool)).mean()),
-        summary=tile_summary_vector(X, np.asarray(grid.valid, dtype=bool)),
-        noise=float(prep.noise),
-        smoothed=bool(prep.smoothed),
+        valid_fraction=read.valid_fraction,
+        summary=read.summary,
+        noise=read.noise,
+        smoothed=read.smoothed,
         floor_detections=floor_detections,
+        read_shape=read.read_shape,
     )
-
-
-def _detect_resampled(model, tile, nodata_mask, zoom, **kw):
-    """:func:`detect_tile` on the tile resampled ``zoom`` times, its objects and covers back in its own pixels."""
-    read, read_nodata = resample_tile(tile, nodata_mask, zoom)
-    result = detect_tile(model, read, nodata_mask=read_nodata, **kw)
-    fx, fy = frame_factors(tile.shape, read.shape)
-    result.detections = to_tile_frame(result.detections, fx, fy)
-    if result.floor_detections is not None:
-        result.floor_detections = to_tile_frame(result.floor_detections, fx, fy)
-    result.fan_cover, result.spot_cover = footprint_masks(result.detections, tile.shape)
-    result.shape, result.read_shape = tuple(tile.shape), tuple(read.shape)
-    result.valid_fraction = float((~np.asarray(nodata_mask, dtype=bool)).mean())
-    return result

@@ -3,7 +3,7 @@
 A model folder holds ``detector.onnx`` (patch classifier over none / fan / spot),
 ``orientation.onnx`` (fan polarity along the structure-tensor axis),
 ``objects.onnx`` (scores each reading of a dark candidate as a fan or a spot),
-``context.onnx`` (rescores each reading with its tile's other deposits, see
+``context.onnx`` (rescores each reading with the other deposits of its tile and image block, see
 :mod:`detector.objects.context`) and ``model.json``, the model card. Nothing here unpickles anything: the card is
 JSON and the models are ONNX graphs.
 """
@@ -167,23 +167,50 @@ class Model:
         return _run_proba(self._objects, F)[:, 1]
 
     def score_readings(self, F, candidates):
-        """Final score of each reading of a tile's candidates, shape (n,).
+        """Final score of each reading of one tile's candidates, the tile alone in its context
+        block, shape (n,) (:meth:`score_block`)."""
+        return self.score_block([F], [candidates])[0]
+
+    def score_block(self, F, candidates, first=None):
+        """Final scores of the readings of the tiles of one context block.
 
         A fan reading's first score (:meth:`predict_readings`) rescored by
-        ``context.onnx`` from the reading's features, that score and its tile
-        context (:mod:`detector.objects.context`); spot readings keep their first
-        score (the context model did not make spots better on the development sets,
+        ``context.onnx`` from the reading's features, that score, its tile context and
+        its block context (:mod:`detector.objects.context`); spot readings keep their
+        first score (the context model did not make spots better on the development sets,
         and worse on images unlike the training ones). The first score alone while
         training builds the folder.
+
+        Parameters
+        ----------
+        F : list of ndarray
+            Each tile's reading features (:func:`detector.objects.assemble.reading_matrix`).
+        candidates : list of list
+            Each tile's candidates.
+        first : list of ndarray, optional
+            Each tile's first scores, when already computed.
+
+        Returns
+        -------
+        list of ndarray
+            Each tile's final scores, float32.
         """
+        from ..objects.assemble import OBJECT_FEATURE_NAMES
         from ..objects.context import context_matrix, reading_layout
 
-        first = self.predict_readings(F)
-        if self._context is None or len(first) == 0:
-            return first
-        owner, is_fan, direction = reading_layout(candidates)
-        revised = _run_proba(self._context, context_matrix(F, first, owner, is_fan, direction))[:, 1]
-        return np.where(is_fan, revised, first).astype(np.float32)
+        first = [self.predict_readings(f) for f in F] if first is None else [np.asarray(f) for f in first]
+        sizes = [len(f) for f in first]
+        if self._context is None or sum(sizes) == 0:
+            return [np.asarray(f, dtype=np.float32) for f in first]
+        layout = [reading_layout(c) for c in candidates]
+        owner, is_fan, direction = (np.concatenate([part[i] for part in layout]) for i in range(3))
+        every_first = np.concatenate(first)
+        tile = np.repeat(np.arange(len(first)), sizes)
+        rows = context_matrix(np.concatenate([np.asarray(f, dtype=np.float32).reshape(-1, len(OBJECT_FEATURE_NAMES))
+                                              for f in F]), every_first, owner, is_fan, direction, group=tile)
+        revised = _run_proba(self._context, rows)[:, 1]
+        final = np.where(is_fan, revised, every_first).astype(np.float32)
+        return np.split(final, np.cumsum(sizes)[:-1])
 
     def refine_readings(self, F, candidates):
         """Refined sizes, shape (n, 2), and fan directions, shape (n,), of every reading
@@ -332,7 +359,7 @@ def load_model(folder):
     context = card.get("context_features")
     if tuple(context or ()) != CONTEXT_FEATURE_NAMES:
         raise SpecError(
-            f"model {str(folder)!r} rescores readings on tile-context features {context!r}; this code computes "
+            f"model {str(folder)!r} rescores readings on context features {context!r}; this code computes "
             f"{list(CONTEXT_FEATURE_NAMES)!r}: re-export the model with this version of the code."
         )
     index = {name: i for i, name in enumerate(spec.feature_names)}

@@ -1,4 +1,4 @@
-"""A reading's tile context: do the other deposits of its tile point its way?
+"""A reading's context: do the other deposits of its tile, and of its image block, point its way?
 
 Fans of one place and season record the same surface wind, so most fans of a
 tile point one way (or two, when the wind turned while they vented) (common
@@ -13,12 +13,21 @@ features, its first score (``objects.onnx``) and the context features below,
 computed from the first scores of the tile's other components (spot readings
 keep their first score: :meth:`detector.inference.model.Model.score_readings`).
 A reading's own component never counts, so a component cannot vouch for itself.
+
+The same wind blows over more than one tile, and an image's lighting, contrast
+and blur lower every first score of the image alike: the block features
+(:func:`block_features`) weigh a reading against every other component of the
+tiles of its *context block*, the tiles of one image whose top-left corners fall
+in one cell of :data:`CONTEXT_BLOCK_TILES` tiles (4 rows of 2; with 800 x 600
+px tiles 1600 px wide and 2400 px high, a whole image of the benchmark): their agreement with its direction, and its
+first score against the best of the block's. Detection reads every tile of a
+block before it scores any (:func:`detector.inference.detect.detect_block`).
 """
 
 import numpy as np
 
-__all__ = ["CONTEXT_FEATURE_NAMES", "CONTEXT_WIDTH_DEG", "context_features", "context_matrix", "reading_layout",
-           "score_logit"]
+__all__ = ["CONTEXT_FEATURE_NAMES", "CONTEXT_WIDTH_DEG", "CONTEXT_BLOCK_TILES", "BLOCK_TOP_READINGS", "block_features",
+           "block_keys", "context_features", "context_matrix", "reading_layout", "score_logit"]
 
 #: A reading agrees with another component's fan reading when their directions are within this angle.
 CONTEXT_WIDTH_DEG = 30.0
@@ -31,7 +40,20 @@ CONTEXT_FEATURE_NAMES = (
     "ctx_log_fan_mass",  # log(1 + the other components' fan score)
     "ctx_fan_share",  # their fan score against their fan and spot score
     "ctx_relative_score",  # the reading's first score against the tile's highest
+    "blk_agree",  # as ctx_agree, over the other components of the reading's context block
+    "blk_oppose",  # as ctx_oppose, over the same
+    "blk_log_fan_mass",  # log(1 + their fan score)
+    "blk_relative_score",  # the reading's first score against the mean of the block's best fan first scores
+    "blk_top_score",  # that mean itself
 )
+
+#: Rows and columns of tiles in the cells that gather an image's tiles into context blocks.
+CONTEXT_BLOCK_TILES = (4, 2)
+
+#: The block's best fan first scores that ``blk_relative_score`` and ``blk_top_score`` average.
+BLOCK_TOP_READINGS = 5
+
+_N_TILE = 6  # tile features come first in CONTEXT_FEATURE_NAMES
 
 # Pseudo-score added to every denominator: a tile with one faint neighbour says little.
 _PRIOR = 0.5
@@ -60,15 +82,16 @@ def context_features(owner, is_fan, direction_deg, score, *, width_deg=CONTEXT_W
 
     Returns
     -------
-    ndarray of shape (n, len(CONTEXT_FEATURE_NAMES)), float32
-        Agreement features are 0 for spot readings.
+    ndarray of shape (n, 6), float32
+        The tile features (the first six of :data:`CONTEXT_FEATURE_NAMES`); agreement
+        features are 0 for spot readings.
     """
     owner = np.asarray(owner)
     is_fan = np.asarray(is_fan, dtype=bool)
     direction = np.asarray(direction_deg, dtype=np.float64)
     score = np.clip(np.asarray(score, dtype=np.float64), 0.0, 1.0)
     n = len(owner)
-    out = np.zeros((n, len(CONTEXT_FEATURE_NAMES)), dtype=np.float32)
+    out = np.zeros((n, _N_TILE), dtype=np.float32)
     if n == 0:
         return out
     other = owner[:, None] != owner[None, :]
@@ -88,7 +111,86 @@ def context_features(owner, is_fan, direction_deg, score, *, width_deg=CONTEXT_W
     return out
 
 
-def context_matrix(F, score, owner, is_fan, direction_deg, group=None):
+def block_features(component, is_fan, direction_deg, score, *, width_deg=CONTEXT_WIDTH_DEG,
+                   top=BLOCK_TOP_READINGS):
+    """Block features of the readings of one context block.
+
+    Parameters
+    ----------
+    component : array_like, shape (n,)
+        A key of each reading's component unique within the block (its tile and its
+        index there).
+    is_fan, direction_deg, score : array_like of shape (n,)
+        As in :func:`context_features`.
+    width_deg : float, default=:data:`CONTEXT_WIDTH_DEG`
+    top : int, default=:data:`BLOCK_TOP_READINGS`
+
+    Returns
+    -------
+    ndarray of shape (n, 5), float32
+        The block features (the last five of :data:`CONTEXT_FEATURE_NAMES`); agreement
+        features are 0 for spot readings.
+    """
+    _, component = np.unique(np.asarray(component), return_inverse=True)
+    is_fan = np.asarray(is_fan, dtype=bool)
+    direction = np.where(is_fan, np.asarray(direction_deg, dtype=np.float64), 0.0)
+    score = np.clip(np.asarray(score, dtype=np.float64), 0.0, 1.0)
+    out = np.zeros((len(component), len(CONTEXT_FEATURE_NAMES) - _N_TILE), dtype=np.float32)
+    if len(component) == 0:
+        return out
+    fan_w = np.where(is_fan, score, 0.0)[None, :] * (component[:, None] != component[None, :])
+    diff = np.abs((direction[:, None] - direction[None, :] + 180.0) % 360.0 - 180.0)
+    mass = fan_w.sum(axis=1)
+    out[:, 0] = np.where(is_fan, (fan_w * (diff <= width_deg)).sum(axis=1) / (mass + _PRIOR), 0.0)
+    out[:, 1] = np.where(is_fan, (fan_w * (diff >= 180.0 - width_deg)).sum(axis=1) / (mass + _PRIOR), 0.0)
+    out[:, 2] = np.log1p(mass)
+    best = np.sort(score[is_fan])[::-1][:top]
+    level = float(best.mean()) if len(best) else 0.0
+    out[:, 3] = score / max(level, 1e-3)
+    out[:, 4] = level
+    return out
+
+
+def block_keys(image, row0, col0, width, height, *, tiles=CONTEXT_BLOCK_TILES):
+    """The context block of each tile: its image and the cell of :data:`CONTEXT_BLOCK_TILES` tiles its
+    top-left corner falls in.
+
+    Parameters
+    ----------
+    image : array_like of str, shape (n,)
+    row0, col0 : array_like of float, shape (n,)
+        Each tile's top-left pixel in its image (NaN when unknown).
+    width, height : array_like of float, shape (n,)
+        Each tile's size, px; an image's cells are measured in its largest tile (edge tiles of a
+        cut image are smaller).
+
+    Returns
+    -------
+    list of str
+        Tiles whose place is unknown form blocks of as many tiles as a cell holds, in their
+        given order.
+    """
+    image = [str(i) for i in image]
+    row0, col0 = np.asarray(row0, dtype=float), np.asarray(col0, dtype=float)
+    width, height = np.asarray(width, dtype=float), np.asarray(height, dtype=float)
+    placed = np.isfinite(row0) & np.isfinite(col0)
+    size = {}
+    for img, w, h in zip(np.asarray(image, dtype=object)[placed], width[placed], height[placed]):
+        W, H = size.get(img, (1.0, 1.0))
+        size[img] = (max(W, w), max(H, h))
+    per_cell = tiles[0] * tiles[1]
+    keys, unplaced = [], {}
+    for img, r, c, here in zip(image, row0, col0, placed):
+        if here:
+            W, H = size[img]
+            keys.append(f"{img}|{int(r // (tiles[0] * H))}|{int(c // (tiles[1] * W))}")
+        else:
+            k = unplaced[img] = unplaced.get(img, -1) + 1
+            keys.append(f"{img}|unplaced|{k // per_cell}")
+    return keys
+
+
+def context_matrix(F, score, owner, is_fan, direction_deg, group=None, block=None):
     """The context model's input rows: object features, the first score's logit, context features.
 
     Parameters
@@ -100,7 +202,10 @@ def context_matrix(F, score, owner, is_fan, direction_deg, group=None):
         As in :func:`context_features`.
     group : ndarray of shape (n,), optional
         The tile of each reading (readings of different tiles never see each
-        other); default: all readings are of one tile.
+        other in the tile features); default: all readings are of one tile.
+    block : ndarray of shape (n,), optional
+        The context block of each reading (:func:`block_keys`); default: the readings'
+        tiles are one block.
 
     Returns
     -------
@@ -111,18 +216,25 @@ def context_matrix(F, score, owner, is_fan, direction_deg, group=None):
     F = np.asarray(F, dtype=np.float32)
     score = np.asarray(score, dtype=np.float64)
     owner, is_fan, direction = np.asarray(owner), np.asarray(is_fan, bool), np.asarray(direction_deg, float)
+    group = np.zeros(len(F), dtype=int) if group is None else np.asarray(group)
+    block = np.zeros(len(F), dtype=int) if block is None else np.asarray(block)
     ctx = np.zeros((len(F), len(CONTEXT_FEATURE_NAMES)), dtype=np.float32)
-    if group is None:
-        ctx = context_features(owner, is_fan, direction, score)
-    else:
-        _, code = np.unique(np.asarray(group), return_inverse=True)
-        order = np.argsort(code, kind="stable")
-        bounds = np.flatnonzero(np.diff(code[order])) + 1
-        for idx in np.split(order, bounds):
-            if len(idx):
-                ctx[idx] = context_features(owner[idx], is_fan[idx], direction[idx], score[idx])
+    for idx in _groups(group):
+        ctx[idx, :_N_TILE] = context_features(owner[idx], is_fan[idx], direction[idx], score[idx])
+    component = np.char.add(np.char.add(group.astype(str), "#"), owner.astype(str)) if len(F) else owner
+    for idx in _groups(block):
+        ctx[idx, _N_TILE:] = block_features(component[idx], is_fan[idx], direction[idx], score[idx])
     Z = np.column_stack([F, score_logit(score)[:, None], ctx]).astype(np.float32)
     return np.round(Z, 4)
+
+
+def _groups(key):
+    """Index arrays of the rows sharing each value of ``key``."""
+    if len(key) == 0:
+        return []
+    _, code = np.unique(key, return_inverse=True)
+    order = np.argsort(code, kind="stable")
+    return np.split(order, np.flatnonzero(np.diff(code[order])) + 1)
 
 
 def reading_layout(candidates):

@@ -3,7 +3,8 @@
 An input is either an image file (any raster GDAL reads: PNG, TIFF / GeoTIFF,
 JPEG 2000, ...) or a tile-set folder (one holding ``tiles.csv``). An image is
 cut into tiles by :func:`detector.gis.raster.plan_windows`; each tile is read with
-an overlap margin, screened with :func:`detector.inference.detect.detect_tile`, and only
+an overlap margin, screened with the other tiles of its context block
+(:func:`detector.inference.detect.detect_block`), and only
 the detections whose apex (fans) or centre (spots) lies in the tile's core are
 kept, so no feature is reported twice. A tile-set tile is screened whole and
 keeps its ``tile_id``.
@@ -206,7 +207,11 @@ def _run_tiles(journal, tasks, model_dir, *, min_score, workers, scheduler, prog
     journal.sweep()
     finished = journal.finished(tasks)
     n_resumed = len(finished)
-    todo = [(i, t) for i, t in enumerate(tasks) if i not in finished]
+    n_todo = len(tasks) - n_resumed
+    # A tile is read with the other tiles of its context block; a block with a tile left to do is
+    # read whole again (its finished tiles come out the same and are not written twice).
+    todo = [[(i, tasks[i]) for i in block] for block in _context_blocks(tasks)
+            if any(i not in finished for i in block)]
     model_arg = str(model_dir.resolve())
     cluster = {}  # the Dask run says how many workers it had
     if scheduler:
@@ -219,12 +224,27 @@ def _run_tiles(journal, tasks, model_dir, *, min_score, workers, scheduler, prog
     t_tiles = time.perf_counter()
     with _progress(len(tasks), n_resumed, progress) as bar, contextlib.closing(results):
         for index, entry in results:
+            if index in finished:
+                continue
             journal.write(index, entry)  # the entry is not kept: the outputs read the journal
             pixels += entry["pixels"]
             bar.update(1)
     t_tiles = time.perf_counter() - t_tiles
-    return {"n_resumed": n_resumed, "n_computed": len(todo), "pixels": pixels, "tile_seconds": t_tiles,
+    return {"n_resumed": n_resumed, "n_computed": n_todo, "pixels": pixels, "tile_seconds": t_tiles,
             "workers": cluster.get("workers")}
+
+
+def _context_blocks(tasks):
+    """Indices of the tasks of each context block (:func:`detector.objects.context.block_keys`), in
+    task order."""
+    from ..objects.context import block_keys
+
+    keys = block_keys([t.image for t in tasks], [t.row0 for t in tasks], [t.col0 for t in tasks],
+                      [t.width for t in tasks], [t.height for t in tasks])
+    blocks = {}
+    for i, key in enumerate(keys):
+        blocks.setdefault(key, []).append(i)
+    return list(blocks.values())
 
 
 def _summary(out, run, totals, per_image, seconds, workers):

@@ -65,20 +65,44 @@ def _canvas_block(array, mask, task):
             "values": data}
 
 
-def _screen_tile(index, task, model_dir, min_score=None):
-    """Screen one tile; returns ``(index, entry)`` with its tiles.csv row and detections (plain lists)."""
+def _screen_block(block, model_dir, min_score=None):
+    """Screen the tiles of one context block (:mod:`detector.objects.context`) together.
+
+    Parameters
+    ----------
+    block : list of (int, _TileTask)
+    model_dir : str
+    min_score : float or None
+
+    Returns
+    -------
+    list of (int, dict)
+        ``(index, entry)`` of every tile, its entry holding its tiles.csv row and detections
+        (plain lists).
+    """
     from .._allocator import reuse_freed_memory
-    from ..inference.detect import detect_tile
-    from ..inference.unfamiliar import unfamiliarity_parts, unfamiliarity_score
+    from ..inference.detect import detect_block
 
     reuse_freed_memory()
     model = cached_model(model_dir)
+    started = [_start_tile(index, task) for index, task in block]
+    live = [s for s in started if s["array"] is not None]
+    results = detect_block(model, [s["array"] for s in live], tile_ids=[s["task"].tile_id for s in live],
+                           nodata_masks=[s["mask"] for s in live], min_score=min_score,
+                           metres_per_px=[s["scale"] if s["task"].at_model_scale else None for s in live])
+    for state, result in zip(live, results):
+        _finish_tile(state, result, model)
+    return [(state["index"], state["entry"]) for state in started]
+
+
+def _start_tile(index, task):
+    """Read one tile's window and fill what its tiles.csv row knows before detection; ``array`` is
+    None when the tile is not scored (its core is mostly no-data) and its entry is complete."""
     src, georef = _cached_source(task.path, task.band, task.nodata)
     array, mask = src.read(task.window)
     if task.canvas_step:
         entry_canvas = _canvas_block(array, mask, task)
     core = task.window.core_slices
-    dy, dx = core[0].start, core[1].start
     valid_share = float(1.0 - mask[core].mean())
     row = {
         "tile_id": task.tile_id, "image": task.image, "col0": task.col0, "row0": task.row0,
@@ -95,11 +119,19 @@ def _screen_tile(index, task, model_dir, min_score=None):
     if valid_share < MIN_VALID_SHARE:
         row["route"] = "nodata"
         entry.update(tile=row, detections=_empty_detections())
-        return index, entry
+        return {"index": index, "task": task, "entry": entry, "array": None}
 
-    scale = _ground_scale(task, georef)
-    result = detect_tile(model, array, tile_id=task.tile_id, nodata_mask=mask, min_score=min_score,
-                         metres_per_px=scale if task.at_model_scale else None)
+    return {"index": index, "task": task, "entry": entry, "row": row, "array": array, "mask": mask,
+            "georef": georef, "scale": _ground_scale(task, georef)}
+
+
+def _finish_tile(state, result, model):
+    """Fill a started tile's entry from its detection result."""
+    from ..inference.unfamiliar import unfamiliarity_parts, unfamiliarity_score
+
+    task, entry, row, georef, scale = state["task"], state["entry"], state["row"], state["georef"], state["scale"]
+    core = task.window.core_slices
+    dy, dx = core[0].start, core[1].start
     det = result.detections.reset_index(drop=True)
     x = pd.to_numeric(det["x_px"], errors="coerce").to_numpy(dtype=float) - dx
     y = pd.to_numeric(det["y_px"], errors="coerce").to_numpy(dtype=float) - dy
@@ -170,7 +202,6 @@ def _screen_tile(index, task, model_dir, min_score=None):
     row.update(zip(SHARE_COLUMNS, (float(v) for v in shares[0])))
     row["covered_m2"] = (row["fan_cover"] + row["spot_cover"]) * row["area_m2"]
     entry.update(tile=row, detections={c: det[c].tolist() for c in det.columns})
-    return index, entry
 
 
 def _ground_scale(task, georef):
@@ -235,9 +266,9 @@ def _check_workers(workers):
     return int(workers)
 
 
-def _run_serial(todo, model_dir, min_score):
-    for index, task in todo:
-        yield _screen_tile(index, task, model_dir, min_score)
+def _run_serial(blocks, model_dir, min_score):
+    for block in blocks:
+        yield from _screen_block(block, model_dir, min_score)
 
 
 _PARENT_POLL_S = 0.5
@@ -271,20 +302,21 @@ def _exit_with_parent():
     threading.Thread(target=watch, name="frostvane-parent-watch", daemon=True).start()
 
 
-def _screen_tile_local(index, task, model_dir, min_score):
-    """:func:`_screen_tile` in a local worker that ends with its parent."""
+def _screen_block_local(block, model_dir, min_score):
+    """:func:`_screen_block` in a local worker that ends with its parent."""
     _exit_with_parent()
-    return _screen_tile(index, task, model_dir, min_score)
+    return _screen_block(block, model_dir, min_score)
 
 
-def _run_loky(todo, model_dir, min_score, workers):
+def _run_loky(blocks, model_dir, min_score, workers):
     from joblib import Parallel, delayed
 
     parallel = Parallel(n_jobs=workers, backend="loky", return_as="generator_unordered")
-    yield from parallel(delayed(_screen_tile_local)(index, task, model_dir, min_score) for index, task in todo)
+    for done in parallel(delayed(_screen_block_local)(block, model_dir, min_score) for block in blocks):
+        yield from done
 
 
-def _run_dask(todo, model_dir, min_score, scheduler, info=None):
+def _run_dask(blocks, model_dir, min_score, scheduler, info=None):
     from distributed import as_completed
 
     from ..cluster import connect, worker_count
@@ -292,13 +324,10 @@ def _run_dask(todo, model_dir, min_score, scheduler, info=None):
     with connect(scheduler) as client:
         if info is not None:
             info["workers"] = worker_count(client)
-        futures = client.map(
-            _screen_tile, [i for i, _ in todo], [t for _, t in todo], model_dir=model_dir, min_score=min_score,
-            pure=False,
-        )
+        futures = client.map(_screen_block, blocks, model_dir=model_dir, min_score=min_score, pure=False)
         try:
             for future in as_completed(futures):
-                yield future.result()
+                yield from future.result()
         finally:
             client.cancel(futures)
 

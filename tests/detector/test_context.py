@@ -1,4 +1,4 @@
-"""A reading's tile context: how the other components' fan readings point.
+"""A reading's tile and block context: how the other components' fan readings point.
 
 The expected values are worked by hand from the definitions in
 :mod:`detector.objects.context`; angular differences wrap at 360 degrees as
@@ -14,8 +14,12 @@ from skimage import draw
 
 from detector.objects.assemble import AssemblyParams, find_candidates, local_darkness, reading_matrix
 from detector.objects.context import (
+    BLOCK_TOP_READINGS,
+    CONTEXT_BLOCK_TILES,
     CONTEXT_FEATURE_NAMES,
     CONTEXT_WIDTH_DEG,
+    block_features,
+    block_keys,
     context_features,
     context_matrix,
     reading_layout,
@@ -81,8 +85,9 @@ def test_directions_wrap_at_360_degrees(a, b, agree):
 def test_readings_of_other_tiles_are_not_seen():
     owner, is_fan, direction, score = _three_components()
     F = np.zeros((12, 3), np.float32)
+    tiles = np.array(["b"] * 6 + ["a"] * 6, dtype=object)
     both = context_matrix(F, np.tile(score, 2), np.tile(owner, 2), np.tile(is_fan, 2), np.tile(direction, 2),
-                          group=np.array(["b"] * 6 + ["a"] * 6, dtype=object))
+                          group=tiles, block=tiles)
     one = context_matrix(F[:6], score, owner, is_fan, direction)
     np.testing.assert_array_equal(both[:6], one)
     np.testing.assert_array_equal(both[6:], one)
@@ -115,3 +120,64 @@ def test_layout_follows_the_reading_matrix():
     assert np.isnan(direction[~is_fan]).all() and np.isfinite(direction[is_fan]).all()
     expected = [f["direction_deg"] for c in cands for f in c.fans]
     np.testing.assert_allclose(direction[is_fan], expected)
+
+
+BLOCK = {name: i for i, name in enumerate(CONTEXT_FEATURE_NAMES[6:])}
+
+
+def test_block_features_see_the_other_tiles():
+    # the three components of one tile, and a second tile with one fan (15 deg, 0.5) and its spot (0.2)
+    owner, is_fan, direction, score = _three_components()
+    F = np.zeros((8, 2), np.float32)
+    owner = np.concatenate([owner, [0, 0]])
+    is_fan = np.concatenate([is_fan, [True, False]])
+    direction = np.concatenate([direction, [15.0, np.nan]])
+    score = np.concatenate([score, [0.5, 0.2]])
+    tiles = np.array(["t1"] * 6 + ["t2"] * 2, dtype=object)
+    Z = context_matrix(F, score, owner, is_fan, direction, group=tiles)
+    blk = Z[:, 3 + 6:]
+    # the first fan (10 deg, 0.8): the others' fan score over both tiles is 0.6 + 0.4 + 0.5, of which 0.6 and
+    # 0.5 agree and 0.4 opposes; component 0 of the second tile is another component than component 0 of the first
+    assert blk[0, BLOCK["blk_agree"]] == pytest.approx(round(1.1 / 2.0, 4), abs=1e-6)
+    assert blk[0, BLOCK["blk_oppose"]] == pytest.approx(round(0.4 / 2.0, 4), abs=1e-6)
+    assert blk[0, BLOCK["blk_log_fan_mass"]] == pytest.approx(round(np.log1p(1.5), 4), abs=1e-6)
+    # the block's fan first scores are 0.8, 0.6, 0.5 and 0.4: fewer than BLOCK_TOP_READINGS, so all count
+    assert BLOCK_TOP_READINGS >= 4
+    assert blk[0, BLOCK["blk_top_score"]] == pytest.approx(0.575, abs=1e-6)
+    assert blk[6, BLOCK["blk_relative_score"]] == pytest.approx(round(0.5 / 0.575, 4), abs=1e-6)
+    # the tile features still see their own tile only
+    np.testing.assert_array_equal(Z[:6, :3 + 6], context_matrix(F[:6], score[:6], owner[:6], is_fan[:6],
+                                                                 direction[:6])[:, :3 + 6])
+
+
+def test_block_level_averages_the_best_fan_scores_only():
+    scores = np.array([0.9, 0.8, 0.7, 0.6, 0.5, 0.4, 0.1])
+    n = len(scores)
+    blk = block_features(np.arange(n), np.ones(n, bool), np.zeros(n), scores)
+    level = np.sort(scores)[-BLOCK_TOP_READINGS:].mean()
+    np.testing.assert_allclose(blk[:, BLOCK["blk_top_score"]], level, rtol=1e-6)
+    np.testing.assert_allclose(blk[:, BLOCK["blk_relative_score"]], scores / level, rtol=1e-6)
+    # spot readings count in neither the level nor the fan mass; a block without fans has level 0
+    none = block_features(np.arange(3), np.zeros(3, bool), np.full(3, np.nan), np.array([0.9, 0.5, 0.2]))
+    assert np.all(none[:, BLOCK["blk_top_score"]] == 0) and np.all(none[:, BLOCK["blk_log_fan_mass"]] == 0)
+    assert np.isfinite(none).all()
+
+
+def test_block_keys_gather_four_by_two_tiles():
+    # a 2200 x 2800 px image (width x height) cut into 800 x 600 px tiles: 5 rows of 3 tiles, the last
+    # row and column smaller; cells of 4 x 2 tiles are measured in the largest tile (2400 x 1600 px)
+    assert CONTEXT_BLOCK_TILES == (4, 2)
+    rows, cols = np.meshgrid([0.0, 600.0, 1200.0, 1800.0, 2400.0], [0.0, 800.0, 1600.0], indexing="ij")
+    width = np.where(cols == 1600.0, 600.0, 800.0)
+    height = np.where(rows == 2400.0, 400.0, 600.0)
+    keys = block_keys(["img"] * 15, rows.ravel(), cols.ravel(), width.ravel(), height.ravel())
+    grid = np.array(keys).reshape(5, 3)
+    assert len(set(grid[:4, :2].ravel())) == 1
+    assert len(set(keys)) == 4
+    assert grid[4, 0] != grid[0, 0] and grid[0, 2] != grid[0, 0] and grid[4, 2] != grid[4, 0]
+    # another image never shares a block; tiles of unknown place go 8 to a block, in their order
+    assert block_keys(["other"], [0.0], [0.0], [800.0], [600.0])[0] != grid[0, 0]
+    n = 17
+    unplaced = block_keys(["img"] * n, [np.nan] * n, [np.nan] * n, [800.0] * n, [600.0] * n)
+    assert sorted(unplaced.count(k) for k in set(unplaced)) == [1, 8, 8]
+    assert unplaced[0] == unplaced[7] != unplaced[8]

@@ -6,7 +6,7 @@ import pytest
 
 from detector.objects.assemble import OBJECT_COLUMNS
 from detector.contract import DETECTION_COLUMNS
-from detector.inference.detect import detect_tile
+from detector.inference.detect import detect_block, detect_tile
 from detector.inference.model import load_model
 from detector.tileset import load_tileset
 
@@ -97,3 +97,22 @@ def test_a_tile_noisier_than_every_fitting_tile_is_smoothed_and_flagged(model_an
     result = detect_tile(model, noisy, tile_id=tile_id)
     assert result.smoothed and result.noise > limit
     assert result.noise == pytest.approx(np.hypot(plain.noise, 4.0 / 255), rel=0.1)  # noises add in variance
+
+
+def test_a_block_reads_its_tiles_together_in_any_order(model_and_tile, tiny_tileset):
+    # One result per tile, in the order given; a tile with no dark component adds no reading, so a tile
+    # read beside it is read as alone; two tiles with readings give the same results in either order.
+    model, tile, tile_id = model_and_tile
+    blank = np.full_like(tile, int(np.median(tile)))
+    alone = detect_tile(model, tile, tile_id=tile_id, min_score=0.0)
+    first, empty = detect_block(model, [tile, blank], tile_ids=[tile_id, "blank"], min_score=0.0)
+    pd.testing.assert_frame_equal(first.detections, alone.detections)
+    assert empty.tile_id == "blank" and len(empty.detections) == 0
+    tileset = load_tileset(tiny_tileset)
+    other_id = tileset.tiles["tile_id"].iloc[1]
+    other = tileset.read_tile(other_id)
+    a, b = detect_block(model, [tile, other], tile_ids=[tile_id, other_id], min_score=0.0)
+    b2, a2 = detect_block(model, [other, tile], tile_ids=[other_id, tile_id], min_score=0.0)
+    pd.testing.assert_frame_equal(a.detections, a2.detections)
+    pd.testing.assert_frame_equal(b.detections, b2.detections)
+    assert (a.detections["tile_id"] == tile_id).all() and (b.detections["tile_id"] == other_id).all()

@@ -104,7 +104,7 @@ def test_other_feature_parameters_ask_for_re_export(model_copy):
 def test_model_without_tile_context_asks_for_re_export(model_copy):
     # A model made before the context model existed, or with other context features.
     _edit_card(model_copy, lambda c: c.pop("context_features"))
-    with pytest.raises(SpecError, match="tile-context features None.*re-export"):
+    with pytest.raises(SpecError, match="context features None.*re-export"):
         load_model(model_copy)
     _edit_card(model_copy, lambda c: c.update(context_features=["ctx_agree"]))
     with pytest.raises(SpecError, match=r"\['ctx_agree'\].*re-export"):

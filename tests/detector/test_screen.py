@@ -849,7 +849,7 @@ def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale_when_aske
     # are, they are counted as off the model's scale; with at_model_scale each is read resampled to twice
     # its size and its detections come back in its own pixels.
     from training.synth import synthesize_tileset
-    from detector.inference.detect import detect_tile
+    from detector.inference.detect import detect_block
     from detector.inference.model import load_model
     from detector.tile.scale import PixelScale
 
@@ -875,9 +875,10 @@ def test_tiles_of_another_ground_scale_are_screened_at_the_model_scale_when_aske
     detections = pd.read_csv(out / "detections.csv")
     tiles = pd.read_csv(out / "tiles.csv").set_index("tile_id")
     model = load_model(folder)
-    for tile_id, path in zip(listed["tile_id"], listed["path"]):
-        tile = np.asarray(Image.open(root / path))
-        result = detect_tile(model, tile, tile_id=tile_id, metres_per_px=0.5)
+    # the image's two tiles make one context block, read together as screening reads them
+    block = detect_block(model, [np.asarray(Image.open(root / path)) for path in listed["path"]],
+                         tile_ids=listed["tile_id"], metres_per_px=[0.5] * len(listed))
+    for tile_id, result in zip(listed["tile_id"], block):
         assert result.resampled and result.read_shape == (384, 512)
         mine = detections[detections["tile_id"] == tile_id].reset_index(drop=True)
         assert len(mine) == len(result.detections)

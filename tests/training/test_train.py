@@ -334,7 +334,7 @@ def test_training_on_a_cluster_gives_the_local_model(tmp_path, monkeypatch):
     assert remote["training"]["readings"] == local["training"]["readings"]
     assert remote["training"]["patches"] == local["training"]["patches"]
     # Every loop ran there, and the run says on how many workers.
-    for function in ("_extract_one", "_tile_readings", "_run_one"):
+    for function in ("_extract_one", "_tile_readings", "_run_block"):
         assert any(function in prefix for prefix in ran), (function, ran)
     assert lines[0] == f"workers: 2 on the Dask cluster of {address} (2 threads)"
     assert remote["training"]["config"]["workers"] == 2 and remote["training"]["config"]["scheduler"] == address

@@ -153,7 +153,7 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     vectors : ndarray of shape (n, d)
         Each tile's mean feature vector, standardised by the model's unfamiliarity statistics.
     """
-    from detector.inference.detect import detect_tile
+    from detector.inference.detect import detect_block
     from detector.inference.model import load_model
     from detector.objects.assemble import AssemblyParams
     from detector.tileset import load_tileset
@@ -165,11 +165,19 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     if unknown:
         raise DetectorError(f"tile(s) {unknown[:3]!r} are not in {str(tileset_root)!r}.")
     stats = model.card.get("unfamiliarity") or {}
-    rows, vectors = [], []
+    from ..evaluation.evaluate import tile_blocks
+
+    results = {}
     floor = min(READING_FLOOR, AssemblyParams.from_dict(model.assembly).min_score)
+    for block in tile_blocks(tileset, ids):
+        # one reading of each tile, with its context block as screening reads it: the objects at the
+        # model's threshold (what screening keeps) and at the floor
+        for tile_id, result in zip(block, detect_block(model, [tileset.read_tile(t) for t in block],
+                                                       tile_ids=block, floor_score=floor)):
+            results[tile_id] = result
+    rows, vectors = [], []
     for tile_id in ids:
-        # one reading of the tile: the objects at the model's threshold (what screening keeps) and at the floor
-        result = detect_tile(model, tileset.read_tile(tile_id), tile_id=tile_id, floor_score=floor)
+        result = results[tile_id]
         rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(result.floor_detections["score"]),
                      "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
                      "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))})

@@ -8,7 +8,7 @@ from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_COLUMNS
 from detector.contract import DETECTION_COLUMNS, TRUTH_FILE
-from detector.inference.detect import detect_tile
+from detector.inference.detect import detect_block
 from detector.errors import DetectorError, TileSetError
 from detector.tile.features import patch_targets
 from detector.tile.scale import frame_factors, to_read_frame
@@ -25,41 +25,62 @@ from .matching import match_objects
 from .directions import matched_fans
 from .scoring import patch_metrics, score_catalogs
 
-__all__ = ["run_on_tiles", "unfamiliar_flags", "evaluate_tiles", "tune_assembly", "paired_standard_error_choice",
-           "summarise_for_card", "evaluate_model",
-           "write_detections_csv", "confidence_validation"]
+__all__ = ["run_on_tiles", "tile_blocks", "unfamiliar_flags", "evaluate_tiles", "tune_assembly",
+           "paired_standard_error_choice", "summarise_for_card", "evaluate_model", "write_detections_csv",
+           "confidence_validation"]
 
 
-def _run_one(model, tileset, tile_id, tau, min_score=None, at_model_scale=False):
-    """Detections and patch targets of one labelled tile (``model`` is a Model or a model folder)."""
+def _run_block(model, tileset, tile_ids, tau, min_score=None, at_model_scale=False):
+    """Detections and patch targets of the labelled tiles of one context block (``model`` is a Model
+    or a model folder), one tuple per tile."""
     reuse_freed_memory()
     if not hasattr(model, "feature_spec"):
         model = cached_model(model)
     spec = model.feature_spec
-    tile = tileset.read_tile(tile_id)
-    nodata = tile == spec.nodata_value
-    # detect_tile prepares the tile once (smoothing it when it is noisier than the fitting tiles);
+    tiles = [tileset.read_tile(tid) for tid in tile_ids]
+    nodata = [tile == spec.nodata_value for tile in tiles]
+    # detect_block prepares each tile once (smoothing it when it is noisier than the fitting tiles);
     # the patch targets need only its grid.
-    result = detect_tile(model, tile, tile_id=tile_id, nodata_mask=nodata, min_score=min_score,
-                         metres_per_px=tileset.metres_per_px(tile_id) if at_model_scale else None)
-    grid = result.grid
-    # The patch grid is in the frame the tile was read in (resampled when its scale is not the model's).
-    features = tileset.features_of(tile_id)
-    if result.resampled:
-        features = to_read_frame(features, *frame_factors(tile.shape, result.read_shape))
-    masks = rasterise_features(features, result.read_shape)
-    targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
-    valid = np.asarray(grid.valid, dtype=bool)
-    info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
-            "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
-            "shape": tile.shape, "valid_fraction": result.valid_fraction,
-            "noise": result.noise, "smoothed": result.smoothed, "resampled": result.resampled}
-    return result.detections, np.asarray(targets.label)[valid], result.proba[valid], info
+    results = detect_block(model, tiles, tile_ids=tile_ids, nodata_masks=nodata, min_score=min_score,
+                           metres_per_px=[tileset.metres_per_px(tid) if at_model_scale else None
+                                          for tid in tile_ids])
+    out = []
+    for tile_id, tile, result in zip(tile_ids, tiles, results):
+        grid = result.grid
+        # The patch grid is in the frame the tile was read in (resampled when its scale is not the model's).
+        features = tileset.features_of(tile_id)
+        if result.resampled:
+            features = to_read_frame(features, *frame_factors(tile.shape, result.read_shape))
+        masks = rasterise_features(features, result.read_shape)
+        targets = patch_targets(grid, masks.fan_cover, masks.spot_cover, masks.fan_direction, tau=tau)
+        valid = np.asarray(grid.valid, dtype=bool)
+        info = {"tile_id": tile_id, "p_deposit": result.p_deposit, "summary": result.summary,
+                "consensus_px": int((masks.fan_cover | masks.spot_cover).sum()),
+                "shape": tile.shape, "valid_fraction": result.valid_fraction,
+                "noise": result.noise, "smoothed": result.smoothed, "resampled": result.resampled}
+        out.append((result.detections, np.asarray(targets.label)[valid], result.proba[valid], info))
+    return out
+
+
+def tile_blocks(tileset, tile_ids):
+    """The tiles of some tile ids gathered by context block (:func:`detector.objects.context.block_keys`),
+    each block in the order of ``tile_ids``, blocks in the order of their first tile."""
+    from detector.objects.context import block_keys
+
+    tiles = tileset.tiles.set_index("tile_id").loc[list(tile_ids)]
+    keys = block_keys(tiles["image_id"], tiles["row0"], tiles["col0"], tiles["width"], tiles["height"])
+    blocks = {}
+    for tid, key in zip(tile_ids, keys):
+        blocks.setdefault(key, []).append(tid)
+    return list(blocks.values())
 
 
 def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1, min_score=None,
                  at_model_scale=False):
     """Detections and patch-level targets of the model on labelled tiles.
+
+    The tiles are read by context block (:func:`tile_blocks`), as screening reads them; the
+    results come back in the order of ``tile_ids``.
 
     Parameters
     ----------
@@ -69,14 +90,14 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
     tau : float, optional
         Coverage threshold for the patch targets; default the model's training tau.
     workers : int, default=1
-        Local worker processes (joblib); each loads the model from its folder once.
-        Inside :func:`training.parallel.on_cluster` the tiles go to the Dask cluster
+        Local worker processes (joblib), one block at a time; each loads the model from its folder
+        once. Inside :func:`training.parallel.on_cluster` the blocks go to the Dask cluster
         instead, whose workers must see the model folder and the tile set by the
         same absolute paths.
     min_score : float, optional
         Smallest object score kept; default the model card's.
     at_model_scale : bool, default=False
-        Pass each tile's ``metres_per_px`` to :func:`detector.inference.detect.detect_tile`, so that a
+        Pass each tile's ``metres_per_px`` to :func:`detector.inference.detect.detect_block`, so that a
         tile outside the model's ground scale is read resampled to it.
 
     Returns
@@ -92,13 +113,16 @@ def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1
 
     tau = float(model.card["training"]["config"]["tau"]) if tau is None else tau
     tile_ids = list(tile_ids)
-    iterator = tqdm(tile_ids, desc=desc, unit="tile", leave=False, disable=None)  # None: quiet off a terminal
+    blocks = tile_blocks(tileset, tile_ids)
+    iterator = tqdm(blocks, desc=desc, unit="block", leave=False, disable=None)  # None: quiet off a terminal
     if workers > 1 or current_cluster() is not None:
         folder = str(Path(model.folder).absolute())  # workers may run in another folder
-        results = tile_parallel(workers)(delayed(_run_one)(folder, tileset, tid, tau, min_score, at_model_scale)
-                                         for tid in iterator)
+        done = tile_parallel(workers)(delayed(_run_block)(folder, tileset, block, tau, min_score, at_model_scale)
+                                      for block in iterator)
     else:
-        results = [_run_one(model, tileset, tid, tau, min_score, at_model_scale) for tid in iterator]
+        done = [_run_block(model, tileset, block, tau, min_score, at_model_scale) for block in iterator]
+    by_tile = {r[3]["tile_id"]: r for part in done for r in part}
+    results = [by_tile[tid] for tid in tile_ids]
     frames = [r[0] for r in results if len(r[0])]
     detections = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=OBJECT_COLUMNS)
     return {

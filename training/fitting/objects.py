@@ -15,7 +15,7 @@ from joblib import delayed
 from tqdm.auto import tqdm
 
 from detector.objects.assemble import OBJECT_FEATURE_NAMES, candidate_rows, reading_matrix
-from detector.objects.context import context_matrix, reading_layout
+from detector.objects.context import block_keys, context_matrix, reading_layout
 from detector.objects.refine import (REFINE_FEATURE_NAMES, REFINE_OUTPUTS, predict_refined, reading_shapes,
                                      refine_design, turn_directions)
 from detector.inference.detect import tile_candidates, tile_maps
@@ -60,6 +60,9 @@ class CandidateSet:
         The same sizes of a right reading's consensus feature (NaN for the others).
     turn_deg : ndarray of shape (n,)
         Signed angle from a right fan reading's direction to its consensus fan's (NaN for the others).
+    block_key : ndarray of shape (n,), object
+        The context block each reading was read in (:func:`detector.objects.context.block_keys`, and
+        the quarter turn): the tiles of one image read with one turn, as detection reads a block.
     """
 
     F: np.ndarray
@@ -73,6 +76,7 @@ class CandidateSet:
     own_size: np.ndarray
     true_size: np.ndarray
     turn_deg: np.ndarray
+    block_key: np.ndarray
 
     def __len__(self):
         return len(self.label)
@@ -83,7 +87,7 @@ class CandidateSet:
         if not parts:
             return cls(np.zeros((0, len(OBJECT_FEATURE_NAMES)), np.float32), np.zeros(0, int), np.zeros(0, object),
                        np.zeros(0), np.zeros(0, object), np.zeros(0, int), np.zeros(0, bool), np.zeros(0),
-                       np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0))
+                       np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0), np.zeros(0, object))
         return cls(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in dataclasses.fields(cls)))
 
 
@@ -226,7 +230,9 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     -------
     readings : CandidateSet
     """
-    image = tileset.tiles.set_index("tile_id")["image_id"]
+    tiles = tileset.tiles.set_index("tile_id")
+    image = tiles["image_id"]
+    block = dict(zip(tiles.index, block_keys(image, tiles["row0"], tiles["col0"], tiles["width"], tiles["height"])))
     jobs = list(jobs) if jobs is not None else [(tid, r) for tid in tile_ids for r in rotations]
     results = tile_parallel(workers)(
         delayed(_tile_readings)(tileset, tid, spec, predict_patches, predict_polarity, params, r, degrade,
@@ -236,7 +242,7 @@ def candidate_set(tileset, tile_ids, spec, predict_patches, predict_polarity, pa
     return CandidateSet.concat(
         CandidateSet(F, label, np.full(len(label), str(image[t]), dtype=object), error,
                      np.full(len(label), f"{t}/{r % 4}", dtype=object), owner, is_fan, direction, own, true,
-                     turn)
+                     turn, np.full(len(label), f"{block[t]}/{r % 4}", dtype=object))
         for (t, r), (F, label, error, owner, is_fan, direction, own, true, turn) in zip(jobs, results)
     )
 
@@ -254,7 +260,7 @@ def context_rows(readings, first_score):
     ndarray, see :func:`detector.objects.context.context_matrix`
     """
     return context_matrix(readings.F, first_score, readings.owner, readings.is_fan, readings.direction_deg,
-                          group=readings.tile_key)
+                          group=readings.tile_key, block=readings.block_key)
 
 
 #: Reading features the direction confidence is fitted on.
