@@ -133,22 +133,62 @@ def block_features(component, is_fan, direction_deg, score, *, width_deg=CONTEXT
     """
     _, component = np.unique(np.asarray(component), return_inverse=True)
     is_fan = np.asarray(is_fan, dtype=bool)
-    direction = np.where(is_fan, np.asarray(direction_deg, dtype=np.float64), 0.0)
+    direction = np.where(is_fan, np.asarray(direction_deg, dtype=np.float64) % 360.0, 0.0)
     score = np.clip(np.asarray(score, dtype=np.float64), 0.0, 1.0)
     out = np.zeros((len(component), len(CONTEXT_FEATURE_NAMES) - _N_TILE), dtype=np.float32)
     if len(component) == 0:
         return out
-    fan_w = np.where(is_fan, score, 0.0)[None, :] * (component[:, None] != component[None, :])
-    diff = np.abs((direction[:, None] - direction[None, :] + 180.0) % 360.0 - 180.0)
-    mass = fan_w.sum(axis=1)
-    out[:, 0] = np.where(is_fan, (fan_w * (diff <= width_deg)).sum(axis=1) / (mass + _PRIOR), 0.0)
-    out[:, 1] = np.where(is_fan, (fan_w * (diff >= 180.0 - width_deg)).sum(axis=1) / (mass + _PRIOR), 0.0)
+    # A block holds thousands of readings: the sums over the other components are the sums over the
+    # whole block (windows over the sorted directions) less those over the reading's own component
+    # (its pairs), never an n x n matrix.
+    fan_score = np.where(is_fan, score, 0.0)
+    opposite = (direction + 180.0) % 360.0
+    own_i, own_j = _component_pairs(component)
+    own_fan = fan_score[own_j]
+    own_diff = np.abs((direction[own_i] - direction[own_j] + 180.0) % 360.0 - 180.0)
+    n = len(component)
+    own_mass = np.bincount(own_i, weights=own_fan, minlength=n)
+    own_agree = np.bincount(own_i, weights=own_fan * (own_diff <= width_deg), minlength=n)
+    own_oppose = np.bincount(own_i, weights=own_fan * (own_diff >= 180.0 - width_deg), minlength=n)
+    mass = np.maximum(fan_score.sum() - own_mass, 0.0)
+    agree = np.maximum(_window_sums(direction[is_fan], fan_score[is_fan], direction, width_deg) - own_agree, 0.0)
+    oppose = np.maximum(_window_sums(direction[is_fan], fan_score[is_fan], opposite, width_deg) - own_oppose, 0.0)
+    out[:, 0] = np.where(is_fan, agree / (mass + _PRIOR), 0.0)
+    out[:, 1] = np.where(is_fan, oppose / (mass + _PRIOR), 0.0)
     out[:, 2] = np.log1p(mass)
     best = np.sort(score[is_fan])[::-1][:top]
     level = float(best.mean()) if len(best) else 0.0
     out[:, 3] = score / max(level, 1e-3)
     out[:, 4] = level
     return out
+
+
+def _window_sums(direction, weight, centre, width_deg):
+    """For each centre, the sum of ``weight`` over the directions within ``width_deg`` of it (circular,
+    degrees in [0, 360); ``width_deg`` < 180)."""
+    if len(direction) == 0:
+        return np.zeros(len(centre))
+    order = np.argsort(direction, kind="stable")
+    d = direction[order]
+    ring = np.concatenate([d - 360.0, d, d + 360.0])
+    total = np.concatenate([[0.0], np.cumsum(np.tile(weight[order], 3))])
+    lo = np.searchsorted(ring, centre - width_deg, side="left")
+    hi = np.searchsorted(ring, centre + width_deg, side="right")
+    return total[hi] - total[lo]
+
+
+def _component_pairs(component):
+    """Every ordered pair (i, j) of readings of one component, i == j included."""
+    order = np.argsort(component, kind="stable")
+    code = component[order]
+    starts = np.flatnonzero(np.r_[True, code[1:] != code[:-1]])
+    sizes = np.diff(np.r_[starts, len(code)])
+    size_of = np.repeat(sizes, sizes)
+    start_of = np.repeat(starts, sizes)
+    i = np.repeat(np.arange(len(code)), size_of)
+    offset = np.arange(len(i)) - np.repeat(np.cumsum(size_of) - size_of, size_of)
+    j = np.repeat(start_of, size_of) + offset
+    return order[i], order[j]
 
 
 def block_keys(image, row0, col0, width, height, *, tiles=CONTEXT_BLOCK_TILES):

@@ -181,3 +181,36 @@ def test_block_keys_gather_four_by_two_tiles():
     unplaced = block_keys(["img"] * n, [np.nan] * n, [np.nan] * n, [800.0] * n, [600.0] * n)
     assert sorted(unplaced.count(k) for k in set(unplaced)) == [1, 8, 8]
     assert unplaced[0] == unplaced[7] != unplaced[8]
+
+
+def _block_by_pairs(component, is_fan, direction, score, width=CONTEXT_WIDTH_DEG):
+    """The block's agreement sums written out over every pair of readings (the definition)."""
+    n = len(component)
+    agree, oppose, mass = np.zeros(n), np.zeros(n), np.zeros(n)
+    for i in range(n):
+        for j in range(n):
+            if component[i] == component[j] or not is_fan[j]:
+                continue
+            mass[i] += score[j]
+            gap = abs((direction[i] - direction[j] + 180.0) % 360.0 - 180.0)
+            agree[i] += score[j] * (gap <= width)
+            oppose[i] += score[j] * (gap >= 180.0 - width)
+    return agree, oppose, mass
+
+
+def test_block_sums_equal_the_sums_over_every_pair():
+    # The block features sum over sorted directions, not over pairs; they must give the pairwise sums.
+    rng = np.random.default_rng(7)
+    n = 300
+    component = rng.integers(0, 40, n)
+    is_fan = rng.random(n) < 0.8
+    # directions bunched around a few winds, some across 0 / 360; spot readings have none
+    winds = rng.choice([0.0, 30.0, 150.0, 210.0, 359.5], n)
+    direction = np.where(is_fan, (winds + rng.normal(0.0, 20.0, n)) % 360.0, np.nan)
+    score = np.round(rng.random(n), 3)
+    agree, oppose, mass = _block_by_pairs(component, is_fan, direction, score)
+    blk = block_features(component, is_fan, direction, score)
+    prior = 0.5
+    np.testing.assert_allclose(blk[:, BLOCK["blk_agree"]], np.where(is_fan, agree / (mass + prior), 0), atol=1e-6)
+    np.testing.assert_allclose(blk[:, BLOCK["blk_oppose"]], np.where(is_fan, oppose / (mass + prior), 0), atol=1e-6)
+    np.testing.assert_allclose(blk[:, BLOCK["blk_log_fan_mass"]], np.log1p(mass), atol=1e-6)
