@@ -26,7 +26,7 @@ block before it scores any (:func:`detector.inference.detect.detect_block`).
 
 import numpy as np
 
-__all__ = ["CONTEXT_FEATURE_NAMES", "CONTEXT_WIDTH_DEG", "CONTEXT_BLOCK_TILES", "BLOCK_TOP_READINGS", "block_features",
+__all__ = ["CONTEXT_FEATURE_NAMES", "CONTEXT_WIDTH_DEG", "CONTEXT_BLOCK_TILES", "BLOCK_TOP_READINGS", "block_features", "context_blocks",
            "block_keys", "context_features", "context_matrix", "reading_layout", "score_logit"]
 
 #: A reading agrees with another component's fan reading when their directions are within this angle.
@@ -228,6 +228,20 @@ def block_keys(image, row0, col0, width, height, *, tiles=CONTEXT_BLOCK_TILES):
             k = unplaced[img] = unplaced.get(img, -1) + 1
             keys.append(f"{img}|unplaced|{k // per_cell}")
     return keys
+
+
+def context_blocks(image, row0, col0, width, height):
+    """The positions of the tiles of each context block (:func:`block_keys`), each block in the
+    tiles' order, blocks in the order of their first tile.
+
+    Returns
+    -------
+    list of list of int
+    """
+    blocks = {}
+    for i, key in enumerate(block_keys(image, row0, col0, width, height)):
+        blocks.setdefault(key, []).append(i)
+    return list(blocks.values())
 
 
 def context_matrix(F, score, owner, is_fan, direction_deg, group=None, block=None):

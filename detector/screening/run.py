@@ -75,6 +75,7 @@ from .folder import _RUN_FILE
 from .journal import _claim, _finite, _Journal, _mark_failed, _parameters, _version
 from .outputs import _write_outputs, ScreenSummary
 from .plan import _plan
+from ..objects.context import context_blocks
 from .workers import _check_workers, _progress, _run_dask, _run_loky, _run_serial
 
 __all__ = ["screen"]
@@ -210,8 +211,9 @@ def _run_tiles(journal, tasks, model_dir, *, min_score, workers, scheduler, prog
     n_todo = len(tasks) - n_resumed
     # A tile is read with the other tiles of its context block; a block with a tile left to do is
     # read whole again (its finished tiles come out the same and are not written twice).
-    todo = [[(i, tasks[i]) for i in block] for block in _context_blocks(tasks)
-            if any(i not in finished for i in block)]
+    blocks = context_blocks([t.image for t in tasks], [t.row0 for t in tasks], [t.col0 for t in tasks],
+                            [t.width for t in tasks], [t.height for t in tasks])
+    todo = [[(i, tasks[i]) for i in block] for block in blocks if any(i not in finished for i in block)]
     model_arg = str(model_dir.resolve())
     cluster = {}  # the Dask run says how many workers it had
     if scheduler:
@@ -232,19 +234,6 @@ def _run_tiles(journal, tasks, model_dir, *, min_score, workers, scheduler, prog
     t_tiles = time.perf_counter() - t_tiles
     return {"n_resumed": n_resumed, "n_computed": n_todo, "pixels": pixels, "tile_seconds": t_tiles,
             "workers": cluster.get("workers")}
-
-
-def _context_blocks(tasks):
-    """Indices of the tasks of each context block (:func:`detector.objects.context.block_keys`), in
-    task order."""
-    from ..objects.context import block_keys
-
-    keys = block_keys([t.image for t in tasks], [t.row0 for t in tasks], [t.col0 for t in tasks],
-                      [t.width for t in tasks], [t.height for t in tasks])
-    blocks = {}
-    for i, key in enumerate(keys):
-        blocks.setdefault(key, []).append(i)
-    return list(blocks.values())
 
 
 def _summary(out, run, totals, per_image, seconds, workers):

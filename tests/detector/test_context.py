@@ -20,6 +20,7 @@ from detector.objects.context import (
     CONTEXT_WIDTH_DEG,
     block_features,
     block_keys,
+    context_blocks,
     context_features,
     context_matrix,
     reading_layout,
@@ -181,6 +182,9 @@ def test_block_keys_gather_four_by_two_tiles():
     unplaced = block_keys(["img"] * n, [np.nan] * n, [np.nan] * n, [800.0] * n, [600.0] * n)
     assert sorted(unplaced.count(k) for k in set(unplaced)) == [1, 8, 8]
     assert unplaced[0] == unplaced[7] != unplaced[8]
+    # the blocks as positions, in the tiles' order
+    assert context_blocks(["a", "b", "a", "a"], [0.0, 0.0, 600.0, 2400.0], [0.0] * 4, [800.0] * 4,
+                          [600.0] * 4) == [[0, 2], [1], [3]]
 
 
 def _block_by_pairs(component, is_fan, direction, score, width=CONTEXT_WIDTH_DEG):

@@ -167,21 +167,18 @@ def describe_tiles(model_dir, tileset_root, tile_ids=None):
     stats = model.card.get("unfamiliarity") or {}
     from ..evaluation.evaluate import tile_blocks
 
-    results = {}
     floor = min(READING_FLOOR, AssemblyParams.from_dict(model.assembly).min_score)
+    row_of, vector_of = {}, {}
     for block in tile_blocks(tileset, ids):
         # one reading of each tile, with its context block as screening reads it: the objects at the
         # model's threshold (what screening keeps) and at the floor
         for tile_id, result in zip(block, detect_block(model, [tileset.read_tile(t) for t in block],
                                                        tile_ids=block, floor_score=floor)):
-            results[tile_id] = result
-    rows, vectors = [], []
-    for tile_id in ids:
-        result = results[tile_id]
-        rows.append({"tile_id": tile_id, "uncertainty": uncertain_objects(result.floor_detections["score"]),
-                     "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
-                     "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))})
-        vectors.append(result.summary)
+            row_of[tile_id] = {"tile_id": tile_id, "uncertainty": uncertain_objects(result.floor_detections["score"]),
+                               "patch_uncertainty": tile_uncertainty(result.proba, result.grid.valid),
+                               "p_deposit": result.p_deposit, "n_detections": int(len(result.detections))}
+            vector_of[tile_id] = result.summary
+    rows, vectors = [row_of[t] for t in ids], [vector_of[t] for t in ids]
     V = np.asarray(vectors, dtype=np.float64).reshape(len(ids), -1)
     if stats and len(V):
         V = (V - np.asarray(stats["mean"])) / np.asarray(stats["scale"])

@@ -63,16 +63,14 @@ def _run_block(model, tileset, tile_ids, tau, min_score=None, at_model_scale=Fal
 
 
 def tile_blocks(tileset, tile_ids):
-    """The tiles of some tile ids gathered by context block (:func:`detector.objects.context.block_keys`),
-    each block in the order of ``tile_ids``, blocks in the order of their first tile."""
-    from detector.objects.context import block_keys
+    """The tile ids gathered by context block (:func:`detector.objects.context.context_blocks`), each
+    block in the order of ``tile_ids``, blocks in the order of their first tile."""
+    from detector.objects.context import context_blocks
 
-    tiles = tileset.tiles.set_index("tile_id").loc[list(tile_ids)]
-    keys = block_keys(tiles["image_id"], tiles["row0"], tiles["col0"], tiles["width"], tiles["height"])
-    blocks = {}
-    for tid, key in zip(tile_ids, keys):
-        blocks.setdefault(key, []).append(tid)
-    return list(blocks.values())
+    tile_ids = list(tile_ids)
+    tiles = tileset.tiles.set_index("tile_id").loc[tile_ids]
+    blocks = context_blocks(tiles["image_id"], tiles["row0"], tiles["col0"], tiles["width"], tiles["height"])
+    return [[tile_ids[i] for i in block] for block in blocks]
 
 
 def run_on_tiles(model, tileset, tile_ids, *, tau=None, desc="detect", workers=1, min_score=None,
