@@ -18,7 +18,6 @@ model on each with ``frostvane evaluate`` at its own threshold. Writes ``image_v
 ``image_variants.json`` under ``--out``; the last line printed is one JSON object.
 """
 
-import json
 import shutil
 import sys
 import time
@@ -98,7 +97,7 @@ def main(argv=None):
 
 
 def _run(argv):
-    from tests.benchmarks.quality import fmt, quality_parser
+    from tests.benchmarks.quality import figure_cells, quality_parser, write_report
 
     parser = quality_parser(__doc__.splitlines()[0], seed=9191)
     args = parser.parse_args(argv)
@@ -140,18 +139,11 @@ def _run(argv):
     ]
     for name, r in rows.items():
         lines.append(
-            f"| {name} | {IMAGE_VARIANTS[name][0]} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
-            f"{r['fan_f1'] - ref['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - ref['spot_f1']:+.3f} | "
-            f"{fmt(r['fan_direction_median_deg'], 1)} / {fmt(r['fan_direction_p90_deg'], 1)} | "
-            f"{fmt(r['tile_mean_direction_median_deg'], 1)} | {fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
+            f"| {name} | {IMAGE_VARIANTS[name][0]} | {figure_cells(r, ref)} "
             f"{r['tiles_smoothed']} of {r['tiles']} | {r['tiles_unfamiliar']} of {r['tiles']} |")
     table = "\n".join(lines) + "\n"
-    (out / "image_variants.md").write_text(table)
-    summary = {"model": str(args.model), "images": args.images, "seed": args.seed,
-               "seconds": round(time.perf_counter() - started, 1), "variants": rows}
-    (out / "image_variants.json").write_text(json.dumps(summary, indent=1) + "\n")
-    print(table)
-    print(json.dumps({name: round(r["fan_f1"], 4) for name, r in rows.items()}))
+    write_report(out, "image_variants", table, args, started, "variants", rows,
+                 {name: round(r["fan_f1"], 4) for name, r in rows.items()})
 
 
 if __name__ == "__main__":

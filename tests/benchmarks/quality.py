@@ -1,8 +1,11 @@
 """What the quality scripts (``shift_factors.py``, ``image_variants.py``) share: their common
-options, one error line and exit 2 for what cannot be read, and the table's number format."""
+options, one error line and exit 2 for what cannot be read, the table's number format and common
+cells, and how a run's table and figures are written."""
 
 import argparse
+import json
 import sys
+import time
 
 
 def quality_parser(description, *, seed):
@@ -31,3 +34,24 @@ def run_reporting_errors(name, run, argv):
 def fmt(value, digits):
     """``value`` to ``digits`` decimals; empty for a figure that could not be computed (None)."""
     return "" if value is None else f"{value:.{digits}f}"
+
+
+def figure_cells(r, ref):
+    """The cells every quality table shares, from one set's figures ``r`` against the reference set's
+    ``ref``: fan F1 (precision / recall), its change, spot F1, its change, direction median / p90,
+    per-tile mean, Dice and the share of fans missed."""
+    return (f"{r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
+            f"{r['fan_f1'] - ref['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - ref['spot_f1']:+.3f} | "
+            f"{fmt(r['fan_direction_median_deg'], 1)} / {fmt(r['fan_direction_p90_deg'], 1)} | "
+            f"{fmt(r['tile_mean_direction_median_deg'], 1)} | {fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % |")
+
+
+def write_report(out, stem, table, args, started, key, rows, headline):
+    """Write ``stem``.md (the table) and ``stem``.json (the run's options, seconds and ``rows`` under
+    ``key``) in ``out``; print the table and then ``headline`` as one JSON line."""
+    (out / f"{stem}.md").write_text(table)
+    summary = {"model": str(args.model), "images": args.images, "seed": args.seed,
+               "seconds": round(time.perf_counter() - started, 1), key: rows}
+    (out / f"{stem}.json").write_text(json.dumps(summary, indent=1) + "\n")
+    print(table)
+    print(json.dumps(headline))

@@ -20,7 +20,6 @@ under ``--out``; the last line printed is one JSON object.
 """
 
 import dataclasses
-import json
 import sys
 import time
 from pathlib import Path
@@ -61,7 +60,7 @@ def main(argv=None):
 
 
 def _run(argv):
-    from tests.benchmarks.quality import fmt, quality_parser
+    from tests.benchmarks.quality import figure_cells, quality_parser, write_report
 
     parser = quality_parser(__doc__.splitlines()[0], seed=9090)
     parser.add_argument("--any-score", action="store_true", help="also score with every candidate kept")
@@ -111,22 +110,14 @@ def _run(argv):
     ]
     for group, entry in rows.items():
         r = entry["threshold"]
-        line = (f"| {group} | {r['fan_f1']:.3f} ({r['fan_precision']:.2f} / {r['fan_recall']:.2f}) | "
-                f"{r['fan_f1'] - base['fan_f1']:+.3f} | {r['spot_f1']:.3f} | {r['spot_f1'] - base['spot_f1']:+.3f} | "
-                f"{fmt(r['fan_direction_median_deg'], 1)} / {fmt(r['fan_direction_p90_deg'], 1)} | "
-                f"{fmt(r['tile_mean_direction_median_deg'], 1)} | {fmt(r['dice_mean'], 2)} | {100 * r['fans_missed']:.0f} % | "
-                f"{100 * r['spots_missed']:.0f} % |")
+        line = f"| {group} | {figure_cells(r, base)} {100 * r['spots_missed']:.0f} % |"
         if args.any_score:
             a = entry["any_score"]
             line += f" {100 * a['fans_matched']:.0f} % | {100 * a['spots_matched']:.0f} % |"
         lines.append(line)
     table = "\n".join(lines) + "\n"
-    (out / "factors.md").write_text(table)
-    summary = {"model": str(args.model), "images": args.images, "seed": args.seed,
-               "seconds": round(time.perf_counter() - started, 1), "groups": rows}
-    (out / "factors.json").write_text(json.dumps(summary, indent=1) + "\n")
-    print(table)
-    print(json.dumps({g: round(e["threshold"]["fan_f1"], 4) for g, e in rows.items()}))
+    write_report(out, "factors", table, args, started, "groups", rows,
+                 {g: round(e["threshold"]["fan_f1"], 4) for g, e in rows.items()})
 
 
 if __name__ == "__main__":
