@@ -1,4 +1,4 @@
-"""What the quality scripts (``shift_factors.py``, ``image_variants.py``) share: their common
+"""What the quality scripts (``shift_factors.py``, ``image_variants.py``, ``dev_sets.py``) share: their common
 options, one error line and exit 2 for what cannot be read, the table's number format and common
 cells, and how a run's table and figures are written."""
 
