@@ -16,7 +16,7 @@ another seed moves fan F1 by about 0.007).
 ``--sets DIR`` reuses sets rendered by an earlier run (each set folder holds the settings it was
 rendered with, checked before reuse), so a model built from another checkout is scored on the very
 same tiles; ``--against JSON`` takes an earlier run's ``dev_sets.json`` as the reference of the change
-columns (default: the first set's own figures, change 0). Writes ``dev_sets.md`` and
+columns (default: each set's own figures, change 0). Writes ``dev_sets.md`` and
 ``dev_sets.json`` under ``--out``; the last line printed is one JSON object.
 """
 
