@@ -9,6 +9,7 @@ from scipy.interpolate import RegularGridInterpolator
 from detector.objects import _readings
 from detector.objects.assemble import (
     _box_mean,
+    _vents,
     PatchField,
     AssemblyParams,
     HYP_AXIS_FORWARD,
@@ -800,3 +801,29 @@ def test_a_shared_source_lets_the_matching_pair_a_vents_fans_by_direction():
     assert shared["x_px"].tolist() == [53.0, 53.0]
     together = match_objects(shared, consensus)
     assert sorted(together["direction_error_deg"].round(6)) == [2.0, 2.0]
+
+
+@pytest.mark.parametrize("vent_smooth_px, n_vents", [(2.0, 2), (3.0, 1)])
+def test_vents_resolve_two_close_sources_at_the_finer_smoothing(vent_smooth_px, n_vents):
+    # Two equal Gaussian blobs (sigma 5 px) 11.2 px apart, smoothed by a Gaussian of sigma g, are a
+    # mixture of two Gaussians of sigma sqrt(25 + g^2); such a mixture has two modes only when the
+    # separation exceeds twice that sigma (Schilling, Watkins and Watkins 2002, "Is human height
+    # bimodal?", The American Statistician 56(3), 223-229): 10.77 px at g = 2, 11.66 px at g = 3.
+    # The modes sit at +-u, where u = a tanh(a u / s^2) with a the half separation (same paper).
+    sigma, separation = 5.0, 11.2
+    yy, xx = np.mgrid[0:61, 0:81].astype(float)
+    dark = sum(np.exp(-((xx - 40 - side * separation / 2) ** 2 + (yy - 30) ** 2) / (2 * sigma ** 2))
+               for side in (-1, 1)).astype(np.float32)
+    mask = dark > 0.05
+    ly, lx = np.nonzero(mask)
+    params = AssemblyParams(vent_smooth_px=vent_smooth_px, vent_min_separation_px=3)
+    vx, vy, _ = _vents(dark, mask, ly, lx, params)
+    assert (2 * np.hypot(sigma, vent_smooth_px) < separation) == (n_vents == 2)
+    assert len(vx) == n_vents and np.all(vy == 30)
+    if n_vents == 1:
+        assert vx[0] == 40
+    else:
+        a, s2, u = separation / 2, sigma ** 2 + vent_smooth_px ** 2, separation / 2
+        for _ in range(200):  # the fixed point of u = a tanh(a u / s^2)
+            u = a * np.tanh(a * u / s2)
+        np.testing.assert_allclose(np.sort(vx), [40 - u, 40 + u], atol=1.0)

@@ -8,8 +8,10 @@ import pytest
 from sklearn.metrics import brier_score_loss, log_loss
 
 from detector.errors import DetectorError, TileSetError
+from detector.objects.assemble import AssemblyParams
 from detector.tile.spec import FeatureSpec, POLARITY_ODD_FEATURES
 from training.fitting.train import (
+    DETECTION_VENT_SMOOTH_PX,
     TrainConfig,
     calibration_scores,
     fit_calibration,
@@ -214,6 +216,9 @@ def test_model_card_fields(tiny_model):
     if boosted:  # degrees of a turn of tens of degrees, in float32
         assert t["onnx_parity"]["turn_max_abs_diff_deg"] < 1e-3
     assert t["context_first_scores"] in ("out of fold", "in sample")
+    # vents are found finer when the model detects than where its readings were learnt
+    assert card["assembly"]["vent_smooth_px"] == DETECTION_VENT_SMOOTH_PX == 2.0
+    assert t["readings"]["vent_smooth_px"] == AssemblyParams().vent_smooth_px == 3.0
     # The threshold kept is the least strict within reach of the best (the one-standard-error rule of
     # Hastie, Tibshirani and Friedman, ESL 2nd ed., section 7.10, on the paired shortfall), read back
     # from the card's own table.
