@@ -1,6 +1,7 @@
 """Training: grouped split, calibration scores and fit, orientation targets, unfamiliarity, bad input, the card."""
 
 import shutil
+from dataclasses import asdict
 
 import numpy as np
 import pandas as pd
@@ -11,7 +12,7 @@ from detector.errors import DetectorError, TileSetError
 from detector.objects.assemble import AssemblyParams
 from detector.tile.spec import FeatureSpec, POLARITY_ODD_FEATURES
 from training.fitting.train import (
-    DETECTION_VENT_SMOOTH_PX,
+    DETECTION_ASSEMBLY,
     TrainConfig,
     calibration_scores,
     fit_calibration,
@@ -217,8 +218,12 @@ def test_model_card_fields(tiny_model):
         assert t["onnx_parity"]["turn_max_abs_diff_deg"] < 1e-3
     assert t["context_first_scores"] in ("out of fold", "in sample")
     # vents are found finer when the model detects than where its readings were learnt
-    assert card["assembly"]["vent_smooth_px"] == DETECTION_VENT_SMOOTH_PX == 2.0
-    assert t["readings"]["vent_smooth_px"] == AssemblyParams().vent_smooth_px == 3.0
+    assert DETECTION_ASSEMBLY == {"vent_smooth_px": 2.0}
+    for key, value in DETECTION_ASSEMBLY.items():
+        assert card["assembly"][key] == value
+        assert t["readings"]["assembly"][key] == getattr(AssemblyParams(), key) != value
+    assert {k: v for k, v in card["assembly"].items() if k not in set(DETECTION_ASSEMBLY) | {"min_score"}} == {
+        k: v for k, v in asdict(AssemblyParams()).items() if k not in set(DETECTION_ASSEMBLY) | {"min_score"}}
     # The threshold kept is the least strict within reach of the best (the one-standard-error rule of
     # Hastie, Tibshirani and Friedman, ESL 2nd ed., section 7.10, on the paired shortfall), read back
     # from the card's own table.

@@ -694,13 +694,14 @@ def _fit_object_classifier(tileset, split, patches, patch_model, orientation, sp
                     crossed, refine, refine_check, turn_model)
 
 
-#: Gaussian sigma of the darkness whose peaks are vents when the model detects (the card's
-#: ``assembly.vent_smooth_px``), px. The readings the object classifier, the context model and the
-#: refinement learn from are read at the assembly's default, 3 px (the card's
-#: ``training.readings.vent_smooth_px``): finer vents at detection give a vent's second fan and close
-#: vents a reading of their own, which the classifiers learnt at 3 px score well, while learning at
-#: 2 px as well gained nothing a retrain with another seed does not move (README, "Benchmark").
-DETECTION_VENT_SMOOTH_PX = 2.0
+#: Assembly settings the card detects with where they differ from the ones its readings are learnt at
+#: (the assembly's defaults, kept in the card's ``training.readings``): vents are the peaks of the
+#: darkness smoothed at 2 px instead of 3. A second vent close to another, or a vent's short second
+#: fan, then gets readings of its own, which the classifiers learnt on the coarser readings score
+#: well; learning at 2 px as well gained nothing a retrain with another seed does not move, and a
+#: vent's modes split from 6 % of its weight instead of 8 % at detection lost shifted fan F1 (README,
+#: "Benchmark").
+DETECTION_ASSEMBLY = {"vent_smooth_px": 2.0}
 
 #: Folds (by image) of the object classifier whose out-of-fold scores the context model learns from.
 CONTEXT_FOLDS = 3
@@ -809,7 +810,7 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
         "odd_features": [n for n in names if n in POLARITY_ODD_FEATURES],
         "calibration": {"temperature": calibration.temperature, "bias": list(calibration.bias),
                         "before": patch_model.before, "after": patch_model.after, "images": split.calibration},
-        "assembly": asdict(replace(objects.params, vent_smooth_px=DETECTION_VENT_SMOOTH_PX)),
+        "assembly": asdict(replace(objects.params, **DETECTION_ASSEMBLY)),
         "object_features": list(OBJECT_FEATURE_NAMES),
         "context_features": list(CONTEXT_FEATURE_NAMES),
         "direction_confidence": objects.confidence,
@@ -831,7 +832,8 @@ def _model_card(tileset_root, tileset, split, patches, patch_model, orientation,
             "context_iterations": int(objects.context.n_iter_),
             "context_first_scores": "out of fold" if objects.context_crossed else "in sample",
             "readings": {"fit": int(len(cand_fit)), "fit_right": int(cand_fit.label.sum()),
-                         "calibration": int(len(cand_val)), "vent_smooth_px": objects.params.vent_smooth_px},
+                         "calibration": int(len(cand_val)),
+                         "assembly": {k: getattr(objects.params, k) for k in DETECTION_ASSEMBLY}},
             "refine_model_check": objects.refine_check,
             "onnx_parity": onnx.parity,
             "versions": _versions(),
