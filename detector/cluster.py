@@ -39,9 +39,16 @@ def connect(scheduler, *, timeout=None):
         ``timeout``, or no worker joins it within ``timeout``.
     """
     from distributed import Client
+    from distributed.comm import parse_address
+    from distributed.comm.addressing import parse_host_port
 
     timeout = CONNECT_TIMEOUT_S if timeout is None else float(timeout)
     try:
+        # A malformed host:port is refused before a client exists: a client that fails on one leaves its
+        # event loop half started, and the next cluster or client of the process can then hang.
+        scheme, location = parse_address(scheduler)
+        if scheme in ("tcp", "tls"):
+            parse_host_port(location)
         client = Client(scheduler, timeout=timeout)
     except (OSError, TimeoutError, ValueError) as err:
         raise DetectorError(f"Dask scheduler {scheduler!r} cannot be reached: {_one_line(err)}.") from err

@@ -41,3 +41,17 @@ def test_worker_count_is_the_clusters():
     with LocalCluster(n_workers=2, processes=False, threads_per_worker=1, dashboard_address=None) as cluster:
         with connect(cluster.scheduler_address) as client:
             assert worker_count(client) == 2
+
+
+def test_a_malformed_address_leaves_the_process_able_to_start_a_cluster():
+    # A client that fails on a malformed address used to leave its event loop half started, and the
+    # next cluster of the process failed to start its own ("assert loop is not None") or hung.
+    from distributed import LocalCluster
+
+    with pytest.raises(DetectorError, match="invalid address"):
+        connect("nonsense::", timeout=1)
+    with pytest.raises(DetectorError, match="missing port number"):
+        connect("tcp://127.0.0.1", timeout=1)
+    with LocalCluster(n_workers=1, processes=False, threads_per_worker=1, dashboard_address=None) as cluster:
+        with connect(cluster.scheduler_address, timeout=10) as client:
+            assert worker_count(client) == 1
