@@ -808,8 +808,9 @@ def test_vents_resolve_two_close_sources_at_the_finer_smoothing(vent_smooth_px, 
     # Two equal Gaussian blobs (sigma 5 px) 11.2 px apart, smoothed by a Gaussian of sigma g, are a
     # mixture of two Gaussians of sigma sqrt(25 + g^2); such a mixture has two modes only when the
     # separation exceeds twice that sigma (Schilling, Watkins and Watkins 2002, "Is human height
-    # bimodal?", The American Statistician 56(3), 223-229): 10.77 px at g = 2, 11.66 px at g = 3.
-    # The modes sit at +-u, where u = a tanh(a u / s^2) with a the half separation (same paper).
+    # bimodal?", The American Statistician 56(3), 223-229; cited from memory): 10.77 px at g = 2,
+    # 11.66 px at g = 3. The modes sit at +-u, where u = a tanh(a u / s^2) with a the half separation
+    # and s^2 = 25 + g^2 (the zero of the mixture density's derivative).
     sigma, separation = 5.0, 11.2
     yy, xx = np.mgrid[0:61, 0:81].astype(float)
     dark = sum(np.exp(-((xx - 40 - side * separation / 2) ** 2 + (yy - 30) ** 2) / (2 * sigma ** 2))
